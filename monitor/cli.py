@@ -1,0 +1,331 @@
+"""`scenemon` command line: parses, calls the modules, maps errors to exit codes.
+
+Exit codes: 0 ok, 1 runtime failure, 2 bad input (file, card, flag) with one sentence on
+stderr naming the file and the problem; no traceback unless --debug.
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import signal
+import sys
+import threading
+import time
+import warnings
+from pathlib import Path
+
+from monitor import __version__
+from monitor.errors import ScenemonError
+
+EXAMPLES = {
+    "replay": """examples:
+  scenemon replay recordings/demo/tour.wav --model models/demo.tflite --truth recordings/demo/tour.tsv --fast --headless
+  scenemon replay field/corridor.flac --model models/demo.int8.tflite --out recordings/corridor-1
+  scenemon replay walk.wav --model m.keras --spec m.toml --smoothing ema --ema-alpha 0.3""",
+    "demo": """examples:
+  make demo                 # sets up .venv and runs this
+  scenemon demo             # the bundled scene tour at real-time pace
+  scenemon demo --fast      # the same, as fast as the CPU allows""",
+    "bench": """examples:
+  scenemon bench
+  scenemon bench --model models/demo.keras --seconds 120""",
+}
+
+
+class _Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # argparse's own bad-flag path: exit 2, one line
+        self.print_usage(sys.stderr)
+        sys.stderr.write(f"{self.prog}: error: {message}\n")
+        raise SystemExit(2)
+
+
+def _fraction(text: str) -> float:
+    v = float(text)
+    if not 0.0 <= v <= 1.0:
+        raise argparse.ArgumentTypeError(f"{text} is not in [0, 1]")
+    return v
+
+
+def _positive_int(text: str) -> int:
+    v = int(text)
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"{text} is not an integer >= 1")
+    return v
+
+
+def _add_decision_flags(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("decision (override the card's [decision] table)")
+    g.add_argument("--smoothing", choices=["none", "mean", "ema", "median"],
+                   help="smoothing of the raw probabilities")
+    g.add_argument("--smoothing-windows", type=_positive_int, metavar="N",
+                   help="windows averaged by mean / median")
+    g.add_argument("--ema-alpha", type=float, metavar="A", help="weight of the newest window (ema)")
+    g.add_argument("--enter", type=_fraction, metavar="P", help="probability a class needs to be taken")
+    g.add_argument("--exit", type=_fraction, metavar="P",
+                   help="release the decision when its probability falls below P (0: never)")
+    g.add_argument("--margin", type=_fraction, metavar="P",
+                   help="lead over the current decision needed to switch")
+    g.add_argument("--confirm", type=_positive_int, metavar="K",
+                   help="consecutive passing windows needed to switch")
+    g.add_argument("--min-hold", type=float, metavar="S", dest="min_hold_s",
+                   help="seconds a decision is held before it may switch")
+
+
+def _add_model_flags(p: argparse.ArgumentParser, *, required: bool = True) -> None:
+    p.add_argument("--model", required=required, metavar="M",
+                   help=".keras, .h5 or .tflite model; its card is M's stem + .toml")
+    p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
+    p.add_argument("--trust-model", action="store_true",
+                   help="allow Keras Lambda layers (their code runs when the model loads)")
+
+
+def _add_session_flags(p: argparse.ArgumentParser) -> None:
+    p.add_argument("--out", metavar="DIR",
+                   help="session directory (default: recordings/<date>-<time>-<name>)")
+    p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
+    p.add_argument("--headless", action="store_true",
+                   help="no screen: one JSON object per window on stdout")
+
+
+def build_parser() -> argparse.ArgumentParser:
+    ap = _Parser(prog="scenemon",
+                 description="Watch a small audio classifier decide on live or recorded sound, "
+                             "record the session, and check it against the truth.",
+                 epilog="example: scenemon replay recordings/demo/tour.wav --model "
+                        "models/demo.tflite --truth recordings/demo/tour.tsv --fast --headless",
+                 formatter_class=argparse.RawDescriptionHelpFormatter)
+    ap.add_argument("--version", action="version", version=f"scenemon {__version__}")
+    ap.add_argument("--debug", action="store_true", help="show tracebacks")
+    sub = ap.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+
+    p = sub.add_parser("replay", help="run an audio file through the model and record a session",
+                       description="Run a WAV/FLAC/OGG file through the same chain as the "
+                                   "microphone and write a session directory.",
+                       epilog=EXAMPLES["replay"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("audio", metavar="AUDIO", help="audio file (any rate and channel count)")
+    _add_model_flags(p)
+    p.add_argument("--truth", metavar="T.tsv", help="truth: onset<TAB>offset<TAB>label lines")
+    p.add_argument("--fast", action="store_true", help="as fast as the CPU allows (default: real time)")
+    p.add_argument("--allow-upsample", action="store_true",
+                   help="accept a file below the model's rate (its top band will be empty)")
+    _add_session_flags(p)
+    _add_decision_flags(p)
+    p.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    p = sub.add_parser("demo", help="the bundled demo model on the bundled scene tour",
+                       description="Run the demo model on the demo scene tour (made on first "
+                                   "use under recordings/demo/) and record a session.",
+                       epilog=EXAMPLES["demo"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--model", default=None, metavar="M",
+                   help="model (default: models/demo.tflite)")
+    p.add_argument("--fast", action="store_true", help="as fast as the CPU allows")
+    _add_session_flags(p)
+    p.add_argument("--debug", action="store_true", help="show tracebacks")
+
+    p = sub.add_parser("bench", help="will this model keep up on this machine?",
+                       description="Measure start-up, per-window cost and fast-replay speed.",
+                       epilog=EXAMPLES["bench"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--model", default=None, metavar="M", help="model (default: models/demo.tflite)")
+    p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
+    p.add_argument("--seconds", type=float, default=240.0, help="seconds of tour audio to replay")
+    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    return ap
+
+
+def project_root() -> Path:
+    """The checkout holding models/ (the working directory, else the package's parent)."""
+    cwd = Path.cwd()
+    if (cwd / "models" / "demo.toml").is_file():
+        return cwd
+    return Path(__file__).resolve().parent.parent
+
+
+def session_dir(out: str | None, name: str) -> Path:
+    if out:
+        return Path(out)
+    base = project_root() / "recordings"
+    stamp = time.strftime("%Y%m%d-%H%M%S")
+    safe = "".join(c if c.isalnum() or c in "-_" else "-" for c in name)[:40] or "session"
+    d = base / f"{stamp}-{safe}"
+    k = 1
+    while d.exists():
+        k += 1
+        d = base / f"{stamp}-{safe}-{k}"
+    return d
+
+
+def _decision(card, args):
+    from monitor.spec import DecisionSettings  # noqa: F401
+
+    fields = ("smoothing", "smoothing_windows", "ema_alpha", "enter", "exit", "margin",
+              "confirm", "min_hold_s")
+    try:
+        return card.decision.replace(**{f: getattr(args, f, None) for f in fields})
+    except ValueError as exc:
+        raise ScenemonError(f"decision flags: {exc}") from None
+
+
+class HeadlessPrinter:
+    """One JSON object per window on stdout (the windows.jsonl fields)."""
+
+    def __init__(self, stream=None) -> None:
+        self.stream = stream or sys.stdout
+
+    def on_window(self, r) -> None:
+        from monitor.session import dumps
+
+        self.stream.write(dumps(r.record()) + "\n")
+        self.stream.flush()
+
+
+class ChangePrinter:
+    """One readable line per decision change (the demo without a screen)."""
+
+    def __init__(self, stream=None) -> None:
+        self.stream = stream or sys.stdout
+        self.last: str | None = "<start>"
+
+    def on_window(self, r) -> None:
+        if r.decision == self.last:
+            return
+        self.last = r.decision
+        shown = r.decision or "undecided"
+        truth = f"   truth {r.truth}" if r.truth else ""
+        mark = "" if not r.truth or r.truth == r.decision else "   (differs)"
+        conf = f"{max(r.smoothed):.2f}"
+        self.stream.write(f"{r.t1:8.1f} s  {shown:<12} p={conf}{truth}{mark}\n")
+        self.stream.flush()
+
+
+def run_session(*, audio: Path, model: str, spec: str | None, truth_path: str | None,
+                fast: bool, out: str | None, no_audio: bool, observers_extra: list,
+                args, allow_upsample: bool = False, trust_model: bool = False) -> dict:
+    """Validate everything, then run one file session; return the summary."""
+    from monitor.engine import Engine
+    from monitor.runners import load_runner
+    from monitor.session import SessionWriter
+    from monitor.sources import FileSource
+    from monitor.spec import load_card_for_model
+    from monitor.truth import load_truth
+
+    card = load_card_for_model(model, spec)
+    decision = _decision(card, args)
+    truth = load_truth(truth_path, classes=card.classes) if truth_path else None
+    source = FileSource(audio, model_rate=card.sample_rate, window_samples=card.window_samples,
+                        realtime=not fast, allow_upsample=allow_upsample)
+    runner = load_runner(model, card, trust_model=trust_model)
+    engine = Engine(card, runner, source, decision=decision,
+                    truth=truth.label_for if truth else None)
+    meta = engine.describe()
+    meta["truth_file"] = str(truth_path) if truth_path else None
+    writer = SessionWriter(session_dir(out, Path(audio).stem), meta,
+                           sample_rate=card.sample_rate, audio=not no_audio)
+    engine.observers = [writer, *observers_extra]
+    stop = threading.Event()
+    old = signal.signal(signal.SIGINT, lambda *_: stop.set()) \
+        if threading.current_thread() is threading.main_thread() else None
+    summary = None
+    try:
+        summary = engine.run(stop)
+        summary["session"] = str(writer.dir)
+    finally:
+        if old is not None:
+            signal.signal(signal.SIGINT, old)
+        spans = truth.spans if truth else None
+        if spans is not None and summary is not None:
+            spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
+        writer.close(summary, spans)
+    if writer.error is not None:
+        raise RuntimeError(f"{writer.dir}: writing the session failed ({writer.error})")
+    return summary
+
+
+def print_summary(summary: dict, stream=sys.stderr) -> None:
+    acc = summary.get("accuracy")
+    lines = [
+        f"session   {summary.get('session')}",
+        f"windows   {summary['windows']} over {summary['duration_s']:.1f} s, "
+        f"{summary['decision_changes']} decision changes "
+        f"({summary['switches_per_min'] or 0:.2f}/min)",
+        f"compute   median {summary['ms_median'] or 0:.3f} ms, p99 "
+        f"{summary['ms_p99'] or 0:.3f} ms per window",
+        f"losses    {summary['overruns']} overruns, {summary['dropped_samples']} samples dropped",
+    ]
+    if acc is not None:
+        lines.append(f"accuracy  {acc:.1%} of {summary['windows_with_truth']} windows with truth")
+    stream.write("\n".join(lines) + "\n")
+
+
+def cmd_replay(args) -> int:
+    observers = [HeadlessPrinter()] if args.headless else [ChangePrinter()]
+    summary = run_session(audio=Path(args.audio), model=args.model, spec=args.spec,
+                          truth_path=args.truth, fast=args.fast, out=args.out,
+                          no_audio=args.no_audio, observers_extra=observers, args=args,
+                          allow_upsample=args.allow_upsample, trust_model=args.trust_model)
+    print_summary(summary)
+    return 0
+
+
+def cmd_demo(args) -> int:
+    from monitor.demo.tour import ensure_tour
+
+    root = project_root()
+    model = args.model or str(root / "models" / "demo.tflite")
+    wav, tsv = ensure_tour(root / "recordings" / "demo")
+    observers = [HeadlessPrinter()] if args.headless else [ChangePrinter()]
+    if not args.headless:
+        sys.stdout.write(f"scenemon demo: {wav.name} ({'fast' if args.fast else 'real time'}), "
+                         f"model {Path(model).name}; Ctrl-C stops\n")
+    summary = run_session(audio=wav, model=model, spec=None, truth_path=str(tsv),
+                          fast=args.fast, out=args.out, no_audio=args.no_audio,
+                          observers_extra=observers, args=args)
+    print_summary(summary)
+    return 0
+
+
+def cmd_bench(args) -> int:
+    from monitor.bench import run_bench
+
+    root = project_root()
+    model = args.model or str(root / "models" / "demo.tflite")
+    run_bench(model, spec=args.spec, seconds=args.seconds)
+    return 0
+
+
+def main(argv: list[str] | None = None) -> int:
+    os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
+    ap = build_parser()
+    args = ap.parse_args(argv)
+    if not args.command:
+        ap.print_help()
+        return 2
+    debug = getattr(args, "debug", False)
+    handlers = {"replay": cmd_replay, "demo": cmd_demo, "bench": cmd_bench}
+    with warnings.catch_warnings():
+        warnings.simplefilter("default")
+        warnings.showwarning = _show_warning
+        try:
+            return handlers[args.command](args)
+        except ScenemonError as exc:
+            if debug:
+                raise
+            sys.stderr.write(f"scenemon: {exc}\n")
+            return 2
+        except KeyboardInterrupt:
+            return 130
+        except Exception as exc:  # runtime failure
+            if debug:
+                raise
+            sys.stderr.write(f"scenemon: {type(exc).__name__}: {exc} (run with --debug for details)\n")
+            return 1
+
+
+def _show_warning(message, category, filename, lineno, file=None, line=None) -> None:
+    if issubclass(category, (DeprecationWarning, FutureWarning)):
+        return
+    sys.stderr.write(f"scenemon: warning: {message}\n")
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,170 @@
+"""Deterministic build of the demo model: `python -m monitor.demo.build [--out models]`.
+
+Synthesises seeded clips of the four places, computes features with the very front end the
+card describes, trains a small depthwise-separable CNN (Zhang et al. 2017, "Hello Edge")
+with fixed seeds and deterministic ops on the CPU, and writes ``demo.keras``,
+``demo.tflite`` (float), ``demo.int8.tflite`` (full-integer), ``demo.toml`` and
+``demo.int8.toml``. Also prints the held-out window accuracy (other seeds).
+"""
+
+from __future__ import annotations
+
+import argparse
+import os
+import sys
+import time
+from pathlib import Path
+
+import numpy as np
+
+from monitor.demo import CLASSES
+from monitor.demo.synth import clip
+from monitor.frontend import FrontEnd
+from monitor.spec import card_from_dict
+
+CARD = {
+    "classes": list(CLASSES),
+    "audio": {"sample_rate": 16000, "window_s": 1.0, "hop_s": 0.5},
+    "frontend": {"kind": "logmel", "frame_length": 400, "frame_step": 160, "fft_length": 512,
+                 "window": "hann", "mel_bands": 40, "fmin": 0.0, "fmax": 8000.0,
+                 "mel_scale": "htk", "mel_norm": "none", "mel_triangles": "mel",
+                 "power": 2.0, "log": "ln", "log_offset": 1e-6, "layout": "time_mel",
+                 "pcm_bits": 16},
+    "decision": {"smoothing": "mean", "smoothing_windows": 3, "ema_alpha": 0.5,
+                 "enter": 0.6, "exit": 0.0, "margin": 0.1, "confirm": 2, "min_hold_s": 0.0},
+}
+TRAIN_SEEDS = range(1000, 1070)
+HELD_OUT_SEEDS = range(9000, 9016)
+CLIP_S = 3.0
+
+
+def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
+    n = 1 + (x.size - window) // hop
+    return np.stack([x[i * hop:i * hop + window] for i in range(n)])
+
+
+def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
+    c = fe.card
+    xs, ys = [], []
+    for seed in seeds:
+        for k, place in enumerate(CLASSES):
+            w = windows_of(clip(place, CLIP_S, seed), c.window_samples, c.hop_samples)
+            xs.append(fe.logmel(w))
+            ys.append(np.full(len(w), k))
+    return np.concatenate(xs).astype(np.float32), np.concatenate(ys)
+
+
+def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str) -> str:
+    def v(x):
+        if isinstance(x, bool):
+            return "true" if x else "false"
+        if isinstance(x, str):
+            return f'"{x}"'
+        if isinstance(x, float):
+            return repr(x)
+        return str(x)
+
+    lines = [f"# {note}", "classes = [" + ", ".join(f'"{c}"' for c in card["classes"]) + "]", ""]
+    for table in ("audio", "frontend"):
+        lines.append(f"[{table}]")
+        lines += [f"{k} = {v(x)}" for k, x in card[table].items()]
+        lines.append("")
+    lines.append("[scaling]  # per mel band, from the training features")
+    lines.append("mean = [" + ", ".join(f"{m:.6f}" for m in mean) + "]")
+    lines.append("std = [" + ", ".join(f"{s:.6f}" for s in std) + "]")
+    lines.append("")
+    lines.append("[decision]")
+    lines += [f"{k} = {v(x)}" for k, x in card["decision"].items()]
+    return "\n".join(lines) + "\n"
+
+
+def build_model(shape, n_classes):
+    import keras
+    from keras import layers
+
+    inp = keras.Input(shape=(*shape, 1), name="logmel")
+    x = layers.Conv2D(12, 3, strides=2, padding="same", use_bias=False)(inp)
+    x = layers.BatchNormalization()(x)
+    x = layers.ReLU()(x)
+    for filters in (24, 32):
+        x = layers.DepthwiseConv2D(3, padding="same", use_bias=False)(x)
+        x = layers.BatchNormalization()(x)
+        x = layers.ReLU()(x)
+        x = layers.Conv2D(filters, 1, use_bias=False)(x)
+        x = layers.BatchNormalization()(x)
+        x = layers.ReLU()(x)
+        x = layers.MaxPooling2D(2)(x)
+    x = layers.GlobalAveragePooling2D()(x)
+    x = layers.Dropout(0.2)(x)
+    out = layers.Dense(n_classes, activation="softmax", name="probs")(x)
+    return keras.Model(inp, out, name="demo_scene_cnn")
+
+
+def main(argv: list[str] | None = None) -> int:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--out", default="models", help="output folder (default: models)")
+    ap.add_argument("--epochs", type=int, default=30)
+    args = ap.parse_args(argv)
+    os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
+    os.environ["TF_DETERMINISTIC_OPS"] = "1"
+    t_start = time.time()
+    out = Path(args.out)
+    out.mkdir(parents=True, exist_ok=True)
+
+    base = card_from_dict(CARD)
+    fe = FrontEnd(base)
+    x_train, y_train = dataset(TRAIN_SEEDS, fe)
+    x_test, y_test = dataset(HELD_OUT_SEEDS, fe)
+    mean = x_train.mean(axis=(0, 1)).astype(np.float32)
+    std = (x_train.std(axis=(0, 1)) + 1e-3).astype(np.float32)
+    print(f"features: train {x_train.shape}, held out {x_test.shape} "
+          f"({time.time() - t_start:.1f} s)", flush=True)
+
+    import tensorflow as tf
+
+    tf.config.threading.set_intra_op_parallelism_threads(2)
+    tf.config.threading.set_inter_op_parallelism_threads(1)
+    import keras
+
+    keras.utils.set_random_seed(7)
+    tf.config.experimental.enable_op_determinism()
+    xt = ((x_train - mean) / std)[..., None]
+    xv = ((x_test - mean) / std)[..., None]
+    model = build_model(x_train.shape[1:], len(CLASSES))
+    model.compile(optimizer=keras.optimizers.Adam(3e-3),
+                  loss="sparse_categorical_crossentropy", metrics=["accuracy"])
+    model.fit(xt, y_train, epochs=args.epochs, batch_size=32, shuffle=True, verbose=2,
+              validation_data=(xv, y_test))
+    acc = float(np.mean(np.argmax(model.predict(xv, verbose=0), axis=1) == y_test))
+    print(f"held-out window accuracy (seeds {HELD_OUT_SEEDS.start}-{HELD_OUT_SEEDS.stop - 1}): "
+          f"{acc:.4f}", flush=True)
+    model.save(out / "demo.keras")
+
+    conv = tf.lite.TFLiteConverter.from_keras_model(model)
+    (out / "demo.tflite").write_bytes(conv.convert())
+    rng = np.random.default_rng(11)
+    pick = rng.choice(len(xt), size=300, replace=False)
+
+    def representative():
+        for i in pick:
+            yield [xt[i:i + 1]]
+
+    conv = tf.lite.TFLiteConverter.from_keras_model(model)
+    conv.optimizations = [tf.lite.Optimize.DEFAULT]
+    conv.representative_dataset = representative
+    conv.target_spec.supported_ops = [tf.lite.OpsSet.TFLITE_BUILTINS_INT8]
+    conv.inference_input_type = tf.int8
+    conv.inference_output_type = tf.int8
+    (out / "demo.int8.tflite").write_bytes(conv.convert())
+
+    note = "scenemon demo model card (written by python -m monitor.demo.build)"
+    text = card_toml(CARD, mean, std, note)
+    (out / "demo.toml").write_text(text)
+    (out / "demo.int8.toml").write_text(text)
+    print(f"wrote {out}/demo.keras, demo.tflite, demo.int8.tflite, demo.toml, demo.int8.toml "
+          f"in {time.time() - t_start:.1f} s", flush=True)
+    return 0
+
+
+if __name__ == "__main__":
+    sys.exit(main())

@@ -1,0 +1,258 @@
+"""Model runners: one `predict(features) -> probabilities` for Keras and TFLite models.
+
+`load_runner(path, card)` picks the runner by extension:
+
+- ``.keras`` (Keras 3) and legacy ``.h5``: loaded with ``safe_mode=True`` (a model with a
+  Lambda layer is refused unless ``trust_model``), called through one `tf.function` with a
+  fixed input signature, never ``model.predict`` per window (about 90 ms a call against
+  about 1 ms).
+- ``.tflite`` (float or int8): LiteRT's interpreter, which does not import TensorFlow
+  (about 0.2 s to import against about 6 s). Int8 inputs are quantised with the tensor's
+  own scale and zero point, int8 outputs dequantised.
+
+Both runners evaluate one window per call of a fixed batch-1 signature, so a window's
+result never depends on how many windows arrived with it: fast replay and real-time replay
+give identical numbers. A runner is owned by one thread (the engine's compute thread).
+"""
+
+from __future__ import annotations
+
+import contextlib
+import hashlib
+import os
+import warnings
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+
+from monitor.errors import ModelError
+from monitor.spec import ModelCard
+
+MIN_KERAS = (3, 12)
+
+
+def file_sha256(path: str | Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+class Runner(Protocol):
+    kind: str
+    path: Path
+    sha256: str
+    input_shape: tuple[int, ...]
+    n_outputs: int
+
+    def predict(self, features: np.ndarray) -> np.ndarray:
+        """Probabilities, shape ``(n, n_outputs)`` float32, for features ``(n, *card.feature_shape)``."""
+        ...
+
+
+def softmax(z: np.ndarray) -> np.ndarray:
+    z = z - np.max(z, axis=-1, keepdims=True)
+    e = np.exp(z)
+    return (e / np.sum(e, axis=-1, keepdims=True)).astype(np.float32)
+
+
+class _Base:
+    def __init__(self, path: Path, card: ModelCard, input_shape: tuple, n_outputs: int,
+                 n_inputs: int, n_out_tensors: int) -> None:
+        self.path = path
+        self.card = card
+        if n_inputs != 1 or n_out_tensors != 1:
+            raise ModelError(f"{path}: model has {n_inputs} inputs and {n_out_tensors} "
+                             f"outputs; scenemon needs exactly one of each")
+        self.input_shape = tuple(int(s) if s is not None else -1 for s in input_shape)
+        self.n_outputs = int(n_outputs)
+        card.check_model(tuple(None if s == -1 else s for s in self.input_shape),
+                         self.n_outputs, path)
+        self._one_shape = (1, *card.feature_shape,
+                           *([1] if len(self.input_shape) > len(card.feature_shape) else []))
+        self.sha256 = file_sha256(path)
+
+    def _finish(self, out: np.ndarray) -> np.ndarray:
+        if self.card.output == "logits":
+            return softmax(out)
+        return out.astype(np.float32)
+
+    def check_outputs(self) -> None:
+        """Warm up once and warn when a 'probabilities' model does not output probabilities."""
+        out = self.predict(np.zeros((1, *self.card.feature_shape), np.float32))
+        if self.card.output == "probabilities":
+            s = float(out.sum())
+            if not np.all(np.isfinite(out)) or out.min() < -1e-3 or abs(s - 1.0) > 0.02:
+                warnings.warn(f"{self.path}: outputs do not look like probabilities "
+                              f"(sum {s:.3f}); set output = \"logits\" in the card if the model "
+                              f"ends without a softmax", stacklevel=2)
+
+
+class KerasRunner(_Base):
+    """A Keras 3 model behind a batch-1 `tf.function` (see module docstring)."""
+
+    def __init__(self, path: Path, card: ModelCard, *, trust_model: bool = False,
+                 threads: int = 1) -> None:
+        os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
+        os.environ.setdefault("KERAS_BACKEND", "tensorflow")
+        import tensorflow as tf
+
+        try:  # thread counts only take before TensorFlow's first operation
+            tf.config.threading.set_intra_op_parallelism_threads(threads)
+            tf.config.threading.set_inter_op_parallelism_threads(1)
+        except RuntimeError:
+            pass
+        import keras
+
+        version = tuple(int(p) for p in keras.__version__.split(".")[:2])
+        if version < MIN_KERAS:
+            raise ModelError(f"{path}: keras {keras.__version__} is too old; scenemon needs "
+                             f">= 3.12 (safe mode covers .h5 files only from 3.12)")
+        try:
+            model = keras.saving.load_model(path, compile=False, safe_mode=not trust_model)
+        except Exception as exc:  # keras raises many kinds for a bad file
+            text = str(exc)
+            if "Lambda" in text or "safe_mode" in text:
+                raise ModelError(f"{path}: the model contains a Lambda layer, whose code "
+                                 f"would run on loading; refused (pass --trust-model only "
+                                 f"for a file you trust)") from None
+            first = text.strip().splitlines()[0] if text.strip() else type(exc).__name__
+            raise ModelError(f"{path}: cannot be loaded as a Keras model ({first[:200]})") from None
+        inputs = model.inputs if isinstance(model.inputs, list) else [model.inputs]
+        outputs = model.outputs if isinstance(model.outputs, list) else [model.outputs]
+        super().__init__(path, card, tuple(inputs[0].shape[1:]), outputs[0].shape[-1],
+                         len(inputs), len(outputs))
+        self.kind = "keras"
+        self.model = model
+        self._fn = tf.function(lambda x: model(x, training=False), input_signature=[
+            tf.TensorSpec(self._one_shape, tf.float32)])
+        self._tf = tf
+        self.check_outputs()
+
+    def predict(self, features: np.ndarray) -> np.ndarray:
+        feats = np.asarray(features, np.float32)
+        out = np.empty((feats.shape[0], self.n_outputs), np.float32)
+        for i in range(feats.shape[0]):
+            out[i] = self._fn(feats[i].reshape(self._one_shape)).numpy()[0]
+        return self._finish(out)
+
+    def predict_batch(self, features: np.ndarray) -> np.ndarray:
+        """Many windows in one call (for offline tools; numbers may differ in the last bit)."""
+        x = np.asarray(features, np.float32).reshape((-1, *self._one_shape[1:]))
+        return self._finish(np.asarray(self.model(x, training=False)))
+
+
+@contextlib.contextmanager
+def _quiet_native_stderr():
+    """Silence C++ chatter (LiteRT's delegate banner) written straight to fd 2."""
+    try:
+        saved = os.dup(2)
+    except OSError:
+        yield
+        return
+    try:
+        with open(os.devnull, "wb") as null:
+            os.dup2(null.fileno(), 2)
+            yield
+    finally:
+        os.dup2(saved, 2)
+        os.close(saved)
+
+
+def _tflite_interpreter(path: Path, threads: int):
+    try:
+        from ai_edge_litert.interpreter import Interpreter
+    except ImportError:  # no LiteRT wheel for this platform
+        os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
+        import tensorflow as tf
+
+        Interpreter = tf.lite.Interpreter
+    try:
+        with _quiet_native_stderr():
+            return Interpreter(model_path=str(path), num_threads=threads)
+    except (ValueError, RuntimeError) as exc:
+        first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+        raise ModelError(f"{path}: cannot be loaded as a TFLite model ({first[:200]})") from None
+
+
+class TFLiteRunner(_Base):
+    """A float or int8 `.tflite` model in LiteRT's interpreter (see module docstring)."""
+
+    def __init__(self, path: Path, card: ModelCard, *, threads: int = 1) -> None:
+        interp = _tflite_interpreter(path, threads)
+        ins, outs = interp.get_input_details(), interp.get_output_details()
+        super().__init__(path, card, tuple(ins[0]["shape"][1:]) if ins else (),
+                         int(outs[0]["shape"][-1]) if outs else 0, len(ins), len(outs))
+        try:
+            with _quiet_native_stderr():
+                interp.resize_tensor_input(ins[0]["index"], list(self._one_shape))
+                interp.allocate_tensors()
+        except (ValueError, RuntimeError) as exc:
+            raise ModelError(f"{path}: cannot allocate tensors ({exc})") from None
+        self.interp = interp
+        self._in, self._out = ins[0], outs[0]
+        self.in_dtype, self.out_dtype = np.dtype(ins[0]["dtype"]), np.dtype(outs[0]["dtype"])
+        self.in_scale, self.in_zero = (float(v) for v in ins[0]["quantization"])
+        self.out_scale, self.out_zero = (float(v) for v in outs[0]["quantization"])
+        self.kind = "tflite-int8" if self.in_dtype == np.int8 else "tflite-float"
+        with _quiet_native_stderr():
+            self.check_outputs()
+
+    def quantize_input(self, x: np.ndarray) -> np.ndarray:
+        """``q = clip(round(x / scale) + zero_point, -128, 127)`` for an int8 input tensor."""
+        if self.in_dtype != np.int8:
+            return x.astype(self.in_dtype)
+        q = np.round(x / np.float32(self.in_scale)) + self.in_zero
+        return np.clip(q, -128, 127).astype(np.int8)
+
+    def dequantize_output(self, q: np.ndarray) -> np.ndarray:
+        """``x = scale * (q - zero_point)`` for an int8 output tensor."""
+        if self.out_dtype != np.int8:
+            return q.astype(np.float32)
+        return (np.float32(self.out_scale) * (q.astype(np.float32) - self.out_zero))
+
+    def predict(self, features: np.ndarray) -> np.ndarray:
+        feats = np.asarray(features, np.float32)
+        out = np.empty((feats.shape[0], self.n_outputs), np.float32)
+        set_tensor, invoke, get = self.interp.set_tensor, self.interp.invoke, self.interp.get_tensor
+        iidx, oidx = self._in["index"], self._out["index"]
+        for i in range(feats.shape[0]):
+            set_tensor(iidx, self.quantize_input(feats[i].reshape(self._one_shape)))
+            invoke()
+            out[i] = self.dequantize_output(get(oidx))[0]
+        return self._finish(out)
+
+
+def load_runner(path: str | Path, card: ModelCard, *, trust_model: bool = False,
+                threads: int = 1) -> Runner:
+    """Load a model file and check it against its card.
+
+    Parameters
+    ----------
+    path : str or Path
+        ``.keras``, ``.h5`` or ``.tflite``.
+    card : ModelCard
+        The card the model must fit (input shape, output size).
+    trust_model : bool
+        Allow Keras Lambda layers (their code runs on load).
+    threads : int
+        Compute threads for the model.
+
+    Raises
+    ------
+    ModelError
+        Missing, unreadable or mismatched model.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise ModelError(f"{path}: model file not found")
+    if path.stat().st_size == 0:
+        raise ModelError(f"{path}: model file is empty")
+    ext = path.suffix.lower()
+    if ext == ".tflite":
+        return TFLiteRunner(path, card, threads=threads)
+    if ext in (".keras", ".h5"):
+        return KerasRunner(path, card, trust_model=trust_model, threads=threads)
+    raise ModelError(f"{path}: unknown model type {ext!r} (use .keras, .h5 or .tflite)")

@@ -1,0 +1,240 @@
+"""The session directory: its writer (own thread) and its reader.
+
+Threads: `SessionWriter` owns one thread, "session-writer", which does every disk write of
+a session after `session.json`: window records, audio, truth and the summary. The engine's
+compute thread only puts items on an unbounded queue (`put` never blocks), so disk speed
+never stalls the audio or compute path.
+
+Layout (DESIGN.md): ``session.json``, ``windows.jsonl`` (one line per window, flushed as it
+happens, one ``write`` per record), ``truth.tsv``, ``audio.wav`` (PCM_16 at the model rate,
+header brought up to date about once a second so a killed process leaves a WAV any reader
+opens), ``snippets/``, and ``summary.json`` only at a clean stop.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import os
+import queue
+import threading
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import soundfile as sf
+
+from monitor.errors import SessionError
+from monitor.truth import Span, TruthTrack, format_truth, parse_truth
+
+SFC_UPDATE_HEADER_NOW = 0x1060  # libsndfile's command; soundfile's flush() only fsyncs
+HEADER_EVERY_S = 1.0
+FSYNC_EVERY_S = 5.0
+SESSION_FILES = ("session.json", "windows.jsonl", "summary.json", "audio.wav")
+
+
+def atomic_write(path: Path, data: bytes) -> None:
+    """Temporary file, fsync, rename, fsync of the directory: all or nothing."""
+    tmp = path.with_name(f".{path.name}.tmp")
+    with open(tmp, "wb") as f:
+        f.write(data)
+        f.flush()
+        os.fsync(f.fileno())
+    os.replace(tmp, path)
+    fd = os.open(path.parent, os.O_RDONLY)
+    try:
+        os.fsync(fd)
+    finally:
+        os.close(fd)
+
+
+def to_pcm16(x: np.ndarray) -> np.ndarray:
+    return np.clip(np.round(x * 32768.0), -32768, 32767).astype(np.int16)
+
+
+def _json_default(o: Any) -> Any:
+    if isinstance(o, np.generic):
+        return o.item()
+    if isinstance(o, np.ndarray):
+        return o.tolist()
+    if isinstance(o, Path):
+        return str(o)
+    raise TypeError(f"not JSON serialisable: {type(o).__name__}")
+
+
+def dumps(obj: Any, **kw: Any) -> str:
+    return json.dumps(obj, default=_json_default, allow_nan=False, **kw)
+
+
+def prepare_dir(out: Path) -> Path:
+    """Create a session directory; refuse one that already holds a session."""
+    if out.exists() and not out.is_dir():
+        raise SessionError(f"{out}: exists and is not a directory")
+    if out.is_dir() and any((out / name).exists() for name in SESSION_FILES):
+        raise SessionError(f"{out}: already holds a session; choose another --out")
+    try:
+        out.mkdir(parents=True, exist_ok=True)
+    except OSError as exc:
+        raise SessionError(f"{out}: cannot create the session directory ({exc.strerror})") from None
+    return out
+
+
+class SessionWriter:
+    """Writes one session directory from its own thread (see module docstring)."""
+
+    def __init__(self, out: str | Path, meta: dict[str, Any], *, sample_rate: int,
+                 audio: bool = True) -> None:
+        self.dir = prepare_dir(Path(out))
+        self.sample_rate = int(sample_rate)
+        self.write_audio = audio
+        self.meta = meta
+        atomic_write(self.dir / "session.json", dumps(meta, indent=2).encode())
+        self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self._thread = threading.Thread(target=self._run, name="session-writer", daemon=True)
+        self.error: BaseException | None = None
+        self.audio_frames = 0
+        self.windows_written = 0
+        self._thread.start()
+
+    # called from the compute thread: never blocks
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        self._q.put(("audio", chunk, gap))
+
+    def on_window(self, result: Any) -> None:
+        """Queue a `WindowResult`; it is serialised on the writer's thread."""
+        self._q.put(("window", result))
+
+    def close(self, summary: dict[str, Any] | None, truth: list[Span] | None = None) -> None:
+        """Finish: write truth and (when given) summary.json, close files, join the thread."""
+        self._q.put(("close", summary, truth))
+        self._thread.join()
+
+    def _run(self) -> None:
+        jl = open(self.dir / "windows.jsonl", "a", encoding="utf-8")
+        wav = None
+        if self.write_audio:
+            wav = sf.SoundFile(str(self.dir / "audio.wav"), "w", samplerate=self.sample_rate,
+                               channels=1, subtype="PCM_16", format="WAV")
+        last_header = last_sync = time.monotonic()
+        try:
+            while True:
+                item = self._q.get()
+                kind = item[0]
+                if kind == "window":
+                    jl.write(dumps(item[1].record()) + "\n")
+                    jl.flush()
+                    self.windows_written += 1
+                elif kind == "audio":
+                    if wav is None:
+                        continue
+                    _, chunk, gap = item
+                    if gap:
+                        wav.write(np.zeros(gap, np.int16))
+                        self.audio_frames += gap
+                    wav.write(to_pcm16(chunk))
+                    self.audio_frames += chunk.shape[0]
+                    now = time.monotonic()
+                    if now - last_header >= HEADER_EVERY_S:
+                        sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0)
+                        last_header = now
+                    if now - last_sync >= FSYNC_EVERY_S:
+                        wav.flush()
+                        os.fsync(jl.fileno())
+                        last_sync = now
+                elif kind == "close":
+                    _, summary, truth = item
+                    jl.close()
+                    if wav is not None:
+                        wav.close()
+                        wav = None
+                    if truth is not None:
+                        atomic_write(self.dir / "truth.tsv", format_truth(truth).encode())
+                    if summary is not None:
+                        summary = {**summary, "audio_frames": self.audio_frames}
+                        atomic_write(self.dir / "summary.json", dumps(summary, indent=2).encode())
+                    return
+        except BaseException as exc:
+            self.error = exc
+            # keep draining so the producer side never piles up; files stay as written
+            while True:
+                item = self._q.get()
+                if item[0] == "close":
+                    break
+        finally:
+            if not jl.closed:
+                jl.close()
+            if wav is not None:
+                wav.close()
+
+
+@dataclass
+class Session:
+    """A session read back from disk."""
+
+    dir: Path
+    meta: dict[str, Any]
+    windows: list[dict[str, Any]]
+    truth: TruthTrack | None
+    summary: dict[str, Any] | None
+    skipped_lines: int = 0
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def complete(self) -> bool:
+        return self.summary is not None
+
+    @property
+    def classes(self) -> list[str]:
+        return list(self.meta.get("card", {}).get("classes", []))
+
+
+def load_session(path: str | Path) -> Session:
+    """Read a session directory; a torn or corrupt windows line is skipped and counted."""
+    d = Path(path)
+    if not d.is_dir():
+        raise SessionError(f"{d}: not a session directory")
+    try:
+        meta = json.loads((d / "session.json").read_text(encoding="utf-8"))
+    except FileNotFoundError:
+        raise SessionError(f"{d}: no session.json, not a session directory") from None
+    except (json.JSONDecodeError, UnicodeDecodeError) as exc:
+        raise SessionError(f"{d / 'session.json'}: not valid JSON ({exc})") from None
+    windows, skipped = [], 0
+    jl = d / "windows.jsonl"
+    if jl.exists():
+        with open(jl, encoding="utf-8", errors="replace") as f:
+            for line in f:
+                try:
+                    rec = json.loads(line)
+                    if isinstance(rec, dict) and "t0" in rec:
+                        windows.append(rec)
+                    else:
+                        skipped += 1
+                except json.JSONDecodeError:
+                    skipped += 1
+    truth = None
+    tp = d / "truth.tsv"
+    if tp.exists():
+        truth = parse_truth(tp.read_text(encoding="utf-8"), where=str(tp))
+    summary = None
+    sp = d / "summary.json"
+    if sp.exists():
+        try:
+            summary = json.loads(sp.read_text(encoding="utf-8"))
+        except json.JSONDecodeError:
+            summary = None
+    notes = []
+    if summary is None:
+        notes.append("incomplete: no summary.json (the session did not close cleanly)")
+    if skipped:
+        notes.append(f"{skipped} unreadable line(s) in windows.jsonl skipped")
+    return Session(d, meta, windows, truth, summary, skipped, notes)
+
+
+def percentile(values: list[float], q: float) -> float | None:
+    if not values:
+        return None
+    v = float(np.percentile(np.asarray(values, dtype=np.float64), q))
+    return v if math.isfinite(v) else None

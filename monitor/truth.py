@@ -1,0 +1,80 @@
+"""Truth annotations: ``onset<TAB>offset<TAB>label`` lines, seconds, ``#`` comments allowed."""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from pathlib import Path
+
+from monitor.errors import TruthError
+
+
+@dataclass(frozen=True)
+class Span:
+    onset: float
+    offset: float
+    label: str
+
+
+class TruthTrack:
+    """Non-overlapping labelled spans; `label_for(t0, t1)` gives the label covering at least
+    half of the window, else None."""
+
+    def __init__(self, spans: list[Span]) -> None:
+        self.spans = sorted(spans, key=lambda s: s.onset)
+
+    def label_for(self, t0: float, t1: float) -> str | None:
+        half = (t1 - t0) / 2.0
+        cover: dict[str, float] = {}
+        for s in self.spans:
+            if s.offset <= t0:
+                continue
+            if s.onset >= t1:
+                break
+            cover[s.label] = cover.get(s.label, 0.0) + min(s.offset, t1) - max(s.onset, t0)
+        best = max(cover.items(), key=lambda kv: kv[1], default=None)
+        return best[0] if best and best[1] >= half - 1e-9 else None
+
+
+def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None) -> TruthTrack:
+    spans = []
+    for n, line in enumerate(text.splitlines(), 1):
+        body = line.split("#", 1)[0].strip()
+        if not body:
+            continue
+        parts = body.split("\t") if "\t" in body else body.split()
+        if len(parts) != 3:
+            raise TruthError(f"{where}: line {n} must be onset<TAB>offset<TAB>label, got {line!r}")
+        try:
+            onset, offset = float(parts[0]), float(parts[1])
+        except ValueError:
+            raise TruthError(f"{where}: line {n} has a time that is not a number: {line!r}") from None
+        label = parts[2].strip()
+        if onset < 0 or offset < 0:
+            raise TruthError(f"{where}: line {n} has a negative time ({onset:g}, {offset:g})")
+        if offset <= onset:
+            raise TruthError(f"{where}: line {n} ends at {offset:g} s, not after its onset {onset:g} s")
+        if classes is not None and label not in classes:
+            raise TruthError(f"{where}: line {n} has label {label!r}, which is not one of the "
+                             f"model's classes ({', '.join(classes)})")
+        spans.append(Span(onset, offset, label))
+    spans.sort(key=lambda s: s.onset)
+    for a, b in zip(spans, spans[1:]):
+        if b.onset < a.offset - 1e-9:
+            raise TruthError(f"{where}: spans overlap ({a.onset:g}-{a.offset:g} {a.label} and "
+                             f"{b.onset:g}-{b.offset:g} {b.label})")
+    return TruthTrack(spans)
+
+
+def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> TruthTrack:
+    path = Path(path)
+    if not path.is_file():
+        raise TruthError(f"{path}: truth file not found")
+    try:
+        text = path.read_text(encoding="utf-8")
+    except UnicodeDecodeError:
+        raise TruthError(f"{path}: truth file is not UTF-8 text") from None
+    return parse_truth(text, where=str(path), classes=classes)
+
+
+def format_truth(spans: list[Span]) -> str:
+    return "".join(f"{s.onset:.3f}\t{s.offset:.3f}\t{s.label}\n" for s in spans)

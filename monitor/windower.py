@@ -1,0 +1,61 @@
+"""Cuts windows of `window` samples every `hop` samples out of the stream read from the ring.
+
+Window positions are sample counts from the session start. After a gap (audio lost in the
+ring or at the device) no window is built across the missing stretch: the next window starts
+at the first hop-grid position after the gap, so window times stay on the same grid as a
+replay without loss, and the gap is reported on that window.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+
+@dataclass
+class Window:
+    start: int  # first sample, from session start
+    samples: np.ndarray  # (window,) float32
+    gap: int  # samples lost since the previous window
+
+
+class Windower:
+    def __init__(self, window: int, hop: int) -> None:
+        if window < 1 or hop < 1:
+            raise ValueError(f"window={window} and hop={hop} must be >= 1")
+        self.window, self.hop = int(window), int(hop)
+        self._buf = np.zeros(0, dtype=np.float32)
+        self._buf_start = 0  # absolute index of _buf[0]
+        self.next_start = 0
+        self._pending_gap = 0
+
+    @property
+    def end(self) -> int:
+        """Absolute index one past the newest sample seen (gaps included)."""
+        return self._buf_start + self._buf.shape[0]
+
+    def push(self, chunk: np.ndarray, gap: int = 0) -> list[Window]:
+        """Add the next samples (after `gap` lost ones); return the windows now complete."""
+        if gap:
+            resume = self.end + gap
+            self._pending_gap += gap
+            self._buf = np.zeros(0, dtype=np.float32)
+            self._buf_start = resume
+            if self.next_start < resume:
+                self.next_start = -(-resume // self.hop) * self.hop
+        if chunk.size:
+            self._buf = np.concatenate((self._buf, chunk)) if self._buf.size else chunk
+        out = []
+        while self.next_start + self.window <= self.end:
+            if self.next_start >= self._buf_start:
+                a = self.next_start - self._buf_start
+                out.append(Window(self.next_start, self._buf[a:a + self.window].copy(),
+                                  self._pending_gap))
+                self._pending_gap = 0
+            self.next_start += self.hop
+        drop = min(max(0, self.next_start - self._buf_start), self._buf.shape[0])
+        if drop:
+            self._buf = self._buf[drop:]
+            self._buf_start += drop
+        return out
