@@ -35,8 +35,7 @@ EXAMPLES = {
 
 class _Parser(argparse.ArgumentParser):
     def error(self, message: str) -> None:  # argparse's own bad-flag path: exit 2, one line
-        self.print_usage(sys.stderr)
-        sys.stderr.write(f"{self.prog}: error: {message}\n")
+        sys.stderr.write(f"{self.prog}: {message} (see {self.prog} --help)\n")
         raise SystemExit(2)
 
 
@@ -111,7 +110,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="accept a file below the model's rate (its top band will be empty)")
     _add_session_flags(p)
     _add_decision_flags(p)
-    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
 
     p = sub.add_parser("demo", help="the bundled demo model on the bundled scene tour",
                        description="Run the demo model on the demo scene tour (made on first "
@@ -121,7 +121,8 @@ def build_parser() -> argparse.ArgumentParser:
                    help="model (default: models/demo.tflite)")
     p.add_argument("--fast", action="store_true", help="as fast as the CPU allows")
     _add_session_flags(p)
-    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
 
     p = sub.add_parser("bench", help="will this model keep up on this machine?",
                        description="Measure start-up, per-window cost and fast-replay speed.",
@@ -129,7 +130,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", default=None, metavar="M", help="model (default: models/demo.tflite)")
     p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
     p.add_argument("--seconds", type=float, default=240.0, help="seconds of tour audio to replay")
-    p.add_argument("--debug", action="store_true", help="show tracebacks")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
     return ap
 
 

@@ -20,8 +20,8 @@ import numpy as np
 
 from monitor import __version__
 from monitor.decide import Decider
-from monitor.frontend import FrontEnd, clipped_fraction, level_dbfs
 from monitor.errors import ScenemonError
+from monitor.frontend import FrontEnd, clipped_fraction, level_dbfs
 from monitor.runners import Runner
 from monitor.session import percentile
 from monitor.spec import DecisionSettings, ModelCard
@@ -241,8 +241,16 @@ class Engine:
         card = self.card
         sr = card.sample_rate
         t = time.perf_counter()
-        batch = np.stack([w.samples for w in wins])
-        feats = self.frontend.batch(batch)
+        if len(wins) > 1 and all(b.start - a.start == card.hop_samples
+                                 for a, b in zip(wins, wins[1:])):
+            # one hop apart: frames shared by overlapping windows are computed once
+            span = np.concatenate([wins[0].samples] + [w.samples[-card.hop_samples:]
+                                                       for w in wins[1:]]) \
+                if card.hop_samples <= card.window_samples else None
+            feats = (self.frontend.batch_consecutive(span, len(wins)) if span is not None
+                     else self.frontend.batch(np.stack([w.samples for w in wins])))
+        else:
+            feats = self.frontend.batch(np.stack([w.samples for w in wins]))
         probs = self.runner.predict(feats)
         ms = (time.perf_counter() - t) * 1000.0 / len(wins)
         done = time.monotonic()

@@ -172,6 +172,32 @@ class FrontEnd:
             return (q / np.float32(32768.0)).astype(np.float32)
         return x
 
+    def _power_frames(self, x: np.ndarray, n_frames: int) -> np.ndarray:
+        """Power (or magnitude) spectra of `n_frames` frames along the last axis of `x`."""
+        c = self.card
+        x = self._pcm(np.asarray(x, dtype=np.float32))
+        frames = np.lib.stride_tricks.sliding_window_view(x, c.frame_length, axis=-1)
+        frames = frames[..., : n_frames * c.frame_step : c.frame_step, :]
+        padded = np.zeros((*frames.shape[:-1], c.fft_length), np.float32)  # zero-pad at the end
+        np.multiply(frames, self.window, out=padded[..., : c.frame_length])
+        spec = scipy.fft.rfft(padded, axis=-1, workers=1, overwrite_x=True)
+        if c.power == 2.0:  # |X|^2 without the square root
+            mag = np.square(spec.real)
+            mag += np.square(spec.imag)
+            return mag
+        return np.abs(spec).astype(np.float32)
+
+    def _log_mel(self, mag: np.ndarray) -> np.ndarray:
+        c = self.card
+        # np.matmul on a stack runs one GEMM per window, so batch and single agree exactly.
+        mel = np.matmul(mag, self.mel_t)
+        mel += np.float32(c.log_offset)
+        if c.log == "ln":
+            return np.log(mel)
+        if c.log == "log10":
+            return np.log10(mel)
+        return np.float32(10.0 * 2.0 / c.power) * np.log10(mel)
+
     def logmel(self, windows: np.ndarray) -> np.ndarray:
         """Unscaled log-mel, time-major.
 
@@ -185,22 +211,29 @@ class FrontEnd:
         numpy.ndarray
             Shape ``(n, frames, mel_bands)``, float32.
         """
+        return self._log_mel(self._power_frames(windows, self.card.frames_per_window))
+
+    def logmel_consecutive(self, signal: np.ndarray, n: int) -> np.ndarray:
+        """`logmel` of `n` windows one hop apart in `signal`, each frame computed once.
+
+        Overlapping windows share frames when the hop is a whole number of frame steps;
+        the numbers equal `logmel` of the windows cut one by one.
+
+        Parameters
+        ----------
+        signal : numpy.ndarray
+            Shape ``((n - 1) * hop_samples + window_samples,)``.
+        """
         c = self.card
-        x = self._pcm(np.asarray(windows, dtype=np.float32))
-        frames = np.lib.stride_tricks.sliding_window_view(x, c.frame_length, axis=-1)
-        frames = frames[:, : c.frames_per_window * c.frame_step : c.frame_step]
-        spec = scipy.fft.rfft(frames * self.window, n=c.fft_length, axis=-1, workers=1)
-        mag = np.abs(spec).astype(np.float32)
-        if c.power == 2.0:
-            mag = np.square(mag)
-        # np.matmul on a stack runs one GEMM per window, so batch and single agree exactly.
-        mel = np.matmul(mag, self.mel_t)
-        mel += np.float32(c.log_offset)
-        if c.log == "ln":
-            return np.log(mel)
-        if c.log == "log10":
-            return np.log10(mel)
-        return np.float32(10.0 * 2.0 / c.power) * np.log10(mel)
+        step = c.hop_samples // c.frame_step
+        if c.hop_samples % c.frame_step or n == 1:
+            hop = c.hop_samples
+            return self.logmel(np.stack([signal[i * hop:i * hop + c.window_samples]
+                                         for i in range(n)]))
+        f = c.frames_per_window
+        mag = self._power_frames(signal, (n - 1) * step + f)
+        stack = np.stack([mag[i * step:i * step + f] for i in range(n)])
+        return self._log_mel(stack)
 
     def batch(self, windows: np.ndarray) -> np.ndarray:
         """Scaled model input for many windows.
@@ -220,13 +253,25 @@ class FrontEnd:
             raise ValueError(f"windows must have shape (n, {self.card.window_samples}), "
                              f"got {windows.shape}")
         if self.card.kind == "waveform":
-            feats = self._pcm(windows)
-        else:
-            feats = self.logmel(windows)
-            if self.card.layout == "mel_time":
-                feats = np.swapaxes(feats, 1, 2)
+            return self._scale(self._pcm(windows))
+        return self._scale(self.logmel(windows))
+
+    def _scale(self, feats: np.ndarray) -> np.ndarray:
+        if self.card.kind == "logmel" and self.card.layout == "mel_time":
+            feats = np.swapaxes(feats, 1, 2)
         out = (feats - self.mean) * self.inv_std
         return np.ascontiguousarray(out, dtype=np.float32)
+
+    def batch_consecutive(self, signal: np.ndarray, n: int) -> np.ndarray:
+        """`batch` of `n` windows one hop apart in `signal` (fast replay; same numbers)."""
+        c = self.card
+        signal = np.asarray(signal, dtype=np.float32)
+        if signal.shape != ((n - 1) * c.hop_samples + c.window_samples,):
+            raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
+        if c.kind == "waveform":
+            return self.batch(np.stack([signal[i * c.hop_samples:i * c.hop_samples + c.window_samples]
+                                        for i in range(n)]))
+        return self._scale(self.logmel_consecutive(signal, n))
 
     def single(self, window: np.ndarray) -> np.ndarray:
         """Scaled model input for one window of shape ``(window_samples,)``."""

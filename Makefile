@@ -1,0 +1,34 @@
+# scenemon: `make demo` and `make test` set everything up on a fresh machine.
+PYTHON ?= python3
+VENV   ?= .venv
+BIN     = $(VENV)/bin
+STAMP   = $(VENV)/.installed
+
+.PHONY: demo demo-fast test lint bench models clean
+
+$(STAMP): pyproject.toml
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+	$(BIN)/python -m pip install --quiet -e '.[test]'
+	touch $(STAMP)
+
+demo: $(STAMP)            ## the demo model on the demo scene tour, at real-time pace
+	$(BIN)/scenemon demo
+
+demo-fast: $(STAMP)
+	$(BIN)/scenemon demo --fast
+
+test: $(STAMP)            ## the whole test suite
+	$(BIN)/python -m pytest -q -ra
+
+lint: $(STAMP)
+	$(BIN)/ruff check monitor tests benchmarks
+
+bench: $(STAMP)           ## speed figures for the README
+	$(BIN)/python benchmarks/bench_pipeline.py
+
+models: $(STAMP)          ## rebuild the demo model artifacts (deterministic, about 2 minutes)
+	$(BIN)/python -m monitor.demo.build --out models
+
+clean:
+	rm -rf $(VENV) build *.egg-info .pytest_cache

@@ -1,0 +1,214 @@
+"""Bad input: exit code 2, one sentence naming the file and the problem, no traceback, and
+no session left looking complete."""
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from conftest import MODELS, run_cli, write_wav
+
+CARD = (MODELS / "demo.toml").read_text()
+
+
+def card_with(tmp_path, old, new, name="bad.toml"):
+    assert old in CARD
+    p = tmp_path / name
+    p.write_text(CARD.replace(old, new, 1))
+    return p
+
+
+def _good(tmp_path):
+    return write_wav(tmp_path / "ok.wav", np.random.default_rng(1).standard_normal(32000) * 0.05)
+
+
+def case_missing(tmp_path):
+    return ["replay", tmp_path / "nope.wav"], "nope.wav", "not found"
+
+
+def case_empty(tmp_path):
+    (tmp_path / "empty.wav").write_bytes(b"")
+    return ["replay", tmp_path / "empty.wav"], "empty.wav", "empty"
+
+
+def case_corrupt(tmp_path):
+    (tmp_path / "junk.wav").write_bytes(np.random.default_rng(0).bytes(5000))
+    return ["replay", tmp_path / "junk.wav"], "junk.wav", "not a readable audio file"
+
+
+def case_header_only(tmp_path):
+    sf.write(str(tmp_path / "h.wav"), np.zeros(0, np.float32), 16000)
+    return ["replay", tmp_path / "h.wav"], "h.wav", "no audio"
+
+
+def case_directory(tmp_path):
+    (tmp_path / "dir.wav").mkdir()
+    return ["replay", tmp_path / "dir.wav"], "dir.wav", "is a directory"
+
+
+def case_low_rate(tmp_path):
+    write_wav(tmp_path / "8k.wav", np.zeros(16000), sr=8000)
+    return ["replay", tmp_path / "8k.wav"], "8k.wav", "below the model's 16000 Hz"
+
+
+def case_nan(tmp_path):
+    x = np.zeros(32000, np.float32)
+    x[20000] = np.nan
+    sf.write(str(tmp_path / "nan.wav"), x, 16000, subtype="FLOAT")
+    return ["replay", tmp_path / "nan.wav"], "nan.wav", "NaN or infinite samples"
+
+
+def case_inf(tmp_path):
+    x = np.zeros(32000, np.float32)
+    x[100] = np.inf
+    sf.write(str(tmp_path / "inf.wav"), x, 16000, subtype="FLOAT")
+    return ["replay", tmp_path / "inf.wav"], "inf.wav", "NaN or infinite"
+
+
+def case_too_short(tmp_path):
+    write_wav(tmp_path / "short.wav", np.zeros(8000))
+    return ["replay", tmp_path / "short.wav"], "short.wav", "shorter than one"
+
+
+def case_card_no_classes(tmp_path):
+    p = card_with(tmp_path, 'classes = ["quiet_room", "voices", "traffic", "machinery"]', "")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "classes is missing"
+
+
+def case_card_duplicate_classes(tmp_path):
+    p = card_with(tmp_path, '"traffic", "machinery"]', '"traffic", "traffic"]')
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "more than once"
+
+
+def case_card_fmax(tmp_path):
+    p = card_with(tmp_path, "fmax = 8000.0", "fmax = 9000.0")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "fmax=9000.0 is above the Nyquist"
+
+
+def case_card_frame_length(tmp_path):
+    p = card_with(tmp_path, "frame_length = 400", "frame_length = 600")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "must not exceed fft_length"
+
+
+def case_card_negative_hop(tmp_path):
+    p = card_with(tmp_path, "hop_s = 0.5", "hop_s = -0.5")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "hop_s=-0.5 must be > 0"
+
+
+def case_card_zero_hop(tmp_path):
+    p = card_with(tmp_path, "hop_s = 0.5", "hop_s = 0")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "hop_s=0.0 must be > 0"
+
+
+def case_card_fractional_window(tmp_path):
+    p = card_with(tmp_path, "window_s = 1.0", "window_s = 1.00001")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "not a whole number of samples"
+
+
+def case_card_invalid_toml(tmp_path):
+    p = tmp_path / "bad.toml"
+    p.write_text("classes = [\n")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "not valid TOML"
+
+
+def case_card_scaling_length(tmp_path):
+    p = card_with(tmp_path, "std = [", "std = [1.0, ")
+    return ["replay", _good(tmp_path), "--spec", p], "bad.toml", "scaling.std has 41 values"
+
+
+def case_card_missing(tmp_path):
+    (tmp_path / "m.tflite").write_bytes((MODELS / "demo.tflite").read_bytes())
+    return (["replay", _good(tmp_path), "--model", tmp_path / "m.tflite"], "m.tflite",
+            "no model card")
+
+
+def case_model_shape(tmp_path):
+    p = card_with(tmp_path, "frame_step = 160", "frame_step = 320")
+    return ["replay", _good(tmp_path), "--spec", p], "demo.tflite", "gives 49 frames x 40 bands"
+
+
+def case_model_truncated(tmp_path):
+    m = tmp_path / "t.tflite"
+    m.write_bytes((MODELS / "demo.tflite").read_bytes()[:2000])
+    (tmp_path / "t.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "t.tflite", "cannot be loaded"
+
+
+def case_model_extension(tmp_path):
+    m = tmp_path / "m.onnx"
+    m.write_bytes(b"x" * 10)
+    (tmp_path / "m.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "unknown model type"
+
+
+def case_truth_overlap(tmp_path):
+    t = tmp_path / "t.tsv"
+    t.write_text("0\t1.5\tvoices\n1.0\t2.0\ttraffic\n")
+    return ["replay", _good(tmp_path), "--truth", t], "t.tsv", "spans overlap"
+
+
+def case_truth_unknown_label(tmp_path):
+    t = tmp_path / "t.tsv"
+    t.write_text("0\t2.0\tkitchen\n")
+    return ["replay", _good(tmp_path), "--truth", t], "t.tsv", "'kitchen', which is not one"
+
+
+def case_truth_negative(tmp_path):
+    t = tmp_path / "t.tsv"
+    t.write_text("-1\t2.0\tvoices\n")
+    return ["replay", _good(tmp_path), "--truth", t], "t.tsv", "negative time"
+
+
+def case_bad_flag(tmp_path):
+    return ["replay", _good(tmp_path), "--enter", "1.5"], "--enter", "not in [0, 1]"
+
+
+CASES = [v for k, v in sorted(globals().items()) if k.startswith("case_")]
+
+
+@pytest.mark.parametrize("case", CASES, ids=[c.__name__[5:] for c in CASES])
+def test_bad_input(tmp_path, case):
+    args, names, problem = case(tmp_path)
+    if "--model" not in args:
+        args = [*args, "--model", MODELS / "demo.tflite"]
+    out = tmp_path / "session"
+    r = run_cli(*args, "--fast", "--out", out)
+    assert r.returncode == 2, (r.returncode, r.stderr)
+    err = [line for line in r.stderr.splitlines() if line.strip() and not line.startswith("usage:")
+           and "warning" not in line]
+    assert len(err) == 1, r.stderr
+    assert names in err[0] and problem in err[0], err[0]
+    assert "Traceback" not in r.stderr
+    assert not (out / "summary.json").exists()
+    assert not out.exists()  # validation happens before anything is written
+
+
+def test_debug_shows_traceback(tmp_path):
+    r = run_cli("--debug", "replay", tmp_path / "x.wav", "--model", MODELS / "demo.tflite")
+    assert r.returncode != 0 and "Traceback" in r.stderr
+
+
+def test_out_dir_holding_a_session_is_refused(tmp_path):
+    wav = _good(tmp_path)
+    out = tmp_path / "s"
+    assert run_cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--out", out).returncode == 0
+    before = (out / "windows.jsonl").read_bytes()
+    r = run_cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--out", out)
+    assert r.returncode == 2 and "already holds a session" in r.stderr
+    assert (out / "windows.jsonl").read_bytes() == before  # nothing captured is damaged
+
+
+def test_unknown_card_key_warns(tmp_path):
+    p = card_with(tmp_path, "[audio]", "colour = 3\n\n[audio]")
+    r = run_cli("replay", _good(tmp_path), "--model", MODELS / "demo.tflite", "--spec", p,
+                "--fast", "--out", tmp_path / "s")
+    assert r.returncode == 0 and "unknown key 'colour'" in r.stderr
+
+
+def test_help_explains_every_flag():
+    for args in (["--help"], ["replay", "--help"], ["demo", "--help"]):
+        r = run_cli(*args)
+        assert r.returncode == 0 and "example" in r.stdout
+    r = run_cli("replay", "--help")
+    for flag in ("--model", "--spec", "--truth", "--fast", "--headless", "--out", "--no-audio",
+                 "--smoothing", "--enter", "--confirm", "--min-hold", "--allow-upsample"):
+        assert flag in r.stdout

@@ -1,0 +1,259 @@
+"""The front end against outside references (each check names its source)."""
+
+import numpy as np
+import pytest
+import scipy.signal
+
+from monitor.frontend import (
+    FrontEnd,
+    hz_to_mel,
+    level_dbfs,
+    mel_band_edges,
+    mel_filterbank,
+    mel_to_hz,
+    window_coefficients,
+)
+from monitor.spec import card_from_dict
+
+librosa = pytest.importorskip("librosa")
+
+
+def make_card(**fe):
+    base = {"kind": "logmel", "frame_length": 400, "frame_step": 160, "fft_length": 512,
+            "mel_bands": 40, "fmin": 0.0, "fmax": 8000.0, "mel_scale": "htk",
+            "mel_norm": "none", "mel_triangles": "hz", "power": 2.0, "log": "ln",
+            "log_offset": 1e-6}
+    base.update(fe)
+    return card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000,
+                           "window_s": 1.0, "hop_s": 0.5}, "frontend": base})
+
+
+# --- mel scale formulas -----------------------------------------------------------------
+def test_htk_mel_formula():
+    # HTK Book (Young et al.): m = 2595 log10(1 + f/700) puts 1000 Hz at about 1000 mel; the
+    # formula gives 999.98554 (REFERENCES.md, computed), so 0.01 is too tight: 0.02 it is
+    assert abs(hz_to_mel(1000.0) - 1000.0) < 0.02
+    # values computed from the formula (REFERENCES.md)
+    for f, m in [(500, 607.44592), (2000, 1521.35955), (3000, 1876.45406), (8000, 2840.02305)]:
+        assert hz_to_mel(f) == pytest.approx(m, abs=1e-4)
+    assert mel_to_hz(1000.0) == pytest.approx(1000.02182, abs=1e-4)
+    assert mel_to_hz(200.0) == pytest.approx(135.92888, abs=1e-4)
+
+
+def test_slaney_mel_linear_below_1k():
+    # Slaney 1998, Auditory Toolbox: linear at 200/3 Hz per mel below 1 kHz
+    for f in (0.0, 60.0, 200.0, 500.0, 999.0):
+        assert hz_to_mel(f, scale="slaney") == pytest.approx(f / (200.0 / 3.0), abs=1e-9)
+    assert hz_to_mel(2000.0, scale="slaney") == pytest.approx(25.08188, abs=1e-4)
+    assert mel_to_hz(30.0, scale="slaney") == pytest.approx(2804.64413, abs=1e-4)
+    # agrees with librosa's implementation of the same published scale
+    f = np.linspace(0, 8000, 101)
+    np.testing.assert_allclose(hz_to_mel(f, scale="slaney"), librosa.hz_to_mel(f, htk=False),
+                               atol=1e-9)
+
+
+@pytest.mark.parametrize("scale,centres", [
+    ("htk", [180.219, 406.837, 691.799, 1050.126, 1500.707, 2067.292, 2779.749, 3675.631,
+             4802.165, 6218.731]),
+    ("slaney", [274.216, 548.432, 822.648, 1105.053, 1466.218, 1945.422, 2581.244, 3424.871,
+                4544.221, 6029.409]),
+])
+def test_band_centres_10_bands(scale, centres):
+    # computed values, REFERENCES.md (10 bands, 0-8000 Hz)
+    edges = mel_band_edges(mel_bands=10, fmin=0, fmax=8000, scale=scale)
+    np.testing.assert_allclose(edges[1:-1], centres, atol=1e-3)
+
+
+# --- filterbanks against librosa and TensorFlow ------------------------------------------
+COMBOS = [(0.0, 8000.0, 40, 512), (125.0, 7500.0, 32, 512), (50.0, 4000.0, 20, 1024),
+          (300.0, 8000.0, 64, 1024), (0.0, 8000.0, 10, 256)]
+
+
+@pytest.mark.parametrize("fmin,fmax,bands,nfft", COMBOS)
+@pytest.mark.parametrize("scale", ["htk", "slaney"])
+@pytest.mark.parametrize("norm", ["none", "slaney"])
+def test_filterbank_matches_librosa(fmin, fmax, bands, nfft, scale, norm):
+    # librosa.filters.mel draws triangles linearly in Hz at the FFT bins ("hz")
+    ours = mel_filterbank(sample_rate=16000, fft_length=nfft, mel_bands=bands, fmin=fmin,
+                          fmax=fmax, scale=scale, norm=norm, triangles="hz")
+    ref = librosa.filters.mel(sr=16000, n_fft=nfft, n_mels=bands, fmin=fmin, fmax=fmax,
+                              htk=(scale == "htk"), norm="slaney" if norm == "slaney" else None)
+    np.testing.assert_allclose(ours, ref, atol=1e-6 * max(1.0, ref.max()))
+
+
+@pytest.fixture(scope="module")
+def tf():
+    import os
+
+    os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
+    return pytest.importorskip("tensorflow")
+
+
+@pytest.mark.parametrize("fmin,fmax,bands,nfft", COMBOS)
+def test_filterbank_matches_tensorflow(tf, fmin, fmax, bands, nfft):
+    # tf.signal.linear_to_mel_weight_matrix draws triangles linearly in mel ("mel"), HTK, no norm
+    ours = mel_filterbank(sample_rate=16000, fft_length=nfft, mel_bands=bands, fmin=fmin,
+                          fmax=fmax, scale="htk", triangles="mel")
+    ref = tf.signal.linear_to_mel_weight_matrix(bands, nfft // 2 + 1, 16000, fmin, fmax).numpy()
+    np.testing.assert_allclose(ours.T, ref, atol=2e-5)
+
+
+def test_triangle_constructions_differ():
+    # REFERENCES.md: HTK, 16 kHz, 512 FFT, 10 bands: the two differ by up to 0.0286 (computed)
+    a = mel_filterbank(sample_rate=16000, fft_length=512, mel_bands=10, fmin=0, fmax=8000,
+                       triangles="hz")
+    b = mel_filterbank(sample_rate=16000, fft_length=512, mel_bands=10, fmin=0, fmax=8000,
+                       triangles="mel")
+    assert abs(a - b).max() == pytest.approx(0.0286, abs=5e-4)
+
+
+def test_sparse_layout_of_tf_style_bank():
+    # REFERENCES.md: first non-zero bins and lengths of the 10-band TF-style bank (computed)
+    w = mel_filterbank(sample_rate=16000, fft_length=512, mel_bands=10, fmin=0, fmax=8000,
+                       triangles="mel")
+    nz = [np.flatnonzero(row) for row in w]
+    assert [int(r[0]) for r in nz] == [1, 6, 14, 23, 34, 49, 67, 89, 118, 154]
+    assert [int(r[-1] - r[0] + 1) for r in nz] == [13, 17, 20, 26, 33, 40, 51, 65, 81, 102]
+
+
+# --- log-mel end to end ------------------------------------------------------------------
+def _noise(seed=0, n=16000):
+    rng = np.random.default_rng(seed)
+    x = rng.standard_normal(n) * 0.1
+    x += 0.3 * np.sin(2 * np.pi * 440 * np.arange(n) / 16000)
+    return x.astype(np.float32)
+
+
+@pytest.mark.parametrize("scale", ["htk", "slaney"])
+@pytest.mark.parametrize("norm", ["none", "slaney"])
+@pytest.mark.parametrize("fmin,fmax,bands,nfft", COMBOS[:3])
+def test_logmel_matches_librosa(scale, norm, fmin, fmax, bands, nfft):
+    # librosa.stft (periodic Hann, no centring) + librosa.filters.mel in float64. librosa
+    # centres a 400-sample window inside each 512-sample frame; padding the signal by the
+    # same offset lines the frames up (the magnitude spectrum ignores the zero-pad position).
+    card = make_card(mel_scale=scale, mel_norm=norm, fmin=fmin, fmax=fmax, mel_bands=bands,
+                     fft_length=nfft)
+    x = _noise()
+    ours = FrontEnd(card).logmel(x[None, :])[0]
+    off = (nfft - 400) // 2
+    xp = np.pad(x.astype(np.float64), (off, nfft - 400 - off))
+    S = np.abs(librosa.stft(xp, n_fft=nfft, hop_length=160, win_length=400, window="hann",
+                            center=False)) ** 2
+    mel = librosa.filters.mel(sr=16000, n_fft=nfft, n_mels=bands, fmin=fmin, fmax=fmax,
+                              htk=(scale == "htk"), norm="slaney" if norm == "slaney" else None,
+                              dtype=np.float64)
+    ref = np.log(mel @ S + 1e-6).T
+    assert ours.shape == ref.shape == (98, bands)
+    assert np.max(np.abs(ours - ref)) <= 1e-4
+
+
+def test_logmel_matches_tensorflow(tf):
+    # tf.signal.stft(400, 160, 512) + linear_to_mel_weight_matrix: the "mel" construction
+    card = make_card(mel_triangles="mel", fmin=20.0, fmax=7600.0)
+    x = _noise(3)
+    ours = FrontEnd(card).logmel(x[None, :])[0]
+    S = tf.abs(tf.signal.stft(x, 400, 160, 512)) ** 2
+    W = tf.signal.linear_to_mel_weight_matrix(40, 257, 16000, 20.0, 7600.0)
+    ref = tf.math.log(tf.matmul(S, W) + 1e-6).numpy()
+    assert ours.shape == ref.shape == (98, 40)  # REFERENCES.md: tf.signal.stft gives 98 frames
+    assert np.max(np.abs(ours - ref)) <= 1e-4
+
+
+def test_frames_per_window():
+    # 1 + (16000 - 400) // 160 = 98 frames, as tf.signal.stft(400, 160, 512) (REFERENCES.md)
+    assert make_card().frames_per_window == 98
+
+
+def test_batch_equals_single(demo_card):
+    fe = FrontEnd(demo_card)
+    rng = np.random.default_rng(5)
+    w = (rng.standard_normal((7, 16000)) * 0.2).astype(np.float32)
+    b = fe.batch(w)
+    for i in range(7):
+        np.testing.assert_array_equal(b[i], fe.single(w[i]))
+
+
+@pytest.mark.parametrize("layout", ["time_mel", "mel_time"])
+def test_standardisation_matches_sklearn(layout):
+    # sklearn.preprocessing.StandardScaler fitted on the same features, per mel band
+    from sklearn.preprocessing import StandardScaler
+
+    card0 = make_card(layout="time_mel")
+    fe0 = FrontEnd(card0)
+    x = np.stack([_noise(s) for s in range(4)])
+    feats = fe0.logmel(x).reshape(-1, 40)
+    sc = StandardScaler().fit(feats)
+    card = card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000},
+                           "frontend": {"layout": layout, "fmax": 8000.0},
+                           "scaling": {"mean": sc.mean_.tolist(),
+                                       "std": np.sqrt(sc.var_).tolist()}})
+    ours = FrontEnd(card).batch(x)
+    ref = sc.transform(feats).reshape(4, 98, 40)
+    if layout == "mel_time":
+        ref = np.swapaxes(ref, 1, 2)
+    np.testing.assert_allclose(ours, ref, atol=2e-4)
+
+
+def test_tone_lands_in_nearest_band():
+    # a 1 kHz tone peaks in the band whose centre is nearest 1 kHz (common practice)
+    card = make_card()
+    t = np.arange(16000) / 16000
+    x = (0.5 * np.sin(2 * np.pi * 1000 * t)).astype(np.float32)
+    lm = FrontEnd(card).logmel(x[None])[0].mean(axis=0)
+    centres = mel_band_edges(mel_bands=40, fmin=0, fmax=8000)[1:-1]
+    assert int(np.argmax(lm)) == int(np.argmin(np.abs(centres - 1000)))
+
+
+def test_silence_is_flat_at_the_offset():
+    # silence: every band reads ln(log_offset)
+    lm = FrontEnd(make_card()).logmel(np.zeros((1, 16000), np.float32))
+    np.testing.assert_allclose(lm, np.log(np.float32(1e-6)), rtol=1e-6)
+
+
+# --- windows ------------------------------------------------------------------------------
+def test_periodic_hann_matches_scipy_and_harris():
+    # scipy.signal.get_window('hann', N) is periodic; Harris 1978 values for N = 8
+    for n in (8, 400, 512):
+        np.testing.assert_allclose(window_coefficients(n), scipy.signal.get_window("hann", n),
+                                   atol=1e-7)
+    np.testing.assert_allclose(window_coefficients(8),
+                               [0, .146447, .5, .853553, 1, .853553, .5, .146447], atol=1e-6)
+    np.testing.assert_allclose(window_coefficients(8, symmetric=True), np.hanning(8), atol=1e-7)
+    w = window_coefficients(512).astype(np.float64)
+    assert w.sum() == pytest.approx(256.0, abs=1e-3)  # REFERENCES.md
+    assert (w ** 2).sum() == pytest.approx(192.0, abs=1e-3)
+    assert 512 * (w ** 2).sum() / w.sum() ** 2 == pytest.approx(1.5, abs=1e-5)  # ENBW, bins
+
+
+def test_hamming_matches_scipy():
+    np.testing.assert_allclose(window_coefficients(400, kind="hamming"),
+                               scipy.signal.get_window("hamming", 400), atol=1e-7)
+
+
+# --- levels -------------------------------------------------------------------------------
+def test_level_dbfs_aes17():
+    # AES17: 0 dB FS is the RMS of a full-scale sine; square wave +3.01 dB FS
+    t = np.arange(16000) / 16000
+    s = np.sin(2 * np.pi * 1000 * t)
+    assert level_dbfs(s) == pytest.approx(0.0, abs=0.005)
+    assert level_dbfs(0.5 * s) == pytest.approx(-6.02, abs=0.005)
+    assert level_dbfs(np.sign(np.sin(2 * np.pi * 100 * t + 0.1))) == pytest.approx(3.01, abs=0.005)
+    assert level_dbfs(np.zeros(100)) == -160.0
+
+
+def test_pcm16_quantises_like_the_device():
+    card = make_card(pcm_bits=16)
+    x = np.full((1, 16000), 0.3, np.float32) + np.float32(1e-7)
+    q = FrontEnd(card)._pcm(x)
+    assert np.all(q * 32768 == np.round(q * 32768))
+
+
+@pytest.mark.parametrize("n", [2, 5, 33])
+def test_consecutive_batch_equals_single(demo_card, n):
+    # fast replay shares frames between overlapping windows; the numbers must not change
+    fe = FrontEnd(demo_card)
+    hop, win = demo_card.hop_samples, demo_card.window_samples
+    x = (np.random.default_rng(n).standard_normal((n - 1) * hop + win) * 0.2).astype(np.float32)
+    b = fe.batch_consecutive(x, n)
+    for i in range(n):
+        np.testing.assert_array_equal(b[i], fe.single(x[i * hop:i * hop + win]))
