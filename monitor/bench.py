@@ -40,7 +40,6 @@ def run_bench(model: str, *, spec: str | None = None, seconds: float = 240.0,
               stream=sys.stdout) -> dict:
     t0 = time.perf_counter()
     from monitor.decide import Decider
-    from monitor.demo.tour import ensure_tour
     from monitor.engine import Engine
     from monitor.frontend import FrontEnd
     from monitor.runners import load_runner
@@ -54,6 +53,8 @@ def run_bench(model: str, *, spec: str | None = None, seconds: float = 240.0,
     t_load = time.perf_counter() - t1
 
     import soundfile as sf
+
+    from monitor.demo.tour import ensure_tour
 
     root = Path(__file__).resolve().parent.parent
     wav, _ = ensure_tour(root / "recordings" / "demo")
