@@ -7,6 +7,7 @@ stderr naming the file and the problem; no traceback unless --debug.
 from __future__ import annotations
 
 import argparse
+import gc
 import os
 import signal
 import sys
@@ -23,10 +24,16 @@ EXAMPLES = {
   scenemon replay recordings/demo/tour.wav --model models/demo.tflite --truth recordings/demo/tour.tsv --fast --headless
   scenemon replay field/corridor.flac --model models/demo.int8.tflite --out recordings/corridor-1
   scenemon replay walk.wav --model m.keras --spec m.toml --smoothing ema --ema-alpha 0.3""",
+    "live": """examples:
+  scenemon devices
+  scenemon live --model models/demo.tflite
+  scenemon live --model models/demo.int8.tflite --input "USB" --headless --out recordings/site-a
+  scenemon live --model m.keras --no-audio --seconds 600""",
     "demo": """examples:
   make demo                 # sets up .venv and runs this
   scenemon demo             # the bundled scene tour at real-time pace
-  scenemon demo --fast      # the same, as fast as the CPU allows""",
+  scenemon demo --fast      # the same, as fast as the CPU allows
+  scenemon demo --mic       # the demo model on the microphone""",
     "bench": """examples:
   scenemon bench
   scenemon bench --model models/demo.keras --seconds 120""",
@@ -79,6 +86,19 @@ def _add_model_flags(p: argparse.ArgumentParser, *, required: bool = True) -> No
                    help="allow Keras Lambda layers (their code runs when the model loads)")
 
 
+def _add_live_flags(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("input device")
+    g.add_argument("--input", metavar="DEVICE",
+                   help="device index or a case-insensitive part of its name (see scenemon "
+                        "devices); default: pipewire / pulse / default on Linux, else the "
+                        "system default")
+    g.add_argument("--seconds", type=float, metavar="S", help="stop after S seconds of audio")
+    g.add_argument("--latency", default="high",
+                   help="PortAudio latency: high (robust, default), low, or seconds")
+    g.add_argument("--blocksize", type=int, default=None,
+                   help="frames per callback (default: about 50 ms; 0: let PortAudio choose)")
+
+
 def _add_session_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", metavar="DIR",
                    help="session directory (default: recordings/<date>-<time>-<name>)")
@@ -113,6 +133,25 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
+    p = sub.add_parser("live", help="run the model on a microphone and record a session",
+                       description="Open an input device at its own rate, down-mix, resample to "
+                                   "the model's rate and run the chain until Ctrl-C.",
+                       epilog=EXAMPLES["live"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    _add_model_flags(p)
+    _add_live_flags(p)
+    _add_session_flags(p)
+    _add_decision_flags(p)
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("devices", help="list the audio input devices",
+                       description="List input devices: index, name, host API, channels, "
+                                   "default rate; * marks the default.",
+                       epilog="example:\n  scenemon devices\n  scenemon live --model m.tflite "
+                              "--input 3", formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
     p = sub.add_parser("demo", help="the bundled demo model on the bundled scene tour",
                        description="Run the demo model on the demo scene tour (made on first "
                                    "use under recordings/demo/) and record a session.",
@@ -120,6 +159,8 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", default=None, metavar="M",
                    help="model (default: models/demo.tflite)")
     p.add_argument("--fast", action="store_true", help="as fast as the CPU allows")
+    p.add_argument("--mic", action="store_true", help="the microphone instead of the tour")
+    _add_live_flags(p)
     _add_session_flags(p)
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
@@ -200,47 +241,92 @@ class ChangePrinter:
         self.stream.flush()
 
 
-def run_session(*, audio: Path, model: str, spec: str | None, truth_path: str | None,
-                fast: bool, out: str | None, no_audio: bool, observers_extra: list,
-                args, allow_upsample: bool = False, trust_model: bool = False) -> dict:
-    """Validate everything, then run one file session; return the summary."""
+def run_session(*, make_source, name: str, model: str, spec: str | None,
+                truth_path: str | None, out: str | None, no_audio: bool, observers_extra: list,
+                args, trust_model: bool = False) -> dict:
+    """Validate everything, run one session, close it; return the summary.
+
+    `make_source(card)` builds the source (file or microphone) once the card is known.
+    Bad input is found before the session directory exists; if the source still fails to
+    start (a device that cannot be opened), the empty directory is removed again.
+    """
+    import shutil
+
     from monitor.engine import Engine
     from monitor.runners import load_runner
     from monitor.session import SessionWriter
-    from monitor.sources import FileSource
     from monitor.spec import load_card_for_model
     from monitor.truth import load_truth
 
     card = load_card_for_model(model, spec)
     decision = _decision(card, args)
     truth = load_truth(truth_path, classes=card.classes) if truth_path else None
-    source = FileSource(audio, model_rate=card.sample_rate, window_samples=card.window_samples,
-                        realtime=not fast, allow_upsample=allow_upsample)
+    source = make_source(card)
     runner = load_runner(model, card, trust_model=trust_model)
     engine = Engine(card, runner, source, decision=decision,
                     truth=truth.label_for if truth else None)
     meta = engine.describe()
     meta["truth_file"] = str(truth_path) if truth_path else None
-    writer = SessionWriter(session_dir(out, Path(audio).stem), meta,
-                           sample_rate=card.sample_rate, audio=not no_audio)
+    target = session_dir(out, name)
+    existed = target.exists()
+    writer = SessionWriter(target, meta, sample_rate=card.sample_rate, audio=not no_audio)
     engine.observers = [writer, *observers_extra]
     stop = threading.Event()
     old = signal.signal(signal.SIGINT, lambda *_: stop.set()) \
         if threading.current_thread() is threading.main_thread() else None
     summary = None
+    # Start-up made many long-lived objects (modules, the model); freezing them keeps the
+    # garbage collector's passes cheap while windows stream (a measurable share of live CPU).
+    gc.collect()
+    gc.freeze()
     try:
         summary = engine.run(stop)
         summary["session"] = str(writer.dir)
+    except ScenemonError:
+        writer.close(None)
+        if engine.count == 0 and not existed:
+            shutil.rmtree(writer.dir, ignore_errors=True)
+        raise
     finally:
         if old is not None:
             signal.signal(signal.SIGINT, old)
-        spans = truth.spans if truth else None
-        if spans is not None and summary is not None:
-            spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
-        writer.close(summary, spans)
+    spans = truth.spans if truth else None
+    if spans is not None:
+        spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
+    writer.close(summary, spans)
     if writer.error is not None:
         raise RuntimeError(f"{writer.dir}: writing the session failed ({writer.error})")
     return summary
+
+
+def file_source(path: Path, *, fast: bool, allow_upsample: bool = False):
+    from monitor.sources import FileSource
+
+    return lambda card: FileSource(path, model_rate=card.sample_rate,
+                                   window_samples=card.window_samples, realtime=not fast,
+                                   allow_upsample=allow_upsample)
+
+
+def mic_source(args):
+    from monitor.sources import MicSource
+
+    latency = args.latency
+    try:
+        latency = float(latency)
+    except ValueError:
+        pass
+    return lambda card: MicSource(args.input, model_rate=card.sample_rate,
+                                  window_samples=card.window_samples, latency=latency,
+                                  blocksize=args.blocksize, max_seconds=args.seconds)
+
+
+def finish(summary: dict) -> int:
+    print_summary(summary)
+    failure = summary.get("source_failure")
+    if failure:
+        sys.stderr.write(f"scenemon: {failure}\n")
+        return 1
+    return 0
 
 
 def print_summary(summary: dict, stream=sys.stderr) -> None:
@@ -259,31 +345,65 @@ def print_summary(summary: dict, stream=sys.stderr) -> None:
     stream.write("\n".join(lines) + "\n")
 
 
+def _printers(args) -> list:
+    return [HeadlessPrinter()] if args.headless else [ChangePrinter()]
+
+
 def cmd_replay(args) -> int:
-    observers = [HeadlessPrinter()] if args.headless else [ChangePrinter()]
-    summary = run_session(audio=Path(args.audio), model=args.model, spec=args.spec,
-                          truth_path=args.truth, fast=args.fast, out=args.out,
-                          no_audio=args.no_audio, observers_extra=observers, args=args,
-                          allow_upsample=args.allow_upsample, trust_model=args.trust_model)
-    print_summary(summary)
+    audio = Path(args.audio)
+    summary = run_session(make_source=file_source(audio, fast=args.fast,
+                                                  allow_upsample=args.allow_upsample),
+                          name=audio.stem, model=args.model, spec=args.spec,
+                          truth_path=args.truth, out=args.out, no_audio=args.no_audio,
+                          observers_extra=_printers(args), args=args,
+                          trust_model=args.trust_model)
+    return finish(summary)
+
+
+def cmd_live(args) -> int:
+    summary = run_session(make_source=mic_source(args), name="live", model=args.model,
+                          spec=args.spec, truth_path=None, out=args.out,
+                          no_audio=args.no_audio, observers_extra=_printers(args), args=args,
+                          trust_model=args.trust_model)
+    return finish(summary)
+
+
+def cmd_devices(args) -> int:
+    from monitor.sources import import_sounddevice, input_devices
+
+    devs = input_devices(import_sounddevice())
+    if not devs:
+        sys.stdout.write("no audio input devices\n")
+        return 0
+    sys.stdout.write(f"  {'index':>5}  {'name':<32} {'host API':<12} {'channels':>8}  rate\n")
+    for d in devs:
+        mark = "*" if d["default"] else " "
+        sys.stdout.write(f"{mark} {d['index']:>5}  {d['name'][:32]:<32} {d['hostapi'][:12]:<12} "
+                         f"{d['channels']:>8}  {d['default_rate']:.0f} Hz\n")
+    sys.stdout.write("* = the system's default input\n")
     return 0
 
 
 def cmd_demo(args) -> int:
-    from monitor.demo.tour import ensure_tour
-
     root = project_root()
     model = args.model or str(root / "models" / "demo.tflite")
+    if args.mic:
+        if not args.headless:
+            sys.stdout.write(f"scenemon demo: microphone, model {Path(model).name}; Ctrl-C stops\n")
+        summary = run_session(make_source=mic_source(args), name="demo-mic", model=model,
+                              spec=None, truth_path=None, out=args.out, no_audio=args.no_audio,
+                              observers_extra=_printers(args), args=args)
+        return finish(summary)
+    from monitor.demo.tour import ensure_tour
+
     wav, tsv = ensure_tour(root / "recordings" / "demo")
-    observers = [HeadlessPrinter()] if args.headless else [ChangePrinter()]
     if not args.headless:
         sys.stdout.write(f"scenemon demo: {wav.name} ({'fast' if args.fast else 'real time'}), "
                          f"model {Path(model).name}; Ctrl-C stops\n")
-    summary = run_session(audio=wav, model=model, spec=None, truth_path=str(tsv),
-                          fast=args.fast, out=args.out, no_audio=args.no_audio,
-                          observers_extra=observers, args=args)
-    print_summary(summary)
-    return 0
+    summary = run_session(make_source=file_source(wav, fast=args.fast), name="demo",
+                          model=model, spec=None, truth_path=str(tsv), out=args.out,
+                          no_audio=args.no_audio, observers_extra=_printers(args), args=args)
+    return finish(summary)
 
 
 def cmd_bench(args) -> int:
@@ -303,7 +423,8 @@ def main(argv: list[str] | None = None) -> int:
         ap.print_help()
         return 2
     debug = getattr(args, "debug", False)
-    handlers = {"replay": cmd_replay, "demo": cmd_demo, "bench": cmd_bench}
+    handlers = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices,
+                "demo": cmd_demo, "bench": cmd_bench}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning

@@ -226,16 +226,25 @@ class Engine:
                     raise SourceFailed(f"audio source failed: {src.error!r}") from src.error
                 if src.finished.is_set() and ring.available() == 0:
                     break
-                time.sleep(poll)
+                time.sleep(self._idle_wait(poll))
         finally:
             src.stop()
         summary = self.stats.summary()
         summary.update({
             "overruns": ring.overruns, "dropped_samples": ring.dropped,
             "input_overflows": ring.producer_overflows,
-            "stopped_by_user": self.stopped_by_user, "clean": True,
+            "stopped_by_user": self.stopped_by_user,
         })
+        summary.update(getattr(src, "stats", dict)())
+        summary["clean"] = getattr(src, "failure", None) is None
         return summary
+
+    def _idle_wait(self, poll: float) -> float:
+        """Sleep until the next window can be complete (at most 50 ms, at least `poll`)."""
+        if not self.source.realtime:
+            return poll
+        missing = self.windower.next_start + self.card.window_samples - self.windower.end
+        return min(0.05, max(poll, missing / self.card.sample_rate))
 
     def _process(self, wins: list, arrived: float) -> None:
         card = self.card
