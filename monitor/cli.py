@@ -34,6 +34,16 @@ EXAMPLES = {
   scenemon demo             # the bundled scene tour at real-time pace
   scenemon demo --fast      # the same, as fast as the CPU allows
   scenemon demo --mic       # the demo model on the microphone""",
+    "report": """examples:
+  scenemon report recordings/20261201-101500-live
+  scenemon report recordings/tour-check --html tour-check.html""",
+    "tune": """examples:
+  scenemon tune recordings/site-a recordings/site-b
+  scenemon tune recordings/tour-check --grid 'smoothing=ema;ema_alpha=0.2,0.4;confirm=1,2,3'
+  scenemon tune recordings/site-a --apply models/demo.toml""",
+    "harvest": """examples:
+  scenemon harvest recordings/site-a recordings/site-b --out retrain/round2
+  scenemon harvest recordings/* --out retrain/round2 --include disagreement,manual --drop-unknown""",
     "bench": """examples:
   scenemon bench
   scenemon bench --model models/demo.keras --seconds 120""",
@@ -130,6 +140,7 @@ def build_parser() -> argparse.ArgumentParser:
                    help="accept a file below the model's rate (its top band will be empty)")
     _add_session_flags(p)
     _add_decision_flags(p)
+    _add_capture_flags(p)
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -141,6 +152,7 @@ def build_parser() -> argparse.ArgumentParser:
     _add_live_flags(p)
     _add_session_flags(p)
     _add_decision_flags(p)
+    _add_capture_flags(p)
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -162,6 +174,44 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--mic", action="store_true", help="the microphone instead of the tour")
     _add_live_flags(p)
     _add_session_flags(p)
+    _add_capture_flags(p)
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("report", help="a session's account: accuracy, confusion, latency, plots",
+                       description="Summarise a session on the terminal, and with --html as "
+                                   "one self-contained page with plots and snippet players.",
+                       epilog=EXAMPLES["report"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("session", metavar="SESSION", help="session directory")
+    p.add_argument("--html", metavar="OUT.html", help="also write the HTML report here")
+    p.add_argument("--json", action="store_true", help="print the scores as JSON instead")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("tune", help="sweep decision settings over recorded sessions",
+                       description="Replay the stored raw probabilities of sessions with truth "
+                                   "through a grid of decision settings (no model needed).",
+                       epilog=EXAMPLES["tune"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories")
+    p.add_argument("--grid", metavar="SPEC",
+                   help="e.g. 'smoothing=mean,ema;enter=0.5,0.7;confirm=1,2' (unnamed fields "
+                        "keep the default grid)")
+    p.add_argument("--apply", metavar="CARD",
+                   help="write the recommended settings into this card's [decision] table")
+    p.add_argument("--all", action="store_true", help="list every setting, not only the front")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("harvest", help="gather captured snippets into a retraining set",
+                       description="Collect snippets of many sessions into DIR/<label>/ with "
+                                   "DIR/manifest.csv; re-running adds only what is new.",
+                       epilog=EXAMPLES["harvest"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories")
+    p.add_argument("--out", required=True, metavar="DIR", help="the retraining set folder")
+    p.add_argument("--include", default="disagreement,uncertain,manual", metavar="REASONS",
+                   help="comma-separated reasons to take (default: all three)")
+    p.add_argument("--drop-unknown", action="store_true",
+                   help="leave out snippets still labelled unknown")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -209,6 +259,44 @@ def _decision(card, args):
         raise ScenemonError(f"decision flags: {exc}") from None
 
 
+def _capture(args):
+    """CaptureSettings from the flags, or None for --capture none."""
+    from monitor.capture import CaptureSettings
+
+    text = getattr(args, "capture", "disagreement,uncertain") or "none"
+    if text.strip() == "none":
+        return None
+    try:
+        return CaptureSettings(
+            policies=tuple(p.strip() for p in text.split(",") if p.strip()),
+            on=getattr(args, "capture_on", "decision"),
+            pre_roll_s=getattr(args, "pre_roll", 0.5), post_roll_s=getattr(args, "post_roll", 0.5),
+            max_s=getattr(args, "max_snippet", 10.0), every_s=getattr(args, "capture_every", 5.0),
+            uncertain_below=getattr(args, "uncertain_below", 0.5),
+            uncertain_margin=getattr(args, "uncertain_margin", 0.1))
+    except ValueError as exc:
+        raise ScenemonError(f"capture flags: {exc}") from None
+
+
+def _add_capture_flags(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("capture (hard examples saved under SESSION/snippets/)")
+    g.add_argument("--capture", default="disagreement,uncertain", metavar="POLICIES",
+                   help="comma-separated: disagreement (decision differs from the truth), "
+                        "uncertain (low confidence); or none (default: both)")
+    g.add_argument("--capture-on", choices=["decision", "top"], default="decision",
+                   help="what must disagree with the truth: the decision or the raw top class")
+    g.add_argument("--pre-roll", type=float, default=0.5, metavar="S", help="seconds before")
+    g.add_argument("--post-roll", type=float, default=0.5, metavar="S", help="seconds after")
+    g.add_argument("--max-snippet", type=float, default=10.0, metavar="S",
+                   help="longest snippet in seconds")
+    g.add_argument("--capture-every", type=float, default=5.0, metavar="S",
+                   help="at most one snippet per (truth, predicted) pair every S seconds")
+    g.add_argument("--uncertain-below", type=_fraction, default=0.5, metavar="P",
+                   help="uncertain when the top smoothed probability is below P")
+    g.add_argument("--uncertain-margin", type=_fraction, default=0.1, metavar="P",
+                   help="uncertain when the top two smoothed probabilities are closer than P")
+
+
 class HeadlessPrinter:
     """One JSON object per window on stdout (the windows.jsonl fields)."""
 
@@ -243,7 +331,7 @@ class ChangePrinter:
 
 def run_session(*, make_source, name: str, model: str, spec: str | None,
                 truth_path: str | None, out: str | None, no_audio: bool, observers_extra: list,
-                args, trust_model: bool = False) -> dict:
+                args, trust_model: bool = False, on_ready=None) -> dict:
     """Validate everything, run one session, close it; return the summary.
 
     `make_source(card)` builds the source (file or microphone) once the card is known.
@@ -252,6 +340,7 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     """
     import shutil
 
+    from monitor.capture import CapturePolicy
     from monitor.engine import Engine
     from monitor.runners import load_runner
     from monitor.session import SessionWriter
@@ -260,6 +349,7 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
 
     card = load_card_for_model(model, spec)
     decision = _decision(card, args)
+    capture_settings = _capture(args)
     truth = load_truth(truth_path, classes=card.classes) if truth_path else None
     source = make_source(card)
     runner = load_runner(model, card, trust_model=trust_model)
@@ -270,7 +360,13 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     target = session_dir(out, name)
     existed = target.exists()
     writer = SessionWriter(target, meta, sample_rate=card.sample_rate, audio=not no_audio)
-    engine.observers = [writer, *observers_extra]
+    capture = None
+    if capture_settings is not None:
+        capture = CapturePolicy(capture_settings, classes=card.classes,
+                                sample_rate=card.sample_rate, sink=writer.on_snippet)
+    engine.observers = [writer, *([capture] if capture else []), *observers_extra]
+    if on_ready is not None:
+        on_ready(engine, capture, writer)
     stop = threading.Event()
     old = signal.signal(signal.SIGINT, lambda *_: stop.set()) \
         if threading.current_thread() is threading.main_thread() else None
@@ -290,6 +386,10 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     finally:
         if old is not None:
             signal.signal(signal.SIGINT, old)
+    if capture is not None:
+        capture.close()
+        summary["snippets"] = dict(capture.counts)
+        summary["snippets_rate_limited"] = capture.limited
     spans = truth.spans if truth else None
     if spans is not None:
         spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
@@ -406,6 +506,73 @@ def cmd_demo(args) -> int:
     return finish(summary)
 
 
+def cmd_report(args) -> int:
+    import json
+
+    from monitor.review.report import session_scores, text_report, write_html
+    from monitor.session import load_session
+
+    s = load_session(args.session)
+    if not s.windows:
+        raise ScenemonError(f"{args.session}: the session holds no windows")
+    sc = session_scores(s)
+    if args.json:
+        sys.stdout.write(json.dumps(sc.to_dict(), indent=2) + "\n")
+    else:
+        sys.stdout.write(text_report(s, sc))
+    if args.html:
+        out = write_html(s, sc, Path(args.html))
+        sys.stderr.write(f"wrote {out}\n")
+    return 0
+
+
+def cmd_tune(args) -> int:
+    from monitor.review.tune import apply_to_card, parse_grid, recommend, sweep, table
+    from monitor.session import load_session
+
+    sessions = [load_session(p) for p in args.sessions]
+    for s in sessions:
+        if not s.windows:
+            raise ScenemonError(f"{s.dir}: the session holds no windows")
+        for n in s.notes:
+            sys.stderr.write(f"scenemon: warning: {s.dir}: {n}\n")
+    if len({tuple(s.classes) for s in sessions}) > 1:
+        raise ScenemonError(f"{sessions[1].dir}: its classes differ from {sessions[0].dir}'s")
+    t = time.perf_counter()
+    rows = sweep(sessions, parse_grid(args.grid))
+    best = recommend(rows)
+    if args.all:
+        for r in rows:
+            r.front = True
+    sys.stdout.write(table(rows, best, limit=len(rows) if args.all else 25))
+    sys.stdout.write(f"recommended: {best.label()}  ({best.accuracy:.1%}, "
+                     f"{best.switches_per_min:.2f} switches/min; {time.perf_counter() - t:.1f} s)\n")
+    if args.apply:
+        apply_to_card(Path(args.apply), best.settings)
+        sys.stdout.write(f"wrote the [decision] table of {args.apply}\n")
+    return 0
+
+
+def cmd_harvest(args) -> int:
+    from monitor.review.harvest import harvest, progress_bar
+
+    include = tuple(x.strip() for x in args.include.split(",") if x.strip())
+    bad = [x for x in include if x not in ("disagreement", "uncertain", "manual")]
+    if bad:
+        raise ScenemonError(f"--include: unknown reason {bad[0]!r} (use disagreement, "
+                            f"uncertain, manual)")
+    res = harvest([Path(p) for p in args.sessions], Path(args.out), include=include,
+                  drop_unknown=args.drop_unknown, progress=progress_bar())
+    for n in res.notes:
+        sys.stderr.write(f"scenemon: note: {n}\n")
+    sys.stdout.write(f"harvest {args.out}: {sum(res.added.values())} new snippet(s); "
+                     f"{res.duplicates} duplicate(s), {res.dropped} dropped, "
+                     f"{res.unknown_skipped} unknown left out, {res.excluded} of other reasons\n")
+    for label in sorted(res.total):
+        sys.stdout.write(f"  {label:<24} {res.total[label]:>5}  (+{res.added.get(label, 0)})\n")
+    return 0
+
+
 def cmd_bench(args) -> int:
     from monitor.bench import run_bench
 
@@ -424,7 +591,8 @@ def main(argv: list[str] | None = None) -> int:
         return 2
     debug = getattr(args, "debug", False)
     handlers = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices,
-                "demo": cmd_demo, "bench": cmd_bench}
+                "demo": cmd_demo, "bench": cmd_bench, "report": cmd_report,
+                "tune": cmd_tune, "harvest": cmd_harvest}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning

@@ -13,6 +13,8 @@ opens), ``snippets/``, and ``summary.json`` only at a clean stop.
 
 from __future__ import annotations
 
+import hashlib
+import io
 import json
 import math
 import os
@@ -89,13 +91,14 @@ class SessionWriter:
         self.dir = prepare_dir(Path(out))
         self.sample_rate = int(sample_rate)
         self.write_audio = audio
-        self.meta = meta
-        atomic_write(self.dir / "session.json", dumps(meta, indent=2).encode())
+        self.meta = {**meta, "session_id": meta.get("session_id") or self.dir.name}
+        atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
         self._q: queue.SimpleQueue = queue.SimpleQueue()
         self._thread = threading.Thread(target=self._run, name="session-writer", daemon=True)
         self.error: BaseException | None = None
         self.audio_frames = 0
         self.windows_written = 0
+        self.snippets_written: list[Path] = []
         self._thread.start()
 
     # called from the compute thread: never blocks
@@ -105,6 +108,34 @@ class SessionWriter:
     def on_window(self, result: Any) -> None:
         """Queue a `WindowResult`; it is serialised on the writer's thread."""
         self._q.put(("window", result))
+
+    def on_snippet(self, snippet: dict[str, Any]) -> None:
+        """Queue a snippet from the capture policy (its "audio" is float32 at the model rate)."""
+        self._q.put(("snippet", snippet))
+
+    def _write_snippet(self, snip: dict[str, Any]) -> None:
+        from monitor.capture import safe_label
+
+        label_dir = self.dir / "snippets" / safe_label(snip["label"])
+        label_dir.mkdir(parents=True, exist_ok=True)
+        name = f"s{int(round(snip['t0'] * 1000)):09d}-{snip['reason']}"
+        k = 1
+        while (label_dir / f"{name}.json").exists():
+            k += 1
+            name = f"s{int(round(snip['t0'] * 1000)):09d}-{snip['reason']}-{k}"
+        buf = io.BytesIO()
+        sf.write(buf, to_pcm16(snip["audio"]), self.sample_rate, subtype="PCM_16", format="WAV")
+        data = buf.getvalue()
+        side = {k: v for k, v in snip.items() if k != "audio"}
+        side.update({
+            "session": self.meta["session_id"], "file": f"{name}.wav",
+            "duration_s": round(len(snip["audio"]) / self.sample_rate, 4),
+            "model_sha256": self.meta.get("model", {}).get("sha256"),
+            "audio_sha256": hashlib.sha256(data).hexdigest(),
+        })
+        atomic_write(label_dir / f"{name}.wav", data)  # audio first: the sidecar is the commit
+        atomic_write(label_dir / f"{name}.json", dumps(side, indent=2).encode())
+        self.snippets_written.append(label_dir / f"{name}.json")
 
     def close(self, summary: dict[str, Any] | None, truth: list[Span] | None = None) -> None:
         """Finish: write truth and (when given) summary.json, close files, join the thread."""
@@ -143,6 +174,8 @@ class SessionWriter:
                         wav.flush()
                         os.fsync(jl.fileno())
                         last_sync = now
+                elif kind == "snippet":
+                    self._write_snippet(item[1])
                 elif kind == "close":
                     _, summary, truth = item
                     jl.close()
@@ -152,7 +185,8 @@ class SessionWriter:
                     if truth is not None:
                         atomic_write(self.dir / "truth.tsv", format_truth(truth).encode())
                     if summary is not None:
-                        summary = {**summary, "audio_frames": self.audio_frames}
+                        summary = {**summary, "audio_frames": self.audio_frames,
+                                   "snippets_written": len(self.snippets_written)}
                         atomic_write(self.dir / "summary.json", dumps(summary, indent=2).encode())
                     return
         except BaseException as exc:

@@ -1,0 +1,240 @@
+"""When to save a snippet: disagreement with the truth, model uncertainty, or by hand.
+
+`CapturePolicy` is an engine observer. It keeps the last seconds of audio (the compute
+thread's `on_audio`), watches each `WindowResult` (`on_window`), merges consecutive
+windows of the same kind into one snippet with a pre- and post-roll, caps its length,
+rate-limits each (truth, predicted) pair, and hands the finished snippet to the session
+writer, whose thread writes it (audio first, sidecar last, each atomically). `manual()` is
+the plain function the UI's capture key calls; it may be called from any thread.
+
+Uncertainty sampling follows Settles 2009, "Active Learning Literature Survey" (least
+confidence: top probability below a threshold; margin: top two close together).
+"""
+
+from __future__ import annotations
+
+import re
+import threading
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+REASONS = ("disagreement", "uncertain", "manual")
+_SAFE = re.compile(r"[^A-Za-z0-9_-]+")
+MAX_LABEL = 64
+
+
+def safe_label(label: str | None) -> str:
+    """A label as a folder name: letters, digits, ``_`` and ``-`` only, no leading dot or
+    dash, at most 64 characters; anything else becomes ``_`` ("unknown" when empty)."""
+    text = _SAFE.sub("_", str(label or "")).strip("_-.")[:MAX_LABEL]
+    return text or "unknown"
+
+
+@dataclass
+class CaptureSettings:
+    policies: tuple[str, ...] = ("disagreement", "uncertain")
+    on: str = "decision"  # "decision" | "top": what disagrees with the truth
+    pre_roll_s: float = 0.5
+    post_roll_s: float = 0.5
+    max_s: float = 10.0
+    every_s: float = 5.0  # at most one snippet per (truth, predicted) pair this often
+    uncertain_below: float = 0.5  # least confidence: top smoothed probability below this
+    uncertain_margin: float = 0.1  # margin: top two smoothed closer than this
+    manual_s: float = 3.0
+
+    def __post_init__(self) -> None:
+        bad = [p for p in self.policies if p not in ("disagreement", "uncertain")]
+        if bad:
+            raise ValueError(f"unknown capture policy {bad[0]!r} (use disagreement, uncertain, "
+                             f"or none)")
+        if self.on not in ("decision", "top"):
+            raise ValueError(f"capture on={self.on!r} must be decision or top")
+        for name in ("pre_roll_s", "post_roll_s", "every_s"):
+            if getattr(self, name) < 0:
+                raise ValueError(f"{name}={getattr(self, name)} must be >= 0")
+        if self.max_s <= 0 or self.manual_s <= 0:
+            raise ValueError("snippet lengths must be > 0")
+
+
+@dataclass
+class _Run:
+    reason: str
+    label: str
+    predicted: str
+    t0: float
+    t1: float
+    probs: list = field(default_factory=list)
+    smoothed: list = field(default_factory=list)
+    ready_at: float = 0.0  # audio end needed before cutting (t1 + post-roll)
+
+
+class AudioHistory:
+    """The last `seconds` of the session's audio at the model rate, on the sample clock."""
+
+    def __init__(self, sample_rate: int, seconds: float) -> None:
+        self.sr = sample_rate
+        self.cap = int(seconds * sample_rate)
+        self.buf = np.zeros(self.cap, np.float32)
+        self.end = 0  # samples seen (gaps as silence)
+
+    def add(self, chunk: np.ndarray, gap: int) -> None:
+        if gap:
+            self._put(np.zeros(min(gap, self.cap), np.float32), gap)
+        if chunk.size:
+            self._put(chunk, chunk.size)
+
+    def _put(self, x: np.ndarray, advance: int) -> None:
+        x = x[-self.cap:]
+        start = self.end + advance - x.size
+        pos = start % self.cap
+        first = min(x.size, self.cap - pos)
+        self.buf[pos:pos + first] = x[:first]
+        self.buf[:x.size - first] = x[first:]
+        self.end += advance
+
+    def cut(self, t0: float, t1: float) -> tuple[np.ndarray, float, float]:
+        """Audio between t0 and t1 (clamped to what is still held); with the times used."""
+        a = max(int(round(t0 * self.sr)), self.end - self.cap, 0)
+        b = min(int(round(t1 * self.sr)), self.end)
+        if b <= a:
+            return np.zeros(0, np.float32), a / self.sr, a / self.sr
+        idx = np.arange(a, b) % self.cap
+        return self.buf[idx].copy(), a / self.sr, b / self.sr
+
+
+class CapturePolicy:
+    """Engine observer that decides and cuts snippets (see module docstring).
+
+    Parameters
+    ----------
+    settings : CaptureSettings
+    classes : tuple of str
+    sample_rate : int
+    sink : callable
+        ``sink(snippet: dict)`` receives finished snippets (the session writer's
+        `on_snippet`, which only queues).
+    """
+
+    def __init__(self, settings: CaptureSettings, *, classes: tuple[str, ...],
+                 sample_rate: int, sink) -> None:
+        self.s = settings
+        self.classes = classes
+        self.sr = sample_rate
+        self.sink = sink
+        hold = settings.max_s + settings.pre_roll_s + settings.post_roll_s + 4.0
+        self.audio = AudioHistory(sample_rate, max(hold, settings.manual_s + 2.0))
+        self._run: _Run | None = None
+        self._pending: list[_Run] = []
+        self._last: dict[tuple[str, str], float] = {}
+        self._lock = threading.Lock()
+        self.counts = {r: 0 for r in REASONS}
+        self.limited = 0
+        self.last_result = None
+
+    # --- observer interface (compute thread) -------------------------------------------
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        with self._lock:
+            self.audio.add(chunk, gap)
+            self._flush(final=False)
+
+    def on_window(self, r) -> None:
+        with self._lock:
+            self.last_result = r
+            kind = self._classify(r)
+            run = self._run
+            if run is not None and (kind is None or kind[:3] != (run.reason, run.label,
+                                                                 run.predicted)):
+                self._end_run()
+                run = None
+            if kind is not None:
+                reason, label, predicted = kind
+                if run is None:
+                    run = self._run = _Run(reason, label, predicted, r.t0, r.t1)
+                run.t1 = r.t1
+                run.probs.append([float(v) for v in r.probs])
+                run.smoothed.append([float(v) for v in r.smoothed])
+                if run.t1 - run.t0 + self.s.pre_roll_s + self.s.post_roll_s >= self.s.max_s:
+                    self._end_run()
+            self._flush(final=False)
+
+    def close(self) -> None:
+        """End any open run and cut every pending snippet with the audio there is."""
+        with self._lock:
+            self._end_run()
+            self._flush(final=True)
+
+    # --- the UI's capture key (any thread) -----------------------------------------------
+    def manual(self, label: str | None = None, seconds: float | None = None) -> dict | None:
+        """Save the last `seconds` (default `manual_s`) as a snippet labelled `label`."""
+        with self._lock:
+            end = self.audio.end / self.sr
+            if end <= 0:
+                return None
+            secs = seconds or self.s.manual_s
+            r = self.last_result
+            run = _Run("manual", label or "unknown",
+                       r.decision or r.top if r is not None else "unknown",
+                       max(0.0, end - secs), end)
+            if r is not None:
+                run.probs.append([float(v) for v in r.probs])
+                run.smoothed.append([float(v) for v in r.smoothed])
+            return self._emit(run, run.t0, run.t1)
+
+    # --- internals ------------------------------------------------------------------------
+    def _classify(self, r) -> tuple[str, str, str] | None:
+        pol = self.s.policies
+        if "disagreement" in pol and r.truth is not None:
+            predicted = r.top if self.s.on == "top" else r.decision
+            if predicted != r.truth:
+                return ("disagreement", r.truth, predicted or "undecided")
+        if "uncertain" in pol:
+            s = np.sort(np.asarray(r.smoothed, dtype=np.float64))[::-1]
+            if s[0] < self.s.uncertain_below or s[0] - s[1] < self.s.uncertain_margin:
+                top = self.classes[int(np.argmax(r.smoothed))]
+                return ("uncertain", "unknown", top)
+        return None
+
+    def _end_run(self) -> None:
+        run, self._run = self._run, None
+        if run is None:
+            return
+        key = (run.label, run.predicted)
+        last = self._last.get(key)
+        if last is not None and run.t0 - last < self.s.every_s:
+            self.limited += 1
+            return
+        self._last[key] = run.t0
+        run.ready_at = run.t1 + self.s.post_roll_s
+        self._pending.append(run)
+
+    def _flush(self, *, final: bool) -> None:
+        end = self.audio.end / self.sr
+        keep = []
+        for run in self._pending:
+            if final or end >= run.ready_at:
+                t0 = max(0.0, run.t0 - self.s.pre_roll_s)
+                t1 = min(run.ready_at, t0 + self.s.max_s)
+                self._emit(run, t0, t1)
+            else:
+                keep.append(run)
+        self._pending = keep
+
+    def _emit(self, run: _Run, t0: float, t1: float) -> dict | None:
+        audio, t0, t1 = self.audio.cut(t0, t1)
+        if audio.size == 0:
+            return None
+        probs = np.asarray(run.probs) if run.probs else np.zeros((0, len(self.classes)))
+        smoothed = np.asarray(run.smoothed) if run.smoothed else probs
+        snippet: dict[str, Any] = {
+            "reason": run.reason, "label": run.label, "predicted": run.predicted,
+            "in_classes": run.label in self.classes, "t0": round(t0, 4), "t1": round(t1, 4),
+            "sample_rate": self.sr, "probs": probs.round(6).tolist(),
+            "smoothed": smoothed.round(6).tolist(),
+            "confidence": round(float(smoothed.mean(0).max()), 6) if len(smoothed) else None,
+            "audio": audio,
+        }
+        self.counts[run.reason] += 1
+        self.sink(snippet)
+        return snippet

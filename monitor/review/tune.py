@@ -1,0 +1,208 @@
+"""`scenemon tune`: replay stored raw probabilities through a grid of decision settings.
+
+No model is needed: each session's `windows.jsonl` holds the raw probabilities, so a grid
+of a few hundred settings runs in seconds. Each setting is scored on all sessions together:
+window accuracy (undecided is wrong), switch rate (decision changes per minute) and median
+decision latency after a truth change. A setting is on the trade-off front when no other
+setting is at least as good on all three and better on one. The recommendation rule: on
+the front, the highest accuracy; among settings within 0.5 percentage points of it, the
+lowest switch rate, then the lowest latency.
+"""
+
+from __future__ import annotations
+
+import itertools
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from monitor.decide import decide_sequence
+from monitor.errors import ScenemonError
+from monitor.review.metrics import latencies, switch_count, truth_changes
+from monitor.session import Session
+from monitor.spec import DecisionSettings
+
+DEFAULT_GRID = {
+    "smoothing": ["none", "mean", "ema", "median"],
+    "smoothing_windows": [3, 5],
+    "ema_alpha": [0.3, 0.6],
+    "enter": [0.5, 0.6, 0.7],
+    "margin": [0.0, 0.1, 0.2],
+    "confirm": [1, 2, 3],
+    "min_hold_s": [0.0, 2.0],
+}
+_TYPES = {"smoothing": str, "smoothing_windows": int, "ema_alpha": float, "enter": float,
+          "exit": float, "margin": float, "confirm": int, "min_hold_s": float}
+RECOMMEND_SLACK = 0.005
+
+
+def parse_grid(text: str | None) -> dict[str, list]:
+    """``"smoothing=mean,ema;enter=0.5,0.6"`` -> grid; unnamed fields keep the default grid."""
+    grid = {k: list(v) for k, v in DEFAULT_GRID.items()}
+    if not text:
+        return grid
+    for part in filter(None, (p.strip() for p in re.split(r"[;\s]+", text))):
+        key, sep, values = part.partition("=")
+        key = key.strip().replace("-", "_")
+        if not sep or key not in _TYPES:
+            raise ScenemonError(f"--grid: {part!r} must be NAME=V1,V2 with NAME one of "
+                                f"{', '.join(_TYPES)}")
+        try:
+            grid[key] = [_TYPES[key](v) for v in values.split(",") if v.strip()]
+        except ValueError:
+            raise ScenemonError(f"--grid: {part!r} has a value that is not a "
+                                f"{_TYPES[key].__name__}") from None
+    return grid
+
+
+def expand(grid: dict[str, list]) -> list[DecisionSettings]:
+    """Every combination, without repeats that differ only in unused fields."""
+    seen, out = set(), []
+    keys = list(grid)
+    for combo in itertools.product(*(grid[k] for k in keys)):
+        kw = dict(zip(keys, combo))
+        m = kw.get("smoothing", "mean")
+        if m not in ("mean", "median"):
+            kw["smoothing_windows"] = 1 if m == "none" else DecisionSettings().smoothing_windows
+        if m != "ema":
+            kw["ema_alpha"] = DecisionSettings().ema_alpha
+        if m == "none":
+            kw["smoothing_windows"] = DecisionSettings().smoothing_windows
+        try:
+            s = DecisionSettings(**kw)
+        except ValueError as exc:
+            raise ScenemonError(f"--grid: {exc}") from None
+        if s not in seen:
+            seen.add(s)
+            out.append(s)
+    return out
+
+
+@dataclass
+class Row:
+    settings: DecisionSettings
+    accuracy: float
+    switches_per_min: float
+    latency_median: float | None
+    never_reached: int
+    front: bool = False
+
+    def label(self) -> str:
+        s = self.settings
+        m = s.smoothing
+        if m in ("mean", "median"):
+            m += f"/{s.smoothing_windows}"
+        elif m == "ema":
+            m += f"/{s.ema_alpha:g}"
+        return (f"{m:<10} enter {s.enter:<4g} margin {s.margin:<4g} confirm {s.confirm} "
+                f"hold {s.min_hold_s:g}")
+
+
+def evaluate(sessions: list[Session], settings: DecisionSettings) -> Row:
+    correct = scored = changes = never = 0
+    minutes = 0.0
+    lat: list[float] = []
+    for s in sessions:
+        w = s.windows
+        probs = np.array([x["probs"] for x in w], dtype=np.float64)
+        t1 = np.array([x["t1"] for x in w])
+        _, dec = decide_sequence(probs, t1, settings)
+        labels = [None if d is None else s.classes[d] for d in dec]
+        for x, d in zip(w, labels):
+            if x.get("truth") is not None:
+                scored += 1
+                correct += int(d == x["truth"])
+        changes += switch_count(labels)
+        minutes += (t1[-1] if len(t1) else 0.0) / 60.0
+        redecided = [{**x, "decision": d} for x, d in zip(w, labels)]
+        la, nv = latencies(redecided, truth_changes(w, s.truth.spans if s.truth else None))
+        lat += la
+        never += nv
+    return Row(settings, correct / scored if scored else 0.0,
+               changes / minutes if minutes else 0.0,
+               float(np.median(lat)) if lat else None, never)
+
+
+def _key(r: Row) -> tuple[float, float, float]:
+    lat = r.latency_median if r.latency_median is not None else float("inf")
+    return (-r.accuracy, r.switches_per_min, lat + 1000.0 * r.never_reached)
+
+
+def mark_front(rows: list[Row]) -> None:
+    keys = [_key(r) for r in rows]
+    for i, r in enumerate(rows):
+        a = keys[i]
+        r.front = not any(all(b[k] <= a[k] for k in range(3)) and b != a for b in keys)
+
+
+def recommend(rows: list[Row]) -> Row:
+    front = [r for r in rows if r.front] or rows
+    best = max(r.accuracy for r in front)
+    near = [r for r in front if r.accuracy >= best - RECOMMEND_SLACK]
+    return min(near, key=lambda r: (r.switches_per_min, _key(r)[2]))
+
+
+def sweep(sessions: list[Session], grid: dict[str, list]) -> list[Row]:
+    if not any(x.get("truth") is not None for s in sessions for x in s.windows):
+        raise ScenemonError(f"{sessions[0].dir}: no window has a truth label; tune needs "
+                            f"sessions with truth")
+    rows = [evaluate(sessions, st) for st in expand(grid)]
+    mark_front(rows)
+    rows.sort(key=_key)
+    return rows
+
+
+def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
+    out = [f"  {'':1} {'setting':<52} {'accuracy':>8} {'switch/min':>10} {'latency':>8}"]
+    shown = [r for r in rows if r.front][:limit]
+    for r in shown:
+        mark = ">" if r is chosen else "*"
+        lat = "-" if r.latency_median is None else f"{r.latency_median:.2f} s"
+        out.append(f"  {mark} {r.label():<52} {r.accuracy:>8.1%} {r.switches_per_min:>10.2f} "
+                   f"{lat:>8}")
+    out.append(f"  {len(rows)} settings tried, {sum(r.front for r in rows)} on the trade-off "
+               f"front (*); > recommended: highest accuracy on the front, then fewest switches "
+               f"within {RECOMMEND_SLACK:.1%} of it, then lowest latency")
+    return "\n".join(out) + "\n"
+
+
+def apply_to_card(card_path: Path, settings: DecisionSettings) -> None:
+    """Write `settings` into the card's [decision] table; every other line stays as it was."""
+    from monitor.session import atomic_write
+    from monitor.spec import load_card
+
+    load_card(card_path)  # refuse to edit a card that is not valid to begin with
+    lines = card_path.read_text(encoding="utf-8").splitlines()
+    values = {k: _toml(v) for k, v in settings.to_dict().items()}
+    start = next((i for i, x in enumerate(lines) if x.strip().split("#")[0].strip() == "[decision]"),
+                 None)
+    if start is None:
+        lines += ["", "[decision]"] + [f"{k} = {v}" for k, v in values.items()]
+    else:
+        end = next((i for i in range(start + 1, len(lines))
+                    if lines[i].strip().startswith("[")), len(lines))
+        done = set()
+        for i in range(start + 1, end):
+            m = re.match(r"^(\s*)([A-Za-z_]+)(\s*=\s*)([^#]*?)(\s*#.*)?$", lines[i])
+            if m and m.group(2) in values:
+                lines[i] = f"{m.group(1)}{m.group(2)}{m.group(3)}{values[m.group(2)]}" \
+                           f"{m.group(5) or ''}"
+                done.add(m.group(2))
+        missing = [f"{k} = {v}" for k, v in values.items() if k not in done]
+        while end > start + 1 and not lines[end - 1].strip():
+            end -= 1
+        lines[end:end] = missing
+    text = "\n".join(lines) + "\n"
+    atomic_write(card_path, text.encode("utf-8"))
+    load_card(card_path)
+
+
+def _toml(v: Any) -> str:
+    if isinstance(v, str):
+        return f'"{v}"'
+    if isinstance(v, float):
+        return repr(v)
+    return str(v)

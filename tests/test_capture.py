@@ -1,0 +1,145 @@
+"""Capture policies: merging, rolls, caps, rate limits, uncertainty, manual, safe labels."""
+
+import hashlib
+import json
+
+import numpy as np
+import pytest
+
+from conftest import MODELS, run_cli
+from monitor.capture import AudioHistory, CapturePolicy, CaptureSettings, safe_label
+
+CLASSES = ("a", "b", "c")
+
+
+class W:
+    """A minimal window result for the policy."""
+
+    def __init__(self, i, truth, decision, smoothed=(0.9, 0.05, 0.05), hop=0.5):
+        self.t0, self.t1 = i * hop, i * hop + 1.0
+        self.truth, self.decision = truth, decision
+        self.smoothed = np.array(smoothed)
+        self.probs = self.smoothed
+        self.top = CLASSES[int(np.argmax(self.smoothed))]
+
+
+def drive(seq, settings, seconds=None):
+    got = []
+    pol = CapturePolicy(settings, classes=CLASSES, sample_rate=100, sink=got.append)
+    total = seconds or (len(seq) * 0.5 + 2)
+    t_audio = 0.0
+    for i, (truth, dec, *sm) in enumerate(seq):
+        w = W(i, truth, dec, *(sm or [(0.9, 0.05, 0.05)]))
+        while t_audio < w.t1:  # audio arrives before the window that ends there
+            pol.on_audio(np.full(50, i, np.float32), 0)
+            t_audio += 0.5
+        pol.on_window(w)
+    while t_audio < total:
+        pol.on_audio(np.zeros(50, np.float32), 0)
+        t_audio += 0.5
+    pol.close()
+    return got, pol
+
+
+def test_consecutive_disagreements_merge_with_rolls():
+    seq = [("a", "a")] * 4 + [("a", "b")] * 3 + [("a", "a")] * 4
+    got, _ = drive(seq, CaptureSettings(policies=("disagreement",)))
+    assert len(got) == 1
+    s = got[0]
+    assert (s["label"], s["predicted"], s["reason"]) == ("a", "b", "disagreement")
+    # windows 4..6 span 2.0-4.0 s; with 0.5 s pre and post roll: 1.5-4.5 s
+    assert (s["t0"], s["t1"]) == (1.5, 4.5)
+    assert s["audio"].size == 300 and len(s["probs"]) == 3
+
+
+def test_snippets_are_capped():
+    seq = [("a", "b")] * 40
+    got, _ = drive(seq, CaptureSettings(policies=("disagreement",), max_s=4.0, every_s=0.0))
+    assert len(got) > 1 and all(s["t1"] - s["t0"] <= 4.0 + 1e-9 for s in got)
+
+
+def test_rate_limit_per_pair():
+    seq = ([("a", "b")] * 2 + [("a", "a")] * 2) * 6  # an a/b disagreement every 2 s
+    got, pol = drive(seq, CaptureSettings(policies=("disagreement",), every_s=5.0))
+    starts = [s["t0"] + 0.5 for s in got]
+    assert all(b - a >= 5.0 for a, b in zip(starts, starts[1:]))
+    assert pol.limited > 0
+    # another pair is not limited by the first
+    seq2 = [("a", "b")] * 2 + [("a", "c")] * 2
+    got2, _ = drive(seq2, CaptureSettings(policies=("disagreement",), every_s=60.0))
+    assert [(s["label"], s["predicted"]) for s in got2] == [("a", "b"), ("a", "c")]
+
+
+def test_top_class_mode_and_undecided():
+    seq = [("b", None, (0.9, 0.05, 0.05))] * 3
+    got, _ = drive(seq, CaptureSettings(policies=("disagreement",)))
+    assert got[0]["predicted"] == "undecided"
+    got, _ = drive(seq, CaptureSettings(policies=("disagreement",), on="top"))
+    assert got[0]["predicted"] == "a"
+
+
+def test_uncertain_least_confidence_and_margin():
+    # Settles 2009: least confidence (top < threshold) and margin (top two close)
+    low = (0.4, 0.35, 0.25)
+    close = (0.52, 0.46, 0.02)
+    sure = (0.9, 0.05, 0.05)
+    seq = [(None, "a", sure)] * 3 + [(None, "a", low)] * 2 + [(None, "a", sure)] * 8 + \
+          [(None, "a", close)] * 2 + [(None, "a", sure)] * 3
+    got, _ = drive(seq, CaptureSettings(policies=("uncertain",), every_s=0.0))
+    assert [s["reason"] for s in got] == ["uncertain", "uncertain"]
+    assert all(s["label"] == "unknown" and not s["in_classes"] for s in got)
+    got, _ = drive(seq, CaptureSettings(policies=("disagreement",)))
+    assert got == []  # no truth, nothing disagrees
+
+
+def test_manual_takes_the_last_seconds():
+    got = []
+    pol = CapturePolicy(CaptureSettings(), classes=CLASSES, sample_rate=100, sink=got.append)
+    for i in range(20):
+        pol.on_audio(np.full(50, i, np.float32), 0)
+    snip = pol.manual("b", seconds=3.0)
+    assert snip["reason"] == "manual" and snip["label"] == "b"
+    assert (snip["t0"], snip["t1"]) == (7.0, 10.0)
+    assert snip["audio"][0] == 14 and snip["audio"][-1] == 19 and len(got) == 1
+
+
+def test_audio_history_keeps_the_sample_clock_across_gaps():
+    h = AudioHistory(10, 5.0)
+    h.add(np.arange(30, dtype=np.float32), 0)
+    h.add(np.arange(100, 110, dtype=np.float32), 20)  # 2 s lost
+    x, t0, t1 = h.cut(2.5, 6.0)
+    assert (t0, t1) == (2.5, 6.0)
+    assert x[:5].tolist() == [25, 26, 27, 28, 29] and np.all(x[5:25] == 0)
+    assert x[25:].tolist() == list(range(100, 110))
+
+
+@pytest.mark.parametrize("hostile,expected", [
+    ("../../etc/passwd", "etc_passwd"), ("..", "unknown"), (".hidden", "hidden"),
+    ("a/b\\c", "a_b_c"), ("x" * 300, "x" * 64), ("", "unknown"), (None, "unknown"),
+    ("voices", "voices"), ("<script>", "script"), ("car park", "car_park"),
+])
+def test_safe_label(hostile, expected):
+    out = safe_label(hostile)
+    assert out == expected
+    assert "/" not in out and "\\" not in out and not out.startswith(".") and len(out) <= 64
+
+
+def test_replay_captures_snippets_with_sidecars(tmp_path, tour):
+    out = tmp_path / "s"
+    r = run_cli("replay", tour[0], "--model", MODELS / "demo.int8.tflite", "--truth", tour[1],
+                "--fast", "--out", out)
+    assert r.returncode == 0, r.stderr
+    sides = sorted((out / "snippets").glob("*/*.json"))
+    assert sides
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["snippets_written"] == len(sides)
+    for side in sides:
+        m = json.loads(side.read_text())
+        wav = side.with_suffix(".wav")
+        assert hashlib.sha256(wav.read_bytes()).hexdigest() == m["audio_sha256"]
+        assert {"session", "t0", "t1", "sample_rate", "label", "predicted", "probs", "smoothed",
+                "reason", "model_sha256", "audio_sha256"} <= set(m)
+        assert side.parent.name == m["label"] and m["reason"] in ("disagreement", "uncertain")
+    r = run_cli("replay", tour[0], "--model", MODELS / "demo.tflite", "--fast", "--out",
+                tmp_path / "n", "--capture", "none")
+    assert r.returncode == 0 and not (tmp_path / "n" / "snippets").exists()
