@@ -114,7 +114,9 @@ def _add_session_flags(p: argparse.ArgumentParser) -> None:
                    help="session directory (default: recordings/<date>-<time>-<name>)")
     p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
     p.add_argument("--headless", action="store_true",
-                   help="no screen: one JSON object per window on stdout")
+                   help="no screen: one JSON object per window on stdout (default: the "
+                        "terminal UI; keys: 1-9 truth, 0 truth unknown, c capture, p pause, "
+                        "s stage view, r relabel, q quit)")
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -212,6 +214,16 @@ def build_parser() -> argparse.ArgumentParser:
                    help="comma-separated reasons to take (default: all three)")
     p.add_argument("--drop-unknown", action="store_true",
                    help="leave out snippets still labelled unknown")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("relabel", help="review a session's snippets: play, keep, drop, relabel",
+                       description="The relabel view on a session directory: enter plays a "
+                                   "snippet, k keeps it, d drops it, l gives it another label "
+                                   "(number keys pick the class). Only sidecars change.",
+                       epilog="example:\n  scenemon relabel recordings/20261201-101500-walk",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("session", metavar="SESSION", help="session directory")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -331,7 +343,9 @@ class ChangePrinter:
 
 def run_session(*, make_source, name: str, model: str, spec: str | None,
                 truth_path: str | None, out: str | None, no_audio: bool, observers_extra: list,
-                args, trust_model: bool = False, on_ready=None) -> dict:
+                args, trust_model: bool = False, on_ready=None,
+                stop: threading.Event | None = None, live_truth: bool = False,
+                keep_features: bool = False, prepare=None) -> dict:
     """Validate everything, run one session, close it; return the summary.
 
     `make_source(card)` builds the source (file or microphone) once the card is known.
@@ -345,16 +359,20 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     from monitor.runners import load_runner
     from monitor.session import SessionWriter
     from monitor.spec import load_card_for_model
-    from monitor.truth import load_truth
+    from monitor.truth import LiveTruth, load_truth
 
+    if prepare is not None:
+        prepare()
     card = load_card_for_model(model, spec)
     decision = _decision(card, args)
     capture_settings = _capture(args)
     truth = load_truth(truth_path, classes=card.classes) if truth_path else None
+    live = LiveTruth(card.classes) if live_truth and truth is None else None
     source = make_source(card)
     runner = load_runner(model, card, trust_model=trust_model)
     engine = Engine(card, runner, source, decision=decision,
-                    truth=truth.label_for if truth else None)
+                    truth=truth.label_for if truth else live.label_for if live else None,
+                    keep_features=keep_features)
     meta = engine.describe()
     meta["truth_file"] = str(truth_path) if truth_path else None
     target = session_dir(out, name)
@@ -366,8 +384,8 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
                                 sample_rate=card.sample_rate, sink=writer.on_snippet)
     engine.observers = [writer, *([capture] if capture else []), *observers_extra]
     if on_ready is not None:
-        on_ready(engine, capture, writer)
-    stop = threading.Event()
+        on_ready(engine, capture, writer, live, card)
+    stop = stop or threading.Event()
     old = signal.signal(signal.SIGINT, lambda *_: stop.set()) \
         if threading.current_thread() is threading.main_thread() else None
     summary = None
@@ -390,7 +408,7 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
         capture.close()
         summary["snippets"] = dict(capture.counts)
         summary["snippets_rate_limited"] = capture.limited
-    spans = truth.spans if truth else None
+    spans = truth.spans if truth else live.spans(end_t=summary["duration_s"]) if live else None
     if spans is not None:
         spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
     writer.close(summary, spans)
@@ -445,27 +463,57 @@ def print_summary(summary: dict, stream=sys.stderr) -> None:
     stream.write("\n".join(lines) + "\n")
 
 
+def run_ui(*, heading: str, **session_kw) -> int:
+    """The terminal UI around one session; returns the exit code."""
+    from monitor.ui.app import MonitorApp, SessionContext
+
+    def start(hooks):
+        def ready(engine, capture, writer, live, card):
+            hooks.ready(SessionContext(engine, capture, writer, live, card))
+
+        return run_session(observers_extra=[hooks.bridge], on_ready=ready, stop=hooks.stop,
+                           live_truth=True, keep_features=True, **session_kw)
+
+    app = MonitorApp(start, heading=heading)
+    code = app.run()
+    if app.error is not None:
+        if isinstance(app.error, ScenemonError):
+            sys.stderr.write(f"scenemon: {app.error}\n")
+            return 2
+        sys.stderr.write(f"scenemon: {type(app.error).__name__}: {app.error}\n")
+        return 1
+    if app.summary is not None:
+        return finish(app.summary)
+    return code if isinstance(code, int) else 0
+
+
 def _printers(args) -> list:
     return [HeadlessPrinter()] if args.headless else [ChangePrinter()]
 
 
+def _interactive() -> bool:
+    return sys.stdin.isatty() and sys.stdout.isatty() and os.environ.get("TERM") != "dumb"
+
+
+def _run(args, *, heading: str, **kw) -> int:
+    """The terminal UI, or without a terminal (or with --headless) printed lines."""
+    if args.headless or not _interactive():
+        return finish(run_session(observers_extra=_printers(args), args=args, **kw))
+    return run_ui(heading=heading, args=args, **kw)
+
+
 def cmd_replay(args) -> int:
     audio = Path(args.audio)
-    summary = run_session(make_source=file_source(audio, fast=args.fast,
-                                                  allow_upsample=args.allow_upsample),
-                          name=audio.stem, model=args.model, spec=args.spec,
-                          truth_path=args.truth, out=args.out, no_audio=args.no_audio,
-                          observers_extra=_printers(args), args=args,
-                          trust_model=args.trust_model)
-    return finish(summary)
+    return _run(args, heading=f"replay {audio.name}{' (fast)' if args.fast else ''}",
+                make_source=file_source(audio, fast=args.fast, allow_upsample=args.allow_upsample),
+                name=audio.stem, model=args.model, spec=args.spec, truth_path=args.truth,
+                out=args.out, no_audio=args.no_audio, trust_model=args.trust_model)
 
 
 def cmd_live(args) -> int:
-    summary = run_session(make_source=mic_source(args), name="live", model=args.model,
-                          spec=args.spec, truth_path=None, out=args.out,
-                          no_audio=args.no_audio, observers_extra=_printers(args), args=args,
-                          trust_model=args.trust_model)
-    return finish(summary)
+    return _run(args, heading=f"live {args.input or ''}".strip(), make_source=mic_source(args),
+                name="live", model=args.model, spec=args.spec, truth_path=None, out=args.out,
+                no_audio=args.no_audio, trust_model=args.trust_model)
 
 
 def cmd_devices(args) -> int:
@@ -488,22 +536,23 @@ def cmd_demo(args) -> int:
     root = project_root()
     model = args.model or str(root / "models" / "demo.tflite")
     if args.mic:
-        if not args.headless:
-            sys.stdout.write(f"scenemon demo: microphone, model {Path(model).name}; Ctrl-C stops\n")
-        summary = run_session(make_source=mic_source(args), name="demo-mic", model=model,
-                              spec=None, truth_path=None, out=args.out, no_audio=args.no_audio,
-                              observers_extra=_printers(args), args=args)
-        return finish(summary)
-    from monitor.demo.tour import ensure_tour
+        return _run(args, heading=f"demo on the microphone, {Path(model).name}",
+                    make_source=mic_source(args), name="demo-mic", model=model, spec=None,
+                    truth_path=None, out=args.out, no_audio=args.no_audio)
+    from monitor.demo import tour_paths
 
-    wav, tsv = ensure_tour(root / "recordings" / "demo")
-    if not args.headless:
-        sys.stdout.write(f"scenemon demo: {wav.name} ({'fast' if args.fast else 'real time'}), "
-                         f"model {Path(model).name}; Ctrl-C stops\n")
-    summary = run_session(make_source=file_source(wav, fast=args.fast), name="demo",
-                          model=model, spec=None, truth_path=str(tsv), out=args.out,
-                          no_audio=args.no_audio, observers_extra=_printers(args), args=args)
-    return finish(summary)
+    folder = root / "recordings" / "demo"
+    wav, tsv = tour_paths(folder)
+
+    def make_tour() -> None:  # synthesis imports scipy.signal: keep it off the first screen
+        from monitor.demo.tour import ensure_tour
+
+        ensure_tour(folder)
+
+    return _run(args, heading=f"demo tour, {Path(model).name}{' (fast)' if args.fast else ''}",
+                make_source=file_source(wav, fast=args.fast), name="demo", model=model,
+                spec=None, truth_path=str(tsv), out=args.out, no_audio=args.no_audio,
+                prepare=make_tour)
 
 
 def cmd_report(args) -> int:
@@ -573,6 +622,17 @@ def cmd_harvest(args) -> int:
     return 0
 
 
+def cmd_relabel(args) -> int:
+    from monitor.session import load_session
+    from monitor.ui.app import RelabelApp
+
+    s = load_session(args.session)
+    if not (s.dir / "snippets").is_dir():
+        raise ScenemonError(f"{s.dir}: the session has no snippets to relabel")
+    RelabelApp(s.dir, s.classes).run()
+    return 0
+
+
 def cmd_bench(args) -> int:
     from monitor.bench import run_bench
 
@@ -592,7 +652,7 @@ def main(argv: list[str] | None = None) -> int:
     debug = getattr(args, "debug", False)
     handlers = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices,
                 "demo": cmd_demo, "bench": cmd_bench, "report": cmd_report,
-                "tune": cmd_tune, "harvest": cmd_harvest}
+                "tune": cmd_tune, "harvest": cmd_harvest, "relabel": cmd_relabel}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning

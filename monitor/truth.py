@@ -78,3 +78,48 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
 
 def format_truth(spans: list[Span]) -> str:
     return "".join(f"{s.onset:.3f}\t{s.offset:.3f}\t{s.label}\n" for s in spans)
+
+
+class LiveTruth:
+    """Truth told live (key presses): spans opened and closed at session times.
+
+    `set` is called from the UI thread, `label_for` from the compute thread; a lock guards
+    the short list operations.
+    """
+
+    def __init__(self, classes: tuple[str, ...]) -> None:
+        import threading
+
+        self.classes = classes
+        self._lock = threading.Lock()
+        self._closed: list[Span] = []
+        self._open: tuple[float, str] | None = None
+
+    @property
+    def current(self) -> str | None:
+        with self._lock:
+            return self._open[1] if self._open else None
+
+    def set(self, label: str | None, t: float) -> None:
+        """From session time `t` on the truth is `label` (None: unknown)."""
+        if label is not None and label not in self.classes:
+            raise ValueError(f"{label!r} is not one of {self.classes}")
+        with self._lock:
+            if self._open is not None:
+                onset, old = self._open
+                if label == old:
+                    return
+                if t > onset:
+                    self._closed.append(Span(onset, t, old))
+            self._open = (t, label) if label is not None else None
+
+    def spans(self, end_t: float | None = None) -> list[Span]:
+        """Every span so far; the open one closed at `end_t` (or left out without it)."""
+        with self._lock:
+            out = list(self._closed)
+            if self._open is not None and end_t is not None and end_t > self._open[0]:
+                out.append(Span(self._open[0], end_t, self._open[1]))
+        return out
+
+    def label_for(self, t0: float, t1: float) -> str | None:
+        return TruthTrack(self.spans(end_t=t1)).label_for(t0, t1)

@@ -6,3 +6,11 @@ its truth, and `build` trains the small demo model deterministically.
 
 CLASSES = ("quiet_room", "voices", "traffic", "machinery")
 SAMPLE_RATE = 16000
+
+
+def tour_paths(directory):
+    """Where the tour and its truth live (made by `monitor.demo.tour.ensure_tour`)."""
+    from pathlib import Path
+
+    d = Path(directory)
+    return d / "tour.wav", d / "tour.tsv"

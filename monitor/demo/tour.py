@@ -45,8 +45,10 @@ def tour_audio(seed: int = TOUR_SEED, plan=TOUR) -> tuple[np.ndarray, list[Span]
 
 def ensure_tour(directory: str | Path) -> tuple[Path, Path]:
     """Write the tour and its truth under `directory` if absent; return both paths."""
+    from monitor.demo import tour_paths
+
     d = Path(directory)
-    wav, tsv = d / "tour.wav", d / "tour.tsv"
+    wav, tsv = tour_paths(d)
     if wav.is_file() and tsv.is_file():
         return wav, tsv
     d.mkdir(parents=True, exist_ok=True)

@@ -1,0 +1,1 @@
+"""The terminal UI (textual): live view, stage view, relabel view."""
