@@ -44,6 +44,13 @@ EXAMPLES = {
     "harvest": """examples:
   scenemon harvest recordings/site-a recordings/site-b --out retrain/round2
   scenemon harvest recordings/* --out retrain/round2 --include disagreement,manual --drop-unknown""",
+    "quantize": """examples:
+  scenemon quantize --model models/demo.keras --calibrate recordings/site-a recordings/site-b --out models/site.int8.tflite""",
+    "compare": """examples:
+  scenemon compare --model models/demo.tflite --model models/demo.int8.tflite recordings/demo/tour.wav
+  scenemon compare --model a.keras --model a.int8.tflite recordings/site-* --min-agree 0.95""",
+    "vectors": """examples:
+  scenemon vectors --model models/demo.int8.tflite recordings/demo/tour.wav --out golden --count 20""",
     "bench": """examples:
   scenemon bench
   scenemon bench --model models/demo.keras --seconds 120""",
@@ -224,6 +231,50 @@ def build_parser() -> argparse.ArgumentParser:
                        epilog="example:\n  scenemon relabel recordings/20261201-101500-walk",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("session", metavar="SESSION", help="session directory")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("quantize", help="full-integer int8 .tflite from a Keras model and field audio",
+                       description="Post-training quantisation (int8 weights, activations, input "
+                                   "and output) calibrated on real windows of recordings or "
+                                   "sessions through the card's front end; writes the card "
+                                   "beside the output.",
+                       epilog=EXAMPLES["quantize"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--model", required=True, metavar="M.keras", help="the float Keras model")
+    p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
+    p.add_argument("--calibrate", nargs="+", required=True, metavar="AUDIO_OR_SESSION",
+                   help="recordings or session directories to draw calibration windows from")
+    p.add_argument("--out", required=True, metavar="M.int8.tflite", help="the int8 model to write")
+    p.add_argument("--windows", type=_positive_int, default=300, help="calibration windows (300)")
+    p.add_argument("--seed", type=int, default=0, help="seed of the window choice")
+    p.add_argument("--trust-model", action="store_true", help="allow Keras Lambda layers")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("compare", help="two models on exactly the same windows",
+                       description="Top-1 and decision agreement, probability differences and "
+                                   "the A-vs-B table of two models (e.g. float and int8) on the "
+                                   "same windows; also the front end's float32 error.",
+                       epilog=EXAMPLES["compare"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--model", action="append", required=True, metavar="M",
+                   help="give twice: A then B (each with its card beside it)")
+    p.add_argument("sources", nargs="+", metavar="AUDIO_OR_SESSION")
+    p.add_argument("--min-agree", type=_fraction, metavar="P",
+                   help="exit 1 when top-1 agreement is below P (for release scripts)")
+    p.add_argument("--json", action="store_true", help="print the figures as JSON")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("vectors", help="golden vectors and the C front end for the firmware",
+                       description="Write pcm.csv, features.csv, output.csv (int8 tensors too), "
+                                   "meta.json, frontend_constants.h and the portable C front end "
+                                   "for target validation.",
+                       epilog=EXAMPLES["vectors"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("--model", required=True, metavar="M")
+    p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
+    p.add_argument("audio", metavar="AUDIO")
+    p.add_argument("--out", required=True, metavar="DIR")
+    p.add_argument("--count", type=_positive_int, metavar="N", help="first N windows only")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -633,6 +684,52 @@ def cmd_relabel(args) -> int:
     return 0
 
 
+def cmd_quantize(args) -> int:
+    from monitor.device.parity import calibration_features, quantize
+    from monitor.spec import load_card_for_model
+
+    card = load_card_for_model(args.model, args.spec)
+    feats = calibration_features(card, [Path(p) for p in args.calibrate], count=args.windows,
+                                 seed=args.seed)
+    res = quantize(Path(args.model), card, feats, Path(args.out), trust_model=args.trust_model)
+    sys.stdout.write(f"wrote {res['model']} ({res['bytes']} bytes) and {res['card']} from "
+                     f"{res['windows']} calibration windows\n")
+    return 0
+
+
+def cmd_compare(args) -> int:
+    import json
+
+    from monitor.device.parity import compare, compare_text
+    from monitor.runners import load_runner
+    from monitor.spec import load_card_for_model
+
+    if len(args.model) != 2:
+        raise ScenemonError("compare: give --model exactly twice (A, then B)")
+    cards = [load_card_for_model(m) for m in args.model]
+    runners = [load_runner(m, c) for m, c in zip(args.model, cards)]
+    res = compare(runners[0], cards[0], runners[1], cards[1], [Path(p) for p in args.sources])
+    sys.stdout.write(json.dumps(res, indent=2) + "\n" if args.json
+                     else compare_text(res, args.model[0], args.model[1]))
+    if args.min_agree is not None and res["top1_agreement"] < args.min_agree:
+        sys.stderr.write(f"scenemon: top-1 agreement {res['top1_agreement']:.2%} is below "
+                         f"--min-agree {args.min_agree:.2%}\n")
+        return 1
+    return 0
+
+
+def cmd_vectors(args) -> int:
+    from monitor.device.parity import write_vectors
+    from monitor.runners import load_runner
+    from monitor.spec import load_card_for_model
+
+    card = load_card_for_model(args.model, args.spec)
+    runner = load_runner(args.model, card)
+    meta = write_vectors(runner, card, Path(args.audio), Path(args.out), count=args.count)
+    sys.stdout.write(f"wrote {meta['windows']} windows of golden vectors to {args.out}\n")
+    return 0
+
+
 def cmd_bench(args) -> int:
     from monitor.bench import run_bench
 
@@ -652,7 +749,8 @@ def main(argv: list[str] | None = None) -> int:
     debug = getattr(args, "debug", False)
     handlers = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices,
                 "demo": cmd_demo, "bench": cmd_bench, "report": cmd_report,
-                "tune": cmd_tune, "harvest": cmd_harvest, "relabel": cmd_relabel}
+                "tune": cmd_tune, "harvest": cmd_harvest, "relabel": cmd_relabel,
+                "quantize": cmd_quantize, "compare": cmd_compare, "vectors": cmd_vectors}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning

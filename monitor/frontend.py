@@ -75,7 +75,7 @@ def mel_band_edges(*, mel_bands: int, fmin: float, fmax: float,
 def mel_filterbank(*, sample_rate: int, fft_length: int, mel_bands: int, fmin: float,
                    fmax: float, scale: MelScale = "htk",
                    norm: Literal["none", "slaney"] = "none",
-                   triangles: Literal["hz", "mel"] = "hz") -> np.ndarray:
+                   triangles: Literal["hz", "mel"] = "hz", dtype=np.float32) -> np.ndarray:
     """Triangular mel filterbank.
 
     Parameters
@@ -97,10 +97,13 @@ def mel_filterbank(*, sample_rate: int, fft_length: int, mel_bands: int, fmin: f
         `librosa.filters.mel`); "mel": linear in mel with the DC bin excluded (as
         `tf.signal.linear_to_mel_weight_matrix` and CMSIS-DSP).
 
+    dtype : numpy dtype
+        Of the result (float32 unless a float64 reference is wanted).
+
     Returns
     -------
     numpy.ndarray
-        Weights, shape ``(mel_bands, fft_length // 2 + 1)``, float32.
+        Weights, shape ``(mel_bands, fft_length // 2 + 1)``.
     """
     n_bins = fft_length // 2 + 1
     bin_hz = np.linspace(0.0, sample_rate / 2.0, n_bins)
@@ -117,7 +120,7 @@ def mel_filterbank(*, sample_rate: int, fft_length: int, mel_bands: int, fmin: f
         weights[:, 0] = 0.0
     if norm == "slaney":
         weights *= (2.0 / (edges_hz[2:] - edges_hz[:-2]))[:, None]
-    return weights.astype(np.float32)
+    return weights.astype(dtype)
 
 
 def window_coefficients(length: int, *, kind: Literal["hann", "hamming"] = "hann",

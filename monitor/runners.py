@@ -213,6 +213,13 @@ class TFLiteRunner(_Base):
             return q.astype(np.float32)
         return (np.float32(self.out_scale) * (q.astype(np.float32) - self.out_zero))
 
+    def raw(self, feature: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """One window's raw input and output tensors (int8 for an int8 model)."""
+        q = self.quantize_input(np.asarray(feature, np.float32).reshape(self._one_shape))
+        self.interp.set_tensor(self._in["index"], q)
+        self.interp.invoke()
+        return q.reshape(-1), self.interp.get_tensor(self._out["index"]).reshape(-1).copy()
+
     def predict(self, features: np.ndarray) -> np.ndarray:
         feats = np.asarray(features, np.float32)
         out = np.empty((feats.shape[0], self.n_outputs), np.float32)
