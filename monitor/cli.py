@@ -278,6 +278,15 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
+    p = sub.add_parser("repair", help="make a session that did not close cleanly whole",
+                       description="Drop a torn last line, bring the audio header up to date, "
+                                   "rebuild truth.tsv and write summary.json marked recovered.",
+                       epilog="example:\n  scenemon repair recordings/20261201-101500-live",
+                       formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("session", metavar="SESSION", help="session directory")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
     p = sub.add_parser("bench", help="will this model keep up on this machine?",
                        description="Measure start-up, per-window cost and fast-replay speed.",
                        epilog=EXAMPLES["bench"], formatter_class=argparse.RawDescriptionHelpFormatter)
@@ -433,7 +442,8 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     if capture_settings is not None:
         capture = CapturePolicy(capture_settings, classes=card.classes,
                                 sample_rate=card.sample_rate, sink=writer.on_snippet)
-    engine.observers = [writer, *([capture] if capture else []), *observers_extra]
+    engine.observers = [writer, *([capture] if capture else []), *observers_extra,
+                        *([] if on_ready else [WriteWatch(writer)])]
     if on_ready is not None:
         on_ready(engine, capture, writer, live, card)
     stop = stop or threading.Event()
@@ -464,7 +474,7 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
         spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]
     writer.close(summary, spans)
     if writer.error is not None:
-        raise RuntimeError(f"{writer.dir}: writing the session failed ({writer.error})")
+        summary["write_error"] = writer.error_text
     return summary
 
 
@@ -491,11 +501,24 @@ def mic_source(args):
 
 def finish(summary: dict) -> int:
     print_summary(summary)
-    failure = summary.get("source_failure")
+    failure = summary.get("source_failure") or summary.get("write_error")
     if failure:
         sys.stderr.write(f"scenemon: {failure}\n")
         return 1
     return 0
+
+
+class WriteWatch:
+    """Says once, on stderr, when the session writer has stopped (disk full)."""
+
+    def __init__(self, writer) -> None:
+        self.writer, self.said = writer, False
+
+    def on_window(self, r) -> None:
+        if not self.said and self.writer.error_text:
+            self.said = True
+            sys.stderr.write(f"scenemon: {self.writer.error_text}; monitoring goes on\n")
+            sys.stderr.flush()
 
 
 def print_summary(summary: dict, stream=sys.stderr) -> None:
@@ -730,6 +753,17 @@ def cmd_vectors(args) -> int:
     return 0
 
 
+def cmd_repair(args) -> int:
+    from monitor.repair import repair
+
+    res = repair(args.session)
+    if not res["repaired"]:
+        sys.stdout.write(f"{res['session']}: {res['note']}\n")
+        return 0
+    sys.stdout.write(f"{res['session']}: repaired\n" + "".join(f"  {a}\n" for a in res["actions"]))
+    return 0
+
+
 def cmd_bench(args) -> int:
     from monitor.bench import run_bench
 
@@ -750,7 +784,8 @@ def main(argv: list[str] | None = None) -> int:
     handlers = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices,
                 "demo": cmd_demo, "bench": cmd_bench, "report": cmd_report,
                 "tune": cmd_tune, "harvest": cmd_harvest, "relabel": cmd_relabel,
-                "quantize": cmd_quantize, "compare": cmd_compare, "vectors": cmd_vectors}
+                "quantize": cmd_quantize, "compare": cmd_compare, "vectors": cmd_vectors,
+                "repair": cmd_repair}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning

@@ -17,7 +17,6 @@ give identical numbers. A runner is owned by one thread (the engine's compute th
 
 from __future__ import annotations
 
-import contextlib
 import hashlib
 import os
 import warnings
@@ -27,6 +26,7 @@ from typing import Protocol
 import numpy as np
 
 from monitor.errors import ModelError
+from monitor.native import quiet_native_stderr as _quiet_native_stderr
 from monitor.spec import ModelCard
 
 MIN_KERAS = (3, 12)
@@ -142,23 +142,6 @@ class KerasRunner(_Base):
         """Many windows in one call (for offline tools; numbers may differ in the last bit)."""
         x = np.asarray(features, np.float32).reshape((-1, *self._one_shape[1:]))
         return self._finish(np.asarray(self.model(x, training=False)))
-
-
-@contextlib.contextmanager
-def _quiet_native_stderr():
-    """Silence C++ chatter (LiteRT's delegate banner) written straight to fd 2."""
-    try:
-        saved = os.dup(2)
-    except OSError:
-        yield
-        return
-    try:
-        with open(os.devnull, "wb") as null:
-            os.dup2(null.fileno(), 2)
-            yield
-    finally:
-        os.dup2(saved, 2)
-        os.close(saved)
 
 
 def _tflite_interpreter(path: Path, threads: int):

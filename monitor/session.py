@@ -19,6 +19,7 @@ import json
 import math
 import os
 import queue
+import shutil
 import threading
 import time
 from dataclasses import dataclass, field
@@ -96,6 +97,8 @@ class SessionWriter:
         self._q: queue.SimpleQueue = queue.SimpleQueue()
         self._thread = threading.Thread(target=self._run, name="session-writer", daemon=True)
         self.error: BaseException | None = None
+        self.error_text: str | None = None
+        self.dropped_items = 0
         self.audio_frames = 0
         self.windows_written = 0
         self.snippets_written: list[Path] = []
@@ -143,23 +146,33 @@ class SessionWriter:
         self._thread.join()
 
     def _run(self) -> None:
-        jl = open(self.dir / "windows.jsonl", "a", encoding="utf-8")
-        wav = None
-        if self.write_audio:
-            wav = sf.SoundFile(str(self.dir / "audio.wav"), "w", samplerate=self.sample_rate,
-                               channels=1, subtype="PCM_16", format="WAV")
-        last_header = last_sync = time.monotonic()
+        jl = wav = None
         try:
-            while True:
-                item = self._q.get()
-                kind = item[0]
+            jl = open(self.dir / "windows.jsonl", "a", encoding="utf-8")
+            if self.write_audio:
+                wav = sf.SoundFile(str(self.dir / "audio.wav"), "w", samplerate=self.sample_rate,
+                                   channels=1, subtype="PCM_16", format="WAV")
+                # a complete (empty) header at once: a kill in the first second leaves a WAV
+                sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0)
+        except OSError as exc:
+            self._fail(exc)
+        last_sync = time.monotonic()
+        last_header = 0.0  # the first audio write brings the header up to date too
+        while True:
+            item = self._q.get()
+            kind = item[0]
+            if kind == "close":
+                self._close(jl, wav, item[1], item[2])
+                return
+            if self.error is not None:  # after a write error (disk full): drop, never tear
+                self.dropped_items += 1
+                continue
+            try:
                 if kind == "window":
                     jl.write(dumps(item[1].record()) + "\n")
                     jl.flush()
                     self.windows_written += 1
-                elif kind == "audio":
-                    if wav is None:
-                        continue
+                elif kind == "audio" and wav is not None:
                     _, chunk, gap = item
                     if gap:
                         wav.write(np.zeros(gap, np.int16))
@@ -168,7 +181,8 @@ class SessionWriter:
                     self.audio_frames += chunk.shape[0]
                     now = time.monotonic()
                     if now - last_header >= HEADER_EVERY_S:
-                        sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0)
+                        if sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0):
+                            raise OSError("libsndfile could not update the WAV header")
                         last_header = now
                     if now - last_sync >= FSYNC_EVERY_S:
                         wav.flush()
@@ -176,31 +190,46 @@ class SessionWriter:
                         last_sync = now
                 elif kind == "snippet":
                     self._write_snippet(item[1])
-                elif kind == "close":
-                    _, summary, truth = item
-                    jl.close()
-                    if wav is not None:
-                        wav.close()
-                        wav = None
-                    if truth is not None:
-                        atomic_write(self.dir / "truth.tsv", format_truth(truth).encode())
-                    if summary is not None:
-                        summary = {**summary, "audio_frames": self.audio_frames,
-                                   "snippets_written": len(self.snippets_written)}
-                        atomic_write(self.dir / "summary.json", dumps(summary, indent=2).encode())
-                    return
-        except BaseException as exc:
+            except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
+                self._fail(exc)
+
+    def _fail(self, exc: BaseException) -> None:
+        """First write error: stop writing (monitoring goes on); say it once."""
+        if self.error is None:
             self.error = exc
-            # keep draining so the producer side never piles up; files stay as written
-            while True:
-                item = self._q.get()
-                if item[0] == "close":
-                    break
-        finally:
-            if not jl.closed:
-                jl.close()
-            if wav is not None:
-                wav.close()
+            reason = getattr(exc, "strerror", None) or str(exc)
+            try:  # libsndfile says only "System error." when the disk is full
+                if shutil.disk_usage(self.dir).free < 1 << 16:
+                    reason = "No space left on device"
+            except OSError:
+                pass
+            self.error_text = (f"{self.dir}: writing stopped ({reason}); windows, audio and "
+                               f"snippets after this point are not kept, what was written is intact")
+
+    def _close(self, jl, wav, summary, truth) -> None:
+        for f in (jl, wav):
+            try:
+                if f is not None:
+                    f.close()
+            except Exception as exc:  # noqa: BLE001
+                self._fail(exc)
+        try:
+            if truth is not None:
+                atomic_write(self.dir / "truth.tsv", format_truth(truth).encode())
+            if summary is not None:
+                summary = {**summary, "audio_frames": self.audio_frames,
+                           "snippets_written": len(self.snippets_written),
+                           "write_error": self.error_text, "items_not_written": self.dropped_items}
+                atomic_write(self.dir / "summary.json", dumps(summary, indent=2).encode())
+        except Exception as exc:  # noqa: BLE001 - the disk is still full
+            self._fail(exc)
+            for name in ("truth.tsv", "summary.json"):
+                tmp = self.dir / f".{name}.tmp"
+                if tmp.exists():
+                    try:
+                        tmp.unlink()
+                    except OSError:
+                        pass
 
 
 @dataclass
@@ -261,7 +290,8 @@ def load_session(path: str | Path) -> Session:
             summary = None
     notes = []
     if summary is None:
-        notes.append("incomplete: no summary.json (the session did not close cleanly)")
+        notes.append("incomplete: no summary.json (the session did not close cleanly; "
+                     "scenemon repair SESSION makes it whole)")
     if skipped:
         notes.append(f"{skipped} unreadable line(s) in windows.jsonl skipped")
     return Session(d, meta, windows, truth, summary, skipped, notes)

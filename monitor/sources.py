@@ -18,6 +18,7 @@ import numpy as np
 import soundfile as sf
 
 from monitor.errors import AudioError, DeviceError
+from monitor.native import quiet_native_stderr
 from monitor.ringbuffer import RingBuffer
 
 
@@ -64,7 +65,8 @@ def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
     if path.stat().st_size == 0:
         raise AudioError(f"{path}: audio file is empty")
     try:
-        info = sf.info(str(path))
+        with quiet_native_stderr():
+            info = sf.info(str(path))
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
         raise AudioError(f"{path}: not a readable audio file ({_first_line(exc)})") from None
     if info.frames <= 0 or info.samplerate <= 0:
@@ -77,7 +79,7 @@ def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
         raise AudioError(f"{path}: {info.duration:.3f} s of audio is shorter than one "
                          f"{window_samples / model_rate:g} s window")
     try:
-        with sf.SoundFile(str(path)) as f:
+        with quiet_native_stderr(), sf.SoundFile(str(path)) as f:
             for i, block in enumerate(f.blocks(blocksize=1 << 18, dtype="float32",
                                                always_2d=True)):
                 if not np.all(np.isfinite(block)):

@@ -364,6 +364,8 @@ class MonitorApp(App):
             t.append(f"CPU {self.cpu_meter() * 100:5.1f}%\n")
         else:
             t.append("timings hidden\n\n\n")
+        if ctx and ctx.writer.error_text:
+            t.append("DISK: writing stopped\n", style="bold reverse red")
         over = ring.overruns if ring else 0
         t.append(f"overruns {over}  gaps {st.gaps}",
                  style="bold reverse" if over or st.gaps else "")
