@@ -120,6 +120,8 @@ def _add_session_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", metavar="DIR",
                    help="session directory (default: recordings/<date>-<time>-<name>)")
     p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
+    p.add_argument("--segment-min", type=float, default=60.0, metavar="M",
+                   help="start a new audio file every M minutes (default 60)")
     p.add_argument("--headless", action="store_true",
                    help="no screen: one JSON object per window on stdout (default: the "
                         "terminal UI; keys: 1-9 truth, 0 truth unknown, c capture, p pause, "
@@ -306,10 +308,23 @@ def project_root() -> Path:
     return Path(__file__).resolve().parent.parent
 
 
+def warn_unclosed(base: Path, limit: int = 2000) -> None:
+    """Say which earlier sessions under `base` did not close cleanly (killed, power loss)."""
+    try:
+        dirs = sorted(p.parent for p in base.glob("*/session.json"))[-limit:]
+    except OSError:
+        return
+    for d in dirs:
+        if not (d / "summary.json").exists():
+            sys.stderr.write(f"scenemon: warning: {d} did not close cleanly; "
+                             f"scenemon repair {d} makes it whole\n")
+
+
 def session_dir(out: str | None, name: str) -> Path:
     if out:
         return Path(out)
     base = project_root() / "recordings"
+    warn_unclosed(base)
     stamp = time.strftime("%Y%m%d-%H%M%S")
     safe = "".join(c if c.isalnum() or c in "-_" else "-" for c in name)[:40] or "session"
     d = base / f"{stamp}-{safe}"
@@ -437,7 +452,8 @@ def run_session(*, make_source, name: str, model: str, spec: str | None,
     meta["truth_file"] = str(truth_path) if truth_path else None
     target = session_dir(out, name)
     existed = target.exists()
-    writer = SessionWriter(target, meta, sample_rate=card.sample_rate, audio=not no_audio)
+    writer = SessionWriter(target, meta, sample_rate=card.sample_rate, audio=not no_audio,
+                           segment_s=60.0 * getattr(args, "segment_min", 60.0))
     capture = None
     if capture_settings is not None:
         capture = CapturePolicy(capture_settings, classes=card.classes,

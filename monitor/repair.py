@@ -16,7 +16,7 @@ from pathlib import Path
 
 import soundfile as sf
 
-from monitor.session import atomic_write, dumps, load_session
+from monitor.session import atomic_write, audio_segments, dumps, load_session
 from monitor.truth import Span, format_truth
 
 
@@ -98,14 +98,15 @@ def repair(path: str | Path) -> dict:
         if cut:
             actions.append(f"dropped a torn last line of windows.jsonl ({cut} bytes)")
     frames = None
-    wav = d / "audio.wav"
-    if wav.exists():
+    for wav in audio_segments(d):
         before = wav.stat().st_mtime_ns
-        frames = fix_wav(wav)
-        if frames is None:
-            actions.append("audio.wav is unreadable and was left as it is")
-        elif wav.stat().st_mtime_ns != before:
-            actions.append(f"rewrote the audio.wav header ({frames} frames)")
+        n = fix_wav(wav)
+        if n is None:
+            actions.append(f"{wav.name} is unreadable and was left as it is")
+            continue
+        frames = (frames or 0) + n
+        if wav.stat().st_mtime_ns != before:
+            actions.append(f"rewrote the {wav.name} header ({n} frames)")
     s = load_session(d)
     if not (d / "truth.tsv").exists():
         spans = truth_from_windows(s.windows)
@@ -150,14 +151,13 @@ def check_whole(path: str | Path) -> list[str]:
                 json.loads(line)
             except ValueError:
                 problems.append(f"windows.jsonl line {k + 1} unreadable")
-    wav = d / "audio.wav"
-    if wav.exists():
+    for wav in audio_segments(d):
         try:
             with wave.open(str(wav)) as w:
                 w.getnframes()
             sf.info(str(wav))
         except Exception as exc:  # noqa: BLE001
-            problems.append(f"audio.wav: {exc}")
+            problems.append(f"{wav.name}: {exc}")
     for side in (d / "snippets").glob("*/*.json") if (d / "snippets").is_dir() else []:
         try:
             m = json.loads(side.read_text())

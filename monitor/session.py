@@ -36,6 +36,24 @@ SFC_UPDATE_HEADER_NOW = 0x1060  # libsndfile's command; soundfile's flush() only
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
 SESSION_FILES = ("session.json", "windows.jsonl", "summary.json", "audio.wav")
+SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
+
+
+def segment_name(k: int) -> str:
+    """audio.wav, then audio-0001.wav, audio-0002.wav, ..."""
+    return "audio.wav" if k == 0 else f"audio-{k:04d}.wav"
+
+
+def audio_segments(session_dir: Path) -> list[Path]:
+    """The session's audio files in order (session.json lists them; else what is there)."""
+    d = Path(session_dir)
+    try:
+        names = json.loads((d / "session.json").read_text()).get("audio_segments")
+    except (OSError, ValueError):
+        names = None
+    if not names:
+        names = ["audio.wav"] + sorted(p.name for p in d.glob("audio-[0-9][0-9][0-9][0-9].wav"))
+    return [d / n for n in names if (d / n).is_file()]
 
 
 def atomic_write(path: Path, data: bytes) -> None:
@@ -88,11 +106,13 @@ class SessionWriter:
     """Writes one session directory from its own thread (see module docstring)."""
 
     def __init__(self, out: str | Path, meta: dict[str, Any], *, sample_rate: int,
-                 audio: bool = True) -> None:
+                 audio: bool = True, segment_s: float = SEGMENT_S) -> None:
         self.dir = prepare_dir(Path(out))
         self.sample_rate = int(sample_rate)
         self.write_audio = audio
-        self.meta = {**meta, "session_id": meta.get("session_id") or self.dir.name}
+        self.meta = {**meta, "session_id": meta.get("session_id") or self.dir.name,
+                     "audio_segments": ["audio.wav"] if audio else [],
+                     "audio_segment_s": segment_s}
         atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
         self._q: queue.SimpleQueue = queue.SimpleQueue()
         self._thread = threading.Thread(target=self._run, name="session-writer", daemon=True)
@@ -100,6 +120,8 @@ class SessionWriter:
         self.error_text: str | None = None
         self.dropped_items = 0
         self.audio_frames = 0
+        self.segment_frames = max(1, int(segment_s * sample_rate))
+        self.segments: list[str] = ["audio.wav"] if audio else []
         self.windows_written = 0
         self.snippets_written: list[Path] = []
         self._thread.start()
@@ -150,10 +172,7 @@ class SessionWriter:
         try:
             jl = open(self.dir / "windows.jsonl", "a", encoding="utf-8")
             if self.write_audio:
-                wav = sf.SoundFile(str(self.dir / "audio.wav"), "w", samplerate=self.sample_rate,
-                                   channels=1, subtype="PCM_16", format="WAV")
-                # a complete (empty) header at once: a kill in the first second leaves a WAV
-                sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0)
+                wav = self._open_segment(0)
         except OSError as exc:
             self._fail(exc)
         last_sync = time.monotonic()
@@ -174,11 +193,19 @@ class SessionWriter:
                     self.windows_written += 1
                 elif kind == "audio" and wav is not None:
                     _, chunk, gap = item
+                    pcm = to_pcm16(chunk)
                     if gap:
-                        wav.write(np.zeros(gap, np.int16))
-                        self.audio_frames += gap
-                    wav.write(to_pcm16(chunk))
-                    self.audio_frames += chunk.shape[0]
+                        pcm = np.concatenate((np.zeros(gap, np.int16), pcm))
+                    while pcm.size:
+                        room = self.segment_frames - self._segment_used
+                        if room <= 0:  # next segment: close this one cleanly first
+                            wav.close()
+                            wav = self._open_segment(len(self.segments))
+                            continue
+                        wav.write(pcm[:room])
+                        self._segment_used += min(room, pcm.size)
+                        self.audio_frames += min(room, pcm.size)
+                        pcm = pcm[room:]
                     now = time.monotonic()
                     if now - last_header >= HEADER_EVERY_S:
                         if sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0):
@@ -192,6 +219,20 @@ class SessionWriter:
                     self._write_snippet(item[1])
             except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
                 self._fail(exc)
+
+    def _open_segment(self, k: int):
+        """Open audio segment k (listing it in session.json) with a complete empty header,
+        so a kill in its first second still leaves a valid WAV."""
+        name = segment_name(k)
+        if k:
+            self.segments.append(name)
+            self.meta["audio_segments"] = list(self.segments)
+            atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
+        wav = sf.SoundFile(str(self.dir / name), "w", samplerate=self.sample_rate, channels=1,
+                           subtype="PCM_16", format="WAV")
+        sf._snd.sf_command(wav._file, SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0)
+        self._segment_used = 0
+        return wav
 
     def _fail(self, exc: BaseException) -> None:
         """First write error: stop writing (monitoring goes on); say it once."""
@@ -218,6 +259,7 @@ class SessionWriter:
                 atomic_write(self.dir / "truth.tsv", format_truth(truth).encode())
             if summary is not None:
                 summary = {**summary, "audio_frames": self.audio_frames,
+                           "audio_segments": list(self.segments),
                            "snippets_written": len(self.snippets_written),
                            "write_error": self.error_text, "items_not_written": self.dropped_items}
                 atomic_write(self.dir / "summary.json", dumps(summary, indent=2).encode())

@@ -200,3 +200,40 @@ def test_no_network_needed(tmp_path):
                        capture_output=True, text=True, timeout=300)
     assert r.returncode == 0, r.stderr
     assert (tmp_path / "d" / "summary.json").is_file()
+
+
+def test_long_sessions_are_cut_into_segments(tmp_path, tour):
+    # a new audio file past a chosen length, each a valid WAV, listed in session.json;
+    # together they are the whole session
+    out = tmp_path / "s"
+    r = run_cli("replay", tour[0], "--model", MODELS / "demo.tflite", "--fast", "--out", out,
+                "--segment-min", "1.0", "--capture", "none")
+    assert r.returncode == 0, r.stderr
+    meta = json.loads((out / "session.json").read_text())
+    segs = meta["audio_segments"]
+    assert segs[:2] == ["audio.wav", "audio-0001.wav"] and len(segs) == 4  # 230 s / 60 s
+    total = []
+    for name in segs:
+        with wave.open(str(out / name)) as w:
+            assert w.getnframes() <= 60 * 16000
+        total.append(sf.read(str(out / name), dtype="int16")[0])
+    x, _ = sf.read(str(tour[0]), dtype="int16")
+    assert np.array_equal(np.concatenate(total), x)
+    assert json.loads((out / "summary.json").read_text())["audio_segments"] == segs
+    assert check_whole(out) == []
+
+
+def test_an_unclosed_session_is_reported_at_the_next_start(tmp_path):
+    # sessions under recordings/ that lack summary.json are named on the next start
+    root = tmp_path / "proj"
+    (root / "models").mkdir(parents=True)
+    for f in MODELS.glob("demo.*"):
+        shutil.copy(f, root / "models" / f.name)
+    crashed = root / "recordings" / "20261201-090000-walk"
+    crashed.mkdir(parents=True)
+    (crashed / "session.json").write_text("{}")
+    wav = tmp_path / "n.wav"
+    sf.write(str(wav), np.zeros(32000, np.float32), 16000)
+    r = run_cli("replay", wav, "--model", root / "models" / "demo.tflite", "--fast", cwd=root)
+    assert r.returncode == 0, r.stderr
+    assert f"{crashed} did not close cleanly" in r.stderr and "scenemon repair" in r.stderr

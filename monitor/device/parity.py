@@ -15,25 +15,29 @@ import soundfile as sf
 from monitor.decide import decide_sequence
 from monitor.errors import AudioError, ModelError, ScenemonError
 from monitor.frontend import FrontEnd, mel_filterbank, window_coefficients
-from monitor.session import atomic_write, dumps, to_pcm16
+from monitor.session import atomic_write, audio_segments, dumps, to_pcm16
 from monitor.sources import StreamResampler, check_audio_file, downmix
 from monitor.spec import ModelCard
 
 
-def audio_of(path: Path) -> Path:
+def audio_of(path: Path) -> list[Path]:
     path = Path(path)
     if path.is_dir():
-        wav = path / "audio.wav"
-        if not wav.is_file():
+        segs = audio_segments(path)
+        if not segs:
             raise AudioError(f"{path}: a session directory without audio.wav (recorded with "
                              f"--no-audio?)")
-        return wav
-    return path
+        return segs
+    return [path]
 
 
 def load_audio(path: Path, card: ModelCard) -> np.ndarray:
-    """Mono float32 at the card's rate, exactly as file replay feeds the ring."""
-    wav = audio_of(path)
+    """Mono float32 at the card's rate, exactly as file replay feeds the ring (a session's
+    audio segments joined)."""
+    return np.concatenate([_load_one(w, card) for w in audio_of(path)])
+
+
+def _load_one(wav: Path, card: ModelCard) -> np.ndarray:
     check_audio_file(wav, model_rate=card.sample_rate, window_samples=card.window_samples)
     info = sf.info(str(wav))
     rs = StreamResampler(info.samplerate, card.sample_rate)
