@@ -51,6 +51,10 @@ EXAMPLES = {
   scenemon compare --model a.keras --model a.int8.tflite recordings/site-* --min-agree 0.95""",
     "vectors": """examples:
   scenemon vectors --model models/demo.int8.tflite recordings/demo/tour.wav --out golden --count 20""",
+    "score": """examples:
+  scenemon score field-archive --model models/demo.int8.tflite --out scores/int8
+  scenemon score field-archive --model m.tflite --out scores/m --workers 2
+  scenemon score field-archive --model m.tflite --out scores/m --cluster tcp://scheduler:8786""",
     "bench": """examples:
   scenemon bench
   scenemon bench --model models/demo.keras --seconds 120""",
@@ -286,6 +290,25 @@ def build_parser() -> argparse.ArgumentParser:
                        epilog="example:\n  scenemon repair recordings/20261201-101500-live",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("session", metavar="SESSION", help="session directory")
+    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
+
+    p = sub.add_parser("score", help="re-score a folder of recordings, locally or on a Dask cluster",
+                       description="Run every audio file and session under ARCHIVE through the "
+                                   "chain; one results file each plus an aggregate. Up-to-date "
+                                   "results are skipped, so an interrupted run resumes.",
+                       epilog=EXAMPLES["score"], formatter_class=argparse.RawDescriptionHelpFormatter)
+    p.add_argument("archive", metavar="ARCHIVE", help="folder of audio files and/or sessions")
+    p.add_argument("--model", required=True, metavar="M")
+    p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
+    p.add_argument("--out", required=True, metavar="DIR")
+    p.add_argument("--truth-glob", metavar="PATTERN",
+                   help="truth file beside each audio file, e.g. '{stem}.labels.tsv' "
+                        "(default: the audio file's stem + .tsv)")
+    p.add_argument("--workers", type=_positive_int, metavar="N",
+                   help="local worker processes (default: the number of cores)")
+    p.add_argument("--cluster", metavar="ADDRESS",
+                   help="a Dask distributed scheduler, e.g. tcp://10.0.0.5:8786")
     p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
                    help="show tracebacks")
 
@@ -780,6 +803,16 @@ def cmd_repair(args) -> int:
     return 0
 
 
+def cmd_score(args) -> int:
+    from monitor.score import aggregate_text, run_score
+
+    agg = run_score(Path(args.archive), args.model, Path(args.out), spec=args.spec,
+                    truth_glob=args.truth_glob, workers=args.workers, cluster=args.cluster,
+                    progress=sys.stderr.isatty())
+    sys.stdout.write(aggregate_text(agg))
+    return 0
+
+
 def cmd_bench(args) -> int:
     from monitor.bench import run_bench
 
@@ -801,7 +834,7 @@ def main(argv: list[str] | None = None) -> int:
                 "demo": cmd_demo, "bench": cmd_bench, "report": cmd_report,
                 "tune": cmd_tune, "harvest": cmd_harvest, "relabel": cmd_relabel,
                 "quantize": cmd_quantize, "compare": cmd_compare, "vectors": cmd_vectors,
-                "repair": cmd_repair}
+                "repair": cmd_repair, "score": cmd_score}
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning
