@@ -73,22 +73,16 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
     return items
 
 
-def sha256_of(path: str | Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def result_paths(out: Path, item: Item) -> tuple[Path, Path]:
     safe = item.key.replace(os.sep, "__")
     return out / "results" / f"{safe}.jsonl", out / "results" / f"{safe}.meta.json"
 
 
 def fingerprint(item: Item, model_sha: str, card_text: str) -> dict[str, Any]:
-    return {"version": RESULTS_VERSION, "audio_sha256": sha256_of(item.audio),
-            "truth_sha256": sha256_of(item.truth) if item.truth else None,
+    from monitor.runners import file_sha256
+
+    return {"version": RESULTS_VERSION, "audio_sha256": file_sha256(item.audio),
+            "truth_sha256": file_sha256(item.truth) if item.truth else None,
             "model_sha256": model_sha,
             "card_sha256": hashlib.sha256(card_text.encode()).hexdigest()}
 
@@ -177,10 +171,18 @@ def run_score(archive: Path, model: str, out: Path, *, spec: str | None = None,
         else:
             todo.append(it)
     t0 = time.monotonic()
-    done, audio_s = skipped, 0.0
-    results = []
+    state = {"done": skipped, "audio_s": 0.0}
     if progress:
-        _progress(done, len(items), audio_s, t0)
+        _progress(skipped, len(items), 0.0, t0)
+
+    def collect(finished) -> None:  # futures of either kind, as they complete
+        for f in finished:
+            r = f.result()
+            state["done"] += 1
+            state["audio_s"] += r["duration_s"]
+            if progress:
+                _progress(state["done"], len(items), state["audio_s"], t0)
+
     args = (str(Path(model).resolve()), str(Path(spec).resolve()) if spec else None,
             str(out.resolve()))
     if todo and cluster:
@@ -188,26 +190,17 @@ def run_score(archive: Path, model: str, out: Path, *, spec: str | None = None,
         from distributed import as_completed as dask_completed
 
         with Client(cluster, timeout="20s") as client:
-            futs = [client.submit(score_task, it, *args, fps[it.key], key=f"score-{k}-{it.key}",
-                                  pure=False, retries=2) for k, it in enumerate(todo)]
-            for f in dask_completed(futs):
-                r = f.result()
-                results.append(r)
-                done, audio_s = done + 1, audio_s + r["duration_s"]
-                if progress:
-                    _progress(done, len(items), audio_s, t0)
+            collect(dask_completed([
+                client.submit(score_task, it, *args, fps[it.key], key=f"score-{k}-{it.key}",
+                              pure=False, retries=2) for k, it in enumerate(todo)]))
     elif todo:
         import multiprocessing as mp
 
         n = workers or os.cpu_count() or 1
         with ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context("spawn")) as pool:
-            futs = [pool.submit(score_task, it, *args, fps[it.key]) for it in todo]
-            for f in as_completed(futs):
-                r = f.result()
-                results.append(r)
-                done, audio_s = done + 1, audio_s + r["duration_s"]
-                if progress:
-                    _progress(done, len(items), audio_s, t0)
+            collect(as_completed([pool.submit(score_task, it, *args, fps[it.key])
+                                  for it in todo]))
+    audio_s = state["audio_s"]
     wall = time.monotonic() - t0
     agg = aggregate(out, items, list(card.classes))
     agg.update({"processed": len(todo), "skipped_up_to_date": skipped,
