@@ -166,6 +166,8 @@ class MonitorApp(App):
         self.dirty = True
         self.message = "loading the model …"
         self.redraws = 0
+        self._health_t = 0.0
+        self._shown: dict[str, Text] = {}
 
     # --- layout -----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
@@ -332,22 +334,31 @@ class MonitorApp(App):
             self.query_one("#decision", Static).update(text, layout=False)
             return
         top_p = float(max(st.smoothed)) if st.smoothed is not None else 0.0
-        self.query_one("#decision", Static).update(W.decision_text(
-            st.classes, st.keys, st.decision, st.t1 - st.since_t, st.truth, top_p), layout=False)
+        self._set("decision", W.decision_text(
+            st.classes, st.keys, st.decision, st.t1 - st.since_t, st.truth, top_p))
         inner = max(30, self.query_one("#classes").size.width - 4)
         name_w = min(12, max(len(c) for c in st.classes))
         bar_w = max(5, (inner - name_w - 10) // 2)
         self.query_one("#classes", Static).update(W.class_bars(
             st.classes, st.keys, st.probs, st.smoothed, st.enter, width=bar_w, name_w=name_w), layout=False)
         width = max(20, self.query_one("#strip").size.width - 14)
-        self.query_one("#strip", Static).update(W.strip_text(
-            st.classes, st.keys, st.decisions, st.truths, width, st.hop_s), layout=False)
+        self._set("strip", W.strip_text(st.classes, st.keys, st.decisions, st.truths, width,
+                                        st.hop_s))
         hw = max(12, self.query_one("#hears").size.width - 4)
         hears = W.heat_text(st.features, rows=5, cols=hw, color=not self.no_color)
         hears.append_text(W.level_text(st.level, st.clipped, st.quiet_s, width=max(4, hw - 17)))
         self.query_one("#hears", Static).update(hears, layout=False)
-        self.query_one("#health", Static).update(self._health(), layout=False)
-        self.query_one("#session", Static).update(self._session(), layout=False)
+        now = time.monotonic()
+        if force or now - self._health_t >= 1.0:  # figures that need no faster refresh
+            self._health_t = now
+            self._set("health", self._health())
+        self._set("session", self._session())
+
+    def _set(self, wid: str, text: Text) -> None:
+        """Update a panel only when its text changed (each update costs a re-render)."""
+        if self._shown.get(wid) != text:
+            self._shown[wid] = text
+            self.query_one(f"#{wid}", Static).update(text, layout=False)
 
     def _health(self) -> Text:
         st, ctx = self.state, self.ctx

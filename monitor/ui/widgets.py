@@ -92,11 +92,11 @@ def strip_text(classes, keys, decisions, truths, width, hop_s, span_s=60.0) -> T
         seq = vals[::-1][::per][:width][::-1]  # the newest window of each cell
         pad = width - len(seq)
         t.append("·" * pad, style="dim")
-        for v in seq:
+        for v, run in _runs(seq):  # one segment per run keeps rendering cheap
             if v is None:
-                t.append("·", style="dim")
+                t.append("·" * run, style="dim")
             else:
-                t.append(keys[v], style=f"bold {colour(classes, v)} reverse")
+                t.append(keys[v] * run, style=f"bold {colour(classes, v)} reverse")
         t.append("\n")
     span = width * per * hop_s
     left = f"-{span:.0f} s"
@@ -118,14 +118,21 @@ def heat_text(features, rows=6, cols=30, *, color=True) -> Text:
     grid = np.array([[f[np.ix_(tt, bb)].mean() for tt in ft] for bb in fb])
     z = np.clip((grid + 2.5) / 5.0, 0.0, 0.999)
     for r in range(rows - 1, -1, -1):
-        for v in z[r]:
-            k = int(v * len(SHADES))
-            if color:
-                t.append(SHADES[k], style=f"{HEAT[k]} on {HEAT[k]}")
-            else:
-                t.append(SHADES[k])
+        for k, run in _runs([int(v * len(SHADES)) for v in z[r]]):
+            t.append(SHADES[k] * run, style=f"{HEAT[k]} on {HEAT[k]}" if color else "")
         t.append("\n")
     return t
+
+
+def _runs(seq):
+    """(value, count) of consecutive equal values."""
+    out = []
+    for v in seq:
+        if out and out[-1][0] == v:
+            out[-1][1] += 1
+        else:
+            out.append([v, 1])
+    return [(v, n) for v, n in out]
 
 
 def level_text(level_dbfs, clipped, quiet_s, width=22) -> Text:
