@@ -132,6 +132,7 @@ class CapturePolicy:
         self.counts = {r: 0 for r in REASONS}
         self.limited = 0
         self.last_result = None
+        self._ever_decided = False
 
     # --- observer interface (compute thread) -------------------------------------------
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
@@ -185,9 +186,13 @@ class CapturePolicy:
     # --- internals ------------------------------------------------------------------------
     def _classify(self, r) -> tuple[str, str, str] | None:
         pol = self.s.policies
+        if r.decision is not None:
+            self._ever_decided = True
         if "disagreement" in pol and r.truth is not None:
             predicted = r.top if self.s.on == "top" else r.decision
-            if predicted != r.truth:
+            # the windows before the very first decision are the hysteresis confirming,
+            # not the model being wrong: no snippet for those
+            if predicted != r.truth and (predicted is not None or self._ever_decided):
                 return ("disagreement", r.truth, predicted or "undecided")
         if "uncertain" in pol:
             s = np.sort(np.asarray(r.smoothed, dtype=np.float64))[::-1]

@@ -71,11 +71,14 @@ def test_rate_limit_per_pair():
 
 
 def test_top_class_mode_and_undecided():
-    seq = [("b", None, (0.9, 0.05, 0.05))] * 3
-    got, _ = drive(seq, CaptureSettings(policies=("disagreement",)))
-    assert got[0]["predicted"] == "undecided"
-    got, _ = drive(seq, CaptureSettings(policies=("disagreement",), on="top"))
+    start = [("b", None, (0.9, 0.05, 0.05))] * 3  # before any decision: confirming
+    got, _ = drive(start, CaptureSettings(policies=("disagreement",)))
+    assert got == []
+    got, _ = drive(start, CaptureSettings(policies=("disagreement",), on="top"))
     assert got[0]["predicted"] == "a"
+    later = [("b", "b", (0.05, 0.9, 0.05))] * 4 + [("b", None, (0.4, 0.35, 0.25))] * 3
+    got, _ = drive(later, CaptureSettings(policies=("disagreement",)))
+    assert [s["predicted"] for s in got] == ["undecided"]  # released later: that counts
 
 
 def test_uncertain_least_confidence_and_margin():
