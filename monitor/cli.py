@@ -156,8 +156,6 @@ def build_parser() -> argparse.ArgumentParser:
     _add_session_flags(p)
     _add_decision_flags(p)
     _add_capture_flags(p)
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("live", help="run the model on a microphone and record a session",
                        description="Open an input device at its own rate, down-mix, resample to "
@@ -168,16 +166,12 @@ def build_parser() -> argparse.ArgumentParser:
     _add_session_flags(p)
     _add_decision_flags(p)
     _add_capture_flags(p)
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("devices", help="list the audio input devices",
                        description="List input devices: index, name, host API, channels, "
                                    "default rate; * marks the default.",
                        epilog="example:\n  scenemon devices\n  scenemon live --model m.tflite "
                               "--input 3", formatter_class=argparse.RawDescriptionHelpFormatter)
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("demo", help="the bundled demo model on the bundled scene tour",
                        description="Run the demo model on the demo scene tour (made on first "
@@ -190,8 +184,6 @@ def build_parser() -> argparse.ArgumentParser:
     _add_live_flags(p)
     _add_session_flags(p)
     _add_capture_flags(p)
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("report", help="a session's account: accuracy, confusion, latency, plots",
                        description="Summarise a session on the terminal, and with --html as "
@@ -200,8 +192,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("session", metavar="SESSION", help="session directory")
     p.add_argument("--html", metavar="OUT.html", help="also write the HTML report here")
     p.add_argument("--json", action="store_true", help="print the scores as JSON instead")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("tune", help="sweep decision settings over recorded sessions",
                        description="Replay the stored raw probabilities of sessions with truth "
@@ -214,8 +204,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--apply", metavar="CARD",
                    help="write the recommended settings into this card's [decision] table")
     p.add_argument("--all", action="store_true", help="list every setting, not only the front")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("harvest", help="gather captured snippets into a retraining set",
                        description="Collect snippets of many sessions into DIR/<label>/ with "
@@ -227,8 +215,6 @@ def build_parser() -> argparse.ArgumentParser:
                    help="comma-separated reasons to take (default: all three)")
     p.add_argument("--drop-unknown", action="store_true",
                    help="leave out snippets still labelled unknown")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("relabel", help="review a session's snippets: play, keep, drop, relabel",
                        description="The relabel view on a session directory: enter plays a "
@@ -237,8 +223,6 @@ def build_parser() -> argparse.ArgumentParser:
                        epilog="example:\n  scenemon relabel recordings/20261201-101500-walk",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("session", metavar="SESSION", help="session directory")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("quantize", help="full-integer int8 .tflite from a Keras model and field audio",
                        description="Post-training quantisation (int8 weights, activations, input "
@@ -254,8 +238,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--windows", type=_positive_int, default=300, help="calibration windows (300)")
     p.add_argument("--seed", type=int, default=0, help="seed of the window choice")
     p.add_argument("--trust-model", action="store_true", help="allow Keras Lambda layers")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("compare", help="two models on exactly the same windows",
                        description="Top-1 and decision agreement, probability differences and "
@@ -268,8 +250,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--min-agree", type=_fraction, metavar="P",
                    help="exit 1 when top-1 agreement is below P (for release scripts)")
     p.add_argument("--json", action="store_true", help="print the figures as JSON")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("vectors", help="golden vectors and the C front end for the firmware",
                        description="Write pcm.csv, features.csv, output.csv (int8 tensors too), "
@@ -281,8 +261,6 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("audio", metavar="AUDIO")
     p.add_argument("--out", required=True, metavar="DIR")
     p.add_argument("--count", type=_positive_int, metavar="N", help="first N windows only")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("repair", help="make a session that did not close cleanly whole",
                        description="Drop a torn last line, bring the audio header up to date, "
@@ -290,8 +268,6 @@ def build_parser() -> argparse.ArgumentParser:
                        epilog="example:\n  scenemon repair recordings/20261201-101500-live",
                        formatter_class=argparse.RawDescriptionHelpFormatter)
     p.add_argument("session", metavar="SESSION", help="session directory")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("score", help="re-score a folder of recordings, locally or on a Dask cluster",
                        description="Run every audio file and session under ARCHIVE through the "
@@ -309,8 +285,6 @@ def build_parser() -> argparse.ArgumentParser:
                    help="local worker processes (default: the number of cores)")
     p.add_argument("--cluster", metavar="ADDRESS",
                    help="a Dask distributed scheduler, e.g. tcp://10.0.0.5:8786")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
 
     p = sub.add_parser("bench", help="will this model keep up on this machine?",
                        description="Measure start-up, per-window cost and fast-replay speed.",
@@ -318,8 +292,9 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--model", default=None, metavar="M", help="model (default: models/demo.tflite)")
     p.add_argument("--spec", metavar="S", help="model card TOML (default: beside the model)")
     p.add_argument("--seconds", type=float, default=240.0, help="seconds of tour audio to replay")
-    p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
-                   help="show tracebacks")
+    for p in sub.choices.values():  # --debug also after the command; SUPPRESS keeps the top one
+        p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                       help="show tracebacks")
     return ap
 
 
@@ -359,8 +334,6 @@ def session_dir(out: str | None, name: str) -> Path:
 
 
 def _decision(card, args):
-    from monitor.spec import DecisionSettings  # noqa: F401
-
     fields = ("smoothing", "smoothing_windows", "ema_alpha", "enter", "exit", "margin",
               "confirm", "min_hold_s")
     try:
