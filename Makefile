@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN     = $(VENV)/bin
 STAMP   = $(VENV)/.installed
 
-.PHONY: demo demo-fast test lint bench models clean
+.PHONY: demo demo-fast test test-fast lint bench models clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -20,6 +20,9 @@ demo-fast: $(STAMP)
 
 test: $(STAMP)            ## the whole test suite
 	$(BIN)/python -m pytest -q -ra
+
+test-fast: $(STAMP)       ## the tests that need neither much time nor system parts (under a minute)
+	$(BIN)/python -m pytest -q -ra -m "not slow and not system"
 
 lint: $(STAMP)
 	$(BIN)/ruff check monitor tests benchmarks

@@ -34,10 +34,10 @@ def main() -> int:
     import librosa
     import soundfile as sf
 
+    from monitor.card import load_card
     from monitor.demo.tour import ensure_tour
     from monitor.frontend import FrontEnd
     from monitor.runners import load_runner
-    from monitor.spec import load_card
 
     wav, _ = ensure_tour(ROOT / "recordings" / "demo")
     x, sr = sf.read(str(wav), dtype="float32")

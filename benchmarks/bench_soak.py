@@ -31,12 +31,12 @@ def main() -> int:
     ap.add_argument("--hours", type=float, default=2.0)
     args = ap.parse_args()
     from monitor.capture import CapturePolicy, CaptureSettings
+    from monitor.card import load_card
     from monitor.demo.tour import ensure_tour
     from monitor.engine import Engine
     from monitor.runners import load_runner
-    from monitor.session import SessionWriter
+    from monitor.session_writer import SessionWriter
     from monitor.sources import FileSource
-    from monitor.spec import load_card
     from monitor.truth import load_truth
 
     wav, tsv = ensure_tour(ROOT / "recordings" / "demo")

@@ -16,52 +16,62 @@ from pathlib import Path
 
 import numpy as np
 
+from monitor.errors import ScenemonError
+from monitor.plan import ModelPlan
+
 
 def _pct(v: list[float]) -> tuple[float, float]:
     a = np.asarray(v) * 1000.0
     return float(np.median(a)), float(np.percentile(a, 99))
 
 
-def first_result_seconds(model: str, wav: Path) -> float:
+def first_result_seconds(plan: ModelPlan, wav: Path) -> float:
     """Wall time from starting `scenemon replay --fast --headless` to its first JSON line."""
     with tempfile.TemporaryDirectory() as td:
+        cmd = [sys.executable, "-m", "monitor", "replay", str(wav), "--model", str(plan.path),
+               "--fast", "--headless", "--out", str(Path(td) / "s"), "--runtime", plan.runtime]
+        if plan.card:
+            cmd += ["--card", str(plan.card)]
         t = time.perf_counter()
-        p = subprocess.Popen([sys.executable, "-m", "monitor", "replay", str(wav), "--model", model,
-                              "--fast", "--headless", "--out", str(Path(td) / "s")],
-                             stdout=subprocess.PIPE, stderr=subprocess.DEVNULL, text=True)
-        assert p.stdout is not None
-        p.stdout.readline()
-        dt = time.perf_counter() - t
-        p.wait()
+        with subprocess.Popen(cmd, stdout=subprocess.PIPE, stderr=subprocess.DEVNULL,
+                              text=True) as p:
+            assert p.stdout is not None
+            p.stdout.readline()
+            dt = time.perf_counter() - t
+            p.stdout.read()
         return dt
 
 
-def run_bench(model: str, *, spec: str | None = None, seconds: float = 240.0,
-              stream=sys.stdout) -> dict:
+def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> dict:
+    """`scenemon bench`: measure one model on this machine and print a verdict."""
+    if not seconds > 0:
+        raise ScenemonError(f"--seconds {seconds} must be above 0")
     t0 = time.perf_counter()
+    from monitor.assemble import load_card, load_model, replay_file
     from monitor.decide import Decider
-    from monitor.engine import Engine
     from monitor.frontend import FrontEnd
-    from monitor.runners import load_runner
-    from monitor.sources import FileSource, StreamResampler
-    from monitor.spec import load_card_for_model
+    from monitor.sources import StreamResampler
 
     t_import = time.perf_counter() - t0
-    card = load_card_for_model(model, spec)
+    card = load_card(plan)
     t1 = time.perf_counter()
-    runner = load_runner(model, card)
+    loaded = load_model(plan, card)
+    runner = loaded.runner
     t_load = time.perf_counter() - t1
 
     import soundfile as sf
 
+    from monitor.assemble import project_root
     from monitor.demo.tour import ensure_tour
 
-    root = Path(__file__).resolve().parent.parent
-    wav, _ = ensure_tour(root / "recordings" / "demo")
+    wav, _ = ensure_tour(project_root() / "recordings" / "demo")
     x, sr = sf.read(str(wav), dtype="float32")
     x = x[: int(seconds * sr)]
     hop, win = card.hop_samples, card.window_samples
     n = 1 + (x.size - win) // hop
+    if n < 2:
+        raise ScenemonError(f"--seconds {seconds:g} holds fewer than two windows of "
+                            f"{card.window_s:g} s; give more")
     fe = FrontEnd(card)
     dec = Decider(card.decision)
     stages: dict[str, list[float]] = {"resample 48k": [], "front end": [], "model": [],
@@ -86,14 +96,12 @@ def run_bench(model: str, *, spec: str | None = None, seconds: float = 240.0,
     with tempfile.TemporaryDirectory() as td:
         clip = Path(td) / "clip.wav"
         sf.write(str(clip), x, sr, subtype="PCM_16")
-        src = FileSource(clip, model_rate=card.sample_rate, window_samples=win)
-        eng = Engine(card, runner, src)
         t = time.perf_counter()
-        eng.run()
+        replay_file([loaded], clip)
         t_fast = time.perf_counter() - t
         short = Path(td) / "short.wav"
         sf.write(str(short), x[: 3 * sr], sr, subtype="PCM_16")
-        t_first = first_result_seconds(model, short)
+        t_first = first_result_seconds(plan, short)
     rtf = (x.size / sr) / t_fast
     med, p99 = _pct(total)
     budget_ms = card.hop_s * 1000.0
@@ -108,7 +116,7 @@ def run_bench(model: str, *, spec: str | None = None, seconds: float = 240.0,
     rows.append(("front end + model + decide", f"median {med:.3f} ms, p99 {p99:.3f} ms"))
     rows.append((f"fast replay of {x.size / sr:.0f} s", f"{t_fast:.2f} s = {rtf:.0f}x real time"))
     rows.append(("verdict", f"{verdict} (hop {budget_ms:.0f} ms, {os.cpu_count()} cores)"))
-    stream.write(f"scenemon bench: {model} ({runner.kind})\n")
+    stream.write(f"scenemon bench: {plan.path} ({runner.model_kind}, {runner.runtime})\n")
     for k, v in rows:
         stream.write(f"  {k:<36} {v}\n")
     return {"import_s": t_import, "load_s": t_load, "first_result_s": t_first,

@@ -1,4 +1,5 @@
-"""When to save a snippet: disagreement with the truth, model uncertainty, or by hand.
+"""When to save a snippet: disagreement with the truth, model uncertainty, two models that
+disagree, an unfamiliar sound, or by hand.
 
 `CapturePolicy` is an engine observer. It keeps the last seconds of audio (the compute
 thread's `on_audio`), watches each `WindowResult` (`on_window`), merges consecutive
@@ -9,32 +10,36 @@ the plain function the UI's capture key calls; it may be called from any thread.
 
 Uncertainty sampling follows Settles 2009, "Active Learning Literature Survey" (least
 confidence: top probability below a threshold; margin: top two close together).
+
+Policies, in order of precedence for one window: "disagreement" (the truth is known and
+the decision differs), "models_disagree" (an A/B session whose two decisions differ, after
+both have decided once), "unfamiliar" (the novelty profile flags the window; labelled
+"unknown"), "uncertain" (labelled "unknown"). Each needs what it compares: without truth,
+a second model or a profile it simply never fires.
 """
 
 from __future__ import annotations
 
-import re
 import threading
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-REASONS = ("disagreement", "uncertain", "manual")
-_SAFE = re.compile(r"[^A-Za-z0-9_-]+")
-MAX_LABEL = 64
+from monitor.engine import ObserverBase, WindowResult
+from monitor.snippets import REASONS
+
+POLICIES = ("disagreement", "uncertain", "models_disagree", "unfamiliar")
+MAX_ROLL_S = 60.0  # pre- and post-roll
+MAX_SNIPPET_S = 600.0
+MAX_EVERY_S = 86400.0
 
 
-def safe_label(label: str | None) -> str:
-    """A label as a folder name: letters, digits, ``_`` and ``-`` only, no leading dot or
-    dash, at most 64 characters; anything else becomes ``_`` ("unknown" when empty)."""
-    text = _SAFE.sub("_", str(label or "")).strip("_-.")[:MAX_LABEL]
-    return text or "unknown"
-
-
-@dataclass
+@dataclass(frozen=True)
 class CaptureSettings:
-    policies: tuple[str, ...] = ("disagreement", "uncertain")
+    """When and how snippets are cut (the ``--capture*`` flags; defaults here are theirs)."""
+
+    policies: tuple[str, ...] = POLICIES
     on: str = "decision"  # "decision" | "top": what disagrees with the truth
     pre_roll_s: float = 0.5
     post_roll_s: float = 0.5
@@ -45,17 +50,23 @@ class CaptureSettings:
     manual_s: float = 3.0
 
     def __post_init__(self) -> None:
-        bad = [p for p in self.policies if p not in ("disagreement", "uncertain")]
+        bad = [p for p in self.policies if p not in POLICIES]
         if bad:
-            raise ValueError(f"unknown capture policy {bad[0]!r} (use disagreement, uncertain, "
+            raise ValueError(f"unknown capture policy {bad[0]!r} (use {', '.join(POLICIES)}, "
                              f"or none)")
         if self.on not in ("decision", "top"):
             raise ValueError(f"capture on={self.on!r} must be decision or top")
-        for name in ("pre_roll_s", "post_roll_s", "every_s"):
-            if getattr(self, name) < 0:
-                raise ValueError(f"{name}={getattr(self, name)} must be >= 0")
-        if self.max_s <= 0 or self.manual_s <= 0:
-            raise ValueError("snippet lengths must be > 0")
+        limits = {"pre_roll_s": (0.0, MAX_ROLL_S), "post_roll_s": (0.0, MAX_ROLL_S),
+                  "every_s": (0.0, MAX_EVERY_S), "uncertain_below": (0.0, 1.0),
+                  "uncertain_margin": (0.0, 1.0)}
+        for name, (lo, hi) in limits.items():
+            v = getattr(self, name)
+            if not lo <= v <= hi:  # also refuses NaN
+                raise ValueError(f"{name}={v!r} must be a number from {lo:g} to {hi:g}")
+        for name in ("max_s", "manual_s"):
+            v = getattr(self, name)
+            if not 0.0 < v <= MAX_SNIPPET_S:
+                raise ValueError(f"{name}={v!r} must be above 0 and at most {MAX_SNIPPET_S:g} s")
 
 
 @dataclass
@@ -68,6 +79,7 @@ class _Run:
     probs: list = field(default_factory=list)
     smoothed: list = field(default_factory=list)
     ready_at: float = 0.0  # audio end needed before cutting (t1 + post-roll)
+    b: dict = field(default_factory=dict)  # model B's side of a models_disagree snippet
 
 
 class AudioHistory:
@@ -104,7 +116,7 @@ class AudioHistory:
         return self.buf[idx].copy(), a / self.sr, b / self.sr
 
 
-class CapturePolicy:
+class CapturePolicy(ObserverBase):
     """Engine observer that decides and cuts snippets (see module docstring).
 
     Parameters
@@ -118,7 +130,7 @@ class CapturePolicy:
     """
 
     def __init__(self, settings: CaptureSettings, *, classes: tuple[str, ...],
-                 sample_rate: int, sink) -> None:
+                 sample_rate: int, sink, two_models: bool = False) -> None:
         self.s = settings
         self.classes = classes
         self.sr = sample_rate
@@ -133,6 +145,13 @@ class CapturePolicy:
         self.limited = 0
         self.last_result = None
         self._ever_decided = False
+        self._both_decided = False
+        self.two_models = two_models
+
+    @property
+    def total(self) -> int:
+        """Snippets cut so far."""
+        return sum(self.counts.values())
 
     # --- observer interface (compute thread) -------------------------------------------
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
@@ -140,7 +159,9 @@ class CapturePolicy:
             self.audio.add(chunk, gap)
             self._flush(final=False)
 
-    def on_window(self, r) -> None:
+    def on_window(self, r: WindowResult) -> None:
+        if r.fault is not None:
+            return
         with self._lock:
             self.last_result = r
             kind = self._classify(r)
@@ -156,6 +177,11 @@ class CapturePolicy:
                 run.t1 = r.t1
                 run.probs.append([float(v) for v in r.probs])
                 run.smoothed.append([float(v) for v in r.smoothed])
+                if reason == "models_disagree":
+                    b = r.others[0]
+                    run.b.setdefault("predicted", b.decision or "undecided")
+                    run.b.setdefault("probs", []).append([float(v) for v in b.probs])
+                    run.b.setdefault("smoothed", []).append([float(v) for v in b.smoothed])
                 if run.t1 - run.t0 + self.s.pre_roll_s + self.s.post_roll_s >= self.s.max_s:
                     self._end_run()
             self._flush(final=False)
@@ -178,22 +204,30 @@ class CapturePolicy:
             run = _Run("manual", label or "unknown",
                        r.decision or r.top if r is not None else "unknown",
                        max(0.0, end - secs), end)
-            if r is not None:
+            if r is not None and r.probs is not None:
                 run.probs.append([float(v) for v in r.probs])
                 run.smoothed.append([float(v) for v in r.smoothed])
             return self._emit(run, run.t0, run.t1)
 
     # --- internals ------------------------------------------------------------------------
-    def _classify(self, r) -> tuple[str, str, str] | None:
+    def _classify(self, r: WindowResult) -> tuple[str, str, str] | None:
         pol = self.s.policies
         if r.decision is not None:
             self._ever_decided = True
+        b = r.others[0] if r.others and r.others[0].fault is None else None
+        if b is not None and r.decision is not None and b.decision is not None:
+            self._both_decided = True
         if "disagreement" in pol and r.truth is not None:
             predicted = r.top if self.s.on == "top" else r.decision
             # the windows before the very first decision are the hysteresis confirming,
             # not the model being wrong: no snippet for those
             if predicted != r.truth and (predicted is not None or self._ever_decided):
                 return ("disagreement", r.truth, predicted or "undecided")
+        if ("models_disagree" in pol and b is not None and self._both_decided
+                and b.decision != r.decision):
+            return ("models_disagree", r.truth or "unknown", r.decision or "undecided")
+        if "unfamiliar" in pol and r.unfamiliar:
+            return ("unfamiliar", "unknown", r.decision or r.top or "undecided")
         if "uncertain" in pol:
             s = np.sort(np.asarray(r.smoothed, dtype=np.float64))[::-1]
             if s[0] < self.s.uncertain_below or s[0] - s[1] < self.s.uncertain_margin:
@@ -205,7 +239,8 @@ class CapturePolicy:
         run, self._run = self._run, None
         if run is None:
             return
-        key = (run.label, run.predicted)
+        key = (run.reason if run.reason in ("uncertain", "unfamiliar") else run.label,
+               run.predicted)
         last = self._last.get(key)
         if last is not None and run.t0 - last < self.s.every_s:
             self.limited += 1
@@ -240,6 +275,10 @@ class CapturePolicy:
             "confidence": round(float(smoothed.mean(0).max()), 6) if len(smoothed) else None,
             "audio": audio,
         }
+        if run.b:
+            snippet["model_b"] = {"predicted": run.b["predicted"],
+                                  "probs": np.asarray(run.b["probs"]).round(6).tolist(),
+                                  "smoothed": np.asarray(run.b["smoothed"]).round(6).tolist()}
         self.counts[run.reason] += 1
         self.sink(snippet)
         return snippet

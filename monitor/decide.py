@@ -19,7 +19,7 @@ from collections import deque
 
 import numpy as np
 
-from monitor.spec import DecisionSettings
+from monitor.card import DecisionSettings
 
 _EPS = 1e-9  # slack on time comparisons of sample-clock times
 

@@ -1,10 +1,15 @@
-"""The chain: source -> ring -> windower -> front end -> runner -> decider -> observers.
+"""The chain: source -> ring -> windower -> front end -> runner(s) -> decider(s) -> observers.
 
 Threads: `Engine.run` is the compute thread (the caller's thread in headless use, a worker
-thread under the UI). It reads the ring, cuts windows, computes features and probabilities
-for all windows that are ready (a batch in fast replay, one at a time live), decides, and
-hands each `WindowResult` to the observers in order. Observers must not block: the session
-writer only queues, the UI only posts a message. The source runs its own producer thread.
+thread under the UI). It is the only reader of the ring and the only user of the runners. It
+cuts windows, computes features and probabilities for all windows that are ready (a batch in
+fast replay, one at a time live), decides, and hands each `WindowResult` to the observers in
+order, then one `EngineStatus`. Observers must not block: the session writer only queues,
+the UI bridge only posts a message. The source runs its own producer thread.
+
+With two models (A/B) both see exactly the same windows; when their cards' front ends are
+equal the features are computed once. Model A's result is the one published; model B's
+rides along in ``result.others``.
 """
 
 from __future__ import annotations
@@ -12,35 +17,41 @@ from __future__ import annotations
 import threading
 import time
 from collections import deque
-from collections.abc import Callable, Iterable
-from dataclasses import dataclass, field
+from collections.abc import Callable, Sequence
+from dataclasses import dataclass
 from typing import Any, Protocol
 
 import numpy as np
 
-from monitor import __version__
+from monitor.card import DecisionSettings, ModelCard
 from monitor.decide import Decider
-from monitor.errors import ScenemonError
-from monitor.frontend import FrontEnd, clipped_fraction, level_dbfs
+from monitor.errors import ModelError, ScenemonError, SourceFailed
+from monitor.frontend import FrontEnd
+from monitor.ringbuffer import RingBuffer
 from monitor.runners import Runner
-from monitor.session import percentile
-from monitor.spec import DecisionSettings, ModelCard
-from monitor.windower import Windower
+from monitor.samples import clipped_fraction, level_dbfs
+from monitor.tally import LevelTally, Tally, percentile
+from monitor.windower import Window, Windower
 
 STAT_KEEP = 20000  # per-window timings kept for percentiles (memory stays flat)
+MODEL_FAULT = "non-finite model output"
 
 
-@dataclass
+@dataclass(frozen=True, slots=True)
 class WindowResult:
-    """One window's outcome; immutable once published to observers."""
+    """One window's outcome for one model; immutable once published to observers.
+
+    ``probs`` and ``smoothed`` are None when the model gave a non-finite output (``fault``
+    says so); the decision then stays what it was.
+    """
 
     i: int
     start: int
     t0: float
     t1: float
-    probs: np.ndarray
-    smoothed: np.ndarray
-    top: str
+    probs: np.ndarray | None
+    smoothed: np.ndarray | None
+    top: str | None
     decision: str | None
     truth: str | None
     level_dbfs: float
@@ -48,104 +59,103 @@ class WindowResult:
     gap: int
     ms: float
     latency_ms: float | None = None
-    samples: np.ndarray | None = field(default=None, repr=False)
-    features: np.ndarray | None = field(default=None, repr=False)
+    features: np.ndarray | None = None
+    novelty: float | None = None
+    unfamiliar: bool | None = None
+    fault: str | None = None
+    model: int = 0  # 0: model A, 1: model B
+    others: tuple[WindowResult, ...] = ()  # model B's result of the same window
 
     def record(self) -> dict[str, Any]:
         """The `windows.jsonl` fields (DESIGN.md)."""
         rec = {
             "i": self.i, "t0": round(self.t0, 6), "t1": round(self.t1, 6),
-            "probs": [round(float(v), 6) for v in self.probs],
-            "smoothed": [round(float(v), 6) for v in self.smoothed],
+            "probs": None if self.probs is None else [round(float(v), 6) for v in self.probs],
+            "smoothed": None if self.smoothed is None
+            else [round(float(v), 6) for v in self.smoothed],
             "top": self.top, "decision": self.decision, "truth": self.truth,
             "level_dbfs": round(self.level_dbfs, 2), "clipped": round(self.clipped, 6),
             "gap": self.gap, "ms": round(self.ms, 4),
         }
         if self.latency_ms is not None:
             rec["latency_ms"] = round(self.latency_ms, 2)
+        if self.novelty is not None:
+            rec["novelty"] = round(self.novelty, 4)
+            rec["unfamiliar"] = bool(self.unfamiliar)
+        if self.fault is not None:
+            rec["fault"] = self.fault
         return rec
 
 
+@dataclass(frozen=True, slots=True)
+class EngineStatus:
+    """What the engine publishes after each batch of windows (one snapshot, never a view
+    into its internals)."""
+
+    now_s: float  # the newest sample on the session clock, gaps included
+    windows: int
+    overruns: int
+    dropped_samples: int
+    gap_windows: int
+    ms: float | None
+    latency_ms: float | None
+    model_faults: int
+
+
 class Observer(Protocol):
+    """What the engine calls, on its own thread; no method may block."""
+
     def on_audio(self, chunk: np.ndarray, gap: int) -> None: ...
     def on_window(self, result: WindowResult) -> None: ...
+    def on_status(self, status: EngineStatus) -> None: ...
+
+
+class ObserverBase:
+    """An `Observer` whose hooks do nothing; subclasses override what they need."""
+
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        return None
+
+    def on_window(self, result: WindowResult) -> None:
+        return None
+
+    def on_status(self, status: EngineStatus) -> None:
+        return None
 
 
 class Source(Protocol):
-    ring: Any
+    """A producer that owns the ring the engine reads (file or microphone)."""
+
+    ring: RingBuffer
     realtime: bool
     finished: threading.Event
-    error: BaseException | None
+    error: BaseException | None  # an unexpected failure of the producer thread
+    failure: str | None  # a runtime failure the session survives (a lost device)
 
     def start(self) -> None: ...
     def stop(self) -> None: ...
     def describe(self) -> dict: ...
+    def stats(self) -> dict: ...
 
 
-class SourceFailed(Exception):
-    """The source thread died with an unexpected error (runtime failure, exit 1)."""
+@dataclass
+class _Lane:
+    """One model's part of the chain: its card, runner, decider and tally."""
+
+    card: ModelCard
+    runner: Runner
+    frontend: FrontEnd
+    decider: Decider
+    decision: DecisionSettings
+    tally: Tally
+    profile: Any = None  # a novelty profile (monitor.novelty), or None
+    faults: int = 0
 
 
-class Stats:
-    """Running counts for summary.json; bounded memory."""
-
-    def __init__(self, classes: tuple[str, ...], hop_s: float) -> None:
-        self.classes, self.hop_s = classes, hop_s
-        self.windows = 0
-        self.gap_samples = 0
-        self.gap_windows = 0
-        self.changes = 0
-        self.last_decision: str | None = None
-        self.decided_windows = {c: 0 for c in classes}
-        self.undecided = 0
-        self.with_truth = 0
-        self.correct = 0
-        self.ms: deque[float] = deque(maxlen=STAT_KEEP)
-        self.latency: deque[float] = deque(maxlen=STAT_KEEP)
-        self.end_t = 0.0
-
-    def add(self, r: WindowResult) -> None:
-        self.windows += 1
-        self.end_t = r.t1
-        if r.gap:
-            self.gap_samples += r.gap
-            self.gap_windows += 1
-        if r.decision != self.last_decision and self.windows > 1:
-            self.changes += 1
-        self.last_decision = r.decision
-        if r.decision is None:
-            self.undecided += 1
-        else:
-            self.decided_windows[r.decision] += 1
-        if r.truth is not None:
-            self.with_truth += 1
-            self.correct += int(r.decision == r.truth)
-        self.ms.append(r.ms)
-        if r.latency_ms is not None:
-            self.latency.append(r.latency_ms)
-
-    def summary(self) -> dict[str, Any]:
-        minutes = self.end_t / 60.0
-        return {
-            "windows": self.windows,
-            "duration_s": round(self.end_t, 3),
-            "gap_samples": self.gap_samples,
-            "windows_after_gap": self.gap_windows,
-            "decision_changes": self.changes,
-            "switches_per_min": round(self.changes / minutes, 3) if minutes > 0 else None,
-            "decided_s": {c: round(n * self.hop_s, 3) for c, n in self.decided_windows.items()},
-            "undecided_windows": self.undecided,
-            "windows_with_truth": self.with_truth,
-            "accuracy": round(self.correct / self.with_truth, 6) if self.with_truth else None,
-            "ms_median": _r(percentile(list(self.ms), 50)),
-            "ms_p99": _r(percentile(list(self.ms), 99)),
-            "latency_ms_median": _r(percentile(list(self.latency), 50)),
-            "latency_ms_p99": _r(percentile(list(self.latency), 99)),
-        }
-
-
-def _r(v: float | None) -> float | None:
-    return None if v is None else round(v, 4)
+def _overrides(cls: type, name: str) -> bool:
+    """True when an observer's class has its own `name` hook (not ObserverBase's no-op)."""
+    hook = getattr(cls, name, None)
+    return hook is not None and hook is not getattr(ObserverBase, name)
 
 
 class Engine:
@@ -153,50 +163,81 @@ class Engine:
 
     Parameters
     ----------
-    card : ModelCard
-    runner : Runner
-        Loaded and checked against `card`.
+    models : sequence of (ModelCard, Runner)
+        One model, or two for an A/B session (same rate, window and hop).
     source : Source
         Owns the ring buffer the engine reads.
-    decision : DecisionSettings, optional
-        Defaults to the card's `[decision]` table.
+    decisions : sequence of DecisionSettings, optional
+        Per model; defaults to each card's ``[decision]`` table.
     truth : callable, optional
         ``truth(t0, t1) -> label or None`` for each window.
-    observers : iterable
-        Objects with ``on_audio(chunk, gap)`` and/or ``on_window(result)``.
+    observers : sequence of Observer
+    profiles : sequence, optional
+        Per model, a novelty profile or None.
+    keep_features : bool
+        Keep each window's features in its result (for the UI's picture).
     """
 
-    def __init__(self, card: ModelCard, runner: Runner, source: Source, *,
-                 decision: DecisionSettings | None = None,
+    def __init__(self, models: Sequence[tuple[ModelCard, Runner]], source: Source, *,
+                 decisions: Sequence[DecisionSettings | None] | None = None,
                  truth: Callable[[float, float], str | None] | None = None,
-                 observers: Iterable[Any] = (), max_batch: int = 64,
-                 keep_features: bool = False) -> None:
-        self.card, self.runner, self.source = card, runner, source
-        self.decision = decision or card.decision
+                 observers: Sequence[Observer] = (), profiles: Sequence[Any] | None = None,
+                 max_batch: int = 64, keep_features: bool = False) -> None:
+        if not 1 <= len(models) <= 2:
+            raise ValueError("the engine runs one model, or two side by side")
+        a = models[0][0]
+        for card, _ in models[1:]:
+            for key in ("sample_rate", "window_samples", "hop_samples"):
+                if getattr(card, key) != getattr(a, key):
+                    raise ModelError(f"{card.name}: {key} {getattr(card, key)} differs from "
+                                     f"{a.name}'s {getattr(a, key)}; two models in one session "
+                                     f"must see the same windows")
+        decisions = list(decisions or [None] * len(models))
+        profiles = list(profiles or [None] * len(models))
+        frontends: list[FrontEnd] = []
+        self.lanes: list[_Lane] = []
+        for (card, runner), dec, prof in zip(models, decisions, profiles):
+            fe = next((f for f in frontends if f.card.same_front_end(card)), None)
+            if fe is None:
+                fe = FrontEnd(card)
+                frontends.append(fe)
+            dec = dec or card.decision
+            self.lanes.append(_Lane(card, runner, fe, Decider(dec), dec,
+                                    Tally(card.classes, hop_s=card.hop_s),
+                                    prof.fresh(dec.confirm) if prof is not None else None))
+        self.card = a
+        self.source = source
         self.truth = truth
-        self.observers = list(observers)
-        self.frontend = FrontEnd(card)
-        self.decider = Decider(self.decision)
-        self.windower = Windower(card.window_samples, card.hop_samples)
-        self.stats = Stats(card.classes, card.hop_s)
+        self.observers: list[Observer] = list(observers)
+        self.windower = Windower(a.window_samples, a.hop_samples)
         self.max_batch = max_batch
         self.keep_features = keep_features
         self.count = 0
         self.stopped_by_user = False
+        self.levels = LevelTally()
+        self.published_samples = 0  # newest sample seen; one int store, read by other threads
+        self._ms: deque[float] = deque(maxlen=STAT_KEEP)
+        self._latency: deque[float] = deque(maxlen=STAT_KEEP)
+        self._last_ms: float | None = None
+        self._last_latency: float | None = None
 
-    def describe(self) -> dict[str, Any]:
-        """The session.json description of what this engine runs."""
-        return {
-            "tool": "scenemon", "version": __version__,
-            "started_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
-            "source": self.source.describe(),
-            "classes": list(self.card.classes),
-            "card": self.card.settings_dict(),
-            "decision": self.decision.to_dict(),
-            "model": {"path": str(self.runner.path), "sha256": self.runner.sha256,
-                      "kind": self.runner.kind},
-            "sample_rate": self.card.sample_rate,
-        }
+    @property
+    def decision(self) -> DecisionSettings:
+        """Model A's decision settings."""
+        return self.lanes[0].decision
+
+    @property
+    def tally(self) -> Tally:
+        """Model A's running tally."""
+        return self.lanes[0].tally
+
+    def status(self) -> EngineStatus:
+        ring = self.source.ring
+        return EngineStatus(
+            now_s=self.windower.end / self.card.sample_rate, windows=self.count,
+            overruns=ring.overruns, dropped_samples=ring.dropped,
+            gap_windows=self.tally.windows_after_gap, ms=self._last_ms,
+            latency_ms=self._last_latency, model_faults=sum(ln.faults for ln in self.lanes))
 
     def run(self, stop: threading.Event | None = None) -> dict[str, Any]:
         """Run until the source ends or `stop` is set; return the summary."""
@@ -204,6 +245,9 @@ class Engine:
         src, ring = self.source, self.source.ring
         limit = self.max_batch * self.card.hop_samples + self.card.window_samples
         poll = 0.01 if src.realtime else 0.001
+        audio_obs = [o for o in self.observers if _overrides(type(o), "on_audio")]
+        self._window_obs = [o for o in self.observers if _overrides(type(o), "on_window")]
+        self._status_obs = [o for o in self.observers if _overrides(type(o), "on_status")]
         src.start()
         try:
             while True:
@@ -213,10 +257,10 @@ class Engine:
                 arrived = ring.last_write_t
                 chunk, gap = ring.read(limit)
                 if chunk.size or gap:
-                    for obs in self.observers:
-                        if hasattr(obs, "on_audio"):
-                            obs.on_audio(chunk, gap)
+                    for obs in audio_obs:
+                        obs.on_audio(chunk, gap)
                     wins = self.windower.push(chunk, gap)
+                    self.published_samples = self.windower.end
                     if wins:
                         self._process(wins, arrived)
                     continue
@@ -229,14 +273,33 @@ class Engine:
                 time.sleep(self._idle_wait(poll))
         finally:
             src.stop()
-        summary = self.stats.summary()
+        return self.summary()
+
+    def summary(self) -> dict[str, Any]:
+        """summary.json's figures so far (model A's at the top level)."""
+        ring, src = self.source.ring, self.source
+        summary = lane_summary(self.lanes[0])
         summary.update({
+            "gap_samples": self.tally.gap_samples,
+            "windows_after_gap": self.tally.windows_after_gap,
+            "ms_median": _r(percentile(self._ms, 50)), "ms_p99": _r(percentile(self._ms, 99)),
+            "latency_ms_median": _r(percentile(self._latency, 50)),
+            "latency_ms_p99": _r(percentile(self._latency, 99)),
             "overruns": ring.overruns, "dropped_samples": ring.dropped,
             "input_overflows": ring.producer_overflows,
             "stopped_by_user": self.stopped_by_user,
         })
-        summary.update(getattr(src, "stats", dict)())
-        summary["clean"] = getattr(src, "failure", None) is None
+        summary.update(self.levels.finish().summary() if self.count else LevelTally().summary())
+        summary.update(src.stats())
+        summary["clean"] = src.failure is None
+        faults = sum(ln.faults for ln in self.lanes)
+        summary["model_faults"] = faults
+        if faults:
+            summary["model_fault"] = (f"{faults} window(s) had a non-finite model output (NaN "
+                                      f"or infinity); they are recorded with null "
+                                      f"probabilities and the flag \"fault\"")
+        if len(self.lanes) > 1:
+            summary["b"] = lane_summary(self.lanes[1])
         return summary
 
     def _idle_wait(self, poll: float) -> float:
@@ -246,37 +309,107 @@ class Engine:
         missing = self.windower.next_start + self.card.window_samples - self.windower.end
         return min(0.05, max(poll, missing / self.card.sample_rate))
 
-    def _process(self, wins: list, arrived: float) -> None:
+    def _features(self, fe: FrontEnd, wins: list[Window]) -> np.ndarray:
+        hop, win = self.card.hop_samples, self.card.window_samples
+        if len(wins) > 1 and hop <= win and all(b.start - a.start == hop
+                                                 for a, b in zip(wins, wins[1:])):
+            # one hop apart: frames shared by overlapping windows are computed once
+            span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]])
+            return fe.batch_consecutive(span, len(wins))
+        return fe.batch(np.stack([w.samples for w in wins]))
+
+    def _process(self, wins: list[Window], arrived: float) -> None:
         card = self.card
         sr = card.sample_rate
         t = time.perf_counter()
-        if len(wins) > 1 and all(b.start - a.start == card.hop_samples
-                                 for a, b in zip(wins, wins[1:])):
-            # one hop apart: frames shared by overlapping windows are computed once
-            span = np.concatenate([wins[0].samples] + [w.samples[-card.hop_samples:]
-                                                       for w in wins[1:]]) \
-                if card.hop_samples <= card.window_samples else None
-            feats = (self.frontend.batch_consecutive(span, len(wins)) if span is not None
-                     else self.frontend.batch(np.stack([w.samples for w in wins])))
-        else:
-            feats = self.frontend.batch(np.stack([w.samples for w in wins]))
-        probs = self.runner.predict(feats)
+        feats: dict[int, np.ndarray] = {}
+        probs = []
+        for lane in self.lanes:
+            key = id(lane.frontend)
+            if key not in feats:
+                feats[key] = self._features(lane.frontend, wins)
+            probs.append(lane.runner.predict(feats[key]))
         ms = (time.perf_counter() - t) * 1000.0 / len(wins)
         done = time.monotonic()
         latency = (done - arrived) * 1000.0 if self.source.realtime and arrived else None
-        for w, f, p in zip(wins, feats, probs):
+        self._last_ms, self._last_latency = ms, latency
+        for k, w in enumerate(wins):
             t0, t1 = w.start / sr, (w.start + card.window_samples) / sr
-            smoothed, d = self.decider.step(p, t1)
-            res = WindowResult(
-                i=self.count, start=w.start, t0=t0, t1=t1, probs=p, smoothed=smoothed,
-                top=card.classes[int(np.argmax(p))],
-                decision=None if d is None else card.classes[d],
-                truth=self.truth(t0, t1) if self.truth else None,
-                level_dbfs=level_dbfs(w.samples), clipped=clipped_fraction(w.samples),
-                gap=w.gap, ms=ms, latency_ms=latency, samples=w.samples,
-                features=f if self.keep_features else None)
+            truth = self.truth(t0, t1) if self.truth else None
+            level, clipped = level_dbfs(w.samples), clipped_fraction(w.samples)
+            self.levels.add(t0, t1, level, clipped)
+            results = []
+            for m, lane in enumerate(self.lanes):
+                f = feats[id(lane.frontend)][k]
+                results.append(self._decide(lane, m, w, t0, t1, truth, level, clipped, ms,
+                                            latency, probs[m][k], f))
+            res = results[0]
+            if len(results) > 1:
+                res = _with_others(res, tuple(results[1:]))
             self.count += 1
-            self.stats.add(res)
-            for obs in self.observers:
-                if hasattr(obs, "on_window"):
-                    obs.on_window(res)
+            self._ms.append(ms)
+            if latency is not None:
+                self._latency.append(latency)
+            for obs in self._window_obs:
+                obs.on_window(res)
+        if self._status_obs:
+            status = self.status()
+            for obs in self._status_obs:
+                obs.on_status(status)
+
+    def _decide(self, lane: _Lane, m: int, w: Window, t0: float, t1: float,
+                truth: str | None, level: float, clipped: float, ms: float,
+                latency: float | None, p: np.ndarray, f: np.ndarray) -> WindowResult:
+        classes = lane.card.classes
+        novelty = unfamiliar = None
+        if lane.profile is not None:
+            novelty, unfamiliar = lane.profile.step(f)
+        if not np.all(np.isfinite(p)):
+            lane.faults += 1
+            d = lane.decider.hysteresis.decision
+            decision = None if d is None else classes[d]
+            lane.tally.add(t0, t1, decision, truth, w.gap)
+            return WindowResult(
+                i=self.count, start=w.start, t0=t0, t1=t1, probs=None, smoothed=None,
+                top=None, decision=decision, truth=truth, level_dbfs=level, clipped=clipped,
+                gap=w.gap, ms=ms, latency_ms=latency,
+                features=f if self.keep_features else None, novelty=novelty,
+                unfamiliar=unfamiliar, fault=MODEL_FAULT, model=m)
+        smoothed, d = lane.decider.step(p, t1)
+        decision = None if d is None else classes[d]
+        lane.tally.add(t0, t1, decision, truth, w.gap)
+        return WindowResult(
+            i=self.count, start=w.start, t0=t0, t1=t1, probs=p, smoothed=smoothed,
+            top=classes[int(np.argmax(p))], decision=decision, truth=truth,
+            level_dbfs=level, clipped=clipped, gap=w.gap, ms=ms, latency_ms=latency,
+            features=f if self.keep_features else None, novelty=novelty,
+            unfamiliar=unfamiliar, model=m)
+
+
+def _with_others(res: WindowResult, others: tuple[WindowResult, ...]) -> WindowResult:
+    import dataclasses
+
+    return dataclasses.replace(res, others=others)
+
+
+def lane_summary(lane: _Lane) -> dict[str, Any]:
+    """One model's decision figures for summary.json."""
+    t = lane.tally
+    return {
+        "windows": t.windows,
+        "duration_s": round(t.duration_s, 3),
+        "decision_changes": t.changes,
+        "switches_per_min": _r3(t.switches_per_min),
+        "decided_s": {c: round(v, 3) for c, v in t.decided_s().items()},
+        "undecided_windows": t.undecided,
+        "windows_with_truth": t.with_truth,
+        "accuracy": round(t.accuracy, 6) if t.accuracy is not None else None,
+    }
+
+
+def _r(v: float | None) -> float | None:
+    return None if v is None else round(v, 4)
+
+
+def _r3(v: float | None) -> float | None:
+    return None if v is None else round(v, 3)

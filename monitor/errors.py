@@ -1,10 +1,21 @@
-"""The one exception tree of scenemon.
+"""The one exception tree of scenemon, and the one place that maps outcomes to exit codes.
 
 Every message names the file (when there is one), the value, and the rule it breaks, so
 the command line can print it as one sentence and exit with code 2.
 """
 
 from __future__ import annotations
+
+from enum import IntEnum
+
+
+class ExitCode(IntEnum):
+    """What a `scenemon` command returns to the shell."""
+
+    OK = 0
+    FAILURE = 1  # a runtime failure: a device lost, a disk full, a model fault
+    BAD_INPUT = 2  # a file, card or flag that cannot be used
+    INTERRUPTED = 130  # Ctrl-C outside a session (a session closes cleanly and returns OK)
 
 
 class ScenemonError(Exception):
@@ -33,3 +44,44 @@ class DeviceError(ScenemonError):
 
 class SessionError(ScenemonError):
     """A session directory cannot be written or read."""
+
+
+class SourceFailed(Exception):
+    """The source thread died with an unexpected error (a runtime failure, exit 1)."""
+
+
+def exit_code_for(exc: BaseException | None) -> ExitCode:
+    """The exit code of a command that ended with `exc` (None: it ended normally).
+
+    Parameters
+    ----------
+    exc : BaseException or None
+        What stopped the command.
+
+    Returns
+    -------
+    ExitCode
+        BAD_INPUT for a `ScenemonError`, INTERRUPTED for Ctrl-C, FAILURE for anything else.
+    """
+    if exc is None:
+        return ExitCode.OK
+    if isinstance(exc, ScenemonError):
+        return ExitCode.BAD_INPUT
+    if isinstance(exc, KeyboardInterrupt):
+        return ExitCode.INTERRUPTED
+    return ExitCode.FAILURE
+
+
+def one_sentence(exc: BaseException) -> str:
+    """The line the command line prints for `exc` (after ``scenemon: ``)."""
+    if isinstance(exc, ScenemonError):
+        return str(exc)
+    return f"{type(exc).__name__}: {exc} (run with --debug for details)"
+
+
+def summary_failure(summary: dict | None) -> str | None:
+    """The runtime failure a finished session reports, if any (exit code 1)."""
+    if not summary:
+        return None
+    return summary.get("source_failure") or summary.get("write_error") \
+        or summary.get("model_fault")

@@ -20,7 +20,8 @@ from typing import Literal
 import numpy as np
 import scipy.fft
 
-from monitor.spec import ModelCard
+from monitor.card import ModelCard
+from monitor.samples import quantise_pcm16
 
 MelScale = Literal["htk", "slaney"]
 
@@ -133,20 +134,6 @@ def window_coefficients(length: int, *, kind: Literal["hann", "hamming"] = "hann
     return w.astype(np.float32)
 
 
-def level_dbfs(x: np.ndarray) -> float:
-    """Level after AES17: ``20 log10(sqrt(2) * rms)``, so a full-scale sine reads 0.0.
-
-    Silence is floored at -160 dB FS so the value stays finite (JSON has no -inf).
-    """
-    rms = float(np.sqrt(np.mean(np.square(x, dtype=np.float64)))) if x.size else 0.0
-    return max(-160.0, 20.0 * np.log10(max(np.sqrt(2.0) * rms, 1e-300)))
-
-
-def clipped_fraction(x: np.ndarray) -> float:
-    """Share of samples at ``|x| >= 0.999`` (full scale)."""
-    return float(np.mean(np.abs(x) >= 0.999)) if x.size else 0.0
-
-
 class FrontEnd:
     """Features exactly as the card says, built once per card.
 
@@ -170,10 +157,7 @@ class FrontEnd:
         self.inv_std = (1.0 / card.std).astype(np.float32)
 
     def _pcm(self, x: np.ndarray) -> np.ndarray:
-        if self.card.pcm_bits == 16:
-            q = np.clip(np.round(x * np.float32(32768.0)), -32768, 32767)
-            return (q / np.float32(32768.0)).astype(np.float32)
-        return x
+        return quantise_pcm16(x) if self.card.pcm_bits == 16 else x
 
     def _power_frames(self, x: np.ndarray, n_frames: int) -> np.ndarray:
         """Power (or magnitude) spectra of `n_frames` frames along the last axis of `x`."""
@@ -238,6 +222,10 @@ class FrontEnd:
         stack = np.stack([mag[i * step:i * step + f] for i in range(n)])
         return self._log_mel(stack)
 
+    def unscaled(self, windows: np.ndarray) -> np.ndarray:
+        """Features before layout and scaling, time-major ``(n, frames, bands)``."""
+        return self.logmel(np.asarray(windows, dtype=np.float32))
+
     def batch(self, windows: np.ndarray) -> np.ndarray:
         """Scaled model input for many windows.
 
@@ -279,3 +267,44 @@ class FrontEnd:
     def single(self, window: np.ndarray) -> np.ndarray:
         """Scaled model input for one window of shape ``(window_samples,)``."""
         return self.batch(np.asarray(window, dtype=np.float32)[None, :])[0]
+
+
+def reference_features(card: ModelCard, windows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """The same card computed in float64 throughout, the reference for the float32 path.
+
+    Returns
+    -------
+    unscaled : numpy.ndarray
+        ``(n, frames, bands)`` float64, time-major (as `FrontEnd.unscaled`).
+    scaled : numpy.ndarray
+        ``(n, *card.feature_shape)`` float64, the model input (as `FrontEnd.batch`).
+    """
+    from monitor.samples import quantise_pcm16
+
+    x = np.asarray(windows, np.float64)
+    if card.pcm_bits == 16:
+        x = quantise_pcm16(x).astype(np.float64)
+    win = window_coefficients(card.frame_length, kind=card.window,
+                              symmetric=card.window_symmetric).astype(np.float64)
+    n = card.frames_per_window
+    idx = np.arange(card.frame_length)[None, :] + card.frame_step * np.arange(n)[:, None]
+    spec = np.abs(np.fft.rfft(x[:, idx] * win, n=card.fft_length, axis=-1))
+    if card.power == 2.0:
+        spec = spec ** 2
+    w = mel_filterbank(sample_rate=card.sample_rate, fft_length=card.fft_length,
+                       mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
+                       scale=card.mel_scale, norm=card.mel_norm, triangles=card.mel_triangles,
+                       dtype=np.float64)
+    mel = spec @ w.T + card.log_offset
+    if card.log == "ln":
+        out = np.log(mel)
+    elif card.log == "log10":
+        out = np.log10(mel)
+    else:
+        out = (20.0 / card.power) * np.log10(mel)
+    mean, std = card.mean.astype(np.float64), card.std.astype(np.float64)
+    if card.layout == "mel_time":
+        scaled = (np.swapaxes(out, 1, 2) - mean) / std
+    else:
+        scaled = (out - mean) / std
+    return out, scaled

@@ -22,3 +22,60 @@ def quiet_native_stderr():
     finally:
         os.dup2(saved, 2)
         os.close(saved)
+
+
+# libsndfile's SFC_UPDATE_HEADER_NOW command: rewrite a WAV header to match the data so far.
+# soundfile has no public call for it (its flush() only fsyncs and leaves the header stale),
+# so this reaches into soundfile's cffi handle; it is the one place that does.
+_SFC_UPDATE_HEADER_NOW = 0x1060
+
+
+def update_wav_header(sound_file) -> None:
+    """Bring an open `soundfile.SoundFile`'s header up to the frames written so far.
+
+    Raises
+    ------
+    OSError
+        When libsndfile refuses (the disk is full, the file is gone).
+    """
+    import soundfile as sf
+
+    if sf._snd.sf_command(sound_file._file, _SFC_UPDATE_HEADER_NOW, sf._ffi.NULL, 0):
+        raise OSError("libsndfile could not update the WAV header")
+
+
+def reinitialise_portaudio(sd) -> None:
+    """Make PortAudio scan its devices again (a replugged microphone gets a new index).
+
+    sounddevice has no public call for this: its device list is fixed at import, and only its
+    private `_terminate` / `_initialize` pair re-runs PortAudio's `Pa_Initialize`.
+    """
+    sd._terminate()
+    sd._initialize()
+
+
+DEBUG = False  # --debug: native chatter is shown, not swallowed
+
+
+def quiet_tensorflow(debug: bool = False) -> None:
+    """Keep TensorFlow's, absl's and XLA's start-up chatter off the terminal (unless --debug).
+
+    Only environment variables: nothing is imported here (a .tflite model never loads
+    TensorFlow). They must be set before TensorFlow's first import to take effect.
+    """
+    global DEBUG
+    DEBUG = debug
+    if not debug:
+        os.environ["TF_CPP_MIN_LOG_LEVEL"] = "3"
+        os.environ.setdefault("ABSL_MIN_LOG_LEVEL", "3")  # absl's C++ logging
+        os.environ.setdefault("GRPC_VERBOSITY", "ERROR")
+
+
+def silence_absl() -> None:
+    """absl's Python logger (used by TensorFlow's converter) to errors only."""
+    try:
+        import absl.logging
+
+        absl.logging.set_verbosity(absl.logging.ERROR)
+    except ImportError:
+        pass

@@ -25,9 +25,9 @@ from typing import Protocol
 
 import numpy as np
 
+from monitor.card import ModelCard
 from monitor.errors import ModelError
 from monitor.native import quiet_native_stderr as _quiet_native_stderr
-from monitor.spec import ModelCard
 
 MIN_KERAS = (3, 12)
 
@@ -41,7 +41,10 @@ def file_sha256(path: str | Path) -> str:
 
 
 class Runner(Protocol):
-    kind: str
+    """What the engine and the tools need of a loaded model."""
+
+    model_kind: str  # "keras" | "tflite-float" | "tflite-int8" (session.json's model kind)
+    runtime: str  # "tensorflow" | "litert" | "micro"
     path: Path
     sha256: str
     input_shape: tuple[int, ...]
@@ -59,17 +62,24 @@ def softmax(z: np.ndarray) -> np.ndarray:
 
 
 class _Base:
+    @staticmethod
+    def check_io(path: Path, card: ModelCard, input_shape: tuple, n_outputs: int,
+                 n_inputs: int, n_out_tensors: int) -> bool:
+        """Refuse a model whose inputs and outputs do not fit the card (see
+        `ModelCard.check_model`); True when it wants a trailing channel axis."""
+        if n_inputs != 1 or n_out_tensors != 1:
+            raise ModelError(f"{path}: model has {n_inputs} inputs and {n_out_tensors} "
+                             f"outputs; scenemon needs exactly one of each")
+        return card.check_model(tuple(None if s in (None, -1) else int(s) for s in input_shape),
+                                int(n_outputs), path)
+
     def __init__(self, path: Path, card: ModelCard, input_shape: tuple, n_outputs: int,
                  n_inputs: int, n_out_tensors: int) -> None:
         self.path = path
         self.card = card
-        if n_inputs != 1 or n_out_tensors != 1:
-            raise ModelError(f"{path}: model has {n_inputs} inputs and {n_out_tensors} "
-                             f"outputs; scenemon needs exactly one of each")
+        self.check_io(path, card, input_shape, n_outputs, n_inputs, n_out_tensors)
         self.input_shape = tuple(int(s) if s is not None else -1 for s in input_shape)
         self.n_outputs = int(n_outputs)
-        card.check_model(tuple(None if s == -1 else s for s in self.input_shape),
-                         self.n_outputs, path)
         self._one_shape = (1, *card.feature_shape,
                            *([1] if len(self.input_shape) > len(card.feature_shape) else []))
         self.sha256 = file_sha256(path)
@@ -114,17 +124,22 @@ class KerasRunner(_Base):
             model = keras.saving.load_model(path, compile=False, safe_mode=not trust_model)
         except Exception as exc:  # keras raises many kinds for a bad file
             text = str(exc)
-            if "Lambda" in text or "safe_mode" in text:
+            first = text.strip().splitlines()[0] if text.strip() else type(exc).__name__
+            if not trust_model and ("Lambda" in text or "safe_mode" in text):
                 raise ModelError(f"{path}: the model contains a Lambda layer, whose code "
                                  f"would run on loading; refused (pass --trust-model only "
                                  f"for a file you trust)") from None
-            first = text.strip().splitlines()[0] if text.strip() else type(exc).__name__
+            if trust_model and "Lambda" in text:
+                raise ModelError(f"{path}: --trust-model was given, but its Lambda layer's "
+                                 f"function cannot be restored from the file (it was saved "
+                                 f"by name, not as code: {first[:160]})") from None
             raise ModelError(f"{path}: cannot be loaded as a Keras model ({first[:200]})") from None
         inputs = model.inputs if isinstance(model.inputs, list) else [model.inputs]
         outputs = model.outputs if isinstance(model.outputs, list) else [model.outputs]
         super().__init__(path, card, tuple(inputs[0].shape[1:]), outputs[0].shape[-1],
                          len(inputs), len(outputs))
-        self.kind = "keras"
+        self.model_kind = "keras"
+        self.runtime = "tensorflow"
         self.model = model
         self._fn = tf.function(lambda x: model(x, training=False), input_signature=[
             tf.TensorSpec(self._one_shape, tf.float32)])
@@ -179,7 +194,8 @@ class TFLiteRunner(_Base):
         self.in_dtype, self.out_dtype = np.dtype(ins[0]["dtype"]), np.dtype(outs[0]["dtype"])
         self.in_scale, self.in_zero = (float(v) for v in ins[0]["quantization"])
         self.out_scale, self.out_zero = (float(v) for v in outs[0]["quantization"])
-        self.kind = "tflite-int8" if self.in_dtype == np.int8 else "tflite-float"
+        self.model_kind = "tflite-int8" if self.in_dtype == np.int8 else "tflite-float"
+        self.runtime = "litert"
         with _quiet_native_stderr():
             self.check_outputs()
 
@@ -215,8 +231,24 @@ class TFLiteRunner(_Base):
         return self._finish(out)
 
 
-def load_runner(path: str | Path, card: ModelCard, *, trust_model: bool = False,
-                threads: int = 1) -> Runner:
+RUNTIMES = ("litert", "micro")
+
+
+def _check_magic(path: Path, ext: str) -> None:
+    """Refuse a file whose first bytes are not the format its extension claims (cheaply,
+    before any interpreter sees it)."""
+    with open(path, "rb") as f:
+        head = f.read(8)
+    if ext == ".tflite" and (len(head) < 8 or head[4:8] != b"TFL3"):
+        raise ModelError(f"{path}: not a TFLite model file (no TFL3 flatbuffer identifier)")
+    if ext == ".keras" and not head.startswith(b"PK"):
+        raise ModelError(f"{path}: not a Keras model file (a .keras file is a zip archive)")
+    if ext == ".h5" and not head.startswith(b"\x89HDF\r\n\x1a\n"):
+        raise ModelError(f"{path}: not a Keras model file (a .h5 file is HDF5)")
+
+
+def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
+                trust_model: bool = False, threads: int = 1) -> Runner:
     """Load a model file and check it against its card.
 
     Parameters
@@ -227,6 +259,10 @@ def load_runner(path: str | Path, card: ModelCard, *, trust_model: bool = False,
         The card the model must fit (input shape, output size).
     trust_model : bool
         Allow Keras Lambda layers (their code runs on load).
+    runtime : {"litert", "micro"}
+        For a ``.tflite`` model: LiteRT's interpreter, or the microcontroller interpreter
+        of the ``tflite-micro`` package (the firmware's own kernels). Keras models always
+        run in TensorFlow.
     threads : int
         Compute threads for the model.
 
@@ -236,13 +272,25 @@ def load_runner(path: str | Path, card: ModelCard, *, trust_model: bool = False,
         Missing, unreadable or mismatched model.
     """
     path = Path(path)
-    if not path.is_file():
+    if not path.exists():
         raise ModelError(f"{path}: model file not found")
+    if not path.is_file():
+        raise ModelError(f"{path}: not a regular file")
     if path.stat().st_size == 0:
         raise ModelError(f"{path}: model file is empty")
+    if runtime not in RUNTIMES:
+        raise ModelError(f"{path}: runtime {runtime!r} is not one of {', '.join(RUNTIMES)}")
     ext = path.suffix.lower()
+    if ext not in (".tflite", ".keras", ".h5"):
+        raise ModelError(f"{path}: unknown model type {ext!r} (use .keras, .h5 or .tflite)")
+    _check_magic(path, ext)
     if ext == ".tflite":
+        if runtime == "micro":
+            from monitor.micro import MicroRunner
+
+            return MicroRunner(path, card)
         return TFLiteRunner(path, card, threads=threads)
-    if ext in (".keras", ".h5"):
-        return KerasRunner(path, card, trust_model=trust_model, threads=threads)
-    raise ModelError(f"{path}: unknown model type {ext!r} (use .keras, .h5 or .tflite)")
+    if runtime == "micro":
+        raise ModelError(f"{path}: the microcontroller runtime runs .tflite models; convert "
+                         f"this Keras model first (scenemon quantize)")
+    return KerasRunner(path, card, trust_model=trust_model, threads=threads)

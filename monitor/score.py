@@ -1,18 +1,23 @@
-"""`scenemon score ARCHIVE`: re-score a folder of recordings with one model and card.
+"""`scenemon score ARCHIVE`: re-score a folder of recordings with one model, or two (A/B).
 
-Every input (an audio file, or a session directory standing for its audio and truth) is
-one task. A task runs the very chain of `scenemon replay --fast` (file source, ring,
-windower, front end, runner, decider) and writes one results file with the `windows.jsonl`
-fields, so `report` and `tune` read it like a session. Files are processed whole, not split
-into chunks: the smoothing and hysteresis state runs through the whole file, and whole
-files keep the results identical to a replay of the same file (all fields but the
-per-window timing `ms`, which is left null so that results are the same bytes however and
-wherever they ran); an hour of audio is still only seconds of work.
+Every input (an audio file, or a session directory standing for all its audio segments and
+its truth) is one task. A task runs the very chain of `scenemon replay --fast`
+(`assemble.replay_file`) and writes one results file per model with the `windows.jsonl`
+fields, so `report` and `tune` read it like a session. Files are processed whole: the
+smoothing and hysteresis state runs through the whole file and starts afresh in the next
+one, and results are the same bytes as a replay of the file (all fields but the per-window
+timing `ms`, which is left null so results do not depend on where they ran).
+
+Results names are the input's path below ARCHIVE with ``%`` written ``%25`` and each path
+separator ``%2F``: unique and reversible (`results_name`, `key_of_results`).
+
+The aggregate adds the files up: windows, seconds, decision changes and confusion counts
+are sums over files; accuracy is correct windows over windows with truth (window-weighted);
+the switch rate is the changes over the minutes of all files; latencies are every file's.
 
 Tasks run on local worker processes (`--workers N`) or on a Dask distributed scheduler
 (`--cluster tcp://host:8786`); either way the results are the same bytes. A result whose
-audio sha256, model sha256 and card are unchanged is skipped, so an interrupted run
-resumes where it stopped. Worker processes are spawned, each loads the model once.
+audio, truth, models and cards are unchanged is skipped, so an interrupted run resumes.
 """
 
 from __future__ import annotations
@@ -28,18 +33,28 @@ from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-from monitor.errors import ScenemonError
-from monitor.session import atomic_write, audio_segments, dumps
+from monitor.errors import ExitCode, ScenemonError
+from monitor.files import atomic_write, audio_segments, dumps
+from monitor.plan import ModelPlan
 
 AUDIO_EXT = {".wav", ".flac", ".ogg", ".aiff", ".aif"}
-RESULTS_VERSION = 1
+RESULTS_VERSION = 2
 
 
 @dataclass(frozen=True)
 class Item:
-    key: str  # relative name, also the results file's name
-    audio: str
+    key: str  # the input's path below the archive ("/"-separated)
+    audio: tuple[str, ...]  # one file, or a session's audio segments in order
     truth: str | None
+
+
+def results_name(key: str) -> str:
+    """A unique, reversible file name for an input key (``%`` -> ``%25``, ``/`` -> ``%2F``)."""
+    return key.replace("%", "%25").replace("/", "%2F")
+
+
+def key_of_results(name: str) -> str:
+    return name.replace("%2F", "/").replace("%25", "%")
 
 
 def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
@@ -55,7 +70,7 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
         if not segs:
             continue
         truth = d / "truth.tsv"
-        items.append(Item(str(d.relative_to(archive)), str(segs[0]),
+        items.append(Item(d.relative_to(archive).as_posix(), tuple(str(s) for s in segs),
                           str(truth) if truth.is_file() else None))
     for p in sorted(archive.rglob("*")):
         if p.suffix.lower() not in AUDIO_EXT or not p.is_file():
@@ -64,32 +79,33 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
             continue
         truth = None
         if truth_glob:
-            hits = [t for t in p.parent.glob("*") if fnmatch.fnmatch(t.name, truth_glob.replace(
-                "{stem}", p.stem))]
+            hits = sorted(t for t in p.parent.glob("*") if fnmatch.fnmatch(
+                t.name, truth_glob.replace("{stem}", p.stem)))
             truth = str(hits[0]) if hits else None
         elif p.with_suffix(".tsv").is_file():
             truth = str(p.with_suffix(".tsv"))
-        items.append(Item(str(p.relative_to(archive)), str(p), truth))
+        items.append(Item(p.relative_to(archive).as_posix(), (str(p),), truth))
     return items
 
 
-def result_paths(out: Path, item: Item) -> tuple[Path, Path]:
-    safe = item.key.replace(os.sep, "__")
-    return out / "results" / f"{safe}.jsonl", out / "results" / f"{safe}.meta.json"
+def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
+    name = results_name(item.key)
+    tag = "" if model == 0 else ".b"
+    return out / "results" / f"{name}{tag}.jsonl", out / "results" / f"{name}.meta.json"
 
 
-def fingerprint(item: Item, model_sha: str, card_text: str) -> dict[str, Any]:
+def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
     from monitor.runners import file_sha256
 
-    return {"version": RESULTS_VERSION, "audio_sha256": file_sha256(item.audio),
+    return {"version": RESULTS_VERSION, "audio_sha256": [file_sha256(a) for a in item.audio],
             "truth_sha256": file_sha256(item.truth) if item.truth else None,
-            "model_sha256": model_sha,
-            "card_sha256": hashlib.sha256(card_text.encode()).hexdigest()}
+            "models": models}
 
 
-def up_to_date(out: Path, item: Item, fp: dict) -> bool:
-    jl, meta = result_paths(out, item)
-    if not (jl.is_file() and meta.is_file()):
+def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
+    paths = [result_paths(out, item, m)[0] for m in range(n_models)]
+    meta = result_paths(out, item)[1]
+    if not (all(p.is_file() for p in paths) and meta.is_file()):
         return False
     try:
         old = json.loads(meta.read_text())
@@ -98,41 +114,34 @@ def up_to_date(out: Path, item: Item, fp: dict) -> bool:
     return all(old.get(k) == v for k, v in fp.items())
 
 
-_RUNNERS: dict = {}
+_LOADED: dict = {}
 
 
-def score_task(item: Item, model: str, spec: str | None, out: str, fp: dict) -> dict:
-    """One file through the chain (runs in a worker process); writes its results."""
-    from monitor.engine import Engine
-    from monitor.runners import load_runner
-    from monitor.sources import FileSource
-    from monitor.spec import load_card_for_model
+def score_task(item: Item, models: tuple[ModelPlan, ...], out: str, fp: dict) -> dict:
+    """One input through the chain (runs in a worker process); writes its results."""
+    from monitor.assemble import load_model, replay_file
+    from monitor.observers import Collector
     from monitor.truth import load_truth
 
-    key = (model, spec)
-    if key not in _RUNNERS:  # each worker loads the model once
-        card = load_card_for_model(model, spec)
-        _RUNNERS[key] = (card, load_runner(model, card))
-    card, runner = _RUNNERS[key]
+    key = models
+    if key not in _LOADED:  # each worker loads the models once
+        _LOADED[key] = [load_model(m) for m in models]
+    loaded = _LOADED[key]
+    card = loaded[0].card
     truth = load_truth(item.truth, classes=card.classes) if item.truth else None
-    lines: list[str] = []
-
-    class Collect:
-        def on_window(self, r):
-            rec = r.record()
-            rec["ms"] = None  # a timing would make results differ run to run: left out
-            lines.append(dumps(rec))
-
-    src = FileSource(item.audio, model_rate=card.sample_rate, window_samples=card.window_samples)
+    collect = Collector(timings=False)
     t = time.perf_counter()
-    summary = Engine(card, runner, src, truth=truth.label_for if truth else None,
-                     observers=[Collect()]).run()
+    summary = replay_file(loaded, list(item.audio), truth=truth, observers=[collect])
     seconds = time.perf_counter() - t
-    jl, meta = result_paths(Path(out), item)
-    jl.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write(jl, ("\n".join(lines) + "\n").encode())
-    atomic_write(meta, dumps({**fp, "key": item.key, "audio": item.audio, "truth": item.truth,
-                              "windows": summary["windows"], "duration_s": summary["duration_s"]},
+    streams = [collect.records] + collect.others
+    for m, records in enumerate(streams):
+        jl, _ = result_paths(Path(out), item, m)
+        jl.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write(jl, "".join(dumps(r) + "\n" for r in records).encode())
+    _, meta = result_paths(Path(out), item)
+    atomic_write(meta, dumps({**fp, "key": item.key, "audio": list(item.audio),
+                              "truth": item.truth, "windows": summary["windows"],
+                              "duration_s": summary["duration_s"]},
                              indent=2, sort_keys=True).encode())
     return {"key": item.key, "duration_s": summary["duration_s"], "seconds": seconds,
             "pid": os.getpid()}
@@ -149,24 +158,39 @@ def _progress(done: int, total: int, audio_s: float, t0: float, stream=sys.stder
     stream.flush()
 
 
-def run_score(archive: Path, model: str, out: Path, *, spec: str | None = None,
+def _describe_models(models: tuple[ModelPlan, ...]) -> tuple[list, list[dict]]:
+    from monitor.assemble import load_card
+    from monitor.card import card_beside
+    from monitor.runners import file_sha256
+
+    cards, described = [], []
+    for m in models:
+        card = load_card(m)  # bad card: exit 2 before any work
+        cards.append(card)
+        text = Path(m.card or card_beside(m.path)).read_bytes()
+        described.append({"path": str(m.path), "sha256": file_sha256(m.path),
+                          "card_sha256": hashlib.sha256(text).hexdigest(),
+                          "runtime": m.runtime})
+    return cards, described
+
+
+def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
               truth_glob: str | None = None, workers: int | None = None,
               cluster: str | None = None, progress: bool = True) -> dict:
-    from monitor.runners import file_sha256
-    from monitor.spec import card_path_for, load_card_for_model
-
-    card = load_card_for_model(model, spec)  # bad card: exit 2 before any work
-    card_text = Path(spec or card_path_for(model)).read_text(encoding="utf-8")
-    model_sha = file_sha256(model)
+    """Score every input under `archive` (see module docstring); returns the aggregate."""
+    if isinstance(models, (str, Path)):
+        models = (ModelPlan(Path(models)),)
+    models = tuple(ModelPlan(Path(m.path).resolve(), Path(m.card).resolve() if m.card else None,
+                             m.runtime, m.trust) for m in models)
+    cards, described = _describe_models(models)
     items = discover(archive, truth_glob)
     if not items:
         raise ScenemonError(f"{archive}: holds no audio files or sessions")
     out.mkdir(parents=True, exist_ok=True)
-    todo, skipped = [], 0
-    fps = {}
+    todo, skipped, fps = [], 0, {}
     for it in items:
-        fp = fps[it.key] = fingerprint(it, model_sha, card_text)
-        if up_to_date(out, it, fp):
+        fp = fps[it.key] = fingerprint(it, described)
+        if up_to_date(out, it, fp, len(models)):
             skipped += 1
         else:
             todo.append(it)
@@ -183,64 +207,143 @@ def run_score(archive: Path, model: str, out: Path, *, spec: str | None = None,
             if progress:
                 _progress(state["done"], len(items), state["audio_s"], t0)
 
-    args = (str(Path(model).resolve()), str(Path(spec).resolve()) if spec else None,
-            str(out.resolve()))
+    target = str(out.resolve())
+    n = workers or os.cpu_count() or 1
     if todo and cluster:
         from distributed import Client
         from distributed import as_completed as dask_completed
 
         with Client(cluster, timeout="20s") as client:
             collect(dask_completed([
-                client.submit(score_task, it, *args, fps[it.key], key=f"score-{k}-{it.key}",
-                              pure=False, retries=2) for k, it in enumerate(todo)]))
+                client.submit(score_task, it, models, target, fps[it.key],
+                              key=f"score-{k}-{it.key}", pure=False, retries=2)
+                for k, it in enumerate(todo)]))
     elif todo:
         import multiprocessing as mp
 
-        n = workers or os.cpu_count() or 1
-        with ProcessPoolExecutor(max_workers=n, mp_context=mp.get_context("spawn")) as pool:
-            collect(as_completed([pool.submit(score_task, it, *args, fps[it.key])
+        with ProcessPoolExecutor(max_workers=min(n, len(todo)),
+                                 mp_context=mp.get_context("spawn")) as pool:
+            collect(as_completed([pool.submit(score_task, it, models, target, fps[it.key])
                                   for it in todo]))
     audio_s = state["audio_s"]
     wall = time.monotonic() - t0
-    agg = aggregate(out, items, list(card.classes))
+    agg = aggregate(out, items, list(cards[0].classes), len(models),
+                    [c.hop_s for c in cards])
+    mode = "Dask cluster" if cluster else f"{n} local worker{'s' if n != 1 else ''}"
     agg.update({"processed": len(todo), "skipped_up_to_date": skipped,
                 "wall_s": round(wall, 3), "audio_h_processed": round(audio_s / 3600.0, 4),
                 "audio_h_per_min": round(audio_s / 3600.0 / (wall / 60.0), 3) if wall > 0 else None,
-                "mode": "cluster" if cluster else f"{workers or os.cpu_count()} local workers"})
+                "mode": mode})
     atomic_write(out / "aggregate.json", dumps(agg, indent=2).encode())
     return agg
 
 
-def aggregate(out: Path, items: list[Item], classes: list[str]) -> dict:
-    from monitor.review.metrics import score
+def _read_results(path: Path) -> list[dict]:
+    return [json.loads(x) for x in path.read_text().splitlines() if x.strip()]
 
-    per_file, pooled = [], []
+
+def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 1,
+              hops: list[float] | None = None) -> dict:
+    """Per-file figures and the overall sums over files (see module docstring)."""
+    from monitor.review.metrics import mcnemar_exact, metrics_of_tally
+    from monitor.tally import Tally, tally_windows
+    from monitor.truth import load_truth
+
+    per_model: list[dict[str, Any]] = []
+    windows_of_item: list[list[list[dict]]] = []
     for it in items:
-        jl, _ = result_paths(out, it)
-        wins = [json.loads(x) for x in jl.read_text().splitlines() if x.strip()]
-        pooled += wins
-        sc = score(wins, classes)
-        per_file.append({"file": it.key, "windows": sc.windows, "duration_s": sc.duration_s,
-                         "accuracy": sc.accuracy, "switches_per_min": sc.switches_per_min,
-                         "latency_s_median": sc.latency_median})
-    overall = score(pooled, classes) if pooled else None
-    scored = [f for f in per_file if f["accuracy"] is not None]
-    worst = sorted(scored, key=lambda f: f["accuracy"])[:10]
-    return {"files": len(items), "per_file": per_file,
-            "overall": overall.to_dict() if overall else None,
-            "worst_files": [{"file": f["file"], "accuracy": f["accuracy"]} for f in worst]}
+        windows_of_item.append([_read_results(result_paths(out, it, m)[0])
+                                for m in range(n_models)])
+    for m in range(n_models):
+        hop = (hops or [None] * n_models)[m]
+        total = Tally(classes, hop_s=hop).finish()
+        per_file = []
+        for it, ws in zip(items, windows_of_item):
+            spans = load_truth(it.truth).spans if it.truth else None
+            t = tally_windows(ws[m], classes, hop_s=hop, spans=spans)
+            _merge(total, t)
+            per_file.append({"file": it.key, "windows": t.windows,
+                             "duration_s": round(t.duration_s, 3), "accuracy": t.accuracy,
+                             "switches_per_min": t.switches_per_min,
+                             "latency_s_median": t.latency_median})
+        overall = metrics_of_tally(total).to_dict() if total.windows else None
+        scored = [f for f in per_file if f["accuracy"] is not None]
+        worst = sorted(scored, key=lambda f: f["accuracy"])[:10]
+        per_model.append({"per_file": per_file, "overall": overall,
+                          "worst_files": [{"file": f["file"], "accuracy": f["accuracy"]}
+                                          for f in worst]})
+    agg = {"files": len(items), **per_model[0]}
+    if n_models > 1:
+        agg["b"] = per_model[1]
+        only_a = only_b = same = n = 0
+        for ws in windows_of_item:
+            for wa, wb in zip(ws[0], ws[1]):
+                n += 1
+                same += wa.get("decision") == wb.get("decision")
+                t = wa.get("truth")
+                if t is not None:
+                    ra, rb = wa.get("decision") == t, wb.get("decision") == t
+                    only_a += ra and not rb
+                    only_b += rb and not ra
+        agg["a_vs_b"] = {"windows": n, "decision_agreement": same / n if n else None,
+                         "only_a_right": only_a, "only_b_right": only_b,
+                         "mcnemar_p": mcnemar_exact(only_a, only_b)}
+    return agg
+
+
+def _merge(total, t) -> None:
+    """Add a finished file tally into the overall one (sums; window-weighted figures)."""
+    total.windows += t.windows
+    total.end_t += t.duration_s  # the overall duration: the files' seconds added up
+    total.gap_samples += t.gap_samples
+    total.windows_after_gap += t.windows_after_gap
+    total.changes += t.changes
+    total.confusion += t.confusion
+    total.decided_windows += t.decided_windows
+    total.undecided += t.undecided
+    total.with_truth += t.with_truth
+    total.correct += t.correct
+    total.latencies += t.latencies
+    total.never_reached += t.never_reached
+    total.truth_changes += t.truth_changes
+    if total.hop_s is None:
+        total.hop_s = t.hop_s
 
 
 def aggregate_text(agg: dict) -> str:
-    o = agg["overall"] or {}
-    acc = o.get("accuracy")
+    def overall_line(name: str, part: dict) -> str:
+        o = part["overall"] or {}
+        acc = o.get("accuracy")
+        return f"{name:<9} " + (f"accuracy {acc:.1%} of {o.get('windows_with_truth')} windows "
+                                f"with truth, balanced {o.get('balanced_accuracy'):.1%}; "
+                                f"{o.get('decision_changes')} decision changes in "
+                                f"{o.get('duration_s', 0) / 60:.1f} min"
+                                if acc is not None else "no truth")
+
     lines = [f"{agg['files']} files: {agg['processed']} scored, {agg['skipped_up_to_date']} "
              f"up to date; {agg['audio_h_processed']:.3f} h of audio in {agg['wall_s']:.1f} s "
-             f"({agg['mode']})",
-             "overall   " + (f"accuracy {acc:.1%} of {o.get('windows_with_truth')} windows with "
-                            f"truth, balanced {o.get('balanced_accuracy'):.1%}" if acc is not None
-                            else "no truth")]
+             f"({agg['mode']})", overall_line("overall" if "b" not in agg else "A", agg)]
+    if "b" in agg:
+        lines.append(overall_line("B", agg["b"]))
+        ab = agg["a_vs_b"]
+        lines.append(f"A vs B    decisions agree on {ab['decision_agreement']:.1%}; B right where "
+                     f"A is wrong on {ab['only_b_right']} windows, A where B is wrong on "
+                     f"{ab['only_a_right']}; McNemar exact p = {ab['mcnemar_p']:.2g} "
+                     f"(optimistic: neighbouring windows are not independent)")
     if agg["worst_files"]:
         lines.append("worst files:")
         lines += [f"  {f['accuracy']:7.1%}  {f['file']}" for f in agg["worst_files"]]
     return "\n".join(lines) + "\n"
+
+
+def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *,
+                      truth_glob: str | None, workers: int | None, cluster: str | None) -> int:
+    if not models:
+        raise ScenemonError("score: give --model")
+    agg = run_score(archive, models, out, truth_glob=truth_glob, workers=workers,
+                    cluster=cluster, progress=sys.stderr.isatty())
+    sys.stdout.write(aggregate_text(agg))
+    return ExitCode.OK
+
+
+__all__ = ["discover", "run_score", "aggregate", "results_name", "key_of_results", "Item"]

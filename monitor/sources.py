@@ -18,15 +18,17 @@ import numpy as np
 import soundfile as sf
 
 from monitor.errors import AudioError, DeviceError
-from monitor.native import quiet_native_stderr
+from monitor.native import quiet_native_stderr, reinitialise_portaudio
 from monitor.ringbuffer import RingBuffer
+from monitor.samples import downmix
 
 
 class StreamResampler:
     """Mono float32 resampling that keeps its state across blocks (soxr HQ).
 
-    Block edges leave no clicks and chunked output equals one-shot output; soxr's stop band
-    is far deeper than scipy's ``resample_poly`` default (see REFERENCES.md).
+    Block edges leave no clicks and chunked output equals one-shot output (soxr's
+    ``ResampleStream`` documentation); soxr's HQ stop band is far deeper than the Kaiser
+    window of scipy's ``resample_poly`` default.
     """
 
     def __init__(self, in_rate: int, out_rate: int) -> None:
@@ -45,23 +47,33 @@ class StreamResampler:
         return np.asarray(self._rs.resample_chunk(x, last=last), dtype=np.float32).reshape(-1)
 
 
-def downmix(block: np.ndarray) -> np.ndarray:
-    """Mean of the channels; `block` is (frames,) or (frames, channels)."""
-    if block.ndim == 1:
-        return block.astype(np.float32, copy=False)
-    if block.shape[1] == 1:
-        return block[:, 0].astype(np.float32, copy=False)
-    return block.mean(axis=1, dtype=np.float32)
-
-
 def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
                      allow_upsample: bool = False) -> sf._SoundFileInfo:
-    """Validate an audio file before a session starts; raise AudioError naming the problem."""
+    """Validate an audio file before a session starts; raise AudioError naming the problem.
+
+    Parameters
+    ----------
+    path : str or Path
+        The file.
+    model_rate : int
+        Hz; a file below it is refused unless `allow_upsample`.
+    window_samples : int
+        A file shorter than one window is refused.
+
+    Returns
+    -------
+    soundfile info
+        Rate, channels, frames and format of the file.
+    """
+    import stat
+
     path = Path(path)
     if not path.exists():
         raise AudioError(f"{path}: audio file not found")
     if path.is_dir():
         raise AudioError(f"{path}: is a directory, not an audio file")
+    if not stat.S_ISREG(path.stat().st_mode):
+        raise AudioError(f"{path}: not a regular file (a pipe or a device); give a recording")
     if path.stat().st_size == 0:
         raise AudioError(f"{path}: audio file is empty")
     try:
@@ -78,6 +90,8 @@ def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
     if info.frames * model_rate / info.samplerate < window_samples:
         raise AudioError(f"{path}: {info.duration:.3f} s of audio is shorter than one "
                          f"{window_samples / model_rate:g} s window")
+    if info.subtype not in ("FLOAT", "DOUBLE"):  # integer PCM cannot hold NaN or infinity
+        return info
     try:
         with quiet_native_stderr(), sf.SoundFile(str(path)) as f:
             for i, block in enumerate(f.blocks(blocksize=1 << 18, dtype="float32",
@@ -97,13 +111,68 @@ def _first_line(exc: BaseException) -> str:
     return text.splitlines()[0][:200] if text else type(exc).__name__
 
 
+def read_resampled(paths, model_rate: int, *, block: int = 1 << 16,
+                   native_rate: int | None = None):
+    """Yield audio as mono float32 blocks at `model_rate` (down-mix, soxr HQ), with the
+    native frames each block came from.
+
+    `paths` is one file or several files of one recording at one rate (a session's audio
+    segments), read in turn through one resampler. The one path from a file to the model's
+    rate: file replay, `score` and the device tools all read through it, so they see
+    identical samples.
+    """
+    paths = [paths] if isinstance(paths, (str, Path)) else list(paths)
+    rate = native_rate or sf.info(str(paths[0])).samplerate
+    resample = StreamResampler(rate, model_rate)
+    for path in paths:
+        with sf.SoundFile(str(path)) as f:
+            for blk in f.blocks(blocksize=block, dtype="float32", always_2d=True):
+                y = resample(downmix(blk))
+                if y.size:
+                    yield blk.shape[0], y
+    tail = resample(np.zeros(0, np.float32), last=True)
+    if tail.size:
+        yield 0, tail
+
+
+def check_audio_files(paths, *, model_rate: int, window_samples: int,
+                      allow_upsample: bool = False):
+    """`check_audio_file` for one file or the files of one recording (same rate; the whole
+    must hold a window). Returns the first file's info and the total frames."""
+    paths = [paths] if isinstance(paths, (str, Path)) else list(paths)
+    if len(paths) == 1:
+        info = check_audio_file(paths[0], model_rate=model_rate, window_samples=window_samples,
+                                allow_upsample=allow_upsample)
+        return info, int(info.frames)
+    infos = [check_audio_file(p, model_rate=model_rate, window_samples=1,
+                              allow_upsample=allow_upsample) for p in paths]
+    for p, i in zip(paths[1:], infos[1:]):
+        if i.samplerate != infos[0].samplerate:
+            raise AudioError(f"{p}: {i.samplerate} Hz, but {paths[0]} is {infos[0].samplerate} "
+                             f"Hz; the files of one recording must share a rate")
+    total = sum(int(i.frames) for i in infos)
+    if total * model_rate / infos[0].samplerate < window_samples:
+        raise AudioError(f"{paths[0]}: its {len(paths)} files together are shorter than one "
+                         f"{window_samples / model_rate:g} s window")
+    return infos[0], total
+
+
+def load_audio(paths, *, model_rate: int, window_samples: int) -> np.ndarray:
+    """A whole checked recording as mono float32 at `model_rate`, exactly as replay feeds the
+    ring (several files of one recording are joined)."""
+    info, _ = check_audio_files(paths, model_rate=model_rate, window_samples=window_samples)
+    parts = [y for _, y in read_resampled(paths, model_rate, native_rate=info.samplerate)]
+    return np.concatenate(parts) if parts else np.zeros(0, np.float32)
+
+
 class FileSource:
     """Replays an audio file into a ring buffer from its own thread (see module docstring).
 
     Parameters
     ----------
-    path : str or Path
-        Any file libsndfile reads (WAV, FLAC, OGG, ...).
+    path : str or Path, or a list of them
+        Any file libsndfile reads (WAV, FLAC, OGG, ...); several files of one recording
+        (a session's audio segments) are replayed one after the other as one stream.
     model_rate : int
         Target rate in Hz; other rates are resampled (soxr HQ, streaming).
     window_samples : int
@@ -112,17 +181,20 @@ class FileSource:
         Pace the file at real time (as a microphone), or as fast as the consumer takes it.
     """
 
-    kind = "file"
+    realtime: bool
+    failure: str | None = None  # a file source has no runtime failure it survives
 
-    def __init__(self, path: str | Path, *, model_rate: int, window_samples: int,
+    def __init__(self, path, *, model_rate: int, window_samples: int,
                  realtime: bool = False, allow_upsample: bool = False,
                  ring_seconds: float = 16.0, block_s: float | None = None) -> None:
-        self.path = Path(path)
-        info = check_audio_file(self.path, model_rate=model_rate,
-                                window_samples=window_samples, allow_upsample=allow_upsample)
+        self.paths = [Path(p) for p in ([path] if isinstance(path, (str, Path)) else path)]
+        self.path = self.paths[0]
+        info, frames = check_audio_files(self.paths, model_rate=model_rate,
+                                         window_samples=window_samples,
+                                         allow_upsample=allow_upsample)
         self.native_rate = int(info.samplerate)
         self.channels = int(info.channels)
-        self.frames = int(info.frames)
+        self.frames = frames
         self.model_rate = int(model_rate)
         self.realtime = realtime
         self.block = int(self.native_rate * (block_s or (0.05 if realtime else 0.5)))
@@ -134,8 +206,14 @@ class FileSource:
         self._thread: threading.Thread | None = None
 
     def describe(self) -> dict:
-        return {"kind": "file", "file": str(self.path), "native_rate": self.native_rate,
-                "channels": self.channels, "pace": "realtime" if self.realtime else "fast"}
+        d = {"kind": "file", "file": str(self.path), "native_rate": self.native_rate,
+             "channels": self.channels, "pace": "realtime" if self.realtime else "fast"}
+        if len(self.paths) > 1:
+            d["files"] = [str(p) for p in self.paths]
+        return d
+
+    def stats(self) -> dict:
+        return {}
 
     def start(self) -> None:
         self._thread = threading.Thread(target=self._run, name="file-source", daemon=True)
@@ -154,25 +232,19 @@ class FileSource:
 
     def _run(self) -> None:
         try:
-            resample = StreamResampler(self.native_rate, self.model_rate)
             t_start = time.monotonic()
             sent = 0
-            with sf.SoundFile(str(self.path)) as f:
-                for block in f.blocks(blocksize=self.block, dtype="float32", always_2d=True):
-                    if self._stop.is_set():
-                        return
-                    if self.realtime:
-                        due = t_start + sent / self.native_rate
-                        delay = due - time.monotonic()
-                        if delay > 0:
-                            time.sleep(delay)
-                    sent += block.shape[0]
-                    y = resample(downmix(block))
-                    if y.size:
-                        self._put(y)
-                tail = resample(np.zeros(0, np.float32), last=True)
-                if tail.size:
-                    self._put(tail)
+            for frames, y in read_resampled(self.paths, self.model_rate, block=self.block,
+                                            native_rate=self.native_rate):
+                if self._stop.is_set():
+                    return
+                if self.realtime and frames:
+                    # the block is due when its first frame would have arrived live
+                    delay = t_start + sent / self.native_rate - time.monotonic()
+                    if delay > 0:
+                        time.sleep(delay)
+                sent += frames
+                self._put(y)
         except BaseException as exc:  # surfaced by the engine, never swallowed
             self.error = exc
         finally:
@@ -211,6 +283,20 @@ def input_devices(sd) -> list[dict]:
                         "default_rate": float(d["default_samplerate"]),
                         "default": i == default_in})
     return out
+
+
+def device_table() -> str:
+    """`scenemon devices`: every input device, one line each, the default marked ``*``."""
+    devs = input_devices(import_sounddevice())
+    if not devs:
+        return "no audio input devices\n"
+    lines = [f"  {'index':>5}  {'name':<32} {'host API':<12} {'channels':>8}  rate"]
+    for d in devs:
+        mark = "*" if d["default"] else " "
+        lines.append(f"{mark} {d['index']:>5}  {d['name'][:32]:<32} {d['hostapi'][:12]:<12} "
+                     f"{d['channels']:>8}  {d['default_rate']:.0f} Hz")
+    lines.append("* = the system's default input")
+    return "\n".join(lines) + "\n"
 
 
 def _listing(devs: list[dict]) -> str:
@@ -270,7 +356,6 @@ class MicSource:
       ends the source with `failure` set, so the session closes with its files intact.
     """
 
-    kind = "mic"
     realtime = True
 
     def __init__(self, device: str | int | None = None, *, model_rate: int,
@@ -369,8 +454,7 @@ class MicSource:
                 return False
             self._close_stream()
             try:
-                self.sd._terminate()
-                self.sd._initialize()
+                reinitialise_portaudio(self.sd)
                 dev = resolve_device(self.sd, name)
                 if int(dev["default_rate"]) != self.native_rate:
                     continue
@@ -405,12 +489,20 @@ class MicSource:
                     whole = raw.size - raw.size % ch
                     carry = raw[whole:]
                     frames = raw[:whole].reshape(-1, ch)
+                    limit = None if self.max_seconds is None else \
+                        int(round(self.max_seconds * self.native_rate))
+                    if limit is not None and got + frames.shape[0] >= limit:
+                        # exactly `max_seconds` of audio, the resampler's tail included
+                        frames = frames[:limit - got]
+                        y = np.concatenate((resample(downmix(frames)),
+                                            resample(np.zeros(0, np.float32), last=True)))
+                        if y.size:
+                            self.ring.write(y)
+                        return
                     got += frames.shape[0]
                     y = resample(downmix(frames))
                     if y.size:
                         self.ring.write(y)
-                    if self.max_seconds is not None and got >= self.max_seconds * self.native_rate:
-                        return
                     continue
                 stream = self._stream
                 problem = None

@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import math
+import threading
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -36,7 +38,25 @@ class TruthTrack:
 
 
 def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None) -> TruthTrack:
+    """Parse truth lines (see module docstring).
+
+    Parameters
+    ----------
+    text : str
+        The file's text.
+    where : str
+        The file name, for messages.
+    classes : tuple of str, optional
+        When given, every label must be one of them.
+
+    Raises
+    ------
+    TruthError
+        A malformed line, a time that is not a finite number >= 0, a span that ends before
+        it starts, lines out of time order, or overlapping spans; naming the file and line.
+    """
     spans = []
+    last_onset, last_line = -math.inf, 0
     for n, line in enumerate(text.splitlines(), 1):
         body = line.split("#", 1)[0].strip()
         if not body:
@@ -49,6 +69,8 @@ def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None
         except ValueError:
             raise TruthError(f"{where}: line {n} has a time that is not a number: {line!r}") from None
         label = parts[2].strip()
+        if not (math.isfinite(onset) and math.isfinite(offset)):
+            raise TruthError(f"{where}: line {n} has a time that is not finite: {line!r}")
         if onset < 0 or offset < 0:
             raise TruthError(f"{where}: line {n} has a negative time ({onset:g}, {offset:g})")
         if offset <= onset:
@@ -56,8 +78,11 @@ def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None
         if classes is not None and label not in classes:
             raise TruthError(f"{where}: line {n} has label {label!r}, which is not one of the "
                              f"model's classes ({', '.join(classes)})")
+        if onset < last_onset:
+            raise TruthError(f"{where}: line {n} starts at {onset:g} s, before line {last_line} "
+                             f"({last_onset:g} s): lines must be in time order")
+        last_onset, last_line = onset, n
         spans.append(Span(onset, offset, label))
-    spans.sort(key=lambda s: s.onset)
     for a, b in zip(spans, spans[1:]):
         if b.onset < a.offset - 1e-9:
             raise TruthError(f"{where}: spans overlap ({a.onset:g}-{a.offset:g} {a.label} and "
@@ -88,8 +113,6 @@ class LiveTruth:
     """
 
     def __init__(self, classes: tuple[str, ...]) -> None:
-        import threading
-
         self.classes = classes
         self._lock = threading.Lock()
         self._closed: list[Span] = []

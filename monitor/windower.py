@@ -59,3 +59,16 @@ class Windower:
             self._buf = self._buf[drop:]
             self._buf_start += drop
         return out
+
+
+def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
+    """Every whole window of `window` samples, one every `hop`, of a signal held in memory.
+
+    The same cut the `Windower` makes of a stream without gaps: window k starts at sample
+    ``k * hop``. Returns a read-only strided view of shape ``(n, window)``.
+    """
+    x = np.asarray(x)
+    if x.shape[0] < window:
+        return np.zeros((0, window), x.dtype)
+    view = np.lib.stride_tricks.sliding_window_view(x, window)
+    return view[::hop]

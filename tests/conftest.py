@@ -1,6 +1,7 @@
 import os
 import subprocess
 import sys
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -21,10 +22,47 @@ def tour(tmp_path_factory):
 
 
 @pytest.fixture(scope="session")
+def tour_windows(tour, demo_card):
+    """How many windows of the demo card the tour holds: 1 + (samples - window) // hop."""
+    n = sf.info(str(tour[0])).frames
+    return 1 + (n - demo_card.window_samples) // demo_card.hop_samples
+
+
+@pytest.fixture(scope="session")
 def demo_card():
-    from monitor.spec import load_card
+    from monitor.card import load_card
 
     return load_card(MODELS / "demo.toml")
+
+
+@dataclass
+class CliResult:
+    returncode: int
+    stdout: str
+    stderr: str
+
+
+def cli(*args, cwd=None) -> CliResult:
+    """Run `scenemon` in this process (where a subprocess adds nothing: parsing, bad input,
+    reports); stdout and stderr are captured."""
+    import contextlib
+    import io
+
+    from monitor.cli import main
+
+    out, err = io.StringIO(), io.StringIO()
+    old = os.getcwd()
+    try:
+        if cwd:
+            os.chdir(cwd)
+        with contextlib.redirect_stdout(out), contextlib.redirect_stderr(err):
+            try:
+                code = main([str(a) for a in args])
+            except SystemExit as exc:  # argparse's own exits
+                code = exc.code if isinstance(exc.code, int) else 2
+    finally:
+        os.chdir(old)
+    return CliResult(int(code), out.getvalue(), err.getvalue())
 
 
 def run_cli(*args, timeout=300, env=None, cwd=None):

@@ -7,20 +7,19 @@ import numpy as np
 import pytest
 
 from conftest import MODELS, run_cli
-from monitor.capture import AudioHistory, CapturePolicy, CaptureSettings, safe_label
+from monitor.capture import AudioHistory, CapturePolicy, CaptureSettings
+from monitor.engine import WindowResult
+from monitor.snippets import safe_label
 
 CLASSES = ("a", "b", "c")
 
 
-class W:
-    """A minimal window result for the policy."""
-
-    def __init__(self, i, truth, decision, smoothed=(0.9, 0.05, 0.05), hop=0.5):
-        self.t0, self.t1 = i * hop, i * hop + 1.0
-        self.truth, self.decision = truth, decision
-        self.smoothed = np.array(smoothed)
-        self.probs = self.smoothed
-        self.top = CLASSES[int(np.argmax(self.smoothed))]
+def W(i, truth, decision, smoothed=(0.9, 0.05, 0.05), hop=0.5, **kw):
+    """A window result for the policy (the engine's own type)."""
+    sm = np.array(smoothed)
+    return WindowResult(i=i, start=int(i * hop * 100), t0=i * hop, t1=i * hop + 1.0, probs=sm,
+                        smoothed=sm, top=CLASSES[int(np.argmax(sm))], decision=decision,
+                        truth=truth, level_dbfs=-20.0, clipped=0.0, gap=0, ms=0.0, **kw)
 
 
 def drive(seq, settings, seconds=None):

@@ -5,8 +5,8 @@ import pytest
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
+from monitor.card import DecisionSettings
 from monitor.decide import Decider, Hysteresis, Smoother, decide_sequence
-from monitor.spec import DecisionSettings
 
 
 def two_class(p):
@@ -14,19 +14,31 @@ def two_class(p):
 
 
 def test_mean_worked_example():
-    # REFERENCES.md (computed): causal mean, N = 3
+    # causal mean over the last min(t+1, 3) windows (posterior averaging, Zhang et al. 2017,
+    # "Hello Edge"), worked by hand: .9; (.9+.1)/2; (.9+.1+.8)/3; (.1+.8+.2)/3; (.8+.2+.9)/3
     s = Smoother(DecisionSettings(smoothing="mean", smoothing_windows=3))
     out = [s.update(p)[0] for p in two_class([.9, .1, .8, .2, .9])]
-    np.testing.assert_allclose(out, [.9, .5, .6, .366667, .633333], atol=1e-5)
+    np.testing.assert_allclose(out, [.9, .5, .6, 1.1 / 3, 1.9 / 3], atol=1e-12)
 
 
 def test_ema_worked_example_and_time_constant():
-    # REFERENCES.md: a = 0.5, p = [1, 0, 0, 1, 1] -> [1, .5, .25, .625, .8125]
+    # exponential smoothing s_t = a p_t + (1 - a) s_{t-1} from s_0 = p_0, worked by hand for
+    # a = 0.5: 1, .5, .25, .625, .8125; and it equals scipy.signal.lfilter([a], [1, a - 1])
+    # after the first value
+    import scipy.signal
+
+    p = [1, 0, 0, 1, 1]
     s = Smoother(DecisionSettings(smoothing="ema", ema_alpha=0.5))
-    out = [s.update(p)[0] for p in two_class([1, 0, 0, 1, 1])]
+    out = [s.update(v)[0] for v in two_class(p)]
     np.testing.assert_allclose(out, [1, .5, .25, .625, .8125])
-    # a = 1 - exp(-h / tau): 0.22120 for h = 0.5 s, tau = 2 s
-    assert 1 - np.exp(-0.5 / 2) == pytest.approx(0.22120, abs=1e-5)
+    zi = scipy.signal.lfiltic([0.5], [1, -0.5], y=[p[0]])
+    ref, _ = scipy.signal.lfilter([0.5], [1, -0.5], p[1:], zi=zi)
+    np.testing.assert_allclose(out[1:], ref)
+    # a time constant tau at hop h: a = 1 - exp(-h / tau) (a first-order low-pass sampled
+    # every h, common practice); tau = 2 s at h = 0.5 s keeps exp(-1/4) of the old value
+    s = Smoother(DecisionSettings(smoothing="ema", ema_alpha=float(1 - np.exp(-0.5 / 2))))
+    out = [s.update(v)[0] for v in two_class([1, 0])]
+    assert out[1] == pytest.approx(np.exp(-0.25), abs=1e-12)
 
 
 def test_median_normalised_and_zero_sum_fallback():

@@ -11,12 +11,13 @@ import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
+from monitor.card import card_from_dict, load_card
 from monitor.device import C_SOURCES
 from monitor.device.constants import header
-from monitor.device.parity import read_csv, windows_of
+from monitor.device.vectors import read_csv
 from monitor.frontend import FrontEnd
 from monitor.runners import load_runner
-from monitor.spec import card_from_dict, load_card
+from monitor.windower import windows_of
 
 HARNESS = ROOT / "tests" / "c" / "harness.c"
 
@@ -74,6 +75,7 @@ def tour_pcm(tour, tmp_path_factory):
 @pytest.mark.parametrize("scale,triangles,norm", [("htk", "mel", "none"), ("htk", "hz", "none"),
                                                   ("slaney", "hz", "slaney"),
                                                   ("slaney", "mel", "none")])
+@pytest.mark.system
 @pytest.mark.parametrize("pcm_bits,mode", [(16, "i16"), (0, "f32"), (16, "f32")])
 def test_c_front_end_matches_python_over_the_tour(tmp_path, tour_pcm, scale, triangles, norm,
                                                    pcm_bits, mode):
@@ -94,6 +96,7 @@ def test_c_front_end_matches_python_over_the_tour(tmp_path, tour_pcm, scale, tri
     assert float(np.max(np.abs(ours - ref_scaled))) <= 1e-3
 
 
+@pytest.mark.system
 def test_c_fft_matches_numpy(tmp_path):
     # the C radix-2 FFT against numpy.fft.rfft on random input: relative error below 1e-5
     card = card_variant("htk", "mel", 0)
@@ -109,7 +112,8 @@ def test_c_fft_matches_numpy(tmp_path):
 
 
 def test_sparse_table_in_the_header_matches_references():
-    # REFERENCES.md: the TensorFlow-style 10-band bank has these first bins and lengths
+    # the sparse form of tf.signal.linear_to_mel_weight_matrix(10, 257, 16000, 0, 8000): these
+    # first bins and lengths are computed from TensorFlow in test_frontend's bank check
     card = card_from_dict({"classes": ["a", "b"], "frontend": {"mel_bands": 10,
                            "mel_triangles": "mel", "fmax": 8000.0}})
     text = header(card)
@@ -118,13 +122,16 @@ def test_sparse_table_in_the_header_matches_references():
     assert "#define SM_MEL_COEFFS 448" in text
 
 
+@pytest.mark.system
 def test_golden_vectors_rerun_through_python(tmp_path, tour):
+    # LiteRT's own runtime this time (the default is the microcontroller one: test_micro.py)
     out = tmp_path / "gv"
     r = run_cli("vectors", "--model", MODELS / "demo.int8.tflite", tour[0], "--out", out,
-                "--count", "30")
+                "--count", "30", "--runtime", "litert")
     assert r.returncode == 0, r.stderr
     for name in ("pcm.csv", "features.csv", "output.csv", "input_int8.csv", "output_int8.csv",
-                 "meta.json", "frontend_constants.h", "frontend.c", "frontend.h"):
+                 "meta.json", "frontend_constants.h", "frontend.c", "frontend.h", "check.c",
+                 "check_params.h", "Makefile"):
         assert (out / name).is_file(), name
     meta = json.loads((out / "meta.json").read_text())
     card = load_card(MODELS / "demo.int8.toml")
@@ -139,9 +146,11 @@ def test_golden_vectors_rerun_through_python(tmp_path, tour):
     np.testing.assert_array_equal(np.stack([r[1] for r in raw]), read_csv(out / "output_int8.csv"))
     assert meta["quantization"]["output_scale"] == pytest.approx(1 / 256)
     assert meta["model_sha256"] == runner.sha256 and meta["windows"] == 30
-    # the tour's own windows: pcm.csv is the tour cut at the card's hop
+    # the rows are the tour's own windows at the card's hop, at the starts meta.json lists
     x, _ = sf.read(str(tour[0]), dtype="int16")
-    np.testing.assert_array_equal(pcm, windows_of(x, card)[:30])
+    idx = [int(round(t / card.hop_s)) for t in meta["window_starts_s"]]
+    assert idx == sorted(idx) and len(set(idx)) == 30
+    np.testing.assert_array_equal(pcm, windows_of(x, card.window_samples, card.hop_samples)[idx])
     # and the shipped C sources compile against the written header
     cc = compiler()
     r = subprocess.run([cc, "-std=c99", "-Wall", "-Werror", "-c", str(out / "frontend.c"),
@@ -159,15 +168,17 @@ def quantized(tour, tmp_path_factory):
     return out
 
 
+@pytest.mark.slow
 def test_quantize_writes_model_and_card(quantized):
     assert quantized.is_file() and quantized.with_suffix(".toml").is_file()
     text = quantized.with_suffix(".toml").read_text()
     assert text.startswith("# int8 model site.int8.tflite") and "[frontend]" in text
     card = load_card(quantized.with_suffix(".toml"))
     r = load_runner(quantized, card)
-    assert r.kind == "tflite-int8"
+    assert r.model_kind == "tflite-int8"
 
 
+@pytest.mark.slow
 def test_quantisation_maths_against_tflite(quantized):
     # TFLite's own reported scale and zero point: int8 = round(x / scale) + zero_point, saturated
     from ai_edge_litert.interpreter import Interpreter
@@ -184,15 +195,16 @@ def test_quantisation_maths_against_tflite(quantized):
     assert out["quantization"][0] == pytest.approx(1 / 256) and out["quantization"][1] == -128
 
 
-def test_int8_agrees_with_float_on_the_tour(quantized, tour):
+@pytest.mark.slow
+def test_int8_agrees_with_float_on_the_tour(quantized, tour, tour_windows):
     # issue 6: top-1 agreement >= 95% for the demo model; compare gates with --min-agree
     r = run_cli("compare", "--model", MODELS / "demo.keras", "--model", quantized, tour[0],
                 "--json", "--min-agree", "0.95", timeout=600)
     assert r.returncode == 0, r.stderr
     res = json.loads(r.stdout)
-    assert res["top1_agreement"] >= 0.95 and res["windows"] == 459
+    assert res["top1_agreement"] >= 0.95 and res["windows"] == tour_windows
     assert res["frontend_float32_vs_float64_max_abs"] < 1e-3
-    assert sum(map(sum, res["confusion_a_vs_b"])) == 459
+    assert sum(map(sum, res["confusion_a_vs_b"])) == tour_windows
     r = run_cli("compare", "--model", MODELS / "demo.tflite", "--model",
                 MODELS / "demo.int8.tflite", tour[0], "--min-agree", "1.0")
     assert r.returncode in (0, 1)

@@ -18,7 +18,7 @@ import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
 from monitor.repair import check_whole, repair
-from monitor.session import load_session
+from monitor.session_reader import load_session
 
 
 @pytest.fixture(scope="module")
@@ -31,24 +31,36 @@ def wrong_truth_clip(tour, tmp_path_factory):
     return d / "clip.wav", d / "clip.tsv"
 
 
+def _start_and_kill(wav, tsv, out, delay):
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "replay", str(wav), "--model",
+                          str(MODELS / "demo.tflite"), "--truth", str(tsv), "--out", str(out),
+                          "--headless", "--capture-every", "1"],
+                         cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
+    t = time.time()
+    while not (out / "windows.jsonl").exists() and time.time() - t < 60:
+        time.sleep(0.02)
+    time.sleep(delay)
+    p.send_signal(signal.SIGKILL)
+    p.wait()
+    return out
+
+
+@pytest.mark.slow
 def test_kill_9_at_random_moments_loses_nothing_written(wrong_truth_clip, tmp_path):
-    # 20 seeded kills of a real-time replay with capture; after each, every file is readable,
-    # every sidecar matches its audio, the audio reaches to within 1.5 s of the last window,
-    # and repair makes the session whole
+    # 20 seeded kills of a real-time replay with capture, five processes at a time, the kill
+    # moments stratified over 0.2-4 s (one in each of 20 equal strata, seeded jitter); after
+    # each, every file is readable, every sidecar matches its audio, the audio reaches to
+    # within 1.5 s of the last window, and repair makes the session whole
+    from concurrent.futures import ThreadPoolExecutor
+
     rng = random.Random(20261201)
     wav, tsv = wrong_truth_clip
-    for k in range(20):
-        out = tmp_path / f"k{k}"
-        p = subprocess.Popen([sys.executable, "-m", "monitor", "replay", str(wav), "--model",
-                              str(MODELS / "demo.tflite"), "--truth", str(tsv), "--out", str(out),
-                              "--headless", "--capture-every", "1"],
-                             cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL)
-        t = time.time()
-        while not (out / "windows.jsonl").exists() and time.time() - t < 30:
-            time.sleep(0.02)
-        time.sleep(rng.uniform(0.2, 4.0))
-        p.send_signal(signal.SIGKILL)
-        p.wait()
+    edges = np.linspace(0.2, 4.0, 21)
+    delays = [rng.uniform(a, b) for a, b in zip(edges, edges[1:])]
+    with ThreadPoolExecutor(5) as pool:
+        outs = list(pool.map(lambda kd: _start_and_kill(wav, tsv, tmp_path / f"k{kd[0]}", kd[1]),
+                             enumerate(delays)))
+    for k, out in enumerate(outs):
         assert check_whole(out) == [], (k, check_whole(out))
         lines = (out / "windows.jsonl").read_bytes().split(b"\n")
         wins = [json.loads(x) for x in lines[:-1]]
@@ -86,7 +98,8 @@ def _tmpfs(path: Path, size: str) -> bool:
                           capture_output=True).returncode == 0
 
 
-def test_disk_full_monitoring_goes_on(tmp_path, tour):
+@pytest.mark.system
+def test_disk_full_monitoring_goes_on(tmp_path, tour, tour_windows):
     disk = tmp_path / "small"
     if not _tmpfs(disk, "1m"):
         if os.environ.get("SCENEMON_REQUIRE_TMPFS") == "1":
@@ -98,7 +111,7 @@ def test_disk_full_monitoring_goes_on(tmp_path, tour):
                     "--fast", "--headless", "--out", out)
         assert r.returncode == 1
         # monitoring went on: every window was still decided and printed
-        assert len(r.stdout.splitlines()) == 459
+        assert len(r.stdout.splitlines()) == tour_windows
         errors = [x for x in r.stderr.splitlines() if "writing stopped" in x]
         assert len(errors) >= 1 and "No space left" in errors[0]
         # what was written is intact
@@ -112,47 +125,42 @@ def test_disk_full_monitoring_goes_on(tmp_path, tour):
         subprocess.run(["umount", str(disk)], capture_output=True)
 
 
-def test_slow_disk_never_slows_decisions(tour, demo_card, tmp_path):
-    # Fault injection: a writer that sleeps on every window line (a slow disk on demand)
+@pytest.mark.slow
+def test_slow_disk_never_slows_decisions(tour, demo_card, tmp_path, monkeypatch, tour_windows):
+    # Fault injection (a fake, because a real disk cannot be made slow on demand): the session
+    # writer's serialisation sleeps 10 ms per window line, on the writer's own thread
+    import monitor.session_writer as sw
     from monitor.engine import Engine
     from monitor.runners import load_runner
-    from monitor.session import SessionWriter
     from monitor.sources import FileSource
 
-    class SlowWriter(SessionWriter):
-        def on_window(self, result):
-            super().on_window(result)
-
-    writer = SlowWriter(tmp_path / "s", {"classes": list(demo_card.classes)}, sample_rate=16000)
-    real_dumps = __import__("monitor.session", fromlist=["dumps"]).dumps
+    real_dumps = sw.dumps
 
     def slow_dumps(obj, **kw):
         time.sleep(0.01)
         return real_dumps(obj, **kw)
 
-    import monitor.session as ms
-
-    ms.dumps, saved = slow_dumps, ms.dumps
-    try:
-        src = FileSource(tour[0], model_rate=16000, window_samples=16000)
-        eng = Engine(demo_card, load_runner(MODELS / "demo.tflite", demo_card), src,
-                     observers=[writer])
-        t = time.perf_counter()
-        summary = eng.run()
-        t_engine = time.perf_counter() - t
-        writer.close(summary)
-    finally:
-        ms.dumps = saved
-    assert t_engine < 459 * 0.01  # the engine finished before the slow disk could have
-    assert len((tmp_path / "s" / "windows.jsonl").read_text().splitlines()) == 459
+    monkeypatch.setattr(sw, "dumps", slow_dumps)
+    writer = sw.SessionWriter(tmp_path / "s", {"classes": list(demo_card.classes)},
+                              sample_rate=16000)
+    src = FileSource(tour[0], model_rate=16000, window_samples=16000)
+    eng = Engine([(demo_card, load_runner(MODELS / "demo.tflite", demo_card))], src,
+                 observers=[writer])
+    t = time.perf_counter()
+    summary = eng.run()
+    t_engine = time.perf_counter() - t
+    writer.close(summary)
+    assert t_engine < tour_windows * 0.01  # the engine finished before the slow disk could have
+    assert len((tmp_path / "s" / "windows.jsonl").read_text().splitlines()) == tour_windows
 
 
+@pytest.mark.slow
 def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
     # 10 minutes of tour audio at fast pace through the whole chain with capture
     from monitor.capture import CapturePolicy, CaptureSettings
     from monitor.engine import Engine
     from monitor.runners import load_runner
-    from monitor.session import SessionWriter
+    from monitor.session_writer import SessionWriter
     from monitor.sources import FileSource
     from monitor.truth import load_truth
 
@@ -171,7 +179,7 @@ def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
                 rss.append((r.t1, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss))
 
     src = FileSource(tmp_path / "long.wav", model_rate=sr, window_samples=16000)
-    eng = Engine(demo_card, load_runner(MODELS / "demo.tflite", demo_card), src,
+    eng = Engine([(demo_card, load_runner(MODELS / "demo.tflite", demo_card))], src,
                  truth=lambda a, b: truth.label_for(a % 230.0, a % 230.0 + (b - a)),
                  observers=[writer, cap, Watch()])
     summary = eng.run()
@@ -188,6 +196,7 @@ def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
         assert w.getnframes() == 600 * sr
 
 
+@pytest.mark.system
 def test_no_network_needed(tmp_path):
     # the tool opens no network connection: the demo runs in a namespace without a network
     if not shutil.which("unshare"):
@@ -236,4 +245,4 @@ def test_an_unclosed_session_is_reported_at_the_next_start(tmp_path):
     sf.write(str(wav), np.zeros(32000, np.float32), 16000)
     r = run_cli("replay", wav, "--model", root / "models" / "demo.tflite", "--fast", cwd=root)
     assert r.returncode == 0, r.stderr
-    assert f"{crashed} did not close cleanly" in r.stderr and "scenemon repair" in r.stderr
+    assert f"{crashed} did not close cleanly" in r.stderr and f"repair {crashed}" in r.stderr

@@ -25,6 +25,7 @@ from monitor.frontend import mel_band_edges
 from monitor.runners import load_runner
 from monitor.sources import FileSource
 
+pytestmark = [pytest.mark.system, pytest.mark.slow]
 SERVER = Path(__file__).with_name("audio_server.sh")
 REQUIRED = os.environ.get("SCENEMON_REQUIRE_AUDIO") == "1"
 
@@ -107,7 +108,7 @@ def test_tone_sequence_reaches_the_right_bands_in_order(pulse, tmp_path, demo_ca
     wav = tones(tmp_path / "tones.wav")
     src = MicSource("pulse", model_rate=16000, window_samples=16000, max_seconds=20)
     keep = Keep()
-    eng = Engine(demo_card, load_runner(MODELS / "demo.tflite", demo_card), src,
+    eng = Engine([(demo_card, load_runner(MODELS / "demo.tflite", demo_card))], src,
                  observers=[keep], keep_features=True)
     player = threading.Timer(1.0, lambda: subprocess.run(["paplay", str(wav)]))
     player.start()
@@ -124,7 +125,7 @@ def test_tone_sequence_reaches_the_right_bands_in_order(pulse, tmp_path, demo_ca
 
     # and it matches a replay of the same file through the file source (same resampler)
     replay = Keep()
-    Engine(demo_card, load_runner(MODELS / "demo.tflite", demo_card),
+    Engine([(demo_card, load_runner(MODELS / "demo.tflite", demo_card))],
            FileSource(wav, model_rate=16000, window_samples=16000), observers=[replay],
            keep_features=True).run()
     rb = dominant_bands(replay.results, demo_card)
@@ -143,7 +144,8 @@ class SlowRunner:
 
     def __init__(self, inner, sleep_s):
         self.inner, self.sleep_s = inner, sleep_s
-        self.path, self.sha256, self.kind = inner.path, inner.sha256, inner.kind
+        self.path, self.sha256 = inner.path, inner.sha256
+        self.model_kind, self.runtime = inner.model_kind, inner.runtime
 
     def predict(self, feats):
         time.sleep(self.sleep_s * len(feats))
@@ -169,7 +171,7 @@ def test_slow_model_file_source_counts_overruns(tmp_path, demo_card):
                      realtime=True, ring_seconds=2.0)
     keep = Keep()
     runner = SlowRunner(load_runner(MODELS / "demo.tflite", demo_card), 1.2)
-    summary = Engine(demo_card, runner, src, observers=[keep], max_batch=1).run()
+    summary = Engine([(demo_card, runner)], src, observers=[keep], max_batch=1).run()
     _check_overrun_run(keep.results, summary, demo_card, src.ring.capacity, 16.0)
 
 
@@ -180,7 +182,7 @@ def test_slow_model_live_counts_overruns(pulse, demo_card):
                     max_seconds=12)
     keep = Keep()
     runner = SlowRunner(load_runner(MODELS / "demo.tflite", demo_card), 1.2)
-    summary = Engine(demo_card, runner, src, observers=[keep], max_batch=1).run()
+    summary = Engine([(demo_card, runner)], src, observers=[keep], max_batch=1).run()
     _check_overrun_run(keep.results, summary, demo_card, src.ring.capacity, 12.0)
     assert summary["clean"]
 

@@ -13,7 +13,7 @@ import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli, sine, write_wav
 from monitor.demo import CLASSES
-from monitor.session import load_session
+from monitor.session_reader import load_session
 
 
 def read_windows(d):
@@ -84,6 +84,7 @@ def test_held_out_synthetic_accuracy(demo_card):
     assert acc >= 0.90
 
 
+@pytest.mark.slow
 def test_fast_and_realtime_replay_identical(tmp_path, tour):
     x, _ = sf.read(str(tour[0]), dtype="float32")
     clip = write_wav(tmp_path / "clip.wav", x[16000 * 28:16000 * 36])  # across a transition
@@ -106,7 +107,7 @@ def test_thirty_seconds_hop_one_gives_thirty_windows(tmp_path):
     card = (MODELS / "demo.toml").read_text().replace("hop_s = 0.5", "hop_s = 1.0")
     (tmp_path / "m.toml").write_text(card)
     wav = write_wav(tmp_path / "n.wav", np.random.default_rng(0).standard_normal(16000 * 30) * 0.05)
-    r = run_cli("replay", wav, "--model", MODELS / "demo.tflite", "--spec", tmp_path / "m.toml",
+    r = run_cli("replay", wav, "--model", MODELS / "demo.tflite", "--card", tmp_path / "m.toml",
                 "--fast", "--out", tmp_path / "s")
     assert r.returncode == 0, r.stderr
     assert len(read_windows(tmp_path / "s")) == 30
@@ -130,7 +131,7 @@ def test_foreign_rate_and_channels_are_resampled(tmp_path, demo_card):
             feats.append(r.features)
 
     src = FileSource(tmp_path / "st.wav", model_rate=16000, window_samples=16000)
-    eng = Engine(demo_card, load_runner(MODELS / "demo.tflite", demo_card), src,
+    eng = Engine([(demo_card, load_runner(MODELS / "demo.tflite", demo_card))], src,
                  observers=[Keep()], keep_features=True)
     eng.run()
     assert len(feats) == 7
@@ -143,6 +144,7 @@ def test_foreign_rate_and_channels_are_resampled(tmp_path, demo_card):
     assert abs(float(feats[3][:, band].mean() - direct[:, band].mean())) < 0.05
 
 
+@pytest.mark.slow
 def test_wav_stays_readable_when_killed(tmp_path, tour):
     # DESIGN.md: the header is rewritten about once a second, so a killed process leaves a WAV
     # that Python's own `wave` module (not only libsndfile) opens

@@ -10,10 +10,10 @@ import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT
+from monitor.card import card_from_dict, load_card
 from monitor.errors import ModelError
 from monitor.frontend import FrontEnd
 from monitor.runners import load_runner
-from monitor.spec import card_from_dict, load_card
 
 
 @pytest.fixture(scope="module")
@@ -29,6 +29,7 @@ def keras_runner(demo_card):
     return load_runner(MODELS / "demo.keras", demo_card)
 
 
+@pytest.mark.slow
 def test_tflite_float_matches_keras(keras_runner, tour_features):
     # the converted artifact gives the Keras model's numbers (YAMNet's export.py habit)
     lite = load_runner(MODELS / "demo.tflite", load_card(MODELS / "demo.toml"))
@@ -40,7 +41,7 @@ def test_tflite_float_matches_keras(keras_runner, tour_features):
 def test_int8_top1_agreement_on_tour(tour_features):
     f = load_runner(MODELS / "demo.tflite", load_card(MODELS / "demo.toml"))
     q = load_runner(MODELS / "demo.int8.tflite", load_card(MODELS / "demo.int8.toml"))
-    assert q.kind == "tflite-int8"
+    assert q.model_kind == "tflite-int8"
     agree = np.mean(np.argmax(f.predict(tour_features), 1) == np.argmax(q.predict(tour_features), 1))
     assert agree >= 0.95
 
@@ -51,14 +52,20 @@ def test_int8_quantisation_uses_tensor_params():
     x = np.array([-1e9, -1.0, 0.0, 0.37, 1e9], np.float32)
     ref = np.clip(np.round(x / q.in_scale) + q.in_zero, -128, 127).astype(np.int8)
     np.testing.assert_array_equal(q.quantize_input(x), ref)
-    # a softmax output gets scale 1/256 and zero point -128 (REFERENCES.md)
+    # a softmax output gets scale 1/256 and zero point -128 (TFLite 8-bit quantization
+    # specification, the softmax operator's output constraint)
     assert q.out_scale == pytest.approx(1 / 256) and q.out_zero == -128
 
 
+@pytest.mark.slow
 def test_batch_call_equals_one_by_one(keras_runner, tour_features):
+    # the engine's path evaluates one window per call, so a window's numbers never depend on
+    # its batch; the offline batch call gives the same probabilities up to float rounding
     a = keras_runner.predict(tour_features[:9])
     b = np.concatenate([keras_runner.predict(tour_features[i:i + 1]) for i in range(9)])
     np.testing.assert_array_equal(a, b)
+    c = keras_runner.predict_batch(tour_features[:9])
+    assert c.shape == a.shape and np.max(np.abs(c - a)) <= 1e-5
 
 
 def _tiny(tmp_path, kind):
@@ -82,6 +89,7 @@ def _tiny(tmp_path, kind):
     return path
 
 
+@pytest.mark.slow
 def test_lambda_layer_refused_unless_trusted(tmp_path, demo_card, keras_runner):
     path = _tiny(tmp_path, "lambda")
     with pytest.raises(ModelError, match="Lambda.*--trust-model"):
@@ -89,11 +97,13 @@ def test_lambda_layer_refused_unless_trusted(tmp_path, demo_card, keras_runner):
     assert load_runner(path, demo_card, trust_model=True).n_outputs == 4
 
 
+@pytest.mark.slow
 def test_two_inputs_refused(tmp_path, demo_card, keras_runner):
     with pytest.raises(ModelError, match="2 inputs"):
         load_runner(_tiny(tmp_path, "two_inputs"), demo_card)
 
 
+@pytest.mark.slow
 def test_logits_model_warns_and_softmax_on_request(tmp_path, demo_card, keras_runner):
     path = _tiny(tmp_path, "logits")
     with warnings.catch_warnings(record=True) as w:
@@ -132,7 +142,7 @@ def test_broken_model_files(tmp_path, demo_card, name, data):
 
 
 def test_tflite_never_imports_tensorflow():
-    code = ("import sys; from monitor.spec import load_card; from monitor.runners import load_runner;"
+    code = ("import sys; from monitor.card import load_card; from monitor.runners import load_runner;"
             "c = load_card('models/demo.toml'); r = load_runner('models/demo.tflite', c);"
             "import numpy as np; r.predict(np.zeros((1, 98, 40), np.float32));"
             "print('tensorflow' in sys.modules, 'keras' in sys.modules)")
@@ -142,8 +152,12 @@ def test_tflite_never_imports_tensorflow():
 
 def test_core_imports_no_ui_or_audio_device():
     # STYLE.md: the core works without textual or sounddevice imported
-    code = ("import sys; import monitor.spec, monitor.frontend, monitor.decide, monitor.session,"
-            " monitor.runners, monitor.engine, monitor.sources, monitor.ringbuffer, monitor.windower;"
-            "print(sorted(m for m in ('textual', 'sounddevice', 'tensorflow') if m in sys.modules))")
+    code = ("import sys; import monitor.card, monitor.frontend, monitor.decide, monitor.tally,"
+            " monitor.session_writer, monitor.session_reader, monitor.snippets, monitor.files,"
+            " monitor.runners, monitor.engine, monitor.sources, monitor.ringbuffer,"
+            " monitor.windower, monitor.capture, monitor.plan, monitor.assemble,"
+            " monitor.observers, monitor.novelty, monitor.review.metrics, monitor.score;"
+            "print(sorted(m for m in ('textual', 'sounddevice', 'tensorflow', 'matplotlib')"
+            " if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
     assert out.stdout.strip() == "[]", out.stderr

@@ -1,26 +1,53 @@
-"""The terminal UI: Pilot-driven sessions, snapshots, the real program under tmux, and the
-relabel view."""
+"""The terminal UI: Pilot-driven sessions (one behaviour each), snapshots, the real program
+under tmux, and the relabel view.
+
+The Pilot tests run the real chain (assemble.run_session: file source, LiteRT model,
+session writer, capture) with a file source whose blocks the test releases one at a time:
+the session clock stands still between releases (a frozen clock), so a key press lands at a
+known sample time and no test waits for real time to pass.
+"""
 
 import asyncio
 import hashlib
 import json
 import shutil
 import subprocess
+import threading
 import time
-from argparse import Namespace
 from pathlib import Path
 
 import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
-from monitor.cli import file_source, run_session
-from monitor.ui.app import MonitorApp, RelabelApp, SessionContext
+from monitor.plan import ModelPlan, OutputPlan, SessionPlan
+from monitor.sources import FileSource
+from monitor.ui.app import MonitorApp, RelabelApp, session_starter
 from monitor.ui.screens import StageScreen
 
-DEFAULT_ARGS = Namespace(capture="disagreement,uncertain", capture_on="decision", pre_roll=0.5,
-                         post_roll=0.5, max_snippet=10.0, capture_every=5.0,
-                         uncertain_below=0.5, uncertain_margin=0.1)
+
+class SteppedSource(FileSource):
+    """The real file source, held at each 0.5 s block until the test releases it (the
+    fault-free way to freeze the session clock; a fake only in its pacing)."""
+
+    def __init__(self, *a, **kw):
+        super().__init__(*a, realtime=False, block_s=0.5, **kw)
+        self.permits = threading.Semaphore(0)
+
+    def release(self, blocks: int) -> None:
+        for _ in range(blocks):
+            self.permits.release()
+
+    def _put(self, y):
+        while not self.permits.acquire(timeout=0.05):
+            if self._stop.is_set():
+                return
+        super()._put(y)
+
+    def stop(self) -> None:
+        self._stop.set()
+        self.release(1000)
+        super().stop()
 
 
 def clip_of(tour, tmp_path, start_s, seconds, name="clip.wav"):
@@ -30,18 +57,11 @@ def clip_of(tour, tmp_path, start_s, seconds, name="clip.wav"):
     return path
 
 
-def make_app(audio, out, *, fast, truth=None, **kw):
-    def start(hooks):
-        def ready(engine, capture, writer, live, card):
-            hooks.ready(SessionContext(engine, capture, writer, live, card))
-
-        return run_session(make_source=file_source(audio, fast=fast), name="t",
-                           model=str(MODELS / "demo.tflite"), spec=None, truth_path=truth,
-                           out=str(out), no_audio=False, observers_extra=[hooks.bridge],
-                           args=DEFAULT_ARGS, on_ready=ready, stop=hooks.stop, live_truth=True,
-                           keep_features=True)
-
-    return MonitorApp(start, heading="test clip", **kw)
+def make_app(source, out, *, truth=None, **kw):
+    plan = SessionPlan(source=source, models=(ModelPlan(MODELS / "demo.tflite"),),
+                       output=OutputPlan(out, "t"), truth=truth)
+    kw.setdefault("show_timings", False)
+    return MonitorApp(session_starter(plan), heading="test", **kw)
 
 
 async def wait_for(pilot, cond, timeout=30.0):
@@ -49,97 +69,176 @@ async def wait_for(pilot, cond, timeout=30.0):
     while not cond():
         if time.monotonic() - t > timeout:
             raise AssertionError("timed out waiting in the UI")
-        await pilot.pause(0.05)
+        await pilot.pause(0.02)
 
 
 def panel_text(app, wid):
     return str(app.query_one(f"#{wid}").render())
 
 
-def test_pilot_drives_a_real_time_session(tour, tmp_path):
-    # 12 s of the tour's quiet room at real-time pace; keys pressed at known sample times
-    audio = clip_of(tour, tmp_path, 2.0, 12.0)
-    out = tmp_path / "s"
-    app = make_app(audio, out, fast=False, show_timings=False)
-    presses = {}
+async def step(pilot, src, blocks, windows):
+    """Release `blocks` of audio and wait until the UI has shown `windows` windows."""
+    src.release(blocks)
+    await wait_for(pilot, lambda: pilot.app.state.tally is not None
+                   and pilot.app.state.tally.windows >= windows)
+    pilot.app.redraw(force=True)
 
-    async def drive():
-        async with app.run_test(size=(80, 24)) as pilot:
-            await wait_for(pilot, lambda: app.state.windows >= 2)
-            before = app._now()
-            await pilot.press("1")
-            presses["quiet_room"] = (before, app._now())
-            await wait_for(pilot, lambda: app.state.windows >= 8)
-            app.redraw(force=True)
-            assert "agrees" in panel_text(app, "decision")
-            before = app._now()
-            await pilot.press("3")  # wrong on purpose: the sound is a quiet room
-            presses["traffic"] = (before, app._now())
-            await wait_for(pilot, lambda: app.state.truth == "traffic")
-            app.redraw(force=True)
-            assert "DIFFERS" in panel_text(app, "decision")
-            acc = app.state.correct / app.state.with_truth
-            assert f"{acc:6.1%}" in panel_text(app, "session")
-            await pilot.press("c")  # manual capture with the current truth
-            await pilot.press("p")
-            assert app.paused
-            n, w = app.redraws, app.state.windows
-            await wait_for(pilot, lambda: app.state.windows >= w + 2)
-            assert app.redraws == n  # the display is frozen, the session is not
-            await pilot.press("p")
-            await pilot.press("s")
-            assert isinstance(app.screen, StageScreen)
-            await pilot.press("s")
-            assert not isinstance(app.screen, StageScreen)
+
+@pytest.fixture
+def quiet_clip(tour, tmp_path):
+    return clip_of(tour, tmp_path, 2.0, 12.0)  # 12 s of the tour's quiet room
+
+
+def stepped(path):
+    return SteppedSource(path, model_rate=16000, window_samples=16000)
+
+
+def run_app(app, drive, size=(80, 24)):
+    async def main():
+        async with app.run_test(size=size) as pilot:
+            await drive(pilot)
             await pilot.press("q")
             await wait_for(pilot, lambda: app.finished)
-        return app.return_code
+        return app.return_code_for()
 
-    code = asyncio.run(drive())
-    assert code == 0
-    summary = json.loads((out / "summary.json").read_text())
-    assert summary["stopped_by_user"] and summary["snippets"]["manual"] == 1
+    return asyncio.run(main())
+
+
+def test_truth_keys_open_spans_at_the_press_time(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+    presses = {}
+
+    async def drive(pilot):
+        await step(pilot, src, 4, 3)  # 2 s of audio: windows ending at 1.0, 1.5, 2.0 s
+        presses["quiet_room"] = app._now()
+        await pilot.press("1")
+        await step(pilot, src, 6, 9)
+        presses["traffic"] = app._now()
+        await pilot.press("3")
+        await step(pilot, src, 2, 11)
+
+    assert run_app(app, drive) == 0
     spans = [line.split("\t") for line in (out / "truth.tsv").read_text().splitlines()]
     assert [s[2] for s in spans] == ["quiet_room", "traffic"]
-    # each span starts at the sample-clock time of its key press (the clock runs on in real
-    # time, so the press lies between the two readings around it)
-    def between(v, lo_hi):
-        return lo_hi[0] - 1e-3 <= float(v) <= lo_hi[1] + 1e-3
+    assert float(spans[0][0]) == pytest.approx(presses["quiet_room"], abs=1e-3) == 2.0
+    assert float(spans[1][0]) == pytest.approx(presses["traffic"], abs=1e-3) == 5.0
+    assert float(spans[0][1]) == pytest.approx(presses["traffic"], abs=1e-3)
 
-    assert between(spans[0][0], presses["quiet_room"])
-    assert between(spans[1][0], presses["traffic"]) and between(spans[0][1], presses["traffic"])
-    manual = list((out / "snippets" / "traffic").glob("*-manual.json"))
-    assert len(manual) == 1
-    side = json.loads(manual[0].read_text())
-    assert side["reason"] == "manual" and side["label"] == "traffic"
+
+def test_a_wrong_truth_is_marked_and_scored(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+    seen = {}
+
+    async def drive(pilot):
+        await step(pilot, src, 4, 3)
+        await pilot.press("1")
+        await step(pilot, src, 4, 7)
+        seen["agrees"] = panel_text(app, "decision")
+        await pilot.press("3")  # wrong on purpose: the sound is a quiet room
+        await step(pilot, src, 4, 11)
+        seen["differs"] = panel_text(app, "decision")
+        seen["session"] = panel_text(app, "session")
+        seen["accuracy"] = app.state.tally.accuracy
+
+    run_app(app, drive)
+    assert "agrees" in seen["agrees"] and "DIFFERS" in seen["differs"]
+    assert f"{seen['accuracy']:6.1%}" in seen["session"]
     wins = [json.loads(x) for x in (out / "windows.jsonl").read_text().splitlines()]
     assert any(w["truth"] == "traffic" and w["decision"] == "quiet_room" for w in wins)
 
 
-def test_capture_asks_for_a_label_when_no_truth(tour, tmp_path):
-    audio = clip_of(tour, tmp_path, 2.0, 8.0)
-    out = tmp_path / "s"
-    app = make_app(audio, out, fast=False, show_timings=False)
+def test_capture_key_saves_a_manual_snippet_with_the_truth(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
 
-    async def drive():
-        async with app.run_test(size=(80, 24)) as pilot:
-            await wait_for(pilot, lambda: app.state.windows >= 4)
-            await pilot.press("c")
-            await pilot.pause(0.2)
-            await pilot.press("2")  # "voices", picked in the question
-            await pilot.pause(0.2)
-            await pilot.press("q")
-            await wait_for(pilot, lambda: app.finished)
+    async def drive(pilot):
+        await step(pilot, src, 8, 7)
+        await pilot.press("3")
+        await step(pilot, src, 1, 8)
+        await pilot.press("c")
+        await step(pilot, src, 1, 9)
 
-    asyncio.run(drive())
+    run_app(app, drive)
+    manual = list((out / "snippets" / "traffic").glob("*-manual.json"))
+    assert len(manual) == 1
+    side = json.loads(manual[0].read_text())
+    assert side["reason"] == "manual" and side["label"] == "traffic"
+    assert json.loads((out / "summary.json").read_text())["snippets"]["manual"] == 1
+
+
+def test_pause_freezes_the_display_not_the_session(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+    seen = {}
+
+    async def drive(pilot):
+        await step(pilot, src, 4, 3)
+        await pilot.press("p")
+        seen["paused"] = app.paused
+        n = app.redraws
+        src.release(4)
+        await wait_for(pilot, lambda: app.state.tally.windows >= 7)
+        await pilot.pause(0.3)
+        seen["redraws"] = app.redraws - n
+        await pilot.press("p")
+
+    run_app(app, drive)
+    assert seen["paused"] and seen["redraws"] == 0
+    wins = (out / "windows.jsonl").read_text().splitlines()
+    assert len(wins) >= 7
+
+
+def test_stage_view_toggles(quiet_clip, tmp_path):
+    src = stepped(quiet_clip)
+    app = make_app(src, tmp_path / "s")
+    seen = []
+
+    async def drive(pilot):
+        await step(pilot, src, 4, 3)
+        await pilot.press("s")
+        seen.append(isinstance(app.screen, StageScreen))
+        await pilot.press("s")
+        seen.append(isinstance(app.screen, StageScreen))
+
+    run_app(app, drive)
+    assert seen == [True, False]
+
+
+def test_q_closes_the_session(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+
+    async def drive(pilot):
+        await step(pilot, src, 4, 3)
+
+    assert run_app(app, drive) == 0
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["stopped_by_user"] and summary["windows"] >= 3
+    assert (out / "truth.tsv").is_file() and (out / "audio.wav").is_file()
+
+
+def test_capture_asks_for_a_label_when_no_truth(quiet_clip, tmp_path):
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+
+    async def drive(pilot):
+        await step(pilot, src, 6, 5)
+        await pilot.press("c")
+        await pilot.pause(0.2)
+        await pilot.press("2")  # "voices", picked in the question
+        await pilot.pause(0.2)
+
+    run_app(app, drive)
     assert len(list((out / "snippets" / "voices").glob("*-manual.json"))) == 1
 
 
 @pytest.fixture
 def finished_app(tour, tmp_path):
     audio = clip_of(tour, tmp_path, 25.0, 16.0)  # quiet room into voices
-    return make_app(audio, tmp_path / "s", fast=True, show_timings=False,
-                    cpu_meter=lambda: 0.0)
+    src = FileSource(audio, model_rate=16000, window_samples=16000, realtime=False)
+    return make_app(src, tmp_path / "s", cpu_meter=lambda: 0.0)
 
 
 async def _until_finished(pilot):
@@ -161,6 +260,8 @@ def test_snapshot_stage_view(finished_app, snap_compare):
     assert snap_compare(finished_app, terminal_size=(80, 24), run_before=stage)
 
 
+@pytest.mark.system
+@pytest.mark.slow
 def test_the_real_demo_under_tmux(tmp_path):
     if not shutil.which("tmux"):
         pytest.skip("tmux not installed")
@@ -195,11 +296,18 @@ def _digest_tree(d):
             for p in sorted(d.rglob("*")) if p.is_file()}
 
 
-def test_relabel_view_changes_a_sidecar_and_nothing_else(tour, tmp_path):
-    out = tmp_path / "s"
+@pytest.fixture(scope="module")
+def snippet_session(tour, tmp_path_factory):
+    out = tmp_path_factory.mktemp("rl") / "s"
     r = run_cli("replay", tour[0], "--model", MODELS / "demo.int8.tflite", "--truth", tour[1],
                 "--fast", "--out", out)
     assert r.returncode == 0, r.stderr
+    return out
+
+
+def test_relabel_view_changes_a_sidecar_and_nothing_else(snippet_session, tmp_path):
+    out = tmp_path / "s"
+    shutil.copytree(snippet_session, out)
     before = _digest_tree(out)
     classes = json.loads((out / "session.json").read_text())["classes"]
     first_label = min((json.loads(p.read_text()) for p in (out / "snippets").glob("*/*.json")),
@@ -233,5 +341,25 @@ def test_relabel_view_changes_a_sidecar_and_nothing_else(tour, tmp_path):
     assert second["dropped"] is True
     # harvest honours both: the relabel wins, the dropped snippet stays out
     r = run_cli("harvest", out, "--out", tmp_path / "set")
+    assert r.returncode == 0, r.stderr
     rows = (tmp_path / "set" / "manifest.csv").read_text()
     assert f"{new_label}/" in rows and second["audio_sha256"] not in rows
+
+
+@pytest.mark.parametrize("key", ["enter", "space"])
+def test_relabel_view_plays_on_enter_and_space(snippet_session, key):
+    # the README, --help and the view say enter plays: the table's own enter must not eat it
+    classes = json.loads((snippet_session / "session.json").read_text())["classes"]
+    app = RelabelApp(snippet_session, classes)
+    screens = []
+
+    async def drive():
+        async with app.run_test(size=(100, 30)) as pilot:
+            await pilot.pause(0.3)
+            screens.append(app.screen)
+            await pilot.press(key)
+            # playback ends by itself: played (an output device) or said why not (none)
+            await wait_for(pilot, lambda: screens[0].last_status.startswith(("played", "cannot")))
+
+    asyncio.run(drive())
+    assert len(screens[0].played) == 1 and screens[0].played[0].suffix == ".wav"

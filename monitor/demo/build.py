@@ -17,10 +17,10 @@ from pathlib import Path
 
 import numpy as np
 
+from monitor.card import card_from_dict
 from monitor.demo import CLASSES
 from monitor.demo.synth import clip
 from monitor.frontend import FrontEnd
-from monitor.spec import card_from_dict
 
 CARD = {
     "classes": list(CLASSES),

@@ -1,5 +1,7 @@
-"""Device parity: int8 quantisation, float-vs-int8 comparison, golden vectors, and the
-portable C front end (`frontend.c`, `frontend.h`) with its generated constants header."""
+"""Device parity: int8 quantisation (`quantize`), two models or two runtimes on the same
+windows (`compare`), golden vectors with a firmware-side check (`vectors`), what a model
+costs on the target (`budget`), and the portable C front end (`frontend.c`, `frontend.h`)
+with its generated constants header (`constants`)."""
 
 from pathlib import Path
 

@@ -9,10 +9,12 @@ feature shape in the model's input order) and the class names.
 
 from __future__ import annotations
 
+from pathlib import Path
+
 import numpy as np
 
+from monitor.card import ModelCard
 from monitor.frontend import FrontEnd
-from monitor.spec import ModelCard
 
 LOG_KIND = {"ln": 0, "log10": 1, "db": 2}
 
@@ -74,7 +76,8 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
     names = ", ".join('"' + c.replace("\\", "\\\\").replace('"', '\\"') + '"' for c in card.classes)
     lines = [
         "/* frontend_constants.h: written by `scenemon vectors` for one model card.",
-        f" * card: {card.name}" + (f"\n * model sha256: {model_sha256}" if model_sha256 else ""),
+        f" * card: {Path(card.name).name}" + (f"\n * model sha256: {model_sha256}"
+                                             if model_sha256 else ""),
         f" * {card.mel_scale} mel scale, {card.mel_triangles} triangles, norm {card.mel_norm}, "
         f"{card.window} window{' (symmetric)' if card.window_symmetric else ''}, power "
         f"{card.power:g}, log {card.log} */",
@@ -107,3 +110,20 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
         "#endif", "",
     ]
     return "\n".join(lines)
+
+
+def c_buffers(card: ModelCard) -> dict[str, int]:
+    """Bytes of every static buffer `frontend.c` keeps for this card (its RAM), by name."""
+    n, half = card.fft_length, card.fft_length // 2
+    return {"sm_cos": 4 * half, "sm_sin": 4 * half, "sm_bitrev": 2 * n, "sm_re": 4 * n,
+            "sm_im": 4 * n, "sm_power": 4 * (half + 1), "sm_pcm": 4 * card.window_samples}
+
+
+def c_tables(card: ModelCard) -> dict[str, int]:
+    """Bytes of every constant table in `frontend_constants.h` for this card (its flash)."""
+    fe = FrontEnd(card)
+    first, length, packed = sparse_bank(fe.mel_t.T)
+    mode, mean, inv_std = scaling_tables(card)
+    return {"sm_window": 4 * card.frame_length, "sm_mel_first_bin": 2 * len(first),
+            "sm_mel_length": 2 * len(length), "sm_mel_weights": 4 * packed.size,
+            "sm_scale_mean": 4 * mean.size, "sm_scale_inv_std": 4 * inv_std.size}

@@ -1,29 +1,31 @@
-"""Scores of a window stream against its truth.
+"""Metrics of a window stream against its truth, for `report`, `score` and `tune`.
 
-Window accuracy and class-wise accuracy (recall per class, and their mean) follow the
-acoustic scene metrics of Mesaros, Heittola and Virtanen 2016, "Metrics for Polyphonic
-Sound Event Detection" (Applied Sciences 6(6):162) as the `sed_eval` package implements
-them; the confusion matrix has truth in rows (scikit-learn's convention). Undecided windows
-count as wrong for accuracy and appear as their own column in the confusion matrix.
-
-Decision latency after a truth change has no standard definition for scene streams; ours:
-the time from the change (the onset of the new truth span) to the end ``t1`` of the first
-window whose decision equals the new truth. A change whose span ends first is "never
-reached".
+The counting is `monitor.tally.Tally`'s (the engine and the UI use the same one); this
+module turns a finished tally into the `Metrics` record the reports print. Window accuracy
+and class-wise accuracy follow Mesaros, Heittola and Virtanen 2016 (see `tally`); the
+confusion matrix has truth in rows (scikit-learn's convention) and undecided as its last
+column. For two models on the same windows, `paired` gives their agreement and McNemar's
+exact test on the windows where exactly one of them is right (McNemar 1947, "Note on the
+sampling error of the difference between correlated proportions or percentages",
+Psychometrika 12(2); exact binomial form).
 """
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 from typing import Any
 
-import numpy as np
+from monitor.tally import UNDECIDED, Tally, level_tally, tally_windows
 
-UNDECIDED = "(undecided)"
+__all__ = ["UNDECIDED", "Metrics", "window_metrics", "metrics_of_tally", "paired",
+           "mcnemar_exact"]
 
 
 @dataclass
-class Scores:
+class Metrics:
+    """The figures of one model's windows (see module docstring)."""
+
     classes: list[str]
     windows: int
     duration_s: float
@@ -38,9 +40,14 @@ class Scores:
     latencies: list[float] = field(default_factory=list)
     never_reached: int = 0
     truth_changes: int = 0
+    raw_changes: int | None = None  # changes of the raw top class (before smoothing)
+    levels: dict[str, Any] = field(default_factory=dict)
+    unfamiliar: dict[str, Any] | None = None
 
     @property
     def latency_median(self) -> float | None:
+        import numpy as np
+
         return float(np.median(self.latencies)) if self.latencies else None
 
     @property
@@ -55,83 +62,89 @@ class Scores:
             "confusion": {"rows_truth": self.classes, "columns": self.classes + [UNDECIDED],
                           "counts": self.confusion},
             "decision_changes": self.changes, "switches_per_min": self.switches_per_min,
+            "raw_top_changes": self.raw_changes,
             "decided_s": self.decided_s, "truth_changes": self.truth_changes,
             "latency_s_median": self.latency_median, "latency_s_worst": self.latency_worst,
-            "latency_never_reached": self.never_reached,
+            "latency_never_reached": self.never_reached, "levels": self.levels,
+            "unfamiliar": self.unfamiliar,
         }
 
 
-def switch_count(decisions: list[str | None]) -> int:
-    """Decision changes (undecided counts as a state)."""
-    return sum(1 for a, b in zip(decisions, decisions[1:]) if a != b)
+def metrics_of_tally(t: Tally) -> Metrics:
+    """A finished tally as a `Metrics` record."""
+    return Metrics(
+        classes=list(t.classes), windows=t.windows, duration_s=t.duration_s,
+        with_truth=t.with_truth, accuracy=t.accuracy, balanced_accuracy=t.balanced_accuracy,
+        per_class=t.per_class(), confusion=t.confusion.tolist(), changes=t.changes,
+        switches_per_min=t.switches_per_min, decided_s=t.decided_s(),
+        latencies=list(t.latencies), never_reached=t.never_reached,
+        truth_changes=t.truth_changes)
 
 
-def truth_changes(windows: list[dict], truth_spans=None) -> list[tuple[float, str, float]]:
-    """(onset, label, offset) of every truth span after the first: the scene changes."""
-    if truth_spans:
-        spans = sorted(truth_spans, key=lambda s: s.onset)
-        return [(s.onset, s.label, s.offset) for s in spans[1:]]
-    out, prev = [], None
-    for w in windows:  # fall back to the per-window truth
-        t = w.get("truth")
-        if t is not None and prev is not None and t != prev:
-            out.append((w["t0"], t, float("inf")))
-        if t is not None:
-            prev = t
-    return out
+def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None = None,
+                   truth_spans=None) -> Metrics:
+    """The metrics of a list of ``windows.jsonl`` records.
+
+    Parameters
+    ----------
+    windows : list of dict
+        Window records in stream order.
+    classes : list of str
+        The model's classes.
+    hop_s : float, optional
+        Seconds between windows (from the first two windows when not given).
+    truth_spans : list of Span, optional
+        The truth as spans (for the latency after each change); else the windows' own truth.
+    """
+    m = metrics_of_tally(tally_windows(windows, classes, hop_s=hop_s, spans=truth_spans))
+    tops = [w.get("top") for w in windows]
+    m.raw_changes = sum(1 for a, b in zip(tops, tops[1:]) if a != b)
+    m.levels = level_tally(windows).summary()
+    if any("novelty" in w for w in windows):
+        flagged = [w for w in windows if w.get("unfamiliar")]
+        per = {}
+        for c in classes:
+            with_c = [w for w in windows if w.get("truth") == c]
+            if with_c:
+                per[c] = sum(1 for w in with_c if w.get("unfamiliar")) / len(with_c)
+        m.unfamiliar = {"windows": len(flagged), "share": len(flagged) / len(windows)
+                        if windows else 0.0, "share_per_truth_class": per}
+    return m
 
 
-def latencies(windows: list[dict], changes) -> tuple[list[float], int]:
-    """Seconds from each change to the end of the first window deciding the new truth."""
-    lat, never = [], 0
-    for onset, label, offset in changes:
-        hit = next((w for w in windows if w["t1"] > onset and w["t0"] < offset
-                    and w.get("decision") == label), None)
-        if hit is None:
-            never += 1
-        else:
-            lat.append(round(hit["t1"] - onset, 6))
-    return lat, never
+def mcnemar_exact(b: int, c: int) -> float:
+    """Two-sided exact McNemar p-value for `b` and `c` discordant pairs: twice the binomial
+    tail ``P(X <= min(b, c))`` with ``X ~ Bin(b + c, 1/2)``, capped at 1."""
+    n = b + c
+    if n == 0:
+        return 1.0
+    k = min(b, c)
+    tail = sum(math.comb(n, i) for i in range(k + 1)) / 2.0 ** n
+    return min(1.0, 2.0 * tail)
 
 
-def score(windows: list[dict], classes: list[str], hop_s: float | None = None,
-          truth_spans=None) -> Scores:
-    """Score a list of `windows.jsonl` records (see module docstring)."""
-    n = len(windows)
-    decisions = [w.get("decision") for w in windows]
-    duration = windows[-1]["t1"] if windows else 0.0
-    if hop_s is None:
-        hop_s = (windows[1]["t0"] - windows[0]["t0"]) if n > 1 else 0.0
-    changes = switch_count(decisions)
-    minutes = duration / 60.0
-    decided = {c: 0.0 for c in classes}
-    for d in decisions:
-        if d in decided:
-            decided[d] += hop_s
-    idx = {c: i for i, c in enumerate(classes)}
-    cm = np.zeros((len(classes), len(classes) + 1), dtype=int)
-    scored = [w for w in windows if w.get("truth") in idx]
-    for w in scored:
-        d = w.get("decision")
-        cm[idx[w["truth"]], idx.get(d, len(classes)) if d is not None else len(classes)] += 1
-    correct = int(np.trace(cm[:, :len(classes)]))
-    per_class, recalls = {}, []
-    for c, i in idx.items():
-        support = int(cm[i].sum())
-        predicted = int(cm[:, i].sum())
-        tp = int(cm[i, i])
-        p = tp / predicted if predicted else None
-        r = tp / support if support else None
-        f1 = (2 * p * r / (p + r) if p and r else 0.0) if p is not None and r is not None else None
-        per_class[c] = {"support": support, "precision": p, "recall": r, "f1": f1}
-        if r is not None:
-            recalls.append(r)
-    chg = truth_changes(windows, truth_spans)
-    lat, never = latencies(windows, chg)
-    return Scores(
-        classes=list(classes), windows=n, duration_s=duration, with_truth=len(scored),
-        accuracy=correct / len(scored) if scored else None,
-        balanced_accuracy=float(np.mean(recalls)) if recalls else None,
-        per_class=per_class, confusion=cm.tolist(), changes=changes,
-        switches_per_min=changes / minutes if minutes > 0 else None, decided_s=decided,
-        latencies=lat, never_reached=never, truth_changes=len(chg))
+def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
+    """Agreement of two models' decisions on the same windows, and McNemar's exact test on
+    the windows with truth where exactly one of them is right."""
+    n = min(len(wa), len(wb))
+    same = sum(1 for a, b in zip(wa[:n], wb[:n]) if a.get("decision") == b.get("decision"))
+    only_a = only_b = both = neither = 0
+    for a, b in zip(wa[:n], wb[:n]):
+        t = a.get("truth")
+        if t is None:
+            continue
+        ra, rb = a.get("decision") == t, b.get("decision") == t
+        both += ra and rb
+        neither += not ra and not rb
+        only_a += ra and not rb
+        only_b += rb and not ra
+    p = mcnemar_exact(only_a, only_b)
+    if only_a + only_b:
+        sentence = (f"B is right on {only_b} windows where A is wrong, A on {only_a} where B is "
+                    f"wrong; p = {p:.2g} (McNemar's exact test; neighbouring windows are not "
+                    f"independent, so this p-value is optimistic)")
+    else:
+        sentence = "A and B are right and wrong on the same windows"
+    return {"windows": n, "decision_agreement": same / n if n else None,
+            "both_right": both, "neither_right": neither, "only_a_right": only_a,
+            "only_b_right": only_b, "mcnemar_p": p, "sentence": sentence}

@@ -1,93 +1,165 @@
-"""`scenemon report SESSION [--html OUT.html]`: a session's account, on the terminal and as
-one self-contained HTML page (plots embedded as SVG, snippets as inline audio players,
-every embedded string escaped; no network)."""
+"""`scenemon report SESSION [--html OUT.html] [--json]`: a session's account.
+
+On the terminal: duration, losses, silent and clipping stretches, switches (decisions and
+the raw top class), time per decided class and, with truth, accuracy, balanced accuracy,
+per-class precision / recall / F1, the confusion matrix and the latency after each truth
+change; for an A/B session both models side by side with their agreement and McNemar's test.
+
+As HTML: one self-contained page (figures embedded as SVG, snippets as inline players, every
+embedded string escaped, nothing fetched) in the palette the terminal UI uses. Snippet audio
+is embedded only after `snippets.verified_audio` accepts it.
+"""
 
 from __future__ import annotations
 
 import base64
 import html
 import io
+import json
+import sys
 from pathlib import Path
 
 import numpy as np
 
-from monitor.review.metrics import UNDECIDED, Scores, score
-from monitor.session import Session
+from monitor import palette as P
+from monitor.errors import ExitCode, ScenemonError
+from monitor.review.metrics import UNDECIDED, Metrics, paired, window_metrics
+from monitor.session_reader import Session, load_session
+from monitor.snippets import count_unreadable, iter_snippets, verified_audio
 
 MAX_EMBEDDED_SNIPPETS = 200
+REPORT_MARK = "<!-- scenemon report -->"
 
 
-def session_scores(s: Session) -> Scores:
-    hop = s.meta.get("card", {}).get("audio", {}).get("hop_s")
-    return score(s.windows, s.classes, hop_s=hop, truth_spans=s.truth.spans if s.truth else None)
+def model_metrics(s: Session) -> list[Metrics]:
+    """Metrics of each model of the session (A first)."""
+    spans = s.truth.spans if s.truth else None
+    return [window_metrics(w, s.classes, hop_s=s.hop_s, truth_spans=spans)
+            for w in s.model_windows()]
 
 
 def _fmt(v, spec=".3f", none="-"):
     return none if v is None else format(v, spec)
 
 
-def snippets_of(s: Session) -> list[dict]:
-    import json
-
-    out = []
-    root = s.dir / "snippets"
-    if not root.is_dir():
-        return out
-    for side in sorted(root.glob("*/*.json")):
-        try:
-            meta = json.loads(side.read_text(encoding="utf-8"))
-        except (OSError, ValueError):
-            continue
-        meta["_wav"] = side.with_suffix(".wav")
-        meta["_json"] = side
-        out.append(meta)
-    return sorted(out, key=lambda m: (m.get("t0") or 0.0, str(m.get("label"))))
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
 
 
-def text_report(s: Session, sc: Scores) -> str:
+def _switch_line(m: Metrics) -> str:
+    rate = f" ({m.switches_per_min:.2f} per minute)" if m.duration_s >= 60 and \
+        m.switches_per_min is not None else ""
+    raw = "" if m.raw_changes is None else f"; the raw top class changes {m.raw_changes} times"
+    return (f"{_plural(m.changes, 'decision change')}{rate}{raw}; the truth changes "
+            f"{m.truth_changes} times")
+
+
+def text_report(s: Session, ms: list[Metrics]) -> str:
+    m = ms[0]
     lines = [f"session {s.dir}"]
     lines += [f"  note: {n}" for n in s.notes]
     summ = s.summary or {}
-    src = s.meta.get("source", {})
+    src = s.meta.get("source", {}) if isinstance(s.meta.get("source"), dict) else {}
+    models = s.models
+    names = " vs ".join(f"{'AB'[i]} {x.get('path')} ({x.get('runtime') or x.get('kind')})"
+                        for i, x in enumerate(models)) if len(models) > 1 else \
+        (f"model {models[0].get('path')}" if models else "model -")
     lines.append(f"source    {src.get('kind')} {src.get('file') or src.get('device') or ''} "
-                 f"({src.get('native_rate')} Hz)  model {s.meta.get('model', {}).get('path')}")
-    lines.append(f"duration  {sc.duration_s:.1f} s, {sc.windows} windows; overruns "
-                 f"{summ.get('overruns', '-')}, samples dropped {summ.get('dropped_samples', '-')}, "
-                 f"windows after a gap {sum(1 for w in s.windows if w.get('gap'))}")
-    lines.append(f"switches  {sc.changes} decision changes ({_fmt(sc.switches_per_min, '.2f')} per "
-                 f"minute; the truth changes {sc.truth_changes} times)")
-    lines.append("decided   " + ", ".join(f"{c} {t:.1f} s" for c, t in sc.decided_s.items()))
-    if sc.with_truth:
-        lines.append(f"accuracy  {sc.accuracy:.1%} of {sc.with_truth} windows with truth "
-                     f"(undecided counts as wrong); balanced {sc.balanced_accuracy:.1%}")
-        lines.append(f"latency   after a truth change: median {_fmt(sc.latency_median, '.2f')} s, "
-                     f"worst {_fmt(sc.latency_worst, '.2f')} s, never reached {sc.never_reached}")
-        w = max(12, *(len(c) for c in sc.classes))
+                 f"({src.get('native_rate')} Hz)  {names}")
+    losses = []
+    for key, word in (("overruns", "overrun"), ("dropped_samples", "sample")):
+        v = summ.get(key)
+        if isinstance(v, int):
+            losses.append(_plural(v, word) + (" dropped" if key == "dropped_samples" else ""))
+    gaps = sum(1 for w in s.windows if w.get("gap"))
+    lines.append(f"duration  {m.duration_s:.1f} s, {m.windows} windows; "
+                 + ", ".join(losses + [f"{gaps} windows after a gap"]))
+    lv = m.levels
+    if lv.get("silent_stretches"):
+        a, z = lv["silent_stretches"][0]
+        lines.append(f"level     silent (below -70 dBFS) for {lv['silent_s']:.1f} s in "
+                     f"{len(lv['silent_stretches'])} stretch(es), the first {a:.1f}-{z:.1f} s: "
+                     f"a muted or disconnected input?")
+    if lv.get("clipping_stretches"):
+        lines.append(f"level     clipping in {lv['clipped_windows']} windows, the first at "
+                     f"{lv['clipping_stretches'][0][0]:.1f} s")
+    for k, mm in enumerate(ms):
+        who = "" if len(ms) == 1 else f"{'AB'[k]}: "
+        lines.append(f"switches  {who}{_switch_line(mm)}")
+    lines.append("decided   " + ", ".join(f"{c} {t:.1f} s" for c, t in m.decided_s.items()))
+    if m.unfamiliar is not None:
+        u = m.unfamiliar
+        per = ", ".join(f"{c} {v:.1%}" for c, v in u["share_per_truth_class"].items())
+        lines.append(f"unfamiliar {u['share']:.1%} of windows ({u['windows']})"
+                     + (f"; by truth: {per}" if per else ""))
+    if m.with_truth:
+        for k, mm in enumerate(ms):
+            who = "" if len(ms) == 1 else f"{'AB'[k]}: "
+            lines.append(f"accuracy  {who}{mm.accuracy:.1%} of {mm.with_truth} windows with truth "
+                         f"(undecided counts as wrong); balanced {mm.balanced_accuracy:.1%}")
+            lines.append(f"latency   {who}after a truth change: median "
+                         f"{_fmt(mm.latency_median, '.2f')} s, worst "
+                         f"{_fmt(mm.latency_worst, '.2f')} s, never reached {mm.never_reached}")
+        if len(ms) > 1:
+            pr = paired(s.windows, s.windows_b or [])
+            lines.append(f"A vs B    decisions agree on {pr['decision_agreement']:.1%} of "
+                         f"{pr['windows']} windows; {pr['sentence']}")
+        w = max(12, *(len(c) for c in m.classes))
         lines.append("")
-        lines.append(f"  {'class':<{w}} {'precision':>9} {'recall':>7} {'F1':>6} {'windows':>8}")
-        for c, m in sc.per_class.items():
-            lines.append(f"  {c:<{w}} {_fmt(m['precision']):>9} {_fmt(m['recall']):>7} "
-                         f"{_fmt(m['f1']):>6} {m['support']:>8}")
-        lines.append("")
-        cols = sc.classes + [UNDECIDED]
+        head = "".join(f" {'AB'[k]} prec {'AB'[k]} rec  {'AB'[k]} F1" for k in range(len(ms))) \
+            if len(ms) > 1 else f" {'precision':>9} {'recall':>7} {'F1':>6}"
+        lines.append(f"  {'class':<{w}}{head} {'windows':>8}")
+        for c in m.classes:
+            row = "".join(f" {_fmt(mm.per_class[c]['precision']):>6} "
+                          f"{_fmt(mm.per_class[c]['recall']):>6} {_fmt(mm.per_class[c]['f1']):>6}"
+                          for mm in ms) if len(ms) > 1 else \
+                (f" {_fmt(m.per_class[c]['precision']):>9} {_fmt(m.per_class[c]['recall']):>7} "
+                 f"{_fmt(m.per_class[c]['f1']):>6}")
+            lines.append(f"  {c:<{w}}{row} {m.per_class[c]['support']:>8}")
+        cols = m.classes + [UNDECIDED]
         cw = max(8, *(len(c) for c in cols)) + 1
-        lines.append("  confusion (rows: truth, columns: decision)")
-        lines.append("  " + " " * w + "".join(f"{c[:cw - 1]:>{cw}}" for c in cols))
-        for c, row in zip(sc.classes, sc.confusion):
-            lines.append(f"  {c:<{w}}" + "".join(f"{v:>{cw}}" for v in row))
+        for k, mm in enumerate(ms):
+            lines.append("")
+            who = "" if len(ms) == 1 else f"model {'AB'[k]}, "
+            lines.append(f"  confusion ({who}rows: truth, columns: decision)")
+            lines.append("  " + " " * w + "".join(f"{c[:cw - 1]:>{cw}}" for c in cols))
+            for c, row in zip(mm.classes, mm.confusion):
+                lines.append(f"  {c:<{w}}" + "".join(f"{v:>{cw}}" for v in row))
     else:
         lines.append("accuracy  no truth in this session")
-    snips = snippets_of(s)
+    snips = iter_snippets(s.dir)
     if snips:
-        by = {}
-        for m in snips:
-            by[m.get("reason")] = by.get(m.get("reason"), 0) + 1
+        by: dict[str, int] = {}
+        for sn in snips:
+            by[sn.reason] = by.get(sn.reason, 0) + 1
+        states = {st: sum(1 for sn in snips if (sn.state or "not reviewed") == st)
+                  for st in sorted({sn.state or "not reviewed" for sn in snips})}
         lines.append("")
-        lines.append(f"snippets  {len(snips)}: " + ", ".join(f"{k} {v}" for k, v in sorted(by.items())))
+        lines.append(f"snippets  {len(snips)}: " + ", ".join(f"{k} {v}" for k, v in sorted(by.items()))
+                     + "; " + ", ".join(f"{k} {v}" for k, v in states.items()))
+    bad = count_unreadable(s.dir)
+    if bad:
+        lines.append(f"          {bad} unreadable snippet sidecar(s) left out")
     return "\n".join(lines) + "\n"
 
 
-# --- HTML ----------------------------------------------------------------------------------
+# --- figures -----------------------------------------------------------------------------------
+def _plt():
+    import matplotlib
+
+    matplotlib.use("Agg")
+    import matplotlib.pyplot as plt
+
+    plt.rcParams.update({
+        "figure.facecolor": P.GROUND, "axes.facecolor": P.PANEL, "savefig.facecolor": P.GROUND,
+        "axes.edgecolor": P.LINE, "axes.labelcolor": P.TEXT, "text.color": P.TEXT,
+        "xtick.color": P.MUTED, "ytick.color": P.MUTED, "grid.color": P.LINE,
+        "font.size": 9, "svg.hashsalt": "scenemon", "axes.spines.top": False,
+        "axes.spines.right": False,
+    })
+    return plt
+
+
 def _svg(fig) -> str:
     buf = io.StringIO()
     fig.savefig(buf, format="svg", bbox_inches="tight", metadata={"Date": None})
@@ -95,15 +167,8 @@ def _svg(fig) -> str:
     return text[text.index("<svg"):]
 
 
-def _palette(n: int):
-    import matplotlib
-
-    cmap = matplotlib.colormaps["tab10" if n <= 10 else "tab20"]
-    return [cmap(i % cmap.N) for i in range(n)]
-
-
-def _runs(windows: list[dict], key: str, hop: float) -> list[tuple[float, float, str]]:
-    """Runs of equal labels as (start, end, label), each window covering its last hop."""
+def _runs(windows: list[dict], key: str, hop: float) -> list[tuple[float, float, object]]:
+    """Runs of equal values as (start, end, value), each window covering its last hop."""
     runs: list[list] = []
     for w in windows:
         v = w.get(key)
@@ -114,139 +179,271 @@ def _runs(windows: list[dict], key: str, hop: float) -> list[tuple[float, float,
     return [tuple(r) for r in runs]
 
 
-def timeline_svg(s: Session, sc: Scores) -> str:
-    import matplotlib
-
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    classes = sc.classes
-    colors = _palette(len(classes))
+def timeline_svg(s: Session, m: Metrics) -> str:
+    """Smoothed probabilities of model A, then one band per model's decisions, then truth."""
+    plt = _plt()
+    classes = m.classes
+    ws = s.model_windows()
     t = np.array([w["t1"] for w in s.windows])
-    sm = np.array([w["smoothed"] for w in s.windows]) if s.windows else np.zeros((0, len(classes)))
-    fig, axes = plt.subplots(3, 1, figsize=(11, 4.6), sharex=True,
-                             gridspec_kw={"height_ratios": [4, 0.6, 0.6]})
+    sm = np.array([w["smoothed"] if w.get("smoothed") else [np.nan] * len(classes)
+                   for w in s.windows], dtype=float) if s.windows else np.zeros((0, len(classes)))
+    bands = [("decision" if len(ws) == 1 else f"{'AB'[k]} decision", k) for k in range(len(ws))]
+    fig, axes = plt.subplots(2 + len(bands), 1, figsize=(11, 3.4 + 0.55 * (len(bands) + 1)),
+                             sharex=True,
+                             gridspec_kw={"height_ratios": [4] + [0.6] * (len(bands) + 1)})
     ax = axes[0]
     for i, c in enumerate(classes):
-        ax.plot(t, sm[:, i] if len(sm) else [], color=colors[i], lw=1.2, label=c)
+        ax.plot(t, sm[:, i] if len(sm) else [], color=P.class_colour(classes, c), lw=1.3,
+                label=c)
     enter = s.meta.get("decision", {}).get("enter")
     if enter is not None:
-        ax.axhline(enter, color="0.4", lw=0.8, ls="--", label=f"enter {enter:g}")
-    ax.set_ylim(-0.02, 1.02)
-    ax.set_ylabel("smoothed p")
+        ax.axhline(enter, color=P.MUTED, lw=0.8, ls="--", label=f"enter threshold {enter:g}")
+    unf = [w["t1"] for w in s.windows if w.get("unfamiliar")]
+    if unf:
+        ax.plot(unf, [1.04] * len(unf), ls="none", marker="v", ms=4, color=P.ALERT,
+                label="unfamiliar sound")
+    ax.set_ylim(-0.02, 1.08)
+    ax.set_ylabel(f"smoothed p{' (A)' if len(ws) > 1 else ''}")
     ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=8, frameon=False)
     hop = (t[1] - t[0]) if len(t) > 1 else 0.5
-    for ax, key, title in ((axes[1], "decision", "decision"), (axes[2], "truth", "truth")):
-        for start, end, v in _runs(s.windows, key, hop):
+    rows = [(axes[1 + k], ws[k], "decision", title) for title, k in bands]
+    rows.append((axes[-1], s.windows, "truth", "truth"))
+    for ax, windows, key, title in rows:
+        for start, end, v in _runs(windows, key, hop):
             if v in classes:
-                ax.axvspan(start, end, color=colors[classes.index(v)], lw=0)
+                ax.axvspan(start, end, color=P.class_colour(classes, v), lw=0)
         ax.set_yticks([])
         ax.set_ylabel(title, rotation=0, ha="right", va="center")
-    axes[2].set_xlabel("session time (s)")
+    axes[-1].set_xlabel("session time (s)")
     fig.subplots_adjust(hspace=0.15)
     out = _svg(fig)
     plt.close(fig)
     return out
 
 
-def confusion_svg(sc: Scores) -> str:
-    import matplotlib
+def level_svg(s: Session, m: Metrics) -> str:
+    """Input level in dBFS per window, silent and clipping stretches shaded."""
+    plt = _plt()
+    from monitor.tally import SILENT_BELOW_DBFS
 
-    matplotlib.use("Agg")
-    import matplotlib.pyplot as plt
-
-    cm = np.array(sc.confusion, dtype=float)
-    rows = cm.sum(axis=1, keepdims=True)
-    frac = np.divide(cm, rows, out=np.zeros_like(cm), where=rows > 0)
-    cols = sc.classes + [UNDECIDED]
-    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * len(cols), 1.0 + 0.75 * len(sc.classes)))
-    ax.imshow(frac, cmap="Blues", vmin=0, vmax=1, aspect="auto")
-    for i in range(cm.shape[0]):
-        for j in range(cm.shape[1]):
-            ax.text(j, i, f"{int(cm[i, j])}", ha="center", va="center",
-                    color="white" if frac[i, j] > 0.6 else "black", fontsize=9)
-    ax.set_xticks(range(len(cols)), cols, rotation=30, ha="right", fontsize=8)
-    ax.set_yticks(range(len(sc.classes)), sc.classes, fontsize=8)
-    ax.set_xlabel("decision")
-    ax.set_ylabel("truth")
+    t = np.array([w["t1"] for w in s.windows])
+    lv = np.array([w.get("level_dbfs", np.nan) for w in s.windows], dtype=float)
+    fig, ax = plt.subplots(figsize=(11, 1.9))
+    for a, z in m.levels.get("silent_stretches", []):
+        ax.axvspan(a, z, color=P.MUTED, alpha=0.35, lw=0)
+    for a, z in m.levels.get("clipping_stretches", []):
+        ax.axvspan(a, z, color=P.ALERT, alpha=0.45, lw=0)
+    ax.plot(t, lv, color=P.CLASS_COLOURS[0], lw=1.0)
+    ax.axhline(SILENT_BELOW_DBFS, color=P.MUTED, lw=0.7, ls=":")
+    ax.set_ylim(max(-165.0, float(np.nanmin(lv)) - 5 if lv.size else -100), 3)
+    ax.set_ylabel("dBFS")
+    ax.set_xlabel("session time (s)")
     out = _svg(fig)
     plt.close(fig)
     return out
 
 
-CSS = """
-body { font-family: system-ui, sans-serif; margin: 2em auto; max-width: 72em; color: #1d2430; }
-h1 { font-size: 1.4em; margin-bottom: 0.2em; } h2 { font-size: 1.1em; margin-top: 1.8em; }
-.meta { color: #55606e; font-size: 0.9em; } .note { color: #9a4b00; }
-table { border-collapse: collapse; font-size: 0.9em; }
-td, th { padding: 0.25em 0.8em; border-bottom: 1px solid #dde2e8; text-align: right; }
-td:first-child, th:first-child { text-align: left; }
-.figure svg { max-width: 100%; height: auto; }
-.kpi { display: inline-block; margin-right: 2.2em; } .kpi b { font-size: 1.3em; display: block; }
-audio { height: 2em; vertical-align: middle; }
+def confusion_svg(m: Metrics, title: str = "") -> str:
+    plt = _plt()
+    from matplotlib.colors import ListedColormap
+
+    cm = np.array(m.confusion, dtype=float)
+    rows = cm.sum(axis=1, keepdims=True)
+    frac = np.divide(cm, rows, out=np.zeros_like(cm), where=rows > 0)
+    cols = m.classes + [UNDECIDED]
+    fig, ax = plt.subplots(figsize=(1.2 + 0.9 * len(cols), 1.0 + 0.75 * len(m.classes)))
+    ax.imshow(frac, cmap=ListedColormap(P.HEAT), vmin=0, vmax=1, aspect="auto")
+    for i in range(cm.shape[0]):
+        for j in range(cm.shape[1]):
+            ax.text(j, i, f"{int(cm[i, j])}", ha="center", va="center", fontsize=9,
+                    color=P.GROUND if frac[i, j] > 0.6 else P.TEXT)
+    ax.set_xticks(range(len(cols)), cols, rotation=30, ha="right", fontsize=8)
+    ax.set_yticks(range(len(m.classes)), m.classes, fontsize=8)
+    ax.set_xlabel("decision (what the model said)")
+    ax.set_ylabel("truth (what it was)")
+    if title:
+        ax.set_title(title, fontsize=9)
+    out = _svg(fig)
+    plt.close(fig)
+    return out
+
+
+CSS = f"""
+body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 74em;
+       background: {P.GROUND}; color: {P.TEXT}; }}
+h1 {{ font-size: 1.4em; margin-bottom: 0.2em; }} h2 {{ font-size: 1.1em; margin-top: 1.8em; }}
+.meta, .legend {{ color: {P.MUTED}; font-size: 0.88em; }} .note {{ color: {P.CLASS_COLOURS[4]}; }}
+table {{ border-collapse: collapse; font-size: 0.9em; }}
+td, th {{ padding: 0.25em 0.8em; border-bottom: 1px solid {P.LINE}; text-align: right; }}
+td:first-child, th:first-child {{ text-align: left; }}
+.figure svg {{ max-width: 100%; height: auto; }}
+.kpi {{ display: inline-block; margin-right: 2.2em; }} .kpi b {{ font-size: 1.3em; display: block; }}
+.sw {{ display: inline-block; width: 0.8em; height: 0.8em; margin-right: 0.3em; }}
+.dropped {{ color: {P.MUTED}; text-decoration: line-through; }}
+audio {{ height: 2em; vertical-align: middle; }}
 """
 
 
-def html_report(s: Session, sc: Scores, *, embed_audio: bool = True) -> str:
+def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> str:
     e = html.escape
-    parts = ["<!DOCTYPE html><html lang='en'><head><meta charset='utf-8'>",
+    m = ms[0]
+    parts = ["<!DOCTYPE html>", REPORT_MARK,
+             "<html lang='en'><head><meta charset='utf-8'>",
              f"<title>scenemon session {e(s.dir.name)}</title><style>{CSS}</style></head><body>",
              f"<h1>Session {e(s.dir.name)}</h1>"]
-    src = s.meta.get("source", {})
-    model = s.meta.get("model", {})
+    src = s.meta.get("source", {}) if isinstance(s.meta.get("source"), dict) else {}
+    models = ", ".join(f"{'AB'[i] + ' ' if len(s.models) > 1 else ''}{e(str(x.get('path')))} "
+                       f"({e(str(x.get('kind')))}, {e(str(x.get('runtime', '-')))}, sha256 "
+                       f"{e(str(x.get('sha256', ''))[:12])})" for i, x in enumerate(s.models))
     parts.append(f"<p class='meta'>{e(str(s.meta.get('started_at', '')))} &middot; source "
                  f"{e(str(src.get('kind')))} {e(str(src.get('file') or src.get('device') or ''))} "
-                 f"({e(str(src.get('native_rate')))} Hz) &middot; model "
-                 f"{e(str(model.get('path')))} ({e(str(model.get('kind')))}, sha256 "
-                 f"{e(str(model.get('sha256', ''))[:12])})</p>")
+                 f"({e(str(src.get('native_rate')))} Hz) &middot; model {models}</p>")
     for n in s.notes:
         parts.append(f"<p class='note'>{e(n)}</p>")
-    kpis = [("windows", f"{sc.windows}"), ("duration", f"{sc.duration_s:.1f} s"),
-            ("switches / min", _fmt(sc.switches_per_min, ".2f"))]
-    if sc.with_truth:
-        kpis += [("window accuracy", f"{sc.accuracy:.1%}"),
-                 ("balanced accuracy", f"{sc.balanced_accuracy:.1%}"),
-                 ("latency median / worst", f"{_fmt(sc.latency_median, '.2f')} / "
-                                            f"{_fmt(sc.latency_worst, '.2f')} s")]
+    kpis = [("windows", f"{m.windows}"), ("duration", f"{m.duration_s:.1f} s"),
+            ("decision changes", f"{m.changes}"), ("raw top-class changes", f"{m.raw_changes}")]
+    if m.with_truth:
+        for k, mm in enumerate(ms):
+            who = "" if len(ms) == 1 else f" ({'AB'[k]})"
+            kpis += [(f"window accuracy{who}", f"{mm.accuracy:.1%}"),
+                     (f"balanced accuracy{who}", f"{mm.balanced_accuracy:.1%}")]
+        kpis.append(("latency median / worst", f"{_fmt(m.latency_median, '.2f')} / "
+                                               f"{_fmt(m.latency_worst, '.2f')} s"))
     summ = s.summary or {}
-    kpis.append(("overruns", str(summ.get("overruns", "-"))))
+    over = summ.get("overruns")
+    kpis.append(("overruns", str(over) if isinstance(over, int) else "-"))
     parts.append("<p>" + "".join(f"<span class='kpi'><b>{e(v)}</b>{e(k)}</span>" for k, v in kpis)
                  + "</p>")
-    parts.append("<h2>Timeline</h2><div class='figure' id='timeline'>" + timeline_svg(s, sc)
-                 + "</div>")
-    if sc.with_truth:
-        parts.append("<h2>Per class</h2><table><tr><th>class</th><th>precision</th><th>recall"
-                     "</th><th>F1</th><th>windows</th><th>decided</th></tr>")
-        for c, m in sc.per_class.items():
-            parts.append(f"<tr><td>{e(c)}</td><td>{_fmt(m['precision'])}</td><td>"
-                         f"{_fmt(m['recall'])}</td><td>{_fmt(m['f1'])}</td><td>{m['support']}"
-                         f"</td><td>{sc.decided_s.get(c, 0):.1f} s</td></tr>")
+    if len(ms) > 1 and m.with_truth:
+        pr = paired(s.windows, s.windows_b or [])
+        parts.append(f"<p>Decisions agree on {pr['decision_agreement']:.1%} of the windows. "
+                     f"{e(pr['sentence'])}.</p>")
+    swatches = " ".join(f"<span><span class='sw' style='background:{P.class_colour(m.classes, c)}'>"
+                        f"</span>{e(c)}</span>" for c in m.classes)
+    parts.append("<h2>Timeline</h2><p class='legend'>Top: each class's smoothed probability"
+                 f"{' (model A)' if len(ms) > 1 else ''} with the enter threshold dashed"
+                 f"{'; red marks: unfamiliar sounds' if m.unfamiliar else ''}. Below: the "
+                 f"decision of each model and the truth, one colour per class ({swatches}); "
+                 f"blank where undecided or unknown.</p><div class='figure' id='timeline'>"
+                 + timeline_svg(s, m) + "</div>")
+    lv = m.levels
+    parts.append("<h2>Input level</h2><p class='legend'>Uncalibrated dBFS per window (AES17: a "
+                 "full-scale sine reads 0). Grey stretches: silent (below the dotted -70 dBFS "
+                 f"line for 3 s or more; {lv.get('silent_s', 0):.1f} s in all); red: clipping "
+                 f"({lv.get('clipped_windows', 0)} windows).</p><div class='figure' id='level'>"
+                 + level_svg(s, m) + "</div>")
+    if m.with_truth:
+        parts.append("<h2>Per class</h2><table><tr><th>class</th>"
+                     + "".join(f"<th>precision{w}</th><th>recall{w}</th><th>F1{w}</th>"
+                               for w in ([""] if len(ms) == 1 else [" A", " B"]))
+                     + "<th>windows</th><th>decided</th></tr>")
+        for c in m.classes:
+            cells = "".join(f"<td>{_fmt(mm.per_class[c]['precision'])}</td><td>"
+                            f"{_fmt(mm.per_class[c]['recall'])}</td><td>"
+                            f"{_fmt(mm.per_class[c]['f1'])}</td>" for mm in ms)
+            parts.append(f"<tr><td><span class='sw' style='background:"
+                         f"{P.class_colour(m.classes, c)}'></span>{e(c)}</td>{cells}<td>"
+                         f"{m.per_class[c]['support']}</td><td>{m.decided_s.get(c, 0):.1f} s"
+                         f"</td></tr>")
         parts.append("</table>")
-        parts.append("<h2>Confusion (rows: truth, columns: decision)</h2><div class='figure' "
-                     "id='confusion'>" + confusion_svg(sc) + "</div>")
-    snips = snippets_of(s)
+        parts.append("<h2>Confusion</h2><p class='legend'>Rows: the truth; columns: the "
+                     "decision (the last column: undecided). Each cell: windows; its shade: the "
+                     "share of its row.</p>")
+        for k, mm in enumerate(ms):
+            title = "" if len(ms) == 1 else f"model {'AB'[k]}"
+            parts.append(f"<div class='figure confusion' id='confusion{'' if k == 0 else '_b'}'>"
+                         + confusion_svg(mm, title) + "</div>")
+    snips = iter_snippets(s.dir)
     parts.append(f"<h2>Snippets ({len(snips)})</h2>")
+    skipped = count_unreadable(s.dir)
     if snips:
-        parts.append("<table><tr><th>label</th><th>predicted</th><th>reason</th><th>from</th>"
-                     "<th>length</th><th>confidence</th><th>listen</th></tr>")
-        for k, m in enumerate(snips):
+        parts.append("<p class='legend'>Captured sounds: label (what it truly is), what the "
+                     "model said, why it was kept, and its review state (kept, dropped, "
+                     "relabeled).</p><table><tr><th>label</th><th>predicted</th><th>reason</th>"
+                     "<th>from</th><th>length</th><th>confidence</th><th>state</th><th>listen"
+                     "</th></tr>")
+        for k, sn in enumerate(snips):
+            mt = sn.meta
             player = ""
-            if embed_audio and k < MAX_EMBEDDED_SNIPPETS and m["_wav"].is_file():
-                data = base64.b64encode(m["_wav"].read_bytes()).decode()
-                player = f"<audio controls preload='none' src='data:audio/wav;base64,{data}'></audio>"
-            parts.append(f"<tr><td>{e(str(m.get('label')))}</td><td>{e(str(m.get('predicted')))}"
-                         f"</td><td>{e(str(m.get('reason')))}</td><td>{_fmt(m.get('t0'), '.1f')} s"
-                         f"</td><td>{_fmt(m.get('duration_s'), '.1f')} s</td><td>"
-                         f"{_fmt(m.get('confidence'), '.2f')}</td><td>{player}</td></tr>")
+            if embed_audio and k < MAX_EMBEDDED_SNIPPETS:
+                data, why = verified_audio(sn, s.dir)
+                if data is None:
+                    skipped += 1
+                    player = "<span class='meta'>not embedded</span>"
+                else:
+                    player = (f"<audio controls preload='none' src='data:audio/wav;base64,"
+                              f"{base64.b64encode(data).decode()}'></audio>")
+            relabel = ""
+            if mt.get("relabeled_from") is not None:
+                relabel = f" (was {e(str(mt.get('relabeled_from')))})"
+            dur = mt.get("duration_s")
+            parts.append(
+                f"<tr class='{'dropped' if sn.dropped else ''}'><td>{e(sn.label)}{relabel}</td>"
+                f"<td>{e(str(mt.get('predicted')))}</td><td>{e(sn.reason)}</td>"
+                f"<td>{_fmt(mt.get('t0') if isinstance(mt.get('t0'), (int, float)) else None, '.1f')} s</td>"
+                f"<td>{_fmt(dur if isinstance(dur, (int, float)) else None, '.1f')} s</td>"
+                f"<td>{_fmt(mt.get('confidence') if isinstance(mt.get('confidence'), (int, float)) else None, '.2f')}</td>"
+                f"<td>{e(sn.state or 'not reviewed')}</td><td>{player}</td></tr>")
         parts.append("</table>")
-    parts.append("<p class='meta'>Written by scenemon report. Levels are uncalibrated dBFS.</p>")
+    if skipped:
+        parts.append(f"<p class='note'>{skipped} snippet(s) not shown or not embedded: an "
+                     f"unreadable sidecar, or audio that is not a regular WAV file inside the "
+                     f"session matching its sidecar.</p>")
+    parts.append("<p class='meta'>Written by scenemon report. Levels are uncalibrated dBFS, not "
+                 "sound pressure.</p>")
     parts.append("</body></html>")
     return "\n".join(parts)
 
 
-def write_html(s: Session, sc: Scores, out: Path) -> Path:
-    from monitor.session import atomic_write
+def check_output(out: Path, mark: str, what: str) -> None:
+    """Refuse to write `out` over a file that is not an earlier output of ours.
 
+    Raises
+    ------
+    ScenemonError
+        `out` exists and is not a regular file starting with `mark`, or lies among a
+        session's own files.
+    """
+    from monitor.session_writer import SESSION_FILES
+
+    if out.is_symlink() or (out.exists() and not out.is_file()):
+        raise ScenemonError(f"{out}: exists and is not a regular file; choose another name")
+    if (out.parent / "session.json").is_file() and (out.name in SESSION_FILES
+                                                     or out.suffix.lower() in (".wav", ".jsonl")):
+        raise ScenemonError(f"{out}: is one of a session's own files; choose another name")
+    if out.exists():
+        with open(out, "rb") as f:
+            head = f.read(256)
+        if mark.encode() not in head:
+            raise ScenemonError(f"{out}: exists and is not {what} scenemon wrote; choose "
+                                f"another name")
+
+
+def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
+    from monitor.files import atomic_write
+
+    check_output(out, REPORT_MARK, "a report")
     out.parent.mkdir(parents=True, exist_ok=True)
-    atomic_write(out, html_report(s, sc).encode("utf-8"))
+    atomic_write(out, html_report(s, ms).encode("utf-8"))
     return out
+
+
+def run_report(session: Path, *, html: Path | None = None, as_json: bool = False) -> int:
+    """`scenemon report`: print the account; with `html`, also write the page."""
+    s = load_session(session)
+    if not s.windows:
+        raise ScenemonError(f"{session}: the session holds no windows")
+    if html is not None:
+        check_output(html, REPORT_MARK, "a report")
+    ms = model_metrics(s)
+    if as_json:
+        out = ms[0].to_dict()
+        if len(ms) > 1:
+            out["b"] = ms[1].to_dict()
+            out["a_vs_b"] = paired(s.windows, s.windows_b or [])
+        sys.stdout.write(json.dumps(out, indent=2) + "\n")
+    else:
+        sys.stdout.write(text_report(s, ms))
+    if html is not None:
+        sys.stderr.write(f"wrote {write_html(s, ms, html)}\n")
+    return ExitCode.OK

@@ -19,11 +19,11 @@ from typing import Any
 
 import numpy as np
 
+from monitor.card import DecisionSettings
 from monitor.decide import decide_sequence
-from monitor.errors import ScenemonError
-from monitor.review.metrics import latencies, switch_count, truth_changes
-from monitor.session import Session
-from monitor.spec import DecisionSettings
+from monitor.errors import ExitCode, ScenemonError
+from monitor.session_reader import Session, load_session
+from monitor.tally import tally_windows
 
 DEFAULT_GRID = {
     "smoothing": ["none", "mean", "ema", "median"],
@@ -101,26 +101,27 @@ class Row:
                 f"hold {s.min_hold_s:g}")
 
 
-def evaluate(sessions: list[Session], settings: DecisionSettings) -> Row:
+def evaluate(sessions: list[Session], settings: DecisionSettings, model: int = 0) -> Row:
+    """One setting's figures over all sessions (each session's decider state its own)."""
     correct = scored = changes = never = 0
     minutes = 0.0
     lat: list[float] = []
     for s in sessions:
-        w = s.windows
+        w = [x for x in s.model_windows()[model] if x.get("probs") is not None]
+        if not w:
+            continue
         probs = np.array([x["probs"] for x in w], dtype=np.float64)
         t1 = np.array([x["t1"] for x in w])
         _, dec = decide_sequence(probs, t1, settings)
         labels = [None if d is None else s.classes[d] for d in dec]
-        for x, d in zip(w, labels):
-            if x.get("truth") is not None:
-                scored += 1
-                correct += int(d == x["truth"])
-        changes += switch_count(labels)
-        minutes += (t1[-1] if len(t1) else 0.0) / 60.0
-        redecided = [{**x, "decision": d} for x, d in zip(w, labels)]
-        la, nv = latencies(redecided, truth_changes(w, s.truth.spans if s.truth else None))
-        lat += la
-        never += nv
+        t = tally_windows(w, s.classes, hop_s=s.hop_s,
+                          spans=s.truth.spans if s.truth else None, decisions=labels)
+        correct += t.correct
+        scored += t.with_truth
+        changes += t.changes
+        minutes += t.duration_s / 60.0
+        lat += t.latencies
+        never += t.never_reached
     return Row(settings, correct / scored if scored else 0.0,
                changes / minutes if minutes else 0.0,
                float(np.median(lat)) if lat else None, never)
@@ -145,11 +146,11 @@ def recommend(rows: list[Row]) -> Row:
     return min(near, key=lambda r: (r.switches_per_min, _key(r)[2]))
 
 
-def sweep(sessions: list[Session], grid: dict[str, list]) -> list[Row]:
+def sweep(sessions: list[Session], grid: dict[str, list], model: int = 0) -> list[Row]:
     if not any(x.get("truth") is not None for s in sessions for x in s.windows):
         raise ScenemonError(f"{sessions[0].dir}: no window has a truth label; tune needs "
                             f"sessions with truth")
-    rows = [evaluate(sessions, st) for st in expand(grid)]
+    rows = [evaluate(sessions, st, model) for st in expand(grid)]
     mark_front(rows)
     rows.sort(key=_key)
     return rows
@@ -171,8 +172,8 @@ def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
 
 def apply_to_card(card_path: Path, settings: DecisionSettings) -> None:
     """Write `settings` into the card's [decision] table; every other line stays as it was."""
-    from monitor.session import atomic_write
-    from monitor.spec import load_card
+    from monitor.card import load_card
+    from monitor.files import atomic_write
 
     load_card(card_path)  # refuse to edit a card that is not valid to begin with
     lines = card_path.read_text(encoding="utf-8").splitlines()
@@ -206,3 +207,37 @@ def _toml(v: Any) -> str:
     if isinstance(v, float):
         return repr(v)
     return str(v)
+
+
+def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None = None,
+             show_all: bool = False, model: int = 0, stream=None) -> int:
+    """`scenemon tune`: sweep, print the front and the recommendation, optionally apply it."""
+    import sys
+    import time
+
+    stream = stream or sys.stdout
+    sessions = [load_session(p) for p in paths]
+    for s in sessions:
+        if not s.windows:
+            raise ScenemonError(f"{s.dir}: the session holds no windows")
+        if model and s.windows_b is None:
+            raise ScenemonError(f"{s.dir}: not an A/B session (no windows.b.jsonl)")
+        for n in s.notes:
+            sys.stderr.write(f"scenemon: warning: {s.dir}: {n}\n")
+    if len({tuple(s.classes) for s in sessions}) > 1:
+        raise ScenemonError(f"{sessions[1].dir}: its classes differ from {sessions[0].dir}'s")
+    t = time.perf_counter()
+    rows = sweep(sessions, parse_grid(grid), model)
+    best = recommend(rows)
+    if show_all:
+        for r in rows:
+            r.front = True
+    stream.write(table(rows, best, limit=len(rows) if show_all else 25))
+    stream.write(f"recommended: {best.label()}  ({best.accuracy:.1%} accuracy, "
+                 f"{best.switches_per_min:.2f} switches/min)\n")
+    stream.write(f"swept {len(rows)} settings over {len(sessions)} session(s) in "
+                 f"{time.perf_counter() - t:.1f} s\n")
+    if apply is not None:
+        apply_to_card(apply, best.settings)
+        stream.write(f"wrote the [decision] table of {apply}\n")
+    return ExitCode.OK

@@ -1,15 +1,17 @@
 """The textual app: live view, stage view, relabel view.
 
-Threads: the UI thread runs textual. One worker thread ("session") loads the card and the
-model, then runs the engine (`Engine.run` with its source and session-writer threads); it
-posts `Ready` once and `NewWindows` notifications through `UIBridge` (post_message: never
-blocks). The UI redraws from its own copy of the state at most `redraw_hz` times a second,
-however fast windows arrive. Keys reach the engine through thread-safe objects only:
-`LiveTruth.set`, `CapturePolicy.manual` and the stop `Event`.
+Threads: the UI thread runs textual. One worker thread ("session") runs
+`assemble.run_session` (the compute thread, with its source and session-writer threads);
+it posts `SessionReady` once with the session's `SessionHandle`, then `NewWindows` and
+`Status` messages through `UIBridge` (post_message: never blocks). The UI redraws from its
+own `ViewState` at most `redraw_hz` times a second, however fast windows arrive. Keys reach
+the session only through the handle's thread-safe methods (`set_truth`, `capture_now`) and
+the stop `Event`; the UI never reads the engine, the source or the writer.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import threading
 import time
 from collections import deque
@@ -28,23 +30,13 @@ from textual.reactive import var
 from textual.widgets import Footer, Static
 from textual.worker import Worker, WorkerState
 
-from monitor.errors import ScenemonError
-from monitor.ui import widgets as W
-from monitor.ui.bridge import NewWindows, UIBridge
+from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence, summary_failure
+from monitor.tally import SILENT_BELOW_DBFS, Tally
+from monitor.ui import draw as D
+from monitor.ui.bridge import NewWindows, SessionStatus, Status, UIBridge
 from monitor.ui.screens import AskLabel, RelabelScreen, StageScreen
 
 STRIP_HOPS = 120  # one minute at a 0.5 s hop
-
-
-@dataclass
-class SessionContext:
-    """What the session worker hands the UI once everything is loaded."""
-
-    engine: Any
-    capture: Any
-    writer: Any
-    live_truth: Any  # LiveTruth, or None when the truth comes from a file
-    card: Any
 
 
 @dataclass
@@ -53,13 +45,14 @@ class SessionHooks:
 
     bridge: UIBridge
     stop: threading.Event
-    ready: Callable[[SessionContext], None]
+    ready: Callable[[Any], None]  # called with the assemble.SessionHandle
+    say: Callable[[str], None] = lambda text: None  # what the session is doing, before it runs
 
 
 class SessionReady(Message):
-    def __init__(self, ctx: SessionContext) -> None:
+    def __init__(self, handle) -> None:
         super().__init__()
-        self.ctx = ctx
+        self.handle = handle
 
 
 @dataclass
@@ -79,38 +72,41 @@ class ViewState:
     level: float = -160.0
     clipped: float = 0.0
     quiet_s: float = 0.0
-    ms: float | None = None
-    latency: float | None = None
-    gaps: int = 0
-    gap_samples: int = 0
-    windows: int = 0
-    with_truth: int = 0
-    correct: int = 0
-    cm: list = field(default_factory=list)
     truth: str | None = None
+    tally: Tally | None = None
     decisions: deque = field(default_factory=lambda: deque(maxlen=STRIP_HOPS * 2))
     truths: deque = field(default_factory=lambda: deque(maxlen=STRIP_HOPS * 2))
+    b_decision: str | None = None
+    b_tally: Tally | None = None
+    agree: int = 0
+    unfamiliar: bool = False
+    status: SessionStatus | None = None
+
+    def start(self, classes, hop_s: float, enter: float, two: bool) -> None:
+        self.classes, self.hop_s, self.enter = tuple(classes), hop_s, enter
+        self.keys = D.class_keys(self.classes)
+        self.tally = Tally(self.classes, hop_s=hop_s)
+        self.b_tally = Tally(self.classes, hop_s=hop_s) if two else None
 
     def add(self, r) -> None:
         if self.decision != r.decision:
             self.decision, self.since_t = r.decision, r.t1
         self.t1 = r.t1
-        self.probs, self.smoothed, self.features = r.probs, r.smoothed, r.features
+        if r.probs is not None:
+            self.probs, self.smoothed = r.probs, r.smoothed
+        self.features = r.features
         self.level, self.clipped = r.level_dbfs, r.clipped
-        self.quiet_s = self.quiet_s + self.hop_s if r.level_dbfs < -70.0 else 0.0
-        self.ms, self.latency = r.ms, r.latency_ms
-        if r.gap:
-            self.gaps += 1
-            self.gap_samples += r.gap
-        self.windows += 1
+        self.quiet_s = self.quiet_s + self.hop_s if r.level_dbfs < SILENT_BELOW_DBFS else 0.0
         self.truth = r.truth
+        self.unfamiliar = bool(r.unfamiliar)
         self.decisions.append(r.decision)
         self.truths.append(r.truth)
-        if r.truth is not None and r.truth in self.classes:
-            self.with_truth += 1
-            self.correct += int(r.decision == r.truth)
-            col = self.classes.index(r.decision) if r.decision in self.classes else len(self.classes)
-            self.cm[self.classes.index(r.truth)][col] += 1
+        self.tally.add(r.t0, r.t1, r.decision, r.truth, r.gap)
+        if r.others and self.b_tally is not None:
+            b = r.others[0]
+            self.b_decision = b.decision
+            self.b_tally.add(b.t0, b.t1, b.decision, b.truth, b.gap)
+            self.agree += int(b.decision == r.decision)
 
 
 class CpuMeter:
@@ -148,23 +144,25 @@ class MonitorApp(App):
 
     def __init__(self, start: Callable[[SessionHooks], dict], *, heading: str = "",
                  redraw_hz: float = 12.0, show_timings: bool = True,
-                 cpu_meter: Callable[[], float] | None = None) -> None:
+                 cpu_meter: Callable[[], float] | None = None,
+                 exit_when_done: bool = False) -> None:
         super().__init__()
         self.start_session = start
         self.heading = heading
         self.redraw_hz = redraw_hz
         self.show_timings = show_timings
         self.cpu_meter = cpu_meter or CpuMeter()
+        self.exit_when_done = exit_when_done
         self.bridge = UIBridge(self)
         self.stop_event = threading.Event()
         self.state = ViewState()
-        self.ctx: SessionContext | None = None
+        self.handle = None
         self.summary: dict | None = None
         self.error: BaseException | None = None
         self.finished = False
         self.quitting = False
         self.dirty = True
-        self.message = "loading the model …"
+        self.message = "starting …"
         self.redraws = 0
         self._health_t = 0.0
         self._shown: dict[str, Text] = {}
@@ -192,21 +190,28 @@ class MonitorApp(App):
         self.redraw(force=True)
 
     # --- the session worker ---------------------------------------------------------------------
+    def say(self, text: str) -> None:
+        """Show what the session is doing before it runs (any thread)."""
+        def show() -> None:
+            self.message = text
+            self.dirty = True
+
+        try:
+            self.call_from_thread(show)
+        except RuntimeError:
+            show()
+
     @work(thread=True, exclusive=True, exit_on_error=False, name="session")
     def run_worker_session(self) -> dict:
-        hooks = SessionHooks(self.bridge, self.stop_event,
-                             lambda ctx: self.post_message(SessionReady(ctx)))
-        return self.start_session(hooks)
+        def ready(handle) -> None:
+            self.bridge.attach(handle)
+            self.post_message(SessionReady(handle))
+
+        return self.start_session(SessionHooks(self.bridge, self.stop_event, ready, self.say))
 
     def on_session_ready(self, message: SessionReady) -> None:
-        ctx = self.ctx = message.ctx
-        card = ctx.card
-        st = self.state
-        st.classes = tuple(card.classes)
-        st.keys = W.class_keys(st.classes)
-        st.hop_s = card.hop_s
-        st.enter = ctx.engine.decision.enter
-        st.cm = [[0] * (len(st.classes) + 1) for _ in st.classes]
+        h = self.handle = message.handle
+        self.state.start(h.classes, h.card.hop_s, h.decisions[0].enter, len(h.models) > 1)
         self.message = "running"
         self.dirty = True
 
@@ -217,6 +222,9 @@ class MonitorApp(App):
             self.state.add(r)
         self.dirty = True
 
+    def on_status(self, message: Status) -> None:
+        self.state.status = message.status
+
     def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
         if event.worker.name != "session":
             return
@@ -224,7 +232,7 @@ class MonitorApp(App):
             self.finished = True
             self.summary = event.worker.result
             self.on_new_windows(NewWindows())
-            fail = (self.summary or {}).get("source_failure")
+            fail = summary_failure(self.summary)
             self.message = fail or "session closed; q quits"
         elif event.state == WorkerState.ERROR:
             # bad input or a failure before or during the session: leave the screen and let
@@ -236,26 +244,23 @@ class MonitorApp(App):
         else:
             return
         self.dirty = True
-        if self.quitting:
+        if self.quitting or self.exit_when_done:
             self.exit(self.return_code_for())
 
     def return_code_for(self) -> int:
-        if isinstance(self.error, ScenemonError):
-            return 2
         if self.error is not None:
-            return 1
-        return 1 if (self.summary or {}).get("source_failure") else 0
+            return exit_code_for(self.error)
+        return ExitCode.FAILURE if summary_failure(self.summary) else ExitCode.OK
 
     # --- keys ------------------------------------------------------------------------------------
     def _now(self) -> float:
-        eng = self.ctx.engine
-        return eng.windower.end / eng.card.sample_rate
+        return self.handle.now_s()
 
     def action_truth(self, k: int) -> None:
         st = self.state
-        if self.ctx is None or self.finished:
+        if self.handle is None or self.finished:
             return
-        if self.ctx.live_truth is None:
+        if self.handle.live_truth is None:
             self.notify("the truth comes from the truth file in this session")
             return
         if k == 0:
@@ -264,17 +269,18 @@ class MonitorApp(App):
             label = st.classes[k - 1]
         else:
             return
-        self.ctx.live_truth.set(label, self._now())
+        self.handle.set_truth(label)
         self.notify(f"truth: {label or 'unknown'}", timeout=1.5)
         self.dirty = True
 
     def action_capture(self) -> None:
-        if self.ctx is None or self.finished:
+        if self.handle is None or self.finished:
             return
-        if self.ctx.capture is None:
+        if self.handle.capture is None:
             self.notify("capture is off (--capture none)")
             return
-        label = self.ctx.live_truth.current if self.ctx.live_truth else self.state.truth
+        lt = self.handle.live_truth
+        label = lt.current if lt is not None else self.state.truth
         if label is not None:
             self._capture(label)
             return
@@ -282,7 +288,7 @@ class MonitorApp(App):
                          lambda lab: lab is not None and self._capture(lab))
 
     def _capture(self, label: str) -> None:
-        snip = self.ctx.capture.manual(label)
+        snip = self.handle.capture_now(label)
         if snip is None:
             self.notify("nothing to capture yet")
         else:
@@ -301,9 +307,9 @@ class MonitorApp(App):
             self.push_screen(StageScreen())
 
     def action_relabel(self) -> None:
-        if self.ctx is None:
+        if self.handle is None:
             return
-        self.push_screen(RelabelScreen(self.ctx.writer.dir, list(self.state.classes)))
+        self.push_screen(RelabelScreen(self.handle.dir, list(self.state.classes)))
 
     def action_quit_session(self) -> None:
         self.quitting = True
@@ -334,19 +340,20 @@ class MonitorApp(App):
             self.query_one("#decision", Static).update(text, layout=False)
             return
         top_p = float(max(st.smoothed)) if st.smoothed is not None else 0.0
-        self._set("decision", W.decision_text(
+        self._set("decision", D.decision_text(
             st.classes, st.keys, st.decision, st.t1 - st.since_t, st.truth, top_p))
         inner = max(30, self.query_one("#classes").size.width - 4)
         name_w = min(12, max(len(c) for c in st.classes))
         bar_w = max(5, (inner - name_w - 10) // 2)
-        self.query_one("#classes", Static).update(W.class_bars(
-            st.classes, st.keys, st.probs, st.smoothed, st.enter, width=bar_w, name_w=name_w), layout=False)
+        self.query_one("#classes", Static).update(D.class_bars(
+            st.classes, st.keys, st.probs, st.smoothed, st.enter, width=bar_w, name_w=name_w),
+            layout=False)
         width = max(20, self.query_one("#strip").size.width - 14)
-        self._set("strip", W.strip_text(st.classes, st.keys, st.decisions, st.truths, width,
+        self._set("strip", D.strip_text(st.classes, st.keys, st.decisions, st.truths, width,
                                         st.hop_s))
         hw = max(12, self.query_one("#hears").size.width - 4)
-        hears = W.heat_text(st.features, rows=5, cols=hw, color=not self.no_color)
-        hears.append_text(W.level_text(st.level, st.clipped, st.quiet_s, width=max(4, hw - 17)))
+        hears = D.heat_text(st.features, rows=5, cols=hw, color=not self.no_color)
+        hears.append_text(D.level_text(st.level, st.clipped, st.quiet_s, width=max(4, hw - 17)))
         self.query_one("#hears", Static).update(hears, layout=False)
         now = time.monotonic()
         if force or now - self._health_t >= 1.0:  # figures that need no faster refresh
@@ -361,35 +368,38 @@ class MonitorApp(App):
             self.query_one(f"#{wid}", Static).update(text, layout=False)
 
     def _health(self) -> Text:
-        st, ctx = self.state, self.ctx
-        src = ctx.engine.source.describe() if ctx else {}
-        ring = ctx.engine.source.ring if ctx else None
+        st = self.state
+        src = self.handle.source if self.handle else {}
+        status = st.status
         t = Text()
         name = src.get("device") or Path(str(src.get("file", ""))).name
         t.append(f"{src.get('kind', '')} {name}"[:26] + "\n")
         t.append(f"native {src.get('native_rate', '-')} Hz\n")
+        eng = status.engine if status else None
         if self.show_timings:
-            t.append(f"compute {st.ms or 0:6.2f} ms\n")
-            lat = "-" if st.latency is None else f"{st.latency:6.1f} ms"
+            ms = "-" if eng is None or eng.ms is None else f"{eng.ms:6.2f} ms"
+            t.append(f"compute {ms}\n")
+            lat = "-" if eng is None or eng.latency_ms is None else f"{eng.latency_ms:6.1f} ms"
             t.append(f"latency {lat}\n")
             t.append(f"CPU {self.cpu_meter() * 100:5.1f}%\n")
         else:
             t.append("timings hidden\n\n\n")
-        if ctx and ctx.writer.error_text:
+        if status is not None and status.write_error:
             t.append("DISK: writing stopped\n", style="bold reverse red")
-        over = ring.overruns if ring else 0
-        t.append(f"overruns {over}  gaps {st.gaps}",
-                 style="bold reverse" if over or st.gaps else "")
+        over = eng.overruns if eng else 0
+        gaps = eng.gap_windows if eng else 0
+        t.append(f"overruns {over}  gaps {gaps}", style="bold reverse" if over or gaps else "")
         return t
 
     def _session(self) -> Text:
         st = self.state
         t = Text()
-        snips = sum(self.ctx.capture.counts.values()) if self.ctx and self.ctx.capture else 0
-        t.append(f"{st.t1:6.1f} s · {st.windows} win · {snips} snip\n")
-        if st.with_truth:
-            t.append(f"accuracy {st.correct / st.with_truth:6.1%} of {st.with_truth}\n", style="bold")
-            t.append_text(W.confusion_text(st.classes, st.keys, st.cm))
+        snips = st.status.snippets if st.status else 0
+        tl = st.tally
+        t.append(f"{st.t1:6.1f} s · {tl.windows} win · {snips} snip\n")
+        if tl.with_truth:
+            t.append(f"accuracy {tl.accuracy:6.1%} of {tl.with_truth}\n", style="bold")
+            t.append_text(D.confusion_text(st.classes, st.keys, tl.confusion.tolist()))
         else:
             t.append("no truth yet: press 1-9\n", style="dim")
         return t
@@ -411,3 +421,49 @@ class RelabelApp(App):
 
     def on_mount(self) -> None:
         self.push_screen(RelabelScreen(self.session_dir, self.class_names, standalone=True))
+
+
+def session_starter(plan) -> Callable[[SessionHooks], dict]:
+    """The function the UI's session worker runs: `assemble.run_session` with the UI's
+    observer, stop event and ready callback."""
+    from monitor.assemble import run_session
+
+    plan = dataclasses.replace(plan, keep_features=True, live_truth=True)
+
+    def start(hooks: SessionHooks) -> dict:
+        return run_session(plan, observers=[hooks.bridge], stop=hooks.stop,
+                           on_ready=hooks.ready, notices=False, progress=hooks.say)
+
+    return start
+
+
+def run_ui(plan, *, heading: str) -> int:
+    """The terminal UI around one session; returns the exit code."""
+    import sys
+
+    from monitor.plan import MicInput
+    from monitor.run import finish
+
+    timed = isinstance(plan.source, MicInput) and plan.source.seconds is not None
+    app = MonitorApp(session_starter(plan), heading=heading, exit_when_done=timed)
+    code = app.run()
+    if app.error is not None:
+        sys.stderr.write(f"scenemon: {one_sentence(app.error)}\n")
+        return exit_code_for(app.error)
+    if app.summary is not None:
+        return finish(app.summary)
+    return code if isinstance(code, int) else ExitCode.OK
+
+
+def run_relabel(session: Path, *, interactive: bool) -> int:
+    """`scenemon relabel SESSION`: the relabel view; it needs a terminal."""
+    from monitor.session_reader import load_session
+
+    s = load_session(session)
+    if not (s.dir / "snippets").is_dir():
+        raise ScenemonError(f"{s.dir}: the session has no snippets to relabel")
+    if not interactive:
+        raise ScenemonError(f"{s.dir}: relabel is an interactive view and needs a terminal "
+                            f"(stdin and stdout are not one)")
+    RelabelApp(s.dir, s.classes).run()
+    return ExitCode.OK

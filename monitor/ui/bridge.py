@@ -1,16 +1,20 @@
-"""From the compute thread to the UI: an observer that never blocks.
+"""From the compute thread to the UI: an observer that never blocks and never drops a result.
 
-`UIBridge.on_window` (compute thread) appends the result to a deque and posts one small
-`NewWindows` message; messages of that kind replace each other in the UI's queue, so a slow
-UI drops stale notifications, never results: the handler drains the deque (UI thread).
+`UIBridge.on_window` (compute thread) appends each result to an unbounded deque and posts a
+`NewWindows` notification; `on_status` posts one `Status` snapshot per batch. Notifications
+of one kind replace each other in the UI's message queue (`can_replace`), so a slow UI skips
+stale redraw requests, never results: the UI thread drains the whole deque when it handles
+one. The deque's ``append`` and ``popleft`` are atomic, so no lock is needed.
 """
 
 from __future__ import annotations
 
 import collections
-import threading
+from dataclasses import dataclass
 
 from textual.message import Message
+
+from monitor.engine import EngineStatus, ObserverBase, WindowResult
 
 
 class NewWindows(Message):
@@ -20,17 +24,47 @@ class NewWindows(Message):
         return isinstance(message, NewWindows)
 
 
-class UIBridge:
+@dataclass(frozen=True)
+class SessionStatus:
+    """What the health panel shows: the engine's snapshot plus the writer's and the capture
+    policy's counts, read on the compute thread where they are owned or published."""
+
+    engine: EngineStatus
+    snippets: int
+    write_error: str | None
+
+
+class Status(Message):
+    """The newest `SessionStatus` (a newer one replaces an unhandled older one)."""
+
+    def __init__(self, status: SessionStatus) -> None:
+        super().__init__()
+        self.status = status
+
+    def can_replace(self, message: Message) -> bool:
+        return isinstance(message, Status)
+
+
+class UIBridge(ObserverBase):
     def __init__(self, app) -> None:
         self.app = app
-        self._q: collections.deque = collections.deque(maxlen=5000)
-        self.lock = threading.Lock()
+        self._q: collections.deque[WindowResult] = collections.deque()
+        self.handle = None  # the session's handle, attached before the first window
 
-    def on_window(self, result) -> None:
+    def attach(self, handle) -> None:
+        self.handle = handle
+
+    def on_window(self, result: WindowResult) -> None:
         self._q.append(result)
         self.app.post_message(NewWindows())
 
-    def drain(self) -> list:
+    def on_status(self, status: EngineStatus) -> None:
+        h = self.handle
+        snippets = h.capture.total if h is not None and h.capture is not None else 0
+        error = h.writer.error_text if h is not None else None
+        self.app.post_message(Status(SessionStatus(status, snippets, error)))
+
+    def drain(self) -> list[WindowResult]:
         out = []
         while True:
             try:

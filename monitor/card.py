@@ -24,6 +24,7 @@ if sys.version_info >= (3, 11):
 else:  # pragma: no cover
     import tomli as tomllib
 
+MAX_HOLD_S = 3600.0
 Smoothing = Literal["none", "mean", "ema", "median"]
 SMOOTHING = ("none", "mean", "ema", "median")
 
@@ -55,8 +56,9 @@ class DecisionSettings:
                 problems.append(f"{name}={v!r} must be in [0, 1]")
         if not (isinstance(self.confirm, int) and self.confirm >= 1):
             problems.append(f"confirm={self.confirm!r} must be an integer >= 1")
-        if not self.min_hold_s >= 0.0:
-            problems.append(f"min_hold_s={self.min_hold_s!r} must be >= 0")
+        if not 0.0 <= self.min_hold_s <= MAX_HOLD_S:  # also refuses NaN and infinity
+            problems.append(f"min_hold_s={self.min_hold_s!r} must be a number of seconds from "
+                            f"0 to {MAX_HOLD_S:g}")
         if problems:
             raise ValueError("; ".join(problems))
 
@@ -139,6 +141,12 @@ class ModelCard:
         if self.layout == "time_mel":
             return (self.frames_per_window, self.mel_bands)
         return (self.mel_bands, self.frames_per_window)
+
+    def same_front_end(self, other: ModelCard) -> bool:
+        """True when `other` computes the very same features from the same windows."""
+        keys = ("sample_rate", "window_s", "hop_s", *FRONTEND_KEYS)
+        return (all(getattr(self, k) == getattr(other, k) for k in keys)
+                and np.array_equal(self.mean, other.mean) and np.array_equal(self.std, other.std))
 
     @property
     def name(self) -> str:
@@ -227,10 +235,9 @@ _TABLES = {"audio": ("sample_rate", "window_s", "hop_s"), "frontend": FRONTEND_K
 _TOP = ("classes", "output", *_TABLES)
 
 
-def card_path_for(model_path: str | Path) -> Path:
+def card_beside(model_path: str | Path) -> Path:
     """The card beside a model: same stem, `.toml` (`demo.int8.tflite` -> `demo.int8.toml`)."""
-    p = Path(model_path)
-    return p.with_suffix(".toml")
+    return Path(model_path).with_suffix(".toml")
 
 
 def load_card(path: str | Path) -> ModelCard:
@@ -243,7 +250,7 @@ def load_card(path: str | Path) -> ModelCard:
     """
     path = Path(path)
     if not path.is_file():
-        raise CardError(f"{path}: model card not found (give one with --spec, or put "
+        raise CardError(f"{path}: model card not found (give one with --card, or put "
                         f"a .toml with the model's stem beside it)")
     try:
         raw = tomllib.loads(path.read_text(encoding="utf-8"))
@@ -414,15 +421,33 @@ def _load_scaling(scaling: dict[str, Any], shape: tuple[int, ...], g: dict[str, 
     return out[0], out[1]
 
 
-def load_card_for_model(model_path: str | Path, spec: str | Path | None = None) -> ModelCard:
-    """The card given with --spec, or the one beside the model."""
-    if spec is not None:
-        return load_card(spec)
-    card = card_path_for(model_path)
-    if not card.is_file():
-        raise CardError(f"{model_path}: no model card {card} beside it (give one with --spec)")
-    return load_card(card)
+def card_for_model(model_path: str | Path, card: str | Path | None = None) -> ModelCard:
+    """The card given with ``--card``, or the one beside the model.
+
+    Parameters
+    ----------
+    model_path : str or Path
+        The model file; it must exist (a missing model is named as missing, not its card).
+    card : str or Path, optional
+        An explicit card file.
+
+    Raises
+    ------
+    ModelError
+        The model file does not exist.
+    CardError
+        No card beside the model and none given, or the card is invalid.
+    """
+    model_path = Path(model_path)
+    if not model_path.exists():
+        raise ModelError(f"{model_path}: model file not found")
+    if card is not None:
+        return load_card(card)
+    beside = card_beside(model_path)
+    if not beside.is_file():
+        raise CardError(f"{model_path}: no model card {beside} beside it (give one with --card)")
+    return load_card(beside)
 
 
-__all__ = ["DecisionSettings", "ModelCard", "load_card", "card_from_dict",
-           "load_card_for_model", "card_path_for", "ModelError"]
+__all__ = ["DecisionSettings", "ModelCard", "load_card", "card_from_dict", "card_for_model",
+           "card_beside"]

@@ -140,7 +140,7 @@ def level_text(level_dbfs, clipped, quiet_s, width=22) -> Text:
     frac = (max(-60.0, min(0.0, level_dbfs)) + 60.0) / 60.0
     style = "red" if level_dbfs > -3 else "yellow" if level_dbfs > -12 else "green"
     t.append_text(bar(frac, width, style=style))
-    t.append(f" {max(level_dbfs, -99.9):5.1f}")
+    t.append(f" {level_dbfs:6.1f}")
     if clipped > 0.001:
         t.append("\nCLIPPING", style="bold reverse red")
     elif quiet_s >= 3.0:

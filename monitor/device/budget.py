@@ -1,0 +1,256 @@
+"""`scenemon budget`: what a model and its front end cost on the target, each figure with
+where it comes from.
+
+- RAM: the interpreter's arena as the microcontroller runtime records it (its allocation
+  recording; measured on this machine, so pointer-sized parts differ a little on a 32-bit
+  part), the front end's static buffers (`frontend.c`'s arrays for this card), one window
+  of int16 PCM and the feature tensor the caller holds, and the total.
+- flash: the model flatbuffer, the front end's constant tables (window, mel table, scaling),
+  and the total.
+- operators: every node's operator, and the ones the microcontroller runtime cannot run
+  (found by loading the model there: the most common reason a model never reaches a board).
+- work per window: multiply-accumulates of each layer, the usual count ``H_out * W_out *
+  C_out * K_h * K_w * C_in / groups`` (a fully connected layer: inputs x outputs; pooling
+  and mean layers: their comparisons or additions, listed but not MACs), and the front end's
+  operations per hop (FFT butterflies, mel weights, logs). With a clock, a duty-cycle
+  estimate from a cycles-per-operation figure that is an assumption, not a measurement.
+"""
+
+from __future__ import annotations
+
+import json
+import math
+import sys
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from monitor.card import ModelCard
+from monitor.errors import ExitCode, ModelError, ScenemonError
+from monitor.plan import ModelPlan
+
+# Assumptions for the duty-cycle estimate (common practice for Cortex-M class parts with
+# SIMD kernels; not measured here): cycles per int8 MAC, per float MAC, per front-end op.
+CYCLES_PER_INT8_MAC = 1.0
+CYCLES_PER_FLOAT_MAC = 2.0
+CYCLES_PER_FRONTEND_OP = 2.0
+
+
+@dataclass
+class Layer:
+    index: int
+    op: str
+    input: tuple[int, ...]
+    output: tuple[int, ...]
+    filter: tuple[int, ...] | None
+    macs: int  # multiply-accumulates (0 for layers without them)
+    other_ops: int = 0  # comparisons (pooling) or additions (mean)
+
+
+@dataclass
+class Budget:
+    model: str
+    runtime: str
+    arena_bytes: int | None
+    frontend_ram: dict[str, int]
+    frontend_flash: dict[str, int]
+    model_bytes: int
+    layers: list[Layer]
+    ops: list[str]
+    unsupported_ops: list[str]
+    frontend_ops_per_hop: dict[str, int]
+    hop_s: float
+    int8: bool
+    notes: list[str] = field(default_factory=list)
+
+    @property
+    def macs(self) -> int:
+        return sum(x.macs for x in self.layers)
+
+    @property
+    def ram_bytes(self) -> int:
+        return (self.arena_bytes or 0) + sum(self.frontend_ram.values())
+
+    @property
+    def flash_bytes(self) -> int:
+        return self.model_bytes + sum(self.frontend_flash.values())
+
+    def duty_cycle(self, clock_mhz: float) -> dict[str, float]:
+        cpm = CYCLES_PER_INT8_MAC if self.int8 else CYCLES_PER_FLOAT_MAC
+        model_cycles = self.macs * cpm
+        fe_cycles = sum(self.frontend_ops_per_hop.values()) * CYCLES_PER_FRONTEND_OP
+        per_hop = model_cycles + fe_cycles
+        budget = clock_mhz * 1e6 * self.hop_s
+        return {"clock_mhz": clock_mhz, "cycles_per_mac_assumed": cpm,
+                "cycles_per_frontend_op_assumed": CYCLES_PER_FRONTEND_OP,
+                "model_cycles": model_cycles, "frontend_cycles": fe_cycles,
+                "duty_cycle": per_hop / budget}
+
+    def to_dict(self, clock_mhz: float | None = None) -> dict[str, Any]:
+        d = {"model": self.model, "runtime": self.runtime, "arena_bytes": self.arena_bytes,
+             "ram_bytes": self.ram_bytes, "flash_bytes": self.flash_bytes,
+             "model_bytes": self.model_bytes, "macs": self.macs, "ops": self.ops,
+             "unsupported_ops": self.unsupported_ops, "frontend_ram": self.frontend_ram,
+             "frontend_flash": self.frontend_flash,
+             "frontend_ops_per_hop": self.frontend_ops_per_hop,
+             "layers": [vars(x) for x in self.layers], "notes": self.notes}
+        if clock_mhz:
+            d["estimate"] = self.duty_cycle(clock_mhz)
+        return d
+
+
+def layers_of(path: Path) -> list[Layer]:
+    """Every node of a `.tflite` model with its shapes and work (see module docstring)."""
+    from ai_edge_litert import schema_py_generated as fb
+    from ai_edge_litert.interpreter import Interpreter, OpResolverType
+
+    from monitor.native import quiet_native_stderr
+
+    with quiet_native_stderr():
+        interp = Interpreter(model_path=str(path), experimental_op_resolver_type=
+                             OpResolverType.BUILTIN_WITHOUT_DEFAULT_DELEGATES)
+    tensors = {t["index"]: tuple(int(v) for v in t["shape"]) for t in interp.get_tensor_details()}
+    model = fb.Model.GetRootAs(Path(path).read_bytes(), 0)
+    sg = model.Subgraphs(0)
+    out = []
+    for k, op in enumerate(interp._get_ops_details()):
+        name = op["op_name"]
+        ins = [int(i) for i in op["inputs"] if int(i) >= 0]
+        outs = [int(i) for i in op["outputs"]]
+        x = tensors.get(ins[0], ()) if ins else ()
+        y = tensors.get(outs[0], ()) if outs else ()
+        w = tensors.get(ins[1]) if len(ins) > 1 and name in (
+            "CONV_2D", "DEPTHWISE_CONV_2D", "FULLY_CONNECTED") else None
+        macs = other = 0
+        if name == "CONV_2D" and w:  # filter (C_out, K_h, K_w, C_in)
+            macs = math.prod(y[1:]) * w[1] * w[2] * w[3]
+        elif name == "DEPTHWISE_CONV_2D" and w:  # filter (1, K_h, K_w, C_out): groups = C_in
+            macs = math.prod(y[1:]) * w[1] * w[2]
+        elif name == "FULLY_CONNECTED" and w:  # filter (outputs, inputs)
+            macs = (math.prod(y) // max(1, w[0])) * w[0] * w[1]
+        elif name in ("MAX_POOL_2D", "AVERAGE_POOL_2D"):
+            node = sg.Operators(k)
+            opt = fb.Pool2DOptions()
+            table = node.BuiltinOptions()
+            if table is not None:
+                opt.Init(table.Bytes, table.Pos)
+                other = math.prod(y[1:]) * opt.FilterHeight() * opt.FilterWidth()
+        elif name == "MEAN":
+            other = math.prod(x[1:]) if x else 0
+        out.append(Layer(k, name, x, y, w, int(macs), int(other)))
+    return out
+
+
+def frontend_ops_per_hop(card: ModelCard) -> dict[str, int]:
+    """Operations the front end does for each new hop of audio (frames shared across windows
+    computed once, as the streaming C call does)."""
+    if card.kind == "waveform":
+        return {"scaling": card.window_samples}
+    from monitor.device.constants import sparse_bank
+    from monitor.frontend import FrontEnd
+
+    frames = max(1, card.hop_samples // card.frame_step)
+    n = card.fft_length
+    fe = FrontEnd(card)
+    _, _, packed = sparse_bank(fe.mel_t.T)
+    return {"window multiply": frames * card.frame_length,
+            "FFT butterflies (radix-2)": frames * (n // 2) * int(math.log2(n)),
+            "power spectrum": frames * (n // 2 + 1),
+            "mel weights": frames * int(packed.size),
+            "logs": frames * card.mel_bands,
+            "scaling (whole window)": int(np.prod(card.feature_shape))}
+
+
+def budget(plan: ModelPlan, card: ModelCard) -> Budget:
+    """Measure and count what `plan`'s model costs on the target (see module docstring)."""
+    from monitor.device.constants import c_buffers, c_tables
+    from monitor.micro import MicroRunner, import_micro, list_operators
+
+    path = plan.path
+    if path.suffix.lower() != ".tflite":
+        raise ModelError(f"{path}: budget needs the .tflite model the board will run")
+    from monitor.runners import load_runner
+
+    load_runner(path, card)  # the model must fit its card (LiteRT: shapes and outputs)
+    data = path.read_bytes()
+    import_micro()
+    ops = list_operators(data)
+    unsupported, arena, notes = [], None, []
+    try:
+        runner = MicroRunner(path, card)
+        arena = runner.arena_bytes
+        int8 = runner.model_kind == "tflite-int8"
+    except ModelError as exc:
+        text = str(exc)
+        if "operator" not in text:
+            raise
+        name = text.split("operator ", 1)[1].split(";")[0].split(" (")[0].strip()
+        unsupported = [name]
+        notes.append(text)
+        int8 = False
+    ram = c_buffers(card) if card.kind != "waveform" else {}
+    ram = {f"front end: {k}": v for k, v in ram.items()}
+    ram["one window of int16 PCM"] = 2 * card.window_samples
+    ram["feature tensor (float32)"] = 4 * int(np.prod(card.feature_shape))
+    flash = {f"front end: {k}": v for k, v in c_tables(card).items()} \
+        if card.kind != "waveform" else {}
+    return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path), ops,
+                  unsupported, frontend_ops_per_hop(card), card.hop_s, int8, notes)
+
+
+def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
+    def kb(n: int | None) -> str:
+        return "-" if n is None else f"{n / 1024:,.1f} KiB"
+
+    lines = [f"budget of {b.model} (microcontroller runtime)", "",
+             "RAM                                      bytes   from"]
+    lines.append(f"  interpreter arena          {b.arena_bytes if b.arena_bytes is not None else '-':>14}"
+                 f"   the runtime's allocation recording")
+    for k, v in b.frontend_ram.items():
+        lines.append(f"  {k[:26]:<26} {v:>14}   {'frontend.c' if k.startswith('front') else 'the caller'}")
+    lines.append(f"  {'total':<26} {b.ram_bytes:>14}   ({kb(b.ram_bytes)})")
+    lines += ["", "flash                                    bytes   from"]
+    lines.append(f"  {'model flatbuffer':<26} {b.model_bytes:>14}   the .tflite file")
+    for k, v in b.frontend_flash.items():
+        lines.append(f"  {k[:26]:<26} {v:>14}   frontend_constants.h")
+    lines.append(f"  {'total':<26} {b.flash_bytes:>14}   ({kb(b.flash_bytes)})")
+    lines += ["", "work per window                 MACs   other   shapes (in -> out)"]
+    for x in b.layers:
+        shape = f"{'x'.join(map(str, x.input[1:]))} -> {'x'.join(map(str, x.output[1:]))}"
+        lines.append(f"  {x.index:>2} {x.op[:20]:<20} {x.macs:>10} {x.other_ops:>7}   {shape[:30]}")
+    lines.append(f"  {'model total':<23} {b.macs:>10}")
+    lines += ["", "front end per hop"]
+    for k, v in b.frontend_ops_per_hop.items():
+        lines.append(f"  {k[:30]:<30} {v:>10}")
+    ops = sorted(set(b.ops))
+    lines += ["", f"operators  {', '.join(ops)}"]
+    if b.unsupported_ops:
+        lines.append(f"NOT RUNNABLE on the microcontroller runtime: {', '.join(b.unsupported_ops)}")
+    else:
+        lines.append("           all run in the microcontroller runtime")
+    if clock_mhz:
+        d = b.duty_cycle(clock_mhz)
+        lines += ["", f"estimate at {clock_mhz:g} MHz (an assumption, not a measurement: "
+                      f"{d['cycles_per_mac_assumed']:g} cycle(s) per MAC, "
+                      f"{d['cycles_per_frontend_op_assumed']:g} per front-end op)",
+                  f"  {d['model_cycles'] + d['frontend_cycles']:,.0f} cycles per hop of "
+                  f"{b.hop_s * 1000:g} ms: about {d['duty_cycle']:.1%} of the core"]
+    return "\n".join(lines) + "\n"
+
+
+def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> int:
+    """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime."""
+    from monitor.assemble import load_card
+
+    card = load_card(plan)
+    if clock_mhz is not None and not clock_mhz > 0:
+        raise ScenemonError(f"--clock-mhz {clock_mhz} must be above 0")
+    b = budget(plan, card)
+    sys.stdout.write(json.dumps(b.to_dict(clock_mhz), indent=2) + "\n" if as_json
+                     else budget_text(b, clock_mhz))
+    if b.unsupported_ops:
+        sys.stderr.write(f"scenemon: {b.notes[0]}\n")
+        return ExitCode.FAILURE
+    return ExitCode.OK

@@ -1,0 +1,126 @@
+/* scenemon firmware-side check: runs pcm.csv through the shipped front end and compares.
+ *
+ *   make check        (builds check_fe from check.c, frontend.c and the headers, runs it)
+ *
+ * Reads pcm.csv (int16 samples, one window per row), features.csv (the scaled features
+ * scenemon computed) and, for an int8 model, input_int8.csv (the model's int8 input). For
+ * each window it computes the features with sm_features_i16(), reports the largest absolute
+ * difference against features.csv and how many int8 input values differ after the input
+ * quantisation q = round(x / scale) + zero_point (half to even, saturated), as the model's
+ * input tensor has it. Exit 0 when every window is within tolerance: features within
+ * SM_CHECK_FEATURE_TOL and int8 inputs within SM_CHECK_INT8_STEPS steps.
+ *
+ * C99; reads files with stdio, so it runs on the host (or a board with semihosting). */
+#include <math.h>
+#include <stdio.h>
+#include <stdlib.h>
+
+#include "frontend_constants.h"
+#include "frontend.h"
+#include "check_params.h"
+
+static int16_t pcm[SM_WINDOW_SAMPLES];
+static float feats[SM_FEATURES];
+static float want[SM_FEATURES];
+#if SM_CHECK_INT8
+static int want_q[SM_FEATURES];
+#endif
+
+static int read_ints(FILE *f, int16_t *dst, int n) {
+    for (int i = 0; i < n; i++) {
+        long v;
+        if (fscanf(f, " %ld%*[,\n\r]", &v) != 1) return 0;
+        dst[i] = (int16_t)v;
+    }
+    return 1;
+}
+
+static int read_floats(FILE *f, float *dst, int n) {
+    for (int i = 0; i < n; i++) {
+        if (fscanf(f, " %f%*[,\n\r]", &dst[i]) != 1) return 0;
+    }
+    return 1;
+}
+
+#if SM_CHECK_INT8
+static int read_q(FILE *f, int *dst, int n) {
+    for (int i = 0; i < n; i++) {
+        if (fscanf(f, " %d%*[,\n\r]", &dst[i]) != 1) return 0;
+    }
+    return 1;
+}
+
+/* round half to even, then add the zero point and saturate to int8 */
+static int quantise(float x) {
+    float v = x / SM_INPUT_SCALE;
+    float r = floorf(v + 0.5f);
+    if (r - v == 0.5f && fmodf(r, 2.0f) != 0.0f) r -= 1.0f;
+    int q = (int)r + SM_INPUT_ZERO_POINT;
+    if (q < -128) q = -128;
+    if (q > 127) q = 127;
+    return q;
+}
+#endif
+
+static FILE *open_or_die(const char *name) {
+    FILE *f = fopen(name, "r");
+    if (!f) {
+        fprintf(stderr, "check: cannot open %s\n", name);
+        exit(2);
+    }
+    return f;
+}
+
+int main(void) {
+    FILE *fp = open_or_die("pcm.csv");
+    FILE *ff = open_or_die("features.csv");
+#if SM_CHECK_INT8
+    FILE *fq = open_or_die("input_int8.csv");
+#endif
+    int windows = 0, bad = 0;
+    float worst = 0.0f;
+    int worst_steps = 0, values_off = 0;
+    sm_frontend_init();
+    while (read_ints(fp, pcm, SM_WINDOW_SAMPLES)) {
+        if (!read_floats(ff, want, SM_FEATURES)) {
+            fprintf(stderr, "check: features.csv has fewer rows than pcm.csv\n");
+            return 2;
+        }
+        sm_features_i16(pcm, feats);
+        float diff = 0.0f;
+        for (int i = 0; i < SM_FEATURES; i++) {
+            float d = fabsf(feats[i] - want[i]);
+            if (d > diff) diff = d;
+        }
+        int steps = 0, off = 0;
+#if SM_CHECK_INT8
+        if (!read_q(fq, want_q, SM_FEATURES)) {
+            fprintf(stderr, "check: input_int8.csv has fewer rows than pcm.csv\n");
+            return 2;
+        }
+        for (int i = 0; i < SM_FEATURES; i++) {
+            int s = abs(quantise(feats[i]) - want_q[i]);
+            if (s) off++;
+            if (s > steps) steps = s;
+        }
+#endif
+        int ok = diff <= SM_CHECK_FEATURE_TOL && steps <= SM_CHECK_INT8_STEPS;
+        if (!ok) bad++;
+        if (diff > worst) worst = diff;
+        if (steps > worst_steps) worst_steps = steps;
+        values_off += off;
+        printf("window %4d  features max abs diff %.3g  int8 inputs %s (%d of %d differ, "
+               "largest %d step%s)%s\n", windows, (double)diff, off ? "differ" : "match", off,
+               SM_FEATURES, steps, steps == 1 ? "" : "s", ok ? "" : "  OUT OF TOLERANCE");
+        windows++;
+    }
+    printf("%d windows: features max abs diff %.3g (tolerance %.3g); int8 input values that "
+           "differ: %d, by at most %d step%s (tolerance %d); %s\n", windows, (double)worst,
+           (double)SM_CHECK_FEATURE_TOL, values_off, worst_steps, worst_steps == 1 ? "" : "s",
+           SM_CHECK_INT8_STEPS, bad ? "FAILED" : "passed");
+    if (windows != SM_CHECK_WINDOWS) {
+        fprintf(stderr, "check: read %d windows, expected %d\n", windows, SM_CHECK_WINDOWS);
+        return 1;
+    }
+    return bad ? 1 : 0;
+}

@@ -1,0 +1,111 @@
+"""`scenemon quantize`: full-integer int8 post-training quantisation from field audio.
+
+Calibration windows are drawn from real recordings or sessions (seeded, spread evenly over
+every file) through the card's own front end; the converter then gets int8 weights,
+activations, input and output (TFLite int8 quantization spec: ``q = clip(round(x / scale) +
+zero_point, -128, 127)``). TensorFlow's converter leaks memory on every call (tensorflow
+issue 122598), so this converts once per process.
+"""
+
+from __future__ import annotations
+
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from monitor.card import ModelCard
+from monitor.errors import ExitCode, ModelError, ScenemonError
+
+CARD_MARK = "quantised by scenemon quantize"
+
+
+def calibration_features(card: ModelCard, sources: list[Path], *, count: int = 300,
+                         seed: int = 0) -> np.ndarray:
+    """About `count` windows spread evenly over all recordings (seeded jitter), as model
+    input ``(n, *card.feature_shape)``."""
+    from monitor.assemble import file_windows
+    from monitor.frontend import FrontEnd
+
+    fe = FrontEnd(card)
+    per = max(1, count // len(sources))
+    rng = np.random.default_rng(seed)
+    feats = []
+    for src in sources:
+        w = file_windows(src, card)
+        k = min(per, len(w))
+        edges = np.linspace(0, len(w), k + 1)
+        pick = [int(rng.integers(int(a), max(int(a) + 1, int(b)))) for a, b in zip(edges, edges[1:])]
+        feats.append(fe.batch(w[pick]))
+    return np.concatenate(feats)
+
+
+def _check_target(out: Path) -> None:
+    """Refuse to write over a file that is not an earlier output of this command."""
+    card = out.with_suffix(".toml")
+    for p in (out, card):
+        if p.is_symlink() or (p.exists() and not p.is_file()):
+            raise ScenemonError(f"{p}: exists and is not a regular file; choose another --out")
+    if card.exists() and CARD_MARK not in card.read_text(encoding="utf-8", errors="replace")[:400]:
+        raise ScenemonError(f"{card}: exists and was not written by scenemon quantize; choose "
+                            f"another --out (its card would be written there)")
+    if out.exists() and not card.exists():
+        raise ScenemonError(f"{out}: exists and was not written by scenemon quantize; choose "
+                            f"another --out")
+
+
+def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
+             trust_model: bool = False, debug: bool = False) -> dict:
+    """Convert the Keras `model` to a full-integer `.tflite` at `out`, its card beside it."""
+    from monitor.files import atomic_write
+    from monitor.native import quiet_native_stderr, silence_absl
+    from monitor.runners import KerasRunner
+
+    if Path(model).suffix.lower() not in (".keras", ".h5"):
+        raise ModelError(f"{model}: quantize needs the Keras model (.keras or .h5)")
+    runner = KerasRunner(Path(model), card, trust_model=trust_model)
+    import tensorflow as tf
+
+    silence_absl()
+    shape = runner._one_shape
+
+    def representative():
+        for f in features:
+            yield [f.reshape(shape).astype(np.float32)]
+
+    conv = tf.lite.TFLiteConverter.from_keras_model(runner.model)
+    conv.optimizations = [tf.lite.Optimize.DEFAULT]
+    conv.representative_dataset = representative
+    conv.target_spec.supported_ops = [tf.lite.OpsSet.TFLITE_BUILTINS_INT8]
+    conv.inference_input_type = tf.int8
+    conv.inference_output_type = tf.int8
+    if debug:
+        data = conv.convert()
+    else:
+        with quiet_native_stderr():  # the converter's MLIR passes print dozens of lines
+            data = conv.convert()
+    out.parent.mkdir(parents=True, exist_ok=True)
+    atomic_write(out, data)
+    card_out = out.with_suffix(".toml")
+    src_text = card.path.read_text(encoding="utf-8") if card.path else ""
+    note = (f"# int8 model {out.name}: {CARD_MARK} from {Path(model).name} with "
+            f"{len(features)} calibration windows; same front end as {Path(card.name).name}\n")
+    atomic_write(card_out, (note + src_text).encode("utf-8"))
+    return {"model": str(out), "card": str(card_out), "windows": int(len(features)),
+            "bytes": len(data)}
+
+
+def run_quantize(model: Path, *, card: Path | None, calibrate: list[Path], out: Path,
+                 windows: int, seed: int, trust_model: bool) -> int:
+    """`scenemon quantize`."""
+    from monitor.card import card_for_model
+
+    c = card_for_model(model, card)
+    _check_target(out)
+    feats = calibration_features(c, calibrate, count=windows, seed=seed)
+    from monitor import native
+
+    res = quantize(model, c, feats, out, trust_model=trust_model, debug=native.DEBUG)
+    sys.stdout.write(f"wrote {res['model']} ({res['bytes']} bytes) and {res['card']} from "
+                     f"{res['windows']} calibration windows\n")
+    return ExitCode.OK

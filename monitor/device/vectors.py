@@ -1,0 +1,180 @@
+"""`scenemon vectors`: golden vectors, the portable C front end and a check program for the
+firmware, in one folder.
+
+The golden int8 outputs come from the microcontroller runtime (the firmware's own kernels:
+they are what the firmware must reproduce exactly). With ``--count N`` the windows are
+spread over the recording so that every class the model predicts there is covered: at least
+one window of each predicted class, the rest shared in proportion to how often each is
+predicted, each class's share spread evenly over its windows (seeded), in time order.
+
+Nothing written names a path of the machine that wrote it (file names only). The folder
+also holds ``check.c``, ``check_params.h`` and a ``Makefile``: ``make -C DIR check`` builds
+the check with the shipped front end, runs ``pcm.csv`` through it and compares against
+``features.csv`` and ``input_int8.csv`` (exit 0 within tolerance).
+"""
+
+from __future__ import annotations
+
+import shutil
+import sys
+from pathlib import Path
+
+import numpy as np
+
+from monitor.card import ModelCard
+from monitor.errors import ExitCode, ScenemonError
+from monitor.plan import ModelPlan
+
+CHECK_SOURCES = (Path(__file__).with_name("check.c"), Path(__file__).with_name("check.mk"))
+FEATURE_TOL_OF_RANGE = 1e-3  # C against Python: 1e-3 of the features' range (common practice)
+INT8_TOL_STEPS = 1  # a float difference of ~1e-5 can move a value across a rounding edge
+
+
+def pick_windows(top: np.ndarray, count: int | None, seed: int = 0) -> np.ndarray:
+    """Indices of `count` windows covering every predicted class (module docstring)."""
+    n = len(top)
+    if count is None or count >= n:
+        return np.arange(n)
+    classes, sizes = np.unique(top, return_counts=True)
+    if count < len(classes):
+        raise ScenemonError(f"--count {count} cannot cover the {len(classes)} classes the model "
+                            f"predicts in this recording; give at least {len(classes)}")
+    alloc = np.ones(len(classes), int)
+    rest = count - len(classes)
+    share = rest * sizes / sizes.sum()
+    alloc += np.floor(share).astype(int)
+    left = count - alloc.sum()
+    for k in np.argsort(-(share - np.floor(share)), kind="stable")[:left]:
+        alloc[k] += 1
+    alloc = np.minimum(alloc, sizes)
+    while alloc.sum() < count:  # a class smaller than its share: give the rest to others
+        room = sizes - alloc
+        alloc[int(np.argmax(room))] += 1
+    rng = np.random.default_rng(seed)
+    picked = []
+    for c, k in zip(classes, alloc):
+        idx = np.flatnonzero(top == c)
+        edges = np.linspace(0, len(idx), k + 1)
+        for a, b in zip(edges, edges[1:]):
+            picked.append(int(idx[int(rng.integers(int(a), max(int(a) + 1, int(b))))]))
+    return np.array(sorted(picked))
+
+
+def _csv(path: Path, rows: np.ndarray, fmt: str) -> None:
+    np.savetxt(path, rows.reshape(len(rows), -1), fmt=fmt, delimiter=",")
+
+
+def read_csv(path: Path, dtype=np.float64) -> np.ndarray:
+    return np.loadtxt(path, delimiter=",", dtype=dtype, ndmin=2)
+
+
+def _check_target(out: Path) -> None:
+    if out.exists() and not out.is_dir():
+        raise ScenemonError(f"{out}: exists and is not a folder; --out names the folder the "
+                            f"vectors go into")
+    if out.is_dir() and any(out.iterdir()) and not (out / "meta.json").is_file():
+        raise ScenemonError(f"{out}: holds other files; choose a new or empty folder")
+
+
+def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) -> str:
+    from monitor.device.constants import cfloat
+
+    span = float(features.max() - features.min()) if features.size else 1.0
+    int8 = getattr(runner, "in_dtype", None) == np.int8
+    lines = ["/* check_params.h: written by `scenemon vectors` for check.c */",
+             "#ifndef SCENEMON_CHECK_PARAMS_H", "#define SCENEMON_CHECK_PARAMS_H",
+             f"#define SM_CHECK_WINDOWS {windows}",
+             f"#define SM_CHECK_INT8 {int(int8)}",
+             f"#define SM_CHECK_FEATURE_TOL {cfloat(FEATURE_TOL_OF_RANGE * max(span, 1e-6))}",
+             f"#define SM_CHECK_INT8_STEPS {INT8_TOL_STEPS}"]
+    if int8:
+        lines += [f"#define SM_INPUT_SCALE {cfloat(runner.in_scale)}",
+                  f"#define SM_INPUT_ZERO_POINT {int(runner.in_zero)}"]
+    lines += ["#endif", ""]
+    return "\n".join(lines)
+
+
+def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
+                  seed: int = 0) -> dict:
+    """Write the golden vectors folder (see module docstring); returns meta.json's content."""
+    from monitor.assemble import file_windows
+    from monitor.device import C_SOURCES
+    from monitor.device.constants import header
+    from monitor.files import atomic_write, dumps
+    from monitor.frontend import FrontEnd
+    from monitor.samples import from_pcm16, to_pcm16
+
+    card, runner = loaded.card, loaded.runner
+    _check_target(out)
+    pcm_all = to_pcm16(file_windows(audio, card))
+    fe = FrontEnd(card)
+    x_all = from_pcm16(pcm_all)  # what the device's microphone gives
+    pick = np.arange(len(x_all))
+    if count is not None and count < len(x_all):
+        top = np.argmax(runner.predict(fe.batch(x_all)), axis=1)
+        pick = pick_windows(top, count, seed)
+    pcm, x = pcm_all[pick], x_all[pick]
+    feats = fe.batch(x)
+    probs = runner.predict(feats)
+    out.mkdir(parents=True, exist_ok=True)
+    _csv(out / "pcm.csv", pcm, "%d")
+    _csv(out / "features.csv", feats, "%.9g")
+    _csv(out / "output.csv", probs, "%.9g")
+    hop = card.hop_samples / card.sample_rate
+    meta = {"card": {k: v for k, v in card.settings_dict().items() if k != "card"},
+            "card_file": Path(card.name).name, "model": runner.path.name,
+            "model_sha256": runner.sha256, "model_kind": runner.model_kind,
+            "runtime": runner.runtime, "windows": int(len(pick)),
+            "window_starts_s": [round(float(i) * hop, 6) for i in pick],
+            "predicted": [card.classes[int(k)] for k in np.argmax(probs, 1)],
+            "window_samples": card.window_samples, "hop_samples": card.hop_samples,
+            "layout": card.layout if card.kind != "waveform" else "samples",
+            "feature_shape": list(card.feature_shape), "classes": list(card.classes),
+            "source": Path(audio).name, "seed": seed,
+            "files": {"pcm.csv": "int16 samples, one window per row",
+                      "features.csv": "scaled features in the model's input order, one window per row",
+                      "output.csv": "probabilities, one window per row"}}
+    if getattr(runner, "in_dtype", None) == np.int8:
+        raw = [runner.raw(f) for f in feats]
+        _csv(out / "input_int8.csv", np.stack([r[0] for r in raw]), "%d")
+        _csv(out / "output_int8.csv", np.stack([r[1] for r in raw]), "%d")
+        meta["quantization"] = {"input_scale": runner.in_scale, "input_zero_point": runner.in_zero,
+                                "output_scale": runner.out_scale,
+                                "output_zero_point": runner.out_zero}
+        meta["files"]["input_int8.csv"] = "the int8 input tensor, one window per row"
+        meta["files"]["output_int8.csv"] = (f"the int8 output tensor, one window per row "
+                                            f"({runner.runtime} runtime)")
+    if card.kind != "waveform":
+        (out / "frontend_constants.h").write_text(header(card, model_sha256=runner.sha256))
+        for src in C_SOURCES:
+            shutil.copyfile(src, out / src.name)
+        shutil.copyfile(CHECK_SOURCES[0], out / "check.c")
+        shutil.copyfile(CHECK_SOURCES[1], out / "Makefile")
+        (out / "check_params.h").write_text(check_params(card, runner, len(pick), feats))
+        meta["files"].update({"check.c": "the firmware-side check (make check)",
+                              "Makefile": "builds and runs check.c with frontend.c"})
+    if runner.path.suffix.lower() == ".tflite":
+        try:
+            from monitor.device.budget import budget
+
+            b = budget(loaded.plan, card)
+            meta["budget"] = {k: v for k, v in b.to_dict().items() if k != "layers"}
+        except ScenemonError as exc:
+            meta["budget"] = {"error": str(exc)}
+    atomic_write(out / "meta.json", dumps(meta, indent=2).encode())
+    return meta
+
+
+def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
+                seed: int = 0) -> int:
+    """`scenemon vectors`."""
+    from monitor.assemble import load_model
+
+    meta = write_vectors(load_model(plan), audio, out, count=count, seed=seed)
+    classes = sorted(set(meta["predicted"]))
+    sys.stdout.write(f"wrote {meta['windows']} windows of golden vectors to {out} "
+                     f"({meta['runtime']} runtime; predicted classes covered: "
+                     f"{', '.join(classes)})\n")
+    if (out / "Makefile").is_file():
+        sys.stdout.write(f"check them with the shipped C front end: make -C {out} check\n")
+    return ExitCode.OK

@@ -1,0 +1,219 @@
+"""The command line's shared flag groups, their value types and the commands' examples.
+
+Defaults shown in the help come from the settings dataclasses themselves
+(`card.DecisionSettings`, `capture.CaptureSettings`, `plan`), so the help and the behaviour
+cannot drift apart; a flag left out is None and the card's or the dataclass's value stands.
+"""
+
+from __future__ import annotations
+
+import argparse
+import math
+import sys
+
+from monitor.errors import ExitCode
+
+EXAMPLES = {
+    "replay": """examples:
+  scenemon replay recordings/demo/tour.wav --model models/demo.tflite --truth recordings/demo/tour.tsv --fast --headless
+  scenemon replay field/corridor.flac --model models/demo.int8.tflite --out recordings/corridor-1
+  scenemon replay walk.wav --model m.keras --card m.toml --smoothing ema --ema-alpha 0.3
+  scenemon replay walk.wav --model models/demo.tflite --model models/demo-mfcc.tflite   # A/B""",
+    "live": """examples:
+  scenemon devices
+  scenemon live --model models/demo.tflite
+  scenemon live --model models/demo.int8.tflite --input "USB" --headless --out recordings/site-a
+  scenemon live --model m.tflite --runtime micro --no-audio --seconds 600""",
+    "demo": """examples:
+  make demo                 # sets up .venv and runs this
+  scenemon demo             # the bundled scene tour at real-time pace
+  scenemon demo --fast      # the same, as fast as the CPU allows
+  scenemon demo --mic       # the demo model on the microphone
+  scenemon demo --model models/demo.tflite --model models/demo-mfcc.tflite   # two models""",
+    "report": """examples:
+  scenemon report recordings/20261201-101500-live
+  scenemon report recordings/tour-check --html tour-check.html""",
+    "tune": """examples:
+  scenemon tune recordings/site-a recordings/site-b
+  scenemon tune recordings/tour-check --grid 'smoothing=ema;ema_alpha=0.2,0.4;confirm=1,2,3'
+  scenemon tune recordings/site-a --apply models/demo.toml""",
+    "harvest": """examples:
+  scenemon harvest recordings/site-a recordings/site-b --out retrain/round2
+  scenemon harvest recordings/* --out retrain/round2 --include disagreement,manual --drop-unknown""",
+    "quantize": """examples:
+  scenemon quantize --model models/demo.keras --calibrate recordings/site-a recordings/site-b --out models/site.int8.tflite""",
+    "compare": """examples:
+  scenemon compare --model models/demo.tflite --model models/demo.int8.tflite recordings/demo/tour.wav
+  scenemon compare --model a.keras --model a.int8.tflite recordings/site-* --min-agree 0.95
+  scenemon compare --model m.int8.tflite --runtime litert --model m.int8.tflite --runtime micro tour.wav""",
+    "vectors": """examples:
+  scenemon vectors --model models/demo.int8.tflite recordings/demo/tour.wav --out golden --count 20
+  make -C golden check      # builds and runs the firmware-side check""",
+    "score": """examples:
+  scenemon score field-archive --model models/demo.int8.tflite --out scores/int8
+  scenemon score field-archive --model m.tflite --out scores/m --workers 2
+  scenemon score field-archive --model a.tflite --model b.tflite --out scores/ab
+  scenemon score field-archive --model m.tflite --out scores/m --cluster tcp://scheduler:8786""",
+    "bench": """examples:
+  scenemon bench
+  scenemon bench --model models/demo.keras --seconds 120""",
+    "budget": """examples:
+  scenemon budget --model models/demo.int8.tflite
+  scenemon budget --model models/demo.int8.tflite --clock-mhz 80 --json""",
+    "profile": """examples:
+  scenemon profile --model models/demo.tflite recordings/site-a recordings/site-b
+  scenemon profile --model m.tflite training/clips/*.wav --out m.profile.npz --quantile 0.99""",
+}
+
+
+class Parser(argparse.ArgumentParser):
+    def error(self, message: str) -> None:  # argparse's own bad-flag path: exit 2, one line
+        sys.stderr.write(f"{self.prog}: {message} (see {self.prog} --help)\n")
+        raise SystemExit(ExitCode.BAD_INPUT)
+
+
+def number(text: str) -> float:
+    try:
+        v = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not a number") from None
+    if not math.isfinite(v):
+        raise argparse.ArgumentTypeError(f"{text} is not a finite number")
+    return v
+
+
+def fraction(text: str) -> float:
+    v = number(text)
+    if not 0.0 <= v <= 1.0:
+        raise argparse.ArgumentTypeError(f"{text} is not a fraction in [0, 1]")
+    return v
+
+
+def seconds(text: str) -> float:
+    v = number(text)
+    if v < 0:
+        raise argparse.ArgumentTypeError(f"{text} is not a number of seconds >= 0")
+    return v
+
+
+def positive(text: str) -> float:
+    v = number(text)
+    if v <= 0:
+        raise argparse.ArgumentTypeError(f"{text} must be above 0")
+    return v
+
+
+def positive_int(text: str) -> int:
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if v < 1:
+        raise argparse.ArgumentTypeError(f"{text} is not an integer >= 1")
+    return v
+
+
+def subcommand(sub, name: str, help_: str, description: str, epilog: str | None = None):
+    return sub.add_parser(name, help=help_, description=description,
+                          epilog=epilog or EXAMPLES.get(name),
+                          formatter_class=argparse.RawDescriptionHelpFormatter)
+
+
+def add_decision_flags(p: argparse.ArgumentParser) -> None:
+    from monitor.card import DecisionSettings
+
+    d = DecisionSettings()
+    g = p.add_argument_group("decision (override the card's [decision] table; card defaults "
+                             "in brackets are the built-in ones)")
+    g.add_argument("--smoothing", choices=["none", "mean", "ema", "median"],
+                   help=f"smoothing of the raw probabilities [{d.smoothing}]")
+    g.add_argument("--smoothing-windows", type=positive_int, metavar="N",
+                   help=f"windows averaged by mean / median [{d.smoothing_windows}]")
+    g.add_argument("--ema-alpha", type=fraction, metavar="A",
+                   help=f"weight of the newest window for ema, a fraction [{d.ema_alpha}]")
+    g.add_argument("--enter", type=fraction, metavar="P",
+                   help=f"smoothed probability a class needs to be taken, a fraction [{d.enter}]")
+    g.add_argument("--exit", type=fraction, metavar="P",
+                   help=f"release the decision below this probability (0: never) [{d.exit}]")
+    g.add_argument("--margin", type=fraction, metavar="P",
+                   help=f"lead over the current decision needed to switch [{d.margin}]")
+    g.add_argument("--confirm", type=positive_int, metavar="K",
+                   help=f"consecutive passing windows needed to switch [{d.confirm}]")
+    g.add_argument("--min-hold", type=seconds, metavar="SECONDS", dest="min_hold_s",
+                   help=f"seconds a decision is held before it may switch [{d.min_hold_s}]")
+
+
+def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: bool = False,
+                     default_help: str = "") -> None:
+    p.add_argument("--model", action="append" if many else "store", required=required,
+                   metavar="M", help=(".keras, .h5 or .tflite model; its card is M's stem + "
+                                      ".toml" + ("; give twice for two models side by side (A, "
+                                                 "then B)" if many else "") + default_help))
+    p.add_argument("--card", action="append" if many else "store", metavar="CARD",
+                   help="model card TOML (default: beside the model)"
+                        + ("; once per --model, in order" if many else ""))
+    p.add_argument("--spec", action="append" if many else "store", dest="card",
+                   help=argparse.SUPPRESS)  # the old name of --card, kept for a release
+    p.add_argument("--runtime", action="append" if many else "store",
+                   choices=["litert", "micro"],
+                   help="for a .tflite model: litert (default) or micro, the microcontroller "
+                        "interpreter of tflite-micro" + ("; once per --model" if many else ""))
+    p.add_argument("--trust-model", action="store_true",
+                   help="allow Keras Lambda layers (their code runs when the model loads; "
+                        "never for a file from a stranger)")
+
+
+def add_live_flags(p: argparse.ArgumentParser) -> None:
+    g = p.add_argument_group("input device")
+    g.add_argument("--input", metavar="DEVICE",
+                   help="device index or a case-insensitive part of its name (see scenemon "
+                        "devices); default: pipewire / pulse / default on Linux, else the "
+                        "system default")
+    g.add_argument("--seconds", type=positive, metavar="SECONDS",
+                   help="stop after this many seconds of audio (also with the terminal UI)")
+    g.add_argument("--latency", default="high", metavar="LATENCY",
+                   help="PortAudio latency: high (robust, default), low, or seconds")
+    g.add_argument("--blocksize", type=int, default=None, metavar="FRAMES",
+                   help="frames per callback (default: about 50 ms; 0: let PortAudio choose)")
+
+
+def add_session_flags(p: argparse.ArgumentParser) -> None:
+    from monitor.plan import DEFAULT_SEGMENT_S
+
+    p.add_argument("--out", metavar="DIR",
+                   help="session directory (default: recordings/<date>-<time>-<name>)")
+    p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
+    p.add_argument("--segment-min", type=positive, default=DEFAULT_SEGMENT_S / 60.0,
+                   metavar="MINUTES",
+                   help=f"start a new audio file every MINUTES (default {DEFAULT_SEGMENT_S / 60:g})")
+    p.add_argument("--headless", action="store_true",
+                   help="no screen: one JSON object per window on stdout (default: the "
+                        "terminal UI when there is a terminal)")
+
+
+def add_capture_flags(p: argparse.ArgumentParser) -> None:
+    from monitor.capture import POLICIES, CaptureSettings
+
+    c = CaptureSettings()
+    g = p.add_argument_group("capture (hard examples saved under SESSION/snippets/)")
+    g.add_argument("--capture", metavar="POLICIES",
+                   help=f"comma-separated from {', '.join(POLICIES)}; or none (default: all, "
+                        f"each where it applies: disagreement needs truth, models_disagree two "
+                        f"models, unfamiliar a profile)")
+    g.add_argument("--capture-on", choices=["decision", "top"],
+                   help=f"what must disagree with the truth: the decision or the raw top class "
+                        f"[{c.on}]")
+    g.add_argument("--pre-roll", type=seconds, metavar="SECONDS",
+                   help=f"seconds kept before a snippet [{c.pre_roll_s}]")
+    g.add_argument("--post-roll", type=seconds, metavar="SECONDS",
+                   help=f"seconds kept after a snippet [{c.post_roll_s}]")
+    g.add_argument("--max-snippet", type=positive, metavar="SECONDS",
+                   help=f"longest snippet [{c.max_s}]")
+    g.add_argument("--capture-every", type=seconds, metavar="SECONDS",
+                   help=f"at most one snippet per (truth, predicted) pair this often [{c.every_s}]")
+    g.add_argument("--uncertain-below", type=fraction, metavar="P",
+                   help=f"uncertain when the top smoothed probability is below P [{c.uncertain_below}]")
+    g.add_argument("--uncertain-margin", type=fraction, metavar="P",
+                   help=f"uncertain when the top two are closer than P [{c.uncertain_margin}]")
+
+

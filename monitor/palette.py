@@ -1,0 +1,59 @@
+"""One palette for every screen and picture: the terminal UI and the HTML report share it.
+
+Class colours are taken from the colour-blind-safe set of Okabe and Ito 2008, "Color
+Universal Design (CUD): how to make figures and presentations that are friendly to colorblind
+people" (J*FLY), without its black, in an order of our own, on a dark slate ground of our own
+on which every one reaches WCAG 2.x contrast 3:1. Beyond seven classes the colours repeat;
+every class also has its own letter, so nothing depends on colour alone.
+
+The heat ramp (log-mel picture, confusion matrix) is our own: from the ground through deep
+teal and moss to a pale straw, its relative luminance rising at every step, so it reads in
+order in colour and in grey.
+"""
+
+from __future__ import annotations
+
+GROUND = "#15191f"  # page and terminal background
+PANEL = "#1c222a"  # a panel on the ground
+LINE = "#2f3843"  # rules, grid lines, borders
+TEXT = "#e4e8ee"
+MUTED = "#8c96a4"
+ALERT = "#ff6f61"  # a difference, clipping: also said in words, never colour alone
+
+CLASS_COLOURS = ("#56B4E9", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#D55E00", "#6FA8DC")
+# sky blue, orange, bluish green, reddish purple, yellow, vermillion (Okabe and Ito), and the
+# set's blue lifted (#0072B2 -> #6FA8DC) so that it stays apart from the others on the ground
+
+HEAT = ("#15191f", "#1b2a35", "#1f3d4a", "#23525b", "#2c6866", "#3f7f6a", "#5e9669",
+        "#86ac66", "#b4c26a", "#e0d77f", "#f7ecb5")
+
+UNKNOWN_COLOUR = "#7d8591"  # undecided, unknown, a label outside the classes
+
+
+def class_colour(classes, label) -> str:
+    """The colour of `label` among `classes` (the same everywhere)."""
+    classes = list(classes)
+    if label in classes:
+        return CLASS_COLOURS[classes.index(label) % len(CLASS_COLOURS)]
+    return UNKNOWN_COLOUR
+
+
+def heat_colour(frac: float) -> str:
+    """The heat ramp at `frac` in [0, 1]."""
+    k = int(min(max(frac, 0.0), 0.9999) * len(HEAT))
+    return HEAT[k]
+
+
+def relative_luminance(hex_colour: str) -> float:
+    """WCAG 2.x relative luminance of an sRGB colour ``#rrggbb``."""
+    h = hex_colour.lstrip("#")
+    c = [int(h[i:i + 2], 16) / 255.0 for i in (0, 2, 4)]
+    c = [v / 12.92 if v <= 0.04045 else ((v + 0.055) / 1.055) ** 2.4 for v in c]
+    return 0.2126 * c[0] + 0.7152 * c[1] + 0.0722 * c[2]
+
+
+def contrast_ratio(a: str, b: str) -> float:
+    """WCAG 2.x contrast ratio ``(L1 + 0.05) / (L2 + 0.05)``, lighter over darker."""
+    la, lb = relative_luminance(a), relative_luminance(b)
+    hi, lo = max(la, lb), min(la, lb)
+    return (hi + 0.05) / (lo + 0.05)

@@ -1,0 +1,128 @@
+"""Commands that run a session or the chain and print: the headless session with its
+printers and closing summary, and `scenemon profile`.
+
+The exit code of a finished session comes from `errors.summary_failure` (a device lost, a
+full disk, a model fault: 1), like every other exit code, from `errors`.
+"""
+
+from __future__ import annotations
+
+import sys
+import threading
+from pathlib import Path
+
+import numpy as np
+
+from monitor.errors import ExitCode, ScenemonError, summary_failure
+from monitor.plan import ModelPlan, SessionPlan
+
+
+def finish(summary: dict, stream=None) -> int:
+    """Print the closing summary; the exit code of the session."""
+    stream = stream or sys.stderr
+    stream.write(summary_text(summary))
+    failure = summary_failure(summary)
+    if failure:
+        stream.write(f"scenemon: {failure}\n")
+        return ExitCode.FAILURE
+    return ExitCode.OK
+
+
+def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
+    """A session without a screen: one JSON object per window (`json_lines`) or one line per
+    decision change on stdout, the summary on stderr."""
+    from monitor.assemble import run_session
+    from monitor.observers import ChangePrinter, HeadlessPrinter
+
+    stop = threading.Event()
+    printer = HeadlessPrinter(stop=stop) if json_lines else ChangePrinter(stop=stop)
+    summary = run_session(plan, observers=[printer], stop=stop)
+    if printer.closed:  # the reader went away (| head): the session is closed, end quietly
+        return ExitCode.OK
+    return finish(summary)
+
+
+def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
+                quantile: float) -> int:
+    """`scenemon profile`: fit and write the novelty profile of a model."""
+    from monitor.assemble import file_windows, load_card
+    from monitor.frontend import FrontEnd
+    from monitor.novelty import fit_profile, profile_path_for, save_profile
+    from monitor.session_reader import is_session, load_session
+
+    card = load_card(model)
+    if not model.path.is_file():
+        raise ScenemonError(f"{model.path}: model file not found")
+    fe = FrontEnd(card)
+    feats, notes = [], []
+    for src in sources:
+        w = file_windows(src, card)
+        f = fe.batch(w)
+        if is_session(src):  # keep only windows whose truth is one of the model's classes
+            s = load_session(src)
+            labels = [x.get("truth") for x in s.windows][:len(f)]
+            keep = np.array([t in card.classes for t in labels] + [False] * (len(f) - len(labels)))
+            if s.truth is not None:
+                notes.append(f"{src}: {int(keep.sum())} of {len(f)} windows have truth")
+                f = f[keep]
+        feats.append(f)
+    x = np.concatenate(feats) if feats else np.zeros((0, *card.feature_shape), np.float32)
+    prof = fit_profile(x, card, quantile=quantile)
+    target = out or profile_path_for(model.path)
+    save_profile(prof, target)
+    for n in notes:
+        sys.stderr.write(f"scenemon: note: {n}\n")
+    sys.stdout.write(f"wrote {target}: {prof.windows} windows, threshold {prof.threshold:.2f} "
+                     f"(the {prof.quantile:.1%} quantile of held-out profile windows' "
+                     f"distances), shrinkage {prof.shrinkage:.3f}\n")
+    return ExitCode.OK
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" + ("" if n == 1 else "s")
+
+
+def summary_text(summary: dict) -> str:
+    """The lines printed when a session ends: what happened, and what to run next."""
+    from monitor.assemble import invocation
+
+    acc = summary.get("accuracy")
+    dur = summary.get("duration_s") or 0.0
+    changes = summary.get("decision_changes") or 0
+    rate = f" ({summary['switches_per_min']:.2f}/min)" \
+        if dur >= 60.0 and summary.get("switches_per_min") is not None else ""
+    lines = [f"session   {summary.get('session')}",
+             f"windows   {summary['windows']} over {dur:.1f} s, "
+             f"{_plural(changes, 'decision change')}{rate}"]
+    if summary.get("ms_median") is not None:
+        lines.append(f"compute   median {summary['ms_median']:.3f} ms, p99 "
+                     f"{summary['ms_p99']:.3f} ms per window")
+    lines.append(f"losses    {_plural(summary.get('overruns') or 0, 'overrun')}, "
+                 f"{summary.get('dropped_samples') or 0} samples dropped")
+    if acc is not None:
+        lines.append(f"accuracy  {acc:.1%} of {summary['windows_with_truth']} windows with truth")
+    b = summary.get("b")
+    if b:
+        bacc = b.get("accuracy")
+        lines.append(f"model B   {_plural(b.get('decision_changes') or 0, 'decision change')}"
+                     + (f", accuracy {bacc:.1%}" if bacc is not None else ""))
+    silent = summary.get("silent_stretches") or []
+    if silent:
+        a, z = silent[0]
+        stretches = "1 stretch" if len(silent) == 1 else f"{len(silent)} stretches"
+        lines.append(f"warning   the input was silent (below -70 dBFS) for "
+                     f"{summary.get('silent_s', 0):.1f} s in {stretches}, the first "
+                     f"{a:.1f}-{z:.1f} s: a muted or disconnected input?")
+    clipping = summary.get("clipping_stretches") or []
+    if clipping:
+        lines.append(f"warning   the input clipped in {summary.get('clipped_windows', 0)} "
+                     f"windows, the first at {clipping[0][0]:.1f} s: lower the input gain")
+    if summary.get("session") and summary.get("windows"):
+        exe = invocation()
+        d = summary["session"]
+        lines.append(f"next      {exe} report {d} --html {Path(d).name}.html")
+        if acc is not None:
+            lines.append(f"          {exe} tune {d}")
+        if sum((summary.get("snippets") or {}).values()):
+            lines.append(f"          {exe} relabel {d}   then   {exe} harvest {d} --out retrain")
+    return "\n".join(lines) + "\n"

@@ -1,0 +1,73 @@
+"""Sample-level helpers every stage shares: 16-bit PCM, levels, clipping, down-mix.
+
+One definition each, used by the front end, the session writer, the device tools and the
+sources, so that "quantise to int16" means the same rounding everywhere.
+
+References
+----------
+.. [1] AES17-2015, AES standard method for digital audio engineering: measurement of
+       digital audio equipment (0 dB FS is the RMS level of a full-scale sine).
+"""
+
+from __future__ import annotations
+
+import numpy as np
+
+PCM16_SCALE = 32768.0
+SILENCE_FLOOR_DBFS = -160.0  # the level of digital silence (JSON has no -inf)
+FULL_SCALE = 0.999  # |x| at or above this counts as clipped
+
+
+def to_pcm16(x: np.ndarray) -> np.ndarray:
+    """Float samples in [-1, 1] to int16: ``clip(round(x * 32768), -32768, 32767)``.
+
+    Rounding is numpy's (half to even), which the C front end reproduces.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        Float samples, any shape.
+
+    Returns
+    -------
+    numpy.ndarray
+        int16, same shape.
+    """
+    return np.clip(np.round(np.asarray(x, np.float32) * np.float32(PCM16_SCALE)),
+                   -32768, 32767).astype(np.int16)
+
+
+def from_pcm16(q: np.ndarray) -> np.ndarray:
+    """int16 samples to float32 in [-1, 1): ``q / 32768``."""
+    return np.asarray(q).astype(np.float32) / np.float32(PCM16_SCALE)
+
+
+def quantise_pcm16(x: np.ndarray) -> np.ndarray:
+    """Float samples through int16 and back (what a 16-bit microphone path delivers); float32."""
+    x = np.asarray(x, np.float32)
+    q = np.clip(np.round(x * np.float32(PCM16_SCALE)), -32768, 32767)
+    return (q / np.float32(PCM16_SCALE)).astype(np.float32)
+
+
+def level_dbfs(x: np.ndarray) -> float:
+    """Level after AES17 [1]_: ``20 log10(sqrt(2) * rms)``, so a full-scale sine reads 0.0.
+
+    Digital silence reads `SILENCE_FLOOR_DBFS` (-160) so the value stays finite; every
+    display and report uses the same floor.
+    """
+    rms = float(np.sqrt(np.mean(np.square(x, dtype=np.float64)))) if x.size else 0.0
+    return max(SILENCE_FLOOR_DBFS, 20.0 * np.log10(max(np.sqrt(2.0) * rms, 1e-300)))
+
+
+def clipped_fraction(x: np.ndarray) -> float:
+    """Share of samples at ``|x| >= 0.999`` (full scale)."""
+    return float(np.count_nonzero(np.abs(x) >= FULL_SCALE)) / x.size if x.size else 0.0
+
+
+def downmix(block: np.ndarray) -> np.ndarray:
+    """Mean of the channels; `block` is ``(frames,)`` or ``(frames, channels)``; float32."""
+    if block.ndim == 1:
+        return block.astype(np.float32, copy=False)
+    if block.shape[1] == 1:
+        return block[:, 0].astype(np.float32, copy=False)
+    return block.mean(axis=1, dtype=np.float32)

@@ -1,0 +1,35 @@
+"""The label question: which class is this sound?"""
+
+from __future__ import annotations
+
+from textual.app import ComposeResult
+from textual.binding import Binding
+from textual.screen import ModalScreen
+from textual.widgets import Static
+
+
+class AskLabel(ModalScreen[str | None]):
+    """Which class is this? Number keys pick one; 0 means unknown; Escape cancels."""
+
+    BINDINGS = [Binding("escape", "cancel", "cancel", id="ask_cancel")]
+
+    def __init__(self, classes, prompt: str) -> None:
+        super().__init__()
+        self.class_names, self.prompt = list(classes), prompt
+
+    def compose(self) -> ComposeResult:
+        lines = [self.prompt, ""] + [f"  {i + 1}  {c}" for i, c in enumerate(self.class_names)]
+        lines += ["  0  unknown", "", "Esc: cancel"]
+        yield Static("\n".join(lines), id="ask")
+
+    def on_key(self, event) -> None:
+        if event.key.isdigit():
+            k = int(event.key)
+            if k == 0:
+                self.dismiss("unknown")
+            elif 1 <= k <= len(self.class_names):
+                self.dismiss(self.class_names[k - 1])
+            event.stop()
+
+    def action_cancel(self) -> None:
+        self.dismiss(None)

@@ -1,0 +1,148 @@
+"""The relabel view: a session's snippets, played, kept, dropped or given another label.
+
+Every change goes through `monitor.snippets` (keep, drop, relabel), which rewrites only that
+snippet's sidecar, atomically; the audio is never touched. Playback runs on its own short
+"playback" thread and reports back with `call_from_thread` (it may block: it is not the
+compute thread).
+"""
+
+from __future__ import annotations
+
+import threading
+from pathlib import Path
+
+from textual.app import ComposeResult
+from textual.binding import Binding
+from textual.screen import Screen
+from textual.widgets import DataTable, Footer, Static
+
+from monitor import snippets as S
+from monitor.ui.screens.ask import AskLabel
+
+
+class RelabelScreen(Screen):
+    """The snippets of a session (see module docstring)."""
+
+    BINDINGS = [
+        Binding("space", "play", "play", id="relabel_play"),
+        Binding("k", "keep", "keep", id="relabel_keep"),
+        Binding("d", "drop", "drop", id="relabel_drop"),
+        Binding("l", "label", "label…", id="relabel_label"),
+        Binding("escape,r", "close", "back", id="relabel_back"),
+        Binding("q", "close", "back", show=False, id="relabel_quit"),
+    ]
+
+    def __init__(self, session_dir: Path, classes: list[str], *, standalone: bool = False) -> None:
+        super().__init__()
+        self.session_dir = Path(session_dir)
+        self.class_names = list(classes)  # not `classes`: textual's CSS classes live there
+        self.standalone = standalone
+        self.items: list[S.SnippetFile] = []
+        self.played: list[Path] = []
+        self.last_status = ""
+
+    def compose(self) -> ComposeResult:
+        yield Static(f"snippets of {self.session_dir}", id="relabel_title")
+        yield DataTable(id="snippets", cursor_type="row", zebra_stripes=True)
+        yield Static("", id="relabel_status")
+        yield Footer()
+
+    def on_mount(self) -> None:
+        table = self.query_one(DataTable)
+        table.add_columns("from", "len", "label", "predicted", "reason", "conf", "state")
+        self.reload()
+
+    def reload(self) -> None:
+        table = self.query_one(DataTable)
+        row = table.cursor_row
+        table.clear()
+        self.items = S.iter_snippets(self.session_dir)
+        for sn in self.items:
+            m = sn.meta
+            conf = m.get("confidence")
+            dur = m.get("duration_s")
+            table.add_row(f"{sn.t0:7.1f} s", f"{dur:4.1f}" if isinstance(dur, (int, float)) else "-",
+                          sn.label, str(m.get("predicted")), sn.reason,
+                          f"{conf:.2f}" if isinstance(conf, (int, float)) else "-",
+                          sn.state, key=str(sn.sidecar))
+        if self.items:
+            table.move_cursor(row=min(row, len(self.items) - 1))
+        self.status(f"{len(self.items)} snippet(s). enter or space: play  k: keep  d: drop  "
+                    f"l: label")
+
+    def status(self, text: str) -> None:
+        self.last_status = text
+        self.query_one("#relabel_status", Static).update(text)
+
+    def current(self) -> S.SnippetFile | None:
+        if not self.items:
+            return None
+        return self.items[self.query_one(DataTable).cursor_row]
+
+    def on_data_table_row_selected(self, event: DataTable.RowSelected) -> None:
+        """Enter on a row (the table's own select key) plays it, as the footer says."""
+        event.stop()
+        self.action_play()
+
+    def action_keep(self) -> None:
+        cur = self.current()
+        if cur is not None:
+            S.keep(cur, self.session_dir)
+            self.reload()
+
+    def action_drop(self) -> None:
+        cur = self.current()
+        if cur is not None:
+            S.drop(cur, self.session_dir)
+            self.reload()
+
+    def action_label(self) -> None:
+        cur = self.current()
+        if cur is None:
+            return
+
+        def done(label: str | None) -> None:
+            if label is not None:
+                S.relabel(cur, self.session_dir, label, self.class_names)
+                self.reload()
+
+        self.app.push_screen(AskLabel(self.class_names, "What is this sound?"), done)
+
+    def action_play(self) -> None:
+        cur = self.current()
+        if cur is None:
+            return
+        self.played.append(cur.wav)
+        self.status(f"playing {cur.wav.name} …")
+        threading.Thread(target=self._play, args=(cur,), daemon=True, name="playback").start()
+
+    def _play(self, snip: S.SnippetFile) -> None:
+        try:
+            import io
+
+            import soundfile as sf
+
+            from monitor.sources import import_sounddevice
+
+            data, why = S.verified_audio(snip, self.session_dir)
+            if data is None:
+                raise OSError(why)
+            sd = import_sounddevice()
+            x, sr = sf.read(io.BytesIO(data), dtype="float32", always_2d=True)
+            # a stream of our own, closed here: sounddevice's play() keeps a global one that
+            # its exit handler stops, which can hang a process that exits mid-playback
+            with sd.OutputStream(samplerate=sr, channels=x.shape[1], dtype="float32") as out:
+                out.write(x)
+            msg = f"played {snip.wav.name}"
+        except Exception as exc:  # noqa: BLE001 - shown, not fatal
+            msg = f"cannot play {snip.wav.name}: {exc}"
+        try:
+            self.app.call_from_thread(self.status, msg)
+        except RuntimeError:  # the app has closed meanwhile
+            pass
+
+    def action_close(self) -> None:
+        if self.standalone:
+            self.app.exit(0)
+        else:
+            self.app.pop_screen()
