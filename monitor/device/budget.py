@@ -205,17 +205,19 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
         return "-" if n is None else f"{n / 1024:,.1f} KiB"
 
     lines = [f"budget of {b.model} (microcontroller runtime)", "",
-             "RAM                                      bytes   from"]
-    lines.append(f"  interpreter arena          {b.arena_bytes if b.arena_bytes is not None else '-':>14}"
-                 f"   the runtime's allocation recording")
+             f"  {'RAM':<30} {'bytes':>10}   from"]
+    arena = "-" if b.arena_bytes is None else str(b.arena_bytes)
+    lines.append(f"  {'interpreter arena':<30} {arena:>10}   the runtime's allocation record")
     for k, v in b.frontend_ram.items():
-        lines.append(f"  {k[:26]:<26} {v:>14}   {'frontend.c' if k.startswith('front') else 'the caller'}")
-    lines.append(f"  {'total':<26} {b.ram_bytes:>14}   ({kb(b.ram_bytes)})")
-    lines += ["", "flash                                    bytes   from"]
-    lines.append(f"  {'model flatbuffer':<26} {b.model_bytes:>14}   the .tflite file")
+        name, where = (k[len("front end: "):], "frontend.c") if k.startswith("front end: ") \
+            else (k, "the caller")
+        lines.append(f"  {name[:30]:<30} {v:>10}   {where}")
+    lines.append(f"  {'total':<30} {b.ram_bytes:>10}   ({kb(b.ram_bytes)})")
+    lines += ["", f"  {'flash':<30} {'bytes':>10}   from"]
+    lines.append(f"  {'model flatbuffer':<30} {b.model_bytes:>10}   the .tflite file")
     for k, v in b.frontend_flash.items():
-        lines.append(f"  {k[:26]:<26} {v:>14}   frontend_constants.h")
-    lines.append(f"  {'total':<26} {b.flash_bytes:>14}   ({kb(b.flash_bytes)})")
+        lines.append(f"  {k[len('front end: '):][:30]:<30} {v:>10}   frontend_constants.h")
+    lines.append(f"  {'total':<30} {b.flash_bytes:>10}   ({kb(b.flash_bytes)})")
     lines += ["", "work per window                 MACs   other   shapes (in -> out)"]
     for x in b.layers:
         shape = f"{'x'.join(map(str, x.input[1:]))} -> {'x'.join(map(str, x.output[1:]))}"
