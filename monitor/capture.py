@@ -116,6 +116,18 @@ class AudioHistory:
         return self.buf[idx].copy(), a / self.sr, b / self.sr
 
 
+def _key(kind: tuple[str, str, str]) -> tuple[str, str]:
+    """What makes two windows one run, and one rate-limited pair: (truth, predicted) for a
+    disagreement, the reason alone for a sound that is unfamiliar or uncertain (the model's
+    guess may wander while the sound goes on)."""
+    reason, label, predicted = kind
+    if reason in ("unfamiliar", "uncertain"):
+        return (reason, "")
+    if reason == "models_disagree":
+        return (reason, predicted)
+    return (label, predicted)
+
+
 class CapturePolicy(ObserverBase):
     """Engine observer that decides and cuts snippets (see module docstring).
 
@@ -166,8 +178,8 @@ class CapturePolicy(ObserverBase):
             self.last_result = r
             kind = self._classify(r)
             run = self._run
-            if run is not None and (kind is None or kind[:3] != (run.reason, run.label,
-                                                                 run.predicted)):
+            if run is not None and (kind is None or _key(kind) != _key((run.reason, run.label,
+                                                                       run.predicted))):
                 self._end_run()
                 run = None
             if kind is not None:
@@ -239,8 +251,7 @@ class CapturePolicy(ObserverBase):
         run, self._run = self._run, None
         if run is None:
             return
-        key = (run.reason if run.reason in ("uncertain", "unfamiliar") else run.label,
-               run.predicted)
+        key = _key((run.reason, run.label, run.predicted))
         last = self._last.get(key)
         if last is not None and run.t0 - last < self.s.every_s:
             self.limited += 1

@@ -4,15 +4,19 @@ A model always answers with one of its classes, so a sound it was never meant fo
 as a confident wrong decision. A profile (``<model>.profile.npz``, written by
 ``scenemon profile``) holds statistics of the model's own scaled features over audio it is
 meant for. Each window is summarised by the mean and the standard deviation over time of
-every feature band (``2 * bands`` numbers); the profile keeps the mean ``m`` of those
-summaries and a shrunk covariance ``S`` (Ledoit and Wolf 2004, "A well-conditioned
-estimator for large-dimensional covariance matrices", J. Multivariate Analysis 88(2)).
+every feature band (``2 * bands`` numbers). For each class ``c`` of the model the profile
+keeps the mean ``m_c`` of the summaries of that class's windows and their shrunk covariance
+``S_c`` (Ledoit and Wolf 2004, "A well-conditioned estimator for large-dimensional
+covariance matrices", J. Multivariate Analysis 88(2)): class-conditional Gaussians, as in
+Lee, Lee, Lee and Shin 2018 ("A simple unified framework for detecting out-of-distribution
+samples and adversarial attacks", NeurIPS), with a covariance per class.
 
-A window's novelty is the Mahalanobis distance of its summary ``x`` to the profile,
-``d = sqrt((x - m)^T S^-1 (x - m))`` (Mahalanobis 1936). The threshold is a quantile
-(default 99.5%) of the distances of held-out profile windows (every fifth window, not used
-to fit ``m`` and ``S``). A window is unfamiliar once ``d`` has been above the threshold for
-``confirm`` windows in a row (the decision's own confirmation count).
+A window's novelty is its Mahalanobis distance (Mahalanobis 1936) to the nearest class,
+``d = min_c sqrt((x - m_c)^T S_c^-1 (x - m_c))``. The threshold is a quantile (default
+99.5%) of the distances of held-out profile windows (every fifth block of 20 consecutive
+windows, not used to fit the means and covariances, so that neighbours do not leak). A window
+is unfamiliar once ``d`` has been above the threshold for ``confirm`` windows in a row (the
+decision's own confirmation count). Without class labels the profile is one Gaussian.
 
 The file is a plain ``.npz`` read with ``allow_pickle=False``.
 """
@@ -28,9 +32,10 @@ import numpy as np
 from monitor.card import ModelCard
 from monitor.errors import ScenemonError
 
-PROFILE_VERSION = 1
+PROFILE_VERSION = 2
 DEFAULT_QUANTILE = 0.995
 HOLD_OUT_EVERY = 5
+MIN_CLASS_WINDOWS = 20  # below this a class's covariance is mostly shrinkage
 
 
 def profile_path_for(model_path: str | Path) -> Path:
@@ -46,15 +51,16 @@ def summarise(features: np.ndarray, *, time_axis: int) -> np.ndarray:
     Parameters
     ----------
     features : numpy.ndarray
-        ``(frames, bands)`` / ``(bands, frames)``, or a stack of them with a leading axis.
+        ``(frames, bands)`` / ``(bands, frames)``, or a stack of them with a leading axis;
+        for a waveform model (`time_axis` -1) ``(samples,)`` or ``(n, samples)``.
     time_axis : int
-        The frames axis within one window (0 for "time_mel", 1 for "mel_time").
+        The frames axis within one window: 0 for "time_mel", 1 for "mel_time", -1 for a
+        waveform (one band: the samples).
     """
     f = np.asarray(features, dtype=np.float64)
-    axis = time_axis - 2 if f.ndim >= 2 else -1
-    if f.ndim == 1:  # a waveform model: one band
-        f = f[:, None]
-        axis = 0
+    if time_axis < 0:
+        return np.stack([f.mean(axis=-1), f.std(axis=-1)], axis=-1)
+    axis = f.ndim - 2 + time_axis
     return np.concatenate([f.mean(axis=axis), f.std(axis=axis)], axis=-1)
 
 
@@ -82,27 +88,42 @@ def ledoit_wolf(x: np.ndarray) -> tuple[np.ndarray, float]:
 
 @dataclass
 class Profile:
-    """A loaded profile and the per-window state of one session (see module docstring)."""
+    """A loaded profile and the per-window state of one session (see module docstring).
 
-    mean: np.ndarray
-    covariance: np.ndarray
+    ``means`` is ``(k, d)`` and ``covariances`` ``(k, d, d)`` for ``k`` classes (1 when the
+    profile was fitted without labels) and ``d = 2 * bands`` summary numbers.
+    """
+
+    means: np.ndarray
+    covariances: np.ndarray
     threshold: float
     quantile: float
     time_axis: int
     windows: int
     confirm: int = 2
     path: Path | None = None
-    shrinkage: float = 0.0
-    _precision: np.ndarray = field(init=False, repr=False)
+    shrinkage: np.ndarray | None = None
+    _precisions: np.ndarray = field(init=False, repr=False)
     _run: int = field(default=0, init=False, repr=False)
 
     def __post_init__(self) -> None:
-        self._precision = np.linalg.inv(self.covariance)
+        self.means = np.atleast_2d(self.means)
+        if self.covariances.ndim == 2:
+            self.covariances = self.covariances[None]
+        self._precisions = np.linalg.inv(self.covariances)
+
+    def distances(self, summaries: np.ndarray) -> np.ndarray:
+        """Mahalanobis distance of each summary (rows) to each class: ``(n, k)``."""
+        x = np.atleast_2d(summaries)
+        out = np.empty((x.shape[0], self.means.shape[0]))
+        for c, (m, p) in enumerate(zip(self.means, self._precisions)):
+            d = x - m
+            out[:, c] = np.einsum("ij,jk,ik->i", d, p, d)
+        return np.sqrt(np.maximum(out, 0.0))
 
     def distance(self, summaries: np.ndarray) -> np.ndarray:
-        """Mahalanobis distance of each summary (rows) to the profile."""
-        d = np.atleast_2d(summaries) - self.mean
-        return np.sqrt(np.maximum(np.einsum("ij,jk,ik->i", d, self._precision, d), 0.0))
+        """Novelty of each summary: the distance to the nearest class."""
+        return self.distances(summaries).min(axis=1)
 
     def step(self, features: np.ndarray) -> tuple[float, bool]:
         """Novelty of one window's features, and whether the sound is now unfamiliar."""
@@ -112,34 +133,72 @@ class Profile:
 
     def fresh(self, confirm: int) -> Profile:
         """A copy with its own run counter (one per session and model)."""
-        return Profile(self.mean, self.covariance, self.threshold, self.quantile,
+        return Profile(self.means, self.covariances, self.threshold, self.quantile,
                        self.time_axis, self.windows, confirm, self.path, self.shrinkage)
 
     def describe(self) -> dict[str, Any]:
-        return {"path": str(self.path) if self.path else None, "threshold": self.threshold,
-                "quantile": self.quantile, "windows": self.windows, "confirm": self.confirm}
+        return {"path": Path(self.path).name if self.path else None,
+                "threshold": round(self.threshold, 4), "quantile": self.quantile,
+                "windows": self.windows, "classes": int(self.means.shape[0]),
+                "confirm": self.confirm}
 
 
 def time_axis_of(card: ModelCard) -> int:
+    """The frames axis of one window's features (-1: a waveform, no frames)."""
+    if len(card.feature_shape) == 1:
+        return -1
     return 1 if card.layout == "mel_time" else 0
 
 
-def fit_profile(features: np.ndarray, card: ModelCard, *,
+def block_groups(n: int, block: int = 20) -> np.ndarray:
+    """Group ids of `n` consecutive windows in blocks of `block` (for holding out blocks)."""
+    return np.arange(n) // block
+
+
+def fit_profile(features: np.ndarray, card: ModelCard, *, labels: np.ndarray | None = None,
+                groups: np.ndarray | None = None,
                 quantile: float = DEFAULT_QUANTILE) -> Profile:
-    """Fit a profile to a stack of windows' scaled features ``(n, *card.feature_shape)``."""
+    """Fit a profile to a stack of windows' scaled features ``(n, *card.feature_shape)``.
+
+    Parameters
+    ----------
+    features : numpy.ndarray
+        The model input of each window.
+    card : ModelCard
+    labels : numpy.ndarray, optional
+        Class index of each window (-1: none, left out); without it one Gaussian is fitted.
+    groups : numpy.ndarray, optional
+        Group id of each window (a file, a clip, a block of neighbours); every fifth group
+        is held out for the threshold. Default: blocks of 20 consecutive windows.
+    quantile : float
+        The threshold's quantile of the held-out distances, in [0.5, 1).
+    """
     if not 0.5 <= quantile < 1.0:
         raise ScenemonError(f"--quantile {quantile} must be in [0.5, 1)")
     axis = time_axis_of(card)
     s = summarise(features, time_axis=axis)
     n = s.shape[0]
-    held = np.zeros(n, bool)
-    held[HOLD_OUT_EVERY - 1::HOLD_OUT_EVERY] = True
-    if (~held).sum() < 2 * s.shape[1] or held.sum() < 20:
-        raise ScenemonError(f"{n} windows are too few for a profile of {s.shape[1]} numbers "
-                            f"per window (give at least {max(25, 3 * s.shape[1])} windows)")
-    cov, shrink = ledoit_wolf(s[~held])
-    prof = Profile(s[~held].mean(axis=0), cov, 0.0, quantile, axis, int(n),
-                   card.decision.confirm, shrinkage=shrink)
+    labels = np.zeros(n, int) if labels is None else np.asarray(labels, int)
+    groups = block_groups(n) if groups is None else np.asarray(groups)
+    keep = labels >= 0
+    s, labels, groups = s[keep], labels[keep], groups[keep]
+    _, gidx = np.unique(groups, return_inverse=True)
+    held = (gidx % HOLD_OUT_EVERY) == HOLD_OUT_EVERY - 1
+    present = sorted(set(labels[~held].tolist()))
+    small = [c for c in present if np.sum(~held & (labels == c)) < MIN_CLASS_WINDOWS]
+    if not present or small or held.sum() < MIN_CLASS_WINDOWS:
+        raise ScenemonError(f"{n} windows are too few for a profile: each class present needs "
+                            f"at least {MIN_CLASS_WINDOWS} windows to fit and the held-out part "
+                            f"{MIN_CLASS_WINDOWS} (give more audio)")
+    means, covs, shrink = [], [], []
+    for c in present:
+        x = s[~held & (labels == c)]
+        cov, a = ledoit_wolf(x)
+        means.append(x.mean(axis=0))
+        covs.append(cov)
+        shrink.append(a)
+    prof = Profile(np.stack(means), np.stack(covs), 0.0, quantile, axis, int(keep.sum()),
+                   card.decision.confirm, shrinkage=np.array(shrink))
     prof.threshold = float(np.quantile(prof.distance(s[held]), quantile))
     return prof
 
@@ -150,10 +209,11 @@ def save_profile(prof: Profile, path: Path) -> None:
     from monitor.files import atomic_write
 
     buf = io.BytesIO()
-    np.savez(buf, version=np.int64(PROFILE_VERSION), mean=prof.mean, covariance=prof.covariance,
-             threshold=np.float64(prof.threshold), quantile=np.float64(prof.quantile),
-             time_axis=np.int64(prof.time_axis), windows=np.int64(prof.windows),
-             shrinkage=np.float64(prof.shrinkage))
+    np.savez(buf, version=np.int64(PROFILE_VERSION), means=prof.means,
+             covariances=prof.covariances, threshold=np.float64(prof.threshold),
+             quantile=np.float64(prof.quantile), time_axis=np.int64(prof.time_axis),
+             windows=np.int64(prof.windows),
+             shrinkage=np.asarray(prof.shrinkage if prof.shrinkage is not None else [], float))
     atomic_write(Path(path), buf.getvalue())
 
 
@@ -161,23 +221,26 @@ def load_profile(path: Path, card: ModelCard) -> Profile:
     """Read a profile (no pickle) and check it against the card."""
     try:
         with np.load(path, allow_pickle=False) as z:
-            mean, cov = np.asarray(z["mean"], np.float64), np.asarray(z["covariance"], np.float64)
+            means = np.asarray(z["means"], np.float64)
+            covs = np.asarray(z["covariances"], np.float64)
             threshold, quantile = float(z["threshold"]), float(z["quantile"])
             axis, windows = int(z["time_axis"]), int(z["windows"])
-            shrink = float(z["shrinkage"]) if "shrinkage" in z else 0.0
+            shrink = np.asarray(z["shrinkage"], np.float64) if "shrinkage" in z else None
     except (OSError, KeyError, ValueError) as exc:
         raise ScenemonError(f"{path}: not a readable novelty profile ({exc})") from None
-    bands = card.feature_shape[-1 - time_axis_of(card)] if len(card.feature_shape) == 2 else 1
-    if mean.shape != (2 * bands,) or cov.shape != (2 * bands, 2 * bands):
-        raise ScenemonError(f"{path}: holds {mean.shape[0]} numbers per window but the card "
-                            f"{card.name} gives {2 * bands}; make it again with scenemon profile")
-    if not (np.all(np.isfinite(mean)) and np.all(np.isfinite(cov)) and np.isfinite(threshold)):
+    shape, axis_c = card.feature_shape, time_axis_of(card)
+    bands = shape[1 - axis_c] if axis_c >= 0 else 1
+    d = 2 * bands
+    if means.ndim != 2 or means.shape[1] != d or covs.shape != (means.shape[0], d, d):
+        raise ScenemonError(f"{path}: holds {means.shape[-1]} numbers per window but the card "
+                            f"{card.name} gives {d}; make it again with scenemon profile")
+    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs)) and np.isfinite(threshold)):
         raise ScenemonError(f"{path}: holds non-finite values")
     try:
-        return Profile(mean, cov, threshold, quantile, axis, windows, card.decision.confirm,
+        return Profile(means, covs, threshold, quantile, axis, windows, card.decision.confirm,
                        Path(path), shrink)
     except np.linalg.LinAlgError:
-        raise ScenemonError(f"{path}: its covariance cannot be inverted") from None
+        raise ScenemonError(f"{path}: a covariance cannot be inverted") from None
 
 
 def profile_beside(model_path: str | Path, card: ModelCard) -> Profile | None:

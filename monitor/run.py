@@ -13,7 +13,7 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.errors import ExitCode, ScenemonError, summary_failure
+from monitor.errors import ExitCode, summary_failure
 from monitor.plan import ModelPlan, SessionPlan
 
 
@@ -44,37 +44,46 @@ def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
 
 def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
                 quantile: float) -> int:
-    """`scenemon profile`: fit and write the novelty profile of a model."""
-    from monitor.assemble import file_windows, load_card
+    """`scenemon profile`: fit and write the novelty profile of a model.
+
+    Each window is labelled with its class: the truth of a session that has one (windows
+    without truth are left out), else the model's own top class. Windows are held out for the
+    threshold in blocks of 20 within each recording, never across recordings.
+    """
+    from monitor.assemble import file_windows, load_model
     from monitor.frontend import FrontEnd
-    from monitor.novelty import fit_profile, profile_path_for, save_profile
+    from monitor.novelty import block_groups, fit_profile, profile_path_for, save_profile
     from monitor.session_reader import is_session, load_session
 
-    card = load_card(model)
-    if not model.path.is_file():
-        raise ScenemonError(f"{model.path}: model file not found")
+    loaded = load_model(model)
+    card = loaded.card
     fe = FrontEnd(card)
-    feats, notes = [], []
-    for src in sources:
-        w = file_windows(src, card)
-        f = fe.batch(w)
-        if is_session(src):  # keep only windows whose truth is one of the model's classes
+    feats, labels, groups, notes = [], [], [], []
+    for k, src in enumerate(sources):
+        f = fe.batch(file_windows(src, card))
+        lab = None
+        if is_session(src):
             s = load_session(src)
-            labels = [x.get("truth") for x in s.windows][:len(f)]
-            keep = np.array([t in card.classes for t in labels] + [False] * (len(f) - len(labels)))
-            if s.truth is not None:
-                notes.append(f"{src}: {int(keep.sum())} of {len(f)} windows have truth")
-                f = f[keep]
+            if s.truth is not None or any(w.get("truth") for w in s.windows):
+                truth = [w.get("truth") for w in s.windows][:len(f)]
+                truth += [None] * (len(f) - len(truth))
+                lab = np.array([card.classes.index(t) if t in card.classes else -1
+                                for t in truth])
+                notes.append(f"{src}: {int((lab >= 0).sum())} of {len(f)} windows have truth")
+        if lab is None:  # no truth: the model's own classes
+            lab = np.argmax(loaded.runner.predict(f), axis=1)
         feats.append(f)
-    x = np.concatenate(feats) if feats else np.zeros((0, *card.feature_shape), np.float32)
-    prof = fit_profile(x, card, quantile=quantile)
+        labels.append(lab)
+        groups.append(k * 10 ** 7 + block_groups(len(f)))
+    prof = fit_profile(np.concatenate(feats), card, labels=np.concatenate(labels),
+                       groups=np.concatenate(groups), quantile=quantile)
     target = out or profile_path_for(model.path)
     save_profile(prof, target)
     for n in notes:
         sys.stderr.write(f"scenemon: note: {n}\n")
-    sys.stdout.write(f"wrote {target}: {prof.windows} windows, threshold {prof.threshold:.2f} "
-                     f"(the {prof.quantile:.1%} quantile of held-out profile windows' "
-                     f"distances), shrinkage {prof.shrinkage:.3f}\n")
+    sys.stdout.write(f"wrote {target}: {prof.windows} windows in {prof.means.shape[0]} "
+                     f"classes, threshold {prof.threshold:.2f} (the {prof.quantile:.1%} quantile "
+                     f"of held-out profile windows' distances)\n")
     return ExitCode.OK
 
 

@@ -141,7 +141,8 @@ def test_replay_captures_snippets_with_sidecars(tmp_path, tour):
         assert hashlib.sha256(wav.read_bytes()).hexdigest() == m["audio_sha256"]
         assert {"session", "t0", "t1", "sample_rate", "label", "predicted", "probs", "smoothed",
                 "reason", "model_sha256", "audio_sha256"} <= set(m)
-        assert side.parent.name == m["label"] and m["reason"] in ("disagreement", "uncertain")
+        assert side.parent.name == m["label"] and m["reason"] in ("disagreement", "uncertain",
+                                                                   "unfamiliar")
     r = run_cli("replay", tour[0], "--model", MODELS / "demo.tflite", "--fast", "--out",
                 tmp_path / "n", "--capture", "none")
     assert r.returncode == 0 and not (tmp_path / "n" / "snippets").exists()

@@ -165,3 +165,70 @@ def clip(place: str, seconds: float, seed: int) -> np.ndarray:
     if peak > 0.95:
         x = x * np.float32(0.95 / peak)
     return x.astype(np.float32)
+
+
+# --- moments that real places have: short sounds from elsewhere, and sounds of no place ----
+def door(rng: np.random.Generator) -> np.ndarray:
+    """A door closing (about 0.6 s): a low thud, then the latch's rattle."""
+    n = int(0.6 * SR)
+    t = np.arange(n) / SR
+    thud = np.sin(2 * np.pi * rng.uniform(55, 90) * t) * np.exp(-t / rng.uniform(0.05, 0.09))
+    b, a = signal.butter(2, [rng.uniform(1500, 2500) / (SR / 2), 6500 / (SR / 2)], btype="band")
+    rattle = signal.lfilter(b, a, rng.standard_normal(n)) * np.exp(-np.maximum(t - 0.08, 0) / 0.06)
+    rattle[: int(0.08 * SR)] = 0.0
+    return _normalise(thud + 0.5 * rattle, rng.uniform(-24, -18))
+
+
+def _excerpt(place: str, seconds: float, dbfs: float, rng: np.random.Generator) -> np.ndarray:
+    """A short stretch of another place's sound, faded in and out (a half sine)."""
+    x = PLACES[place](seconds, rng).astype(np.float64)
+    return _normalise(x * np.sin(np.pi * np.linspace(0.0, 1.0, x.size)), dbfs)
+
+
+def laugh(rng: np.random.Generator) -> np.ndarray:
+    """A group laughing in the corridor (1.2 s of voices)."""
+    return _excerpt("voices", 1.2, rng.uniform(-31, -29), rng)
+
+
+def passing_car(rng: np.random.Generator) -> np.ndarray:
+    """One car passing close by (0.8 s of traffic)."""
+    return _excerpt("traffic", 0.8, rng.uniform(-31, -29), rng)
+
+
+def drill(rng: np.random.Generator) -> np.ndarray:
+    """A drill from the room next door (0.8 s of machinery)."""
+    return _excerpt("machinery", 0.8, rng.uniform(-23, -21), rng)
+
+
+def alarm(seconds: float, rng: np.random.Generator) -> np.ndarray:
+    """An invented alarm: groups of three 2.9 kHz beeps with a 700 Hz undertone, belonging
+    to none of the four places."""
+    n = int(seconds * SR)
+    t = np.arange(n) / SR
+    f = rng.uniform(2700, 3100)
+    tone = np.sin(2 * np.pi * f * t) + 0.3 * np.sin(2 * np.pi * 0.24 * f * t)
+    period, on = 1.2, 0.12
+    phase = t % period
+    gate = ((phase < 3 * 0.2) & ((phase % 0.2) < on)).astype(np.float64)
+    gate = signal.lfilter(np.ones(40) / 40, [1.0], gate)  # soft edges, no clicks
+    return _normalise(tone * gate, rng.uniform(-20, -14))
+
+
+def melody(seconds: float, rng: np.random.Generator) -> np.ndarray:
+    """An invented ring melody: plucked tones on a pentatonic scale, each with a few
+    harmonics and an exponential decay."""
+    n = int(seconds * SR)
+    x = np.zeros(n)
+    scale = 523.25 * 2 ** (np.array([0, 2, 4, 7, 9, 12]) / 12)
+    pos = 0
+    while pos < n:
+        dur = int(SR * rng.choice([0.15, 0.3]))
+        f = rng.choice(scale)
+        t = np.arange(min(dur, n - pos)) / SR
+        note = sum(0.5 ** k * np.sin(2 * np.pi * f * (k + 1) * t) for k in range(4))
+        x[pos:pos + t.size] = note * np.exp(-t / 0.12)
+        pos += dur
+    return _normalise(x, rng.uniform(-22, -16))
+
+
+EVENTS = {"door": door, "laugh": laugh, "passing_car": passing_car, "drill": drill}
