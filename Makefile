@@ -32,6 +32,7 @@ bench: $(STAMP)           ## speed figures for the README
 
 models: $(STAMP)          ## rebuild the demo model artifacts (deterministic, about 2 minutes)
 	$(BIN)/python -m monitor.demo.build --out models
+	$(BIN)/python -m monitor.demo.profile --models models
 
 clean:
 	rm -rf $(VENV) build *.egg-info .pytest_cache

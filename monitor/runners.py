@@ -17,6 +17,7 @@ give identical numbers. A runner is owned by one thread (the engine's compute th
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
 import os
 import warnings
@@ -107,13 +108,22 @@ class KerasRunner(_Base):
                  threads: int = 1) -> None:
         os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
         os.environ.setdefault("KERAS_BACKEND", "tensorflow")
-        import tensorflow as tf
+        from monitor import native
 
+        # TensorFlow's C++ start-up writes straight to fd 2 before its log level applies
+        # (absl's "before InitializeLog" notice, oneDNN's): kept off the terminal unless --debug
+        def quiet():
+            return contextlib.nullcontext() if native.DEBUG else _quiet_native_stderr()
+
+        with quiet():
+            import tensorflow as tf
         try:  # thread counts only take before TensorFlow's first operation
             tf.config.threading.set_intra_op_parallelism_threads(threads)
             tf.config.threading.set_inter_op_parallelism_threads(1)
         except RuntimeError:
             pass
+        with quiet():
+            tf.constant(0.0) + 1.0  # the first operation prints its own notice
         import keras
 
         version = tuple(int(p) for p in keras.__version__.split(".")[:2])
@@ -121,7 +131,8 @@ class KerasRunner(_Base):
             raise ModelError(f"{path}: keras {keras.__version__} is too old; scenemon needs "
                              f">= 3.12 (safe mode covers .h5 files only from 3.12)")
         try:
-            model = keras.saving.load_model(path, compile=False, safe_mode=not trust_model)
+            with quiet():
+                model = keras.saving.load_model(path, compile=False, safe_mode=not trust_model)
         except Exception as exc:  # keras raises many kinds for a bad file
             text = str(exc)
             first = text.strip().splitlines()[0] if text.strip() else type(exc).__name__

@@ -254,3 +254,26 @@ def test_portaudio_missing_is_one_sentence_and_replay_still_works(tmp_path):
     r = run_cli("replay", tmp_path / "n.wav", "--model", MODELS / "demo.tflite", "--fast",
                 "--out", tmp_path / "s", env=env)
     assert r.returncode == 0, r.stderr
+
+
+def test_live_seconds_with_the_ui_ends_by_itself_with_that_much_audio(pulse, tmp_path):
+    # `live --seconds S` in the terminal UI: the session ends after S seconds of audio on its
+    # own (no key), and holds S seconds: windows ending at 1.0, 1.5, ..., S
+    if not shutil.which("tmux"):
+        pytest.skip("tmux not installed")
+    out, code = tmp_path / "s", tmp_path / "code"
+    exe = Path(sys.executable).parent / "scenemon"
+    name = f"scenemon-live-{time.monotonic_ns()}"
+    subprocess.run(["tmux", "new-session", "-d", "-s", name, "-x", "100", "-y", "30",
+                    f"cd {ROOT} && {exe} live --model {MODELS / 'demo.tflite'} --input pulse "
+                    f"--seconds 3 --out {out}; echo EXIT=$? > {code}; sleep 20"], check=True)
+    try:
+        t = time.monotonic()
+        while time.monotonic() - t < 30 and not code.exists():
+            time.sleep(0.2)
+    finally:
+        subprocess.run(["tmux", "kill-session", "-t", name], capture_output=True)
+    assert code.read_text().strip() == "EXIT=0"
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["duration_s"] == pytest.approx(3.0) and summary["windows"] == 5
+    assert not summary["stopped_by_user"]

@@ -81,8 +81,11 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
     conv.inference_output_type = tf.int8
     if debug:
         data = conv.convert()
-    else:
-        with quiet_native_stderr():  # the converter's MLIR passes print dozens of lines
+    else:  # the converter's passes print dozens of lines on fd 2, and Keras' export on stdout
+        import contextlib
+        import io
+
+        with quiet_native_stderr(), contextlib.redirect_stdout(io.StringIO()):
             data = conv.convert()
     out.parent.mkdir(parents=True, exist_ok=True)
     atomic_write(out, data)

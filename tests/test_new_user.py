@@ -1,0 +1,158 @@
+"""What a new user meets: how to run the tool again, quiet pipes, plain sentences, silent
+inputs reported, help texts that describe every argument, an install that warns of nothing.
+Each test here failed before its fix."""
+
+import argparse
+import json
+import os
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from conftest import MODELS, ROOT, cli, run_cli, write_wav
+
+
+def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
+    # run as a new user does after `make demo`: the venv's scenemon, which is not on PATH
+    exe = Path(sys.executable).parent / "scenemon"
+    wav = write_wav(tmp_path / "n.wav", np.random.default_rng(0).standard_normal(16000 * 4) * 0.05)
+    env = {**os.environ, "PATH": "/usr/bin:/bin"}
+    r = subprocess.run([os.path.relpath(exe, ROOT), "replay", str(wav), "--model",
+                        str(MODELS / "demo.tflite"), "--fast", "--out", str(tmp_path / "s")],
+                       cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    rel = os.path.relpath(exe, ROOT)
+    assert f"{rel} report {tmp_path / 's'}" in r.stderr  # a command that works as printed
+
+
+def test_piping_into_head_ends_quietly_and_closes_the_session(tour, tmp_path):
+    out = tmp_path / "s"
+    cmd = (f"{sys.executable} -m monitor replay {tour[0]} --model {MODELS / 'demo.tflite'} "
+           f"--fast --headless --out {out} | head -3")
+    r = subprocess.run(["bash", "-o", "pipefail", "-c", cmd], cwd=ROOT, capture_output=True,
+                       text=True, timeout=120)
+    assert r.returncode == 0 and len(r.stdout.splitlines()) == 3
+    assert "Error" not in r.stderr and "Traceback" not in r.stderr
+    assert (out / "summary.json").is_file()
+
+
+def test_line_mode_begins_with_a_decision(tour, tmp_path):
+    x = sf.read(str(tour[0]), dtype="float32")[0][: 16000 * 10]
+    wav = write_wav(tmp_path / "c.wav", x)
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--out", tmp_path / "s")
+    first = r.stdout.splitlines()[0]
+    assert "undecided" not in first and "quiet_room" in first
+
+
+def test_digital_silence_is_reported_without_a_screen(tmp_path):
+    from monitor.ui.draw import level_text
+
+    wav = write_wav(tmp_path / "z.wav", np.zeros(16000 * 8))
+    out = tmp_path / "s"
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--headless", "--out", out)
+    assert r.returncode == 0
+    assert "the input was silent (below -70 dBFS) for 8.0 s" in r.stderr
+    summary = json.loads((out / "summary.json").read_text())
+    assert summary["silent_stretches"] == [[0.0, 8.0]] and summary["silent_s"] == 8.0
+    rep = cli("report", out)
+    assert "silent (below -70 dBFS) for 8.0 s" in rep.stdout
+    # one floor for the level everywhere: the window says -160 and so does the screen
+    wins = [json.loads(v) for v in (out / "windows.jsonl").read_text().splitlines()]
+    assert {w["level_dbfs"] for w in wins} == {-160.0}
+    assert "-160.0" in str(level_text(-160.0, 0.0, 8.0, width=10))
+
+
+def test_plain_sentences_in_tune_report_and_score(session_with_truth, tmp_path):
+    r = cli("tune", session_with_truth, "--grid", "smoothing=mean;confirm=1,2;enter=0.6")
+    last = r.stdout.splitlines()[-1]
+    assert last.startswith("swept ") and " settings over 1 session(s) in " in last
+    # a repaired session: no "None"; no truth: no latency line; one change: singular
+    d = tmp_path / "r"
+    shutil.copytree(session_with_truth, d)
+    (d / "summary.json").unlink()
+    (d / "truth.tsv").unlink()
+    lines = (d / "windows.jsonl").read_text().splitlines()[:6]
+    recs = [json.loads(v) for v in lines]
+    for k, w in enumerate(recs):
+        w["truth"] = None
+        w["decision"] = "quiet_room" if k < 3 else "voices"
+    (d / "windows.jsonl").write_text("".join(json.dumps(w) + "\n" for w in recs))
+    assert cli("repair", d).returncode == 0
+    rep = cli("report", d).stdout
+    assert "None" not in rep and "median - s" not in rep and "latency" not in rep
+    assert "1 decision change;" in rep and "decision changes (" not in rep
+    arch = tmp_path / "a"
+    arch.mkdir()
+    write_wav(arch / "n.wav", np.zeros(16000 * 3))
+    r = cli("score", arch, "--model", MODELS / "demo.tflite", "--out", tmp_path / "o",
+            "--workers", "1")
+    assert "(1 local worker)" in r.stdout
+
+
+@pytest.fixture(scope="module")
+def session_with_truth(tour, tmp_path_factory):
+    out = tmp_path_factory.mktemp("nu") / "s"
+    x = sf.read(str(tour[0]), dtype="float32")[0][: 16000 * 50]
+    wav = write_wav(out.parent / "c.wav", x)
+    (out.parent / "c.tsv").write_text("0\t30\tquiet_room\n30\t50\tvoices\n")
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--truth", out.parent / "c.tsv",
+            "--fast", "--out", out)
+    assert r.returncode == 0, r.stderr
+    return out
+
+
+@pytest.mark.slow
+def test_keras_runs_keep_tensorflow_chatter_off_the_terminal(tmp_path):
+    wav = write_wav(tmp_path / "n.wav", np.zeros(16000 * 3))
+    r = run_cli("replay", wav, "--model", MODELS / "demo.keras", "--fast", "--out", tmp_path / "s")
+    assert r.returncode == 0, r.stderr
+    noise = [x for x in r.stderr.splitlines() if not x.startswith(("session", "windows", "compute",
+                                                                   "losses", "accuracy", "next",
+                                                                   "warning", "   ", "  "))]
+    assert noise == [], noise
+    r = run_cli("--debug", "replay", wav, "--model", MODELS / "demo.keras", "--fast", "--out",
+                tmp_path / "s2")
+    assert r.returncode == 0  # with --debug the native lines are shown (not asserted: TF's own)
+
+
+def _all_actions(parser):
+    for action in parser._actions:
+        if isinstance(action, argparse._SubParsersAction):
+            for name, sub in action.choices.items():
+                yield from ((name, a) for a in sub._actions)
+
+
+def test_help_describes_every_argument_with_meaningful_placeholders():
+    from monitor.cli import build_parser
+
+    missing = []
+    for cmd, a in _all_actions(build_parser()):
+        if a.help == argparse.SUPPRESS or isinstance(a, argparse._HelpAction):
+            continue
+        if not a.help:
+            missing.append(f"{cmd} {a.option_strings or a.dest}")
+        if a.option_strings and a.nargs != 0 and a.metavar is None and a.choices is None:
+            missing.append(f"{cmd} {a.option_strings[0]} has no placeholder")
+    assert missing == []
+    r = cli("compare", "--help")
+    assert "fraction" in r.stdout and "AUDIO_OR_SESSION" in r.stdout
+    for cmd in ("vectors", "score", "replay", "budget", "profile", "live"):
+        r = cli(cmd, "--help")
+        assert r.returncode == 0 and "example" in r.stdout, cmd
+
+
+@pytest.mark.slow
+def test_an_install_prints_nothing_alarming(tmp_path):
+    # building the package as pip does (the editable build of `make`, and a plain wheel)
+    for args in (["wheel", "--no-deps", "--no-build-isolation", "-w", str(tmp_path), str(ROOT)],):
+        r = subprocess.run([sys.executable, "-m", "pip", *args], capture_output=True, text=True,
+                           timeout=600)
+        assert r.returncode == 0, r.stderr[-2000:]
+        text = (r.stdout + r.stderr).lower()
+        assert "same name as your package" not in text and "warning: " not in text.replace(
+            "warning: location", ""), r.stderr[-2000:]
