@@ -3,6 +3,7 @@ recordings, runaway sizes, and one clear sentence with exit code 2 for bad input
 here failed before its fix."""
 
 import csv
+import hashlib
 import json
 import os
 import shutil
@@ -143,6 +144,10 @@ def _poison(d):
     assert len(wavs) >= 3
     wavs[0].unlink()
     os.symlink(secret, wavs[0])
+    side = wavs[0].with_suffix(".json")  # a hostile sidecar vouches for the linked file
+    meta = json.loads(side.read_text())
+    meta["audio_sha256"] = hashlib.sha256(secret.read_bytes()).hexdigest()
+    side.write_text(json.dumps(meta))
     wavs[1].unlink()
     os.mkfifo(wavs[1])
     data = bytearray(wavs[2].read_bytes())
