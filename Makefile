@@ -27,7 +27,8 @@ test-fast: $(STAMP)       ## the tests that need neither much time nor system pa
 lint: $(STAMP)
 	$(BIN)/ruff check monitor tests benchmarks
 
-bench: $(STAMP)           ## speed figures for the README
+bench: $(STAMP)           ## speed figures for the README: against the floor, then per stage
+	$(BIN)/python benchmarks/bench_floor.py
 	$(BIN)/python benchmarks/bench_pipeline.py
 
 models: $(STAMP)          ## rebuild the demo model artifacts (deterministic, about 2 minutes)

@@ -241,7 +241,7 @@ class CapturePolicy(ObserverBase):
         if "unfamiliar" in pol and r.unfamiliar:
             return ("unfamiliar", "unknown", r.decision or r.top or "undecided")
         if "uncertain" in pol:
-            s = np.sort(np.asarray(r.smoothed, dtype=np.float64))[::-1]
+            s = sorted(r.smoothed.tolist(), reverse=True)  # a few classes: cheaper than numpy
             if s[0] < self.s.uncertain_below or s[0] - s[1] < self.s.uncertain_margin:
                 top = self.classes[int(np.argmax(r.smoothed))]
                 return ("uncertain", "unknown", top)

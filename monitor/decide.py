@@ -40,9 +40,16 @@ class Smoother:
             self._ema = p.copy() if self._ema is None else self.alpha * p + (1 - self.alpha) * self._ema
             return self._ema.copy()
         self._hist.append(p)
-        stack = np.stack(self._hist)
         if self.method == "mean":
-            return stack.mean(axis=0)
+            # the rows added in order, then divided: the very numbers of np.mean(axis=0)
+            # (its reduction over the outer axis is this loop), without building a stack
+            it = iter(self._hist)
+            acc = next(it).copy()
+            for v in it:
+                acc += v
+            acc /= len(self._hist)
+            return acc
+        stack = np.stack(self._hist)
         med = np.median(stack, axis=0)
         total = med.sum()
         return med / total if total > 0 else stack.mean(axis=0)

@@ -18,7 +18,7 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from typing import Any, Protocol
 
 import numpy as np
@@ -29,7 +29,7 @@ from monitor.errors import ModelError, ScenemonError, SourceFailed
 from monitor.frontend import FrontEnd
 from monitor.ringbuffer import RingBuffer
 from monitor.runners import Runner
-from monitor.samples import clipped_fraction, level_dbfs
+from monitor.samples import window_levels
 from monitor.tally import LevelTally, Tally, percentile
 from monitor.windower import Window, Windower
 
@@ -65,14 +65,30 @@ class WindowResult:
     fault: str | None = None
     model: int = 0  # 0: model A, 1: model B
     others: tuple[WindowResult, ...] = ()  # model B's result of the same window
+    _record: dict | None = field(default=None, repr=False, compare=False)
+    _line: str | None = field(default=None, repr=False, compare=False)
 
     def record(self) -> dict[str, Any]:
-        """The `windows.jsonl` fields (DESIGN.md)."""
+        """The `windows.jsonl` fields (DESIGN.md); made once, shared by every reader (the
+        writer and a printer need the same dict; nobody changes it)."""
+        if self._record is None:
+            object.__setattr__(self, "_record", self._make_record())
+        return self._record
+
+    def json_line(self) -> str:
+        """`record()` as one JSON line with its newline (made once)."""
+        if self._line is None:
+            from monitor.files import dumps
+
+            object.__setattr__(self, "_line", dumps(self.record()) + "\n")
+        return self._line
+
+    def _make_record(self) -> dict[str, Any]:
         rec = {
             "i": self.i, "t0": round(self.t0, 6), "t1": round(self.t1, 6),
-            "probs": None if self.probs is None else [round(float(v), 6) for v in self.probs],
+            "probs": None if self.probs is None else [round(v, 6) for v in self.probs.tolist()],
             "smoothed": None if self.smoothed is None
-            else [round(float(v), 6) for v in self.smoothed],
+            else [round(v, 6) for v in self.smoothed.tolist()],
             "top": self.top, "decision": self.decision, "truth": self.truth,
             "level_dbfs": round(self.level_dbfs, 2), "clipped": round(self.clipped, 6),
             "gap": self.gap, "ms": round(self.ms, 4),
@@ -318,6 +334,16 @@ class Engine:
             return fe.batch_consecutive(span, len(wins))
         return fe.batch(np.stack([w.samples for w in wins]))
 
+    def _levels(self, wins: list[Window]) -> tuple[np.ndarray, np.ndarray]:
+        """Level and clipped share of each window, from hop-long pieces (`window_levels`)."""
+        hop, win = self.card.hop_samples, self.card.window_samples
+        if win % hop == 0 and all(b.start - a.start == hop for a, b in zip(wins, wins[1:])):
+            span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]]) \
+                if len(wins) > 1 else wins[0].samples
+            return window_levels(span, np.arange(len(wins)) * hop, win, hop)
+        out = [window_levels(w.samples, np.zeros(1, int), win, hop) for w in wins]
+        return np.concatenate([o[0] for o in out]), np.concatenate([o[1] for o in out])
+
     def _process(self, wins: list[Window], arrived: float) -> None:
         card = self.card
         sr = card.sample_rate
@@ -333,16 +359,20 @@ class Engine:
         done = time.monotonic()
         latency = (done - arrived) * 1000.0 if self.source.realtime and arrived else None
         self._last_ms, self._last_latency = ms, latency
+        levels, clipped = self._levels(wins)
+        novelty = [lane.profile.distances_of(feats[id(lane.frontend)])
+                   if lane.profile is not None else None for lane in self.lanes]
         for k, w in enumerate(wins):
             t0, t1 = w.start / sr, (w.start + card.window_samples) / sr
             truth = self.truth(t0, t1) if self.truth else None
-            level, clipped = level_dbfs(w.samples), clipped_fraction(w.samples)
-            self.levels.add(t0, t1, level, clipped)
+            level, clip = float(levels[k]), float(clipped[k])
+            self.levels.add(t0, t1, level, clip)
             results = []
             for m, lane in enumerate(self.lanes):
                 f = feats[id(lane.frontend)][k]
-                results.append(self._decide(lane, m, w, t0, t1, truth, level, clipped, ms,
-                                            latency, probs[m][k], f))
+                nov = None if novelty[m] is None else float(novelty[m][k])
+                results.append(self._decide(lane, m, w, t0, t1, truth, level, clip, ms,
+                                            latency, probs[m][k], f, nov))
             res = results[0]
             if len(results) > 1:
                 res = _with_others(res, tuple(results[1:]))
@@ -359,11 +389,12 @@ class Engine:
 
     def _decide(self, lane: _Lane, m: int, w: Window, t0: float, t1: float,
                 truth: str | None, level: float, clipped: float, ms: float,
-                latency: float | None, p: np.ndarray, f: np.ndarray) -> WindowResult:
+                latency: float | None, p: np.ndarray, f: np.ndarray,
+                novelty: float | None) -> WindowResult:
         classes = lane.card.classes
-        novelty = unfamiliar = None
-        if lane.profile is not None:
-            novelty, unfamiliar = lane.profile.step(f)
+        unfamiliar = None
+        if novelty is not None:
+            unfamiliar = lane.profile.count(novelty)
         if not np.all(np.isfinite(p)):
             lane.faults += 1
             d = lane.decider.hysteresis.decision

@@ -118,6 +118,8 @@ class Profile:
         out = np.empty((x.shape[0], self.means.shape[0]))
         for c, (m, p) in enumerate(zip(self.means, self._precisions)):
             d = x - m
+            # einsum, not a matrix product: a window's distance must not depend on how many
+            # windows came with it (BLAS kernels differ for one row and for many)
             out[:, c] = np.einsum("ij,jk,ik->i", d, p, d)
         return np.sqrt(np.maximum(out, 0.0))
 
@@ -125,11 +127,20 @@ class Profile:
         """Novelty of each summary: the distance to the nearest class."""
         return self.distances(summaries).min(axis=1)
 
+    def distances_of(self, features: np.ndarray) -> np.ndarray:
+        """Novelty of each window of a stack of features ``(n, *feature_shape)``."""
+        return self.distance(summarise(features, time_axis=self.time_axis))
+
+    def count(self, d: float) -> bool:
+        """Take the next window's novelty `d`; True once it has been above the threshold
+        for `confirm` windows in a row (the sound is unfamiliar)."""
+        self._run = self._run + 1 if d > self.threshold else 0
+        return self._run >= self.confirm
+
     def step(self, features: np.ndarray) -> tuple[float, bool]:
         """Novelty of one window's features, and whether the sound is now unfamiliar."""
-        d = float(self.distance(summarise(features, time_axis=self.time_axis))[0])
-        self._run = self._run + 1 if d > self.threshold else 0
-        return d, self._run >= self.confirm
+        d = float(self.distances_of(features[None])[0])
+        return d, self.count(d)
 
     def fresh(self, confirm: int) -> Profile:
         """A copy with its own run counter (one per session and model)."""

@@ -14,7 +14,6 @@ import threading
 from typing import TextIO
 
 from monitor.engine import ObserverBase, WindowResult
-from monitor.files import dumps
 
 
 class _Printer(ObserverBase):
@@ -28,12 +27,24 @@ class _Printer(ObserverBase):
             return
         try:
             self.stream.write(text)
+        except BrokenPipeError:
+            self._broken()
+
+    def on_status(self, status) -> None:
+        """After each batch of windows: push the lines out (one flush per batch, not per
+        line: a fast replay writes thousands of lines a second)."""
+        if self.closed:
+            return
+        try:
             self.stream.flush()
         except BrokenPipeError:
-            self.closed = True
-            _silence(self.stream)
-            if self.stop is not None:
-                self.stop.set()
+            self._broken()
+
+    def _broken(self) -> None:
+        self.closed = True
+        _silence(self.stream)
+        if self.stop is not None:
+            self.stop.set()
 
 
 def _silence(stream: TextIO) -> None:
@@ -51,7 +62,7 @@ class HeadlessPrinter(_Printer):
     """One JSON object per window on the stream (the ``windows.jsonl`` fields of model A)."""
 
     def on_window(self, r: WindowResult) -> None:
-        self._write(dumps(r.record()) + "\n")
+        self._write(r.json_line())
 
 
 class ChangePrinter(_Printer):
@@ -100,14 +111,14 @@ class Collector(ObserverBase):
         self.timings = timings
 
     def on_window(self, r: WindowResult) -> None:
-        rec = r.record()
+        rec = dict(r.record())  # a copy: the record itself is shared
         if not self.timings:
             rec["ms"] = None  # a timing would make results differ run to run: left out
         self.records.append(rec)
         for k, o in enumerate(r.others):
             while len(self.others) <= k:
                 self.others.append([])
-            orec = o.record()
+            orec = dict(o.record())
             if not self.timings:
                 orec["ms"] = None
             self.others[k].append(orec)

@@ -71,3 +71,41 @@ def downmix(block: np.ndarray) -> np.ndarray:
     if block.shape[1] == 1:
         return block[:, 0].astype(np.float32, copy=False)
     return block.mean(axis=1, dtype=np.float32)
+
+
+def piece_sums(x: np.ndarray, piece: int) -> tuple[np.ndarray, np.ndarray]:
+    """Sum of squares (float64) and count of full-scale samples of each `piece`-long piece
+    of `x` (the last piece may be shorter)."""
+    n = x.shape[0]
+    whole = n - n % piece
+    body = x[:whole].reshape(-1, piece)
+    ss = np.square(body, dtype=np.float64).sum(axis=1)
+    cl = np.count_nonzero(np.abs(body) >= FULL_SCALE, axis=1)
+    if whole < n:
+        tail = x[whole:]
+        ss = np.append(ss, np.square(tail, dtype=np.float64).sum())
+        cl = np.append(cl, np.count_nonzero(np.abs(tail) >= FULL_SCALE))
+    return ss, cl
+
+
+def window_levels(x: np.ndarray, starts: np.ndarray, window: int,
+                  piece: int) -> tuple[np.ndarray, np.ndarray]:
+    """Level (dBFS, AES17) and clipped share of windows of `x`, all starting at multiples of
+    `piece` (a hop), computed from hop-long pieces shared by overlapping windows.
+
+    A window's mean square is the sum of its pieces' sums of squares over its length, so a
+    window gives the same numbers alone (`x` one window, `starts` [0]) as among many.
+    """
+    ss, cl = piece_sums(x, piece)
+    per = -(-window // piece)
+    first = np.asarray(starts) // piece
+    idx = first[:, None] + np.arange(per)[None, :]
+    total = ss[idx[:, 0]].copy()
+    clip = cl[idx[:, 0]].copy()
+    for k in range(1, per):  # in piece order: the same additions for every window
+        total += ss[idx[:, k]]
+        clip += cl[idx[:, k]]
+    rms = np.sqrt(total / window)
+    with np.errstate(divide="ignore"):
+        db = 20.0 * np.log10(np.maximum(np.sqrt(2.0) * rms, 1e-300))
+    return np.maximum(db, SILENCE_FLOOR_DBFS), clip / window

@@ -42,6 +42,11 @@ SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
 
 
+def line_of(result: Any) -> str:
+    """The windows.jsonl line of a result (the writer's serialisation, on its thread)."""
+    return result.json_line()
+
+
 def prepare_dir(out: Path, *, truth_file: Path | None = None) -> Path:
     """Create a session directory; refuse one that already holds a session's files.
 
@@ -184,6 +189,9 @@ class SessionWriter:
                         self.dir, item[1], session_id=self.meta["session_id"],
                         model_sha256=self.meta.get("model", {}).get("sha256"),
                         sample_rate=self.sample_rate))
+                if self._q.empty():  # window lines flushed as they happen (a burst at once)
+                    for f in jl:
+                        f.flush()
             except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
                 self._fail(exc)
 
@@ -192,7 +200,7 @@ class SessionWriter:
         lines = []
         for r in records:
             try:
-                lines.append(dumps(r.record()) + "\n")
+                lines.append(line_of(r))
             except (TypeError, ValueError):  # a record that is not JSON: a bug, not the disk
                 self.unserialisable += 1
                 return
@@ -200,7 +208,6 @@ class SessionWriter:
             jl.append(open(self.dir / WINDOW_FILES[len(jl)], "a", encoding="utf-8"))
         for f, line in zip(jl, lines):
             f.write(line)
-            f.flush()
         self.windows_written += 1
 
     def _write_audio(self, wav, chunk: np.ndarray, gap: int):

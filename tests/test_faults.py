@@ -128,19 +128,19 @@ def test_disk_full_monitoring_goes_on(tmp_path, tour, tour_windows):
 @pytest.mark.slow
 def test_slow_disk_never_slows_decisions(tour, demo_card, tmp_path, monkeypatch, tour_windows):
     # Fault injection (a fake, because a real disk cannot be made slow on demand): the session
-    # writer's serialisation sleeps 10 ms per window line, on the writer's own thread
+    # writer's window lines take 10 ms each, on the writer's own thread
     import monitor.session_writer as sw
     from monitor.engine import Engine
     from monitor.runners import load_runner
     from monitor.sources import FileSource
 
-    real_dumps = sw.dumps
+    real_line = sw.line_of
 
-    def slow_dumps(obj, **kw):
+    def slow_line(result):
         time.sleep(0.01)
-        return real_dumps(obj, **kw)
+        return real_line(result)
 
-    monkeypatch.setattr(sw, "dumps", slow_dumps)
+    monkeypatch.setattr(sw, "line_of", slow_line)
     writer = sw.SessionWriter(tmp_path / "s", {"classes": list(demo_card.classes)},
                               sample_rate=16000)
     src = FileSource(tour[0], model_rate=16000, window_samples=16000)
