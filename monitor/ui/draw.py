@@ -113,8 +113,8 @@ def _truth_line(classes, truth, decision, truth_mode: str, width: int) -> Text:
     t.append(fit(truth, 12), style=f"bold {colour(classes, truth)}")
     if decision is not None or truth_mode != "none":
         same = truth == decision
-        word = "  ✓ agrees" if same else "  ✗ DIFFERS"
-        t.append(word, style="bold" if same else f"bold reverse {P.ALERT}")
+        t.append("  ")
+        t.append("✓ agrees" if same else "✗ DIFFERS", style="bold" if same else f"bold reverse {P.ALERT}")
     t.truncate(width)
     return t
 
@@ -349,8 +349,10 @@ def picture_spec(card) -> PictureSpec:
     mean = np.asarray(card.mean, np.float32)
     std = np.asarray(card.std, np.float32)
     gain, offset = std * factor, mean * factor
-    hi = float(np.max(offset + 2.5 * gain))
-    lo = float(np.min(offset - 2.5 * gain))
+    # the training features' spread: from the quietest band's mean less 1.5 std to the
+    # loudest band's mean plus 1 std (on the demo tour: -60 to +20 dB, where 98% of it lies)
+    hi = float(np.max(offset + 1.0 * gain))
+    lo = float(np.min(offset - 1.5 * gain))
     if log != "db":  # nothing lies below the log of the offset (digital silence)
         base = math.log(card.log_offset) if log == "ln" else math.log10(card.log_offset)
         lo = max(lo, factor * base)
@@ -451,11 +453,14 @@ def scale_text(spec: PictureSpec, width: int, *, color: bool = True) -> Text:
         return t
     unit = f" {spec.unit}"
     lo, hi = f"{spec.lo:+.0f}" if spec.unit == "σ" else f"{spec.lo:.0f}", f"{spec.hi:+.0f}"
-    axis = "kHz " if spec.centres_hz is not None else "    "
-    room = width - len(axis) - len(lo) - len(hi) - len(unit) - 2
     n = len(P.HEAT)
+    room = width - AXIS_W - len(lo) - len(hi) - len(unit) - 2
+    if room < n:  # narrow: the ramp starts at the left edge
+        room += AXIS_W - 1
+        t.append(" ")
+    else:
+        t.append(" " * AXIS_W)
     per = max(1, min(3, room // n))
-    t.append(axis, style=P.MUTED)
     t.append(lo + " ", style=P.MUTED)
     for k in range(n):
         if color:
