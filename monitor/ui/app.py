@@ -299,22 +299,25 @@ class MonitorApp(App):
                   "hears": "what it hears", "health": "health", "session": "session"}
         for wid, title in titles.items():
             self.query_one(f"#{wid}").border_title = title
-        self.apply_layout()
+        self.apply_layout(self.size.width, self.size.height)
         self.set_interval(1.0 / self.redraw_hz, self.redraw)
         self.run_worker_session()
         self.redraw(force=True)
 
     def on_resize(self, event) -> None:
-        self.apply_layout()
+        self.apply_layout(event.size.width, event.size.height)
         self.redraw(force=True)
 
     @property
     def mode_two(self) -> bool:
         return self.handle is not None and len(self.handle.models) > 1
 
-    def apply_layout(self) -> None:
+    def apply_layout(self, width: int | None = None, height: int | None = None) -> None:
         n = len(self.state.classes) if self.state.classes else 4
-        lay = self.layout = layout_for(self.size.width, self.size.height, n, self.mode_two)
+        if width is None or height is None:
+            width, height = (self.layout.width, self.layout.height) if self.layout else \
+                (self.size.width, self.size.height)
+        lay = self.layout = layout_for(width, height, n, self.mode_two)
         main, small = self.query_one("#main"), self.query_one("#too_small", Static)
         main.display = lay.fits
         small.display = not lay.fits
@@ -502,7 +505,7 @@ class MonitorApp(App):
         return "keys" if h.live_truth is not None else "file"
 
     def _top(self) -> Text:
-        w = self.size.width
+        w = self.layout.width if self.layout else self.size.width
         now = time.monotonic()
         right = self.notice_text if now < self.notice_until else self.message
         if self.paused:

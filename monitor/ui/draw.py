@@ -526,8 +526,10 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
                  unfamiliar: int | None = None, color: bool = True) -> Text:
     """The session panel: time, windows, snippets, accuracy and the confusion table, then
     what fits of latency and switch rate. At most `height` lines of at most `width`."""
+    acc = pct(tally.accuracy) if tally.with_truth else "     -"
     lines: list[Text] = [Text(f"time {clock(t_s):>8}  win {windows:>7,}"),
-                         Text(f"snip {snippets:>8,}  acc {pct(tally.accuracy) if tally.with_truth else '     -':>7}")]
+                         Text(f"snip {snippets:>8,}  acc {acc:>7}")]
+    extra: list[Text] = []
     if not tally.with_truth:
         hint = {"keys": f"no truth yet: keys 1-{min(len(classes), 9)}",
                 "file": "no truth yet in the file"}.get(truth_mode, "no truth in this session")
@@ -544,17 +546,14 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
                 r = recalls[c].get("recall")
                 lines.append(Text(f" {keys[c]} {fit(c, width - 12):<{width - 12}} "
                                   f"{pct(r) if r is not None else '     -'}"))
-        extra = []
         lat = tally.latency_median
-        extra.append(Text(f"latency med {'-' if lat is None else f'{lat:.1f} s':>7}", style=P.MUTED))
-    if tally.with_truth and tally.switches_per_min is not None:
-        extra.append(Text(f"switches    {tally.switches_per_min:>5.1f}/min", style=P.MUTED))
+        extra.append(Text(f"latency med {'-' if lat is None else f'{lat:.1f} s':>7}",
+                          style=P.MUTED))
+        if tally.switches_per_min is not None:
+            extra.append(Text(f"switches    {tally.switches_per_min:>5.1f}/min", style=P.MUTED))
     if unfamiliar is not None:
-        extra.append(Text(f"{UNFAMILIAR} unfamiliar  {unfamiliar:>7,}", style=P.MUTED))
-    if tally.with_truth:
-        lines.extend(extra)
-    elif unfamiliar is not None:
-        lines.append(extra[-1])
+        extra.insert(0, Text(f"{UNFAMILIAR} unfamiliar  {unfamiliar:>7,}", style=P.MUTED))
+    lines.extend(extra)
     t = Text(no_wrap=True, overflow="crop")
     for k, line in enumerate(lines[:height]):
         if k:
