@@ -593,3 +593,27 @@ def test_relabel_view_plays_on_enter_and_space(snippet_session, key):
 
     asyncio.run(drive())
     assert len(screens[0].played) == 1 and screens[0].played[0].suffix == ".wav"
+
+
+def test_feature_picture_axis_and_no_colour_form(demo_card):
+    """The picture's frequency labels are the card's mel band centres (HTK mel, as the card
+    says: m = 2595 log10(1 + f / 700), bands evenly spaced in mel), and without colour the
+    picture reads by glyph density: a spectrum rising with frequency is denser on top."""
+    import numpy as np
+
+    from monitor.ui.draw import SHADES, heat_text, picture_spec
+
+    spec = picture_spec(demo_card)
+    bands, frames = demo_card.mel_bands, demo_card.frames_per_window
+    m_lo, m_hi = (2595 * np.log10(1 + f / 700) for f in (demo_card.fmin, demo_card.fmax))
+    mel = np.linspace(m_lo, m_hi, bands + 2)[1:-1]
+    centres = 700 * (10 ** (mel / 2595) - 1)
+    assert np.allclose(spec.centres_hz, centres, rtol=1e-9)
+    # scaled features that undo to a level rising from the ramp's bottom to its top
+    want = np.linspace(spec.lo, spec.hi, bands)[None, :].repeat(frames, axis=0)
+    feats = (want - spec.offset) / spec.gain
+    text = heat_text(feats, spec, 5, 20, color=False).plain.split("\n")
+    assert len(text) == 5
+    density = [max(SHADES.index(ch) for ch in line[4:]) for line in text]
+    assert density == sorted(density, reverse=True) and density[0] > density[-1]
+    assert text[0][:3].strip() == f"{centres[-1] / 1000:.1f}"  # the top row's highest band
