@@ -4,7 +4,7 @@ VENV   ?= .venv
 BIN     = $(VENV)/bin
 STAMP   = $(VENV)/.installed
 
-.PHONY: demo demo-fast test test-fast lint bench models clean
+.PHONY: demo demo-fast test test-fast lint bench models pictures clean
 
 $(STAMP): pyproject.toml
 	$(PYTHON) -m venv $(VENV)
@@ -30,6 +30,9 @@ lint: $(STAMP)
 bench: $(STAMP)           ## speed figures for the README: against the floor, then per stage
 	$(BIN)/python benchmarks/bench_floor.py
 	$(BIN)/python benchmarks/bench_pipeline.py
+
+pictures: $(STAMP)        ## the README's pictures, from a real run of the demo (headless Chromium for the report)
+	$(BIN)/python docs/pictures.py
 
 models: $(STAMP)          ## rebuild the demo model artifacts (deterministic, about 2 minutes)
 	$(BIN)/python -m monitor.demo.build --out models

@@ -1,7 +1,8 @@
 """Cost of the terminal UI: CPU share of one core while `scenemon demo` runs at real-time
-pace in an 80x24 tmux pane, and the time from the command to the first drawn screen.
+pace in a tmux pane (80x24 unless --size), and the time from the command to the first drawn
+screen.
 
-Run: .venv/bin/python benchmarks/bench_ui.py [--seconds 60]
+Run: .venv/bin/python benchmarks/bench_ui.py [--seconds 60] [--size 120x40]
 """
 
 import argparse
@@ -25,15 +26,17 @@ def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--seconds", type=float, default=60.0)
     ap.add_argument("--model", default="models/demo.tflite")
+    ap.add_argument("--size", default="80x24", help="terminal size, e.g. 120x40")
     args = ap.parse_args()
     if not shutil.which("tmux"):
         print("needs tmux")
         return 2
     exe = Path(sys.executable).parent / "scenemon"
+    width, height = args.size.split("x")
     with tempfile.TemporaryDirectory() as td:
         sess = f"scenemon-bench-{os.getpid()}"
         t0 = time.monotonic()
-        subprocess.run(["tmux", "new-session", "-d", "-s", sess, "-x", "80", "-y", "24",
+        subprocess.run(["tmux", "new-session", "-d", "-s", sess, "-x", width, "-y", height,
                         f"cd {ROOT} && {exe} demo --model {args.model} --out {td}/s"], check=True)
         first = None
         while time.monotonic() - t0 < 30:
@@ -56,7 +59,7 @@ def main() -> int:
         subprocess.run(["tmux", "send-keys", "-t", sess, "q"])
         time.sleep(3.0)
         subprocess.run(["tmux", "kill-session", "-t", sess], capture_output=True)
-    print(f"terminal UI on the demo tour at real-time pace, {args.model}, 80x24 tmux:")
+    print(f"terminal UI on the demo tour at real-time pace, {args.model}, {args.size} tmux:")
     print(f"  first screen drawn {first:.2f} s after the command; first decision shown "
           f"{t_decision:.2f} s")
     print(f"  CPU over {args.seconds:.0f} s (after 5 s): {100 * (c1 - c0) / (w1 - w0):.1f}% of one core")

@@ -1,10 +1,13 @@
 """One palette for every screen and picture: the terminal UI and the HTML report share it.
 
-Class colours are taken from the colour-blind-safe set of Okabe and Ito 2008, "Color
-Universal Design (CUD): how to make figures and presentations that are friendly to colorblind
-people" (J*FLY), without its black, in an order of our own, on a dark slate ground of our own
-on which every one reaches WCAG 2.x contrast 3:1. Beyond seven classes the colours repeat;
-every class also has its own letter, so nothing depends on colour alone.
+Class colours: six of the colour-blind-safe set of Okabe and Ito 2008, "Color Universal
+Design (CUD): how to make figures and presentations that are friendly to colorblind people"
+(J*FLY), without its black and its deep blue (too dark on our ground, and too near the sky
+blue once lifted), in an order of our own, plus a pale green of our own; on a dark slate
+ground of our own on which every one reaches WCAG 2.x contrast 3:1 (4.5:1 in fact, so dark
+text on a class colour reads too). Every pair stays apart under simulated deuteranopia and
+protanopia (tests/test_palette.py). Beyond seven classes the colours repeat; every class also
+has its own letter, so nothing depends on colour alone.
 
 The heat ramp (log-mel picture, confusion matrix) is our own: from the ground through deep
 teal and moss to a pale straw, its relative luminance rising at every step, so it reads in
@@ -20,10 +23,12 @@ TEXT = "#e4e8ee"
 MUTED = "#8c96a4"
 ALERT = "#ff6f61"  # a difference, clipping: also said in words, never colour alone
 
-CLASS_COLOURS = ("#56B4E9", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#D55E00", "#6FA8DC")
-# sky blue, orange, bluish green, reddish purple, yellow, vermillion (Okabe and Ito), and the
-# set's blue lifted (#0072B2 -> #6FA8DC) so that it stays apart from the others on the ground
+CLASS_COLOURS = ("#56B4E9", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#D55E00", "#B9E0A5")
+CLASS_COLOUR_NAMES = ("sky blue", "orange", "bluish green", "reddish purple", "yellow",
+                      "vermillion", "pale green")  # the first six as Okabe and Ito name them
 
+# Lightness (CIELAB L*) rises from 9 to 93 in near-even steps of about 8.4, so the ramp reads
+# in order in colour, in grey and under the simulated colour-vision deficiencies.
 HEAT = ("#15191f", "#1b2a35", "#1f3d4a", "#23525b", "#2c6866", "#3f7f6a", "#5e9669",
         "#86ac66", "#b4c26a", "#e0d77f", "#f7ecb5")
 
@@ -38,10 +43,14 @@ def class_colour(classes, label) -> str:
     return UNKNOWN_COLOUR
 
 
+def heat_index(frac: float) -> int:
+    """The step of the heat ramp for `frac` in [0, 1] (clipped)."""
+    return int(min(max(frac, 0.0), 0.9999) * len(HEAT))
+
+
 def heat_colour(frac: float) -> str:
     """The heat ramp at `frac` in [0, 1]."""
-    k = int(min(max(frac, 0.0), 0.9999) * len(HEAT))
-    return HEAT[k]
+    return HEAT[heat_index(frac)]
 
 
 def relative_luminance(hex_colour: str) -> float:

@@ -149,6 +149,10 @@ def test_html_report_in_headless_chromium(argmax_session, tmp_path):
     dom = subprocess.run([exe, *flags, "--dump-dom", html_path.as_uri()], capture_output=True,
                          text=True, timeout=120).stdout
     assert "id=\"timeline\"" in dom and "id=\"confusion\"" in dom and "<audio" in dom
+    assert "id=\"level\"" in dom  # the level figure, with its legend
+    # every figure has its legend, and the snippet table its review state
+    assert dom.count("class=\"legend\"") >= 4
+    assert "class=\"state-new\"" in dom or "class=\"state-kept\"" in dom
 
 
 def test_html_escapes_hostile_strings(argmax_session, tmp_path):

@@ -234,11 +234,34 @@ def test_capture_asks_for_a_label_when_no_truth(quiet_clip, tmp_path):
     assert len(list((out / "snippets" / "voices").glob("*-manual.json"))) == 1
 
 
+def clip_truth(tour, tmp_path, start_s, seconds, name="clip.tsv"):
+    """The tour's truth over a clip of it, shifted to the clip's clock (derived from the
+    tour's own truth file, never typed in)."""
+    from monitor.truth import load_truth
+
+    out = []
+    for sp in load_truth(tour[1]).spans:
+        a, z = max(sp.onset, start_s) - start_s, min(sp.offset, start_s + seconds) - start_s
+        if z > a:
+            out.append(f"{a:.3f}\t{z:.3f}\t{sp.label}")
+    path = tmp_path / name
+    path.write_text("\n".join(out) + "\n")
+    return path
+
+
+SIZES = [(80, 24), (100, 30), (120, 40)]
+PANELS = ("top", "decision", "classes", "strip", "hears", "health", "session")
+
+
 @pytest.fixture
-def finished_app(tour, tmp_path):
-    audio = clip_of(tour, tmp_path, 25.0, 16.0)  # quiet room into voices
+def long_app(tour, tmp_path):
+    """66 s of the tour from its start (131 windows: quiet room into voices into traffic)
+    with its truth file, replayed fast to the end; timings hidden and the CPU meter held
+    at zero, so the screen depends on the audio alone."""
+    audio = clip_of(tour, tmp_path, 0.0, 66.0)
+    truth = clip_truth(tour, tmp_path, 0.0, 66.0)
     src = FileSource(audio, model_rate=16000, window_samples=16000, realtime=False)
-    return make_app(src, tmp_path / "s", cpu_meter=lambda: 0.0)
+    return make_app(src, tmp_path / "s", truth=truth, cpu_meter=lambda: 0.0)
 
 
 async def _until_finished(pilot):
@@ -247,17 +270,224 @@ async def _until_finished(pilot):
     await pilot.pause(0.2)
 
 
-def test_snapshot_live_view(finished_app, snap_compare):
-    assert snap_compare(finished_app, terminal_size=(80, 24), run_before=_until_finished)
+def screen_rows(app):
+    """The screen as plain text rows (textual's compositor, as the terminal gets it)."""
+    return [strip.text for strip in app.screen._compositor.render_strips()]
 
 
-def test_snapshot_stage_view(finished_app, snap_compare):
+def assert_nothing_cut(app):
+    """Every line a panel was given fits its panel (no wrap, no cut), and appears whole
+    on one row of the screen as drawn."""
+    rows = screen_rows(app)
+    lay = app.layout
+    inner = {"top": (lay.width, 1), "decision": (lay.decision_w - 4, lay.row1 - 2),
+             "classes": (lay.classes_inner, lay.row1 - 2), "strip": (lay.width - 4, lay.strip - 2),
+             "hears": lay.hears_inner, "health": (lay.health_w - 4, lay.row2 - 2),
+             "session": (lay.session_w - 4, lay.row2 - 2)}
+    for wid in PANELS:
+        text = app._shown[wid]
+        lines = text.split("\n")
+        w, h = inner[wid]
+        assert len(lines) <= h, (wid, len(lines), h)
+        for line in lines:
+            assert line.cell_len <= w, (wid, line.plain, w)
+            plain = line.plain.rstrip()
+            if plain:
+                assert any(plain in r for r in rows), (wid, plain)
+    return rows
+
+
+@pytest.mark.parametrize("size", SIZES, ids=[f"{w}x{h}" for w, h in SIZES])
+def test_snapshot_live_view(long_app, snap_compare, size):
+    seen = {}
+
+    async def run_before(pilot):
+        await _until_finished(pilot)
+        seen["rows"] = assert_nothing_cut(pilot.app)
+        seen["windows"] = pilot.app.state.tally.windows
+
+    assert snap_compare(long_app, terminal_size=size, run_before=run_before)
+    assert seen["windows"] >= 120
+    rows = seen["rows"]
+    # the picture grows with the terminal: one text row per two pixel rows of the picture
+    assert sum(1 for r in rows if "▀" in r) == long_app.layout.hears_inner[1] - 2
+    # the strip: one cell per hop across the panel, its span in the title
+    cells = size[0] - 4 - 9
+    assert any(f"last {cells * 0.5:.0f} s" in r for r in rows)
+
+
+@pytest.mark.parametrize("size", [(80, 24), (120, 40)], ids=["80x24", "120x40"])
+def test_snapshot_stage_view(long_app, snap_compare, size):
     async def stage(pilot):
         await _until_finished(pilot)
         await pilot.press("s")
         await pilot.pause(0.3)
 
-    assert snap_compare(finished_app, terminal_size=(80, 24), run_before=stage)
+    assert snap_compare(long_app, terminal_size=size, run_before=stage)
+
+
+def test_too_small_says_the_size_needed(long_app):
+    seen = {}
+
+    async def main():
+        async with long_app.run_test(size=(60, 18)) as pilot:
+            await _until_finished(pilot)
+            seen["rows"] = "\n".join(screen_rows(long_app))
+            seen["main"] = long_app.query_one("#main").display
+            await pilot.resize_terminal(80, 24)
+            await pilot.pause(0.3)
+            seen["after"] = long_app.query_one("#main").display
+            await pilot.press("q")
+
+    asyncio.run(main())
+    text = " ".join(seen["rows"].split())
+    assert "at least 80 x 24" in text and "this one is 60 x 18" in text
+    assert seen["main"] is False and seen["after"] is True
+
+
+def test_footer_offers_only_the_keys_that_work(long_app, quiet_clip, tmp_path):
+    footers = {}
+
+    async def main(app, name, stepped_src=None):
+        async with app.run_test(size=(80, 24)) as pilot:
+            if stepped_src is not None:
+                await step(pilot, stepped_src, 4, 3)
+            else:
+                await _until_finished(pilot)
+            footers[name] = screen_rows(app)[-1]
+            await pilot.press("q")
+            await wait_for(pilot, lambda: app.finished)
+
+    asyncio.run(main(long_app, "file"))
+    src = stepped(quiet_clip)
+    asyncio.run(main(make_app(src, tmp_path / "k"), "keys", src))
+    assert "truth" not in footers["file"] and "capture" not in footers["file"]
+    assert "1-4 truth" in footers["keys"] and "0 unknown" in footers["keys"]
+    assert "c capture" in footers["keys"] and "A/B" not in footers["keys"]
+
+
+# --- two models, unfamiliar sounds ----------------------------------------------------------
+def lagging_copy(tmp_path, confirm=8):
+    """The int8 demo model with its card beside it, its decision confirming later (so that
+    A and B disagree after each scene change)."""
+    d = tmp_path / "b"
+    d.mkdir()
+    shutil.copy(MODELS / "demo.int8.tflite", d / "demo.int8.tflite")
+    card = (MODELS / "demo.int8.toml").read_text()
+    card = "\n".join(f"confirm = {confirm}" if line.startswith("confirm") else line
+                     for line in card.splitlines())
+    (d / "demo.int8.toml").write_text(card + "\n")
+    return d / "demo.int8.tflite"
+
+
+def test_two_models_side_by_side(tour, tmp_path):
+    start, seconds = 20.0, 30.0  # quiet room into voices
+    audio = clip_of(tour, tmp_path, start, seconds)
+    truth = clip_truth(tour, tmp_path, start, seconds)
+    src = stepped(audio)
+    out = tmp_path / "s"
+    plan = SessionPlan(source=src, models=(ModelPlan(MODELS / "demo.tflite"),
+                                           ModelPlan(lagging_copy(tmp_path))),
+                       output=OutputPlan(out, "t"), truth=truth)
+    app = MonitorApp(session_starter(plan), heading="ab", show_timings=False,
+                     cpu_meter=lambda: 0.0)
+    panels = []
+
+    async def drive(pilot):
+        n = 1
+        while n < 2 * seconds - 2:
+            await step(pilot, src, 2 if n == 1 else 1, n)
+            panels.append((panel_text(app, "decision"), app.state.lanes[0].decision,
+                           app.state.lanes[1].decision))
+            n += 1
+        assert_nothing_cut(app)
+        panels.append(("final", app.state.agreement, [ln.tally.accuracy for ln in app.state.lanes]))
+
+    assert run_app(app, drive) == 0
+    differ = [p for p, a, b in panels[:-1] if a != b]
+    same = [p for p, a, b in panels[:-1] if a == b and a is not None]
+    assert differ and same
+    assert all("≠" in p for p in differ) and not any("≠" in p for p in same)
+    assert all("A " in p and "B " in p and "agree" in p and "acc" in p for p, _, _ in panels[:-1])
+    # agreement and both accuracies re-derived from the session files
+    wa = [json.loads(x) for x in (out / "windows.jsonl").read_text().splitlines()]
+    wb = [json.loads(x) for x in (out / "windows.b.jsonl").read_text().splitlines()]
+    shown = app.state
+    n = shown.tally.windows
+    agree = sum(a["decision"] == b["decision"] for a, b in zip(wa[:n], wb[:n])) / n
+    assert panels[-1][1] == pytest.approx(agree)
+    for k, ws in enumerate((wa, wb)):
+        truthful = [w for w in ws[:n] if w["truth"] is not None]
+        acc = sum(w["decision"] == w["truth"] for w in truthful) / len(truthful)
+        assert panels[-1][2][k] == pytest.approx(acc)
+        assert f"{acc:6.1%}" in panels[-2][0]
+    assert f"agree {agree:6.1%}" in panels[-2][0]
+
+
+def test_unfamiliar_mark_beside_the_decision(tour, tmp_path):
+    """A profile fitted on the quiet room alone, beside a copy of the model: the voices
+    that follow are unfamiliar to it, and the decision panel says so."""
+    from monitor.card import load_card
+    from monitor.frontend import FrontEnd
+    from monitor.novelty import fit_profile, profile_path_for, save_profile
+    from monitor.truth import load_truth
+    from monitor.windower import windows_of
+
+    d = tmp_path / "m"
+    d.mkdir()
+    for name in ("demo.tflite", "demo.toml"):
+        shutil.copy(MODELS / name, d / name)
+    card = load_card(d / "demo.toml")
+    quiet = next(sp for sp in load_truth(tour[1]).spans if sp.label == "quiet_room")
+    x, sr = sf.read(str(tour[0]), dtype="float32")
+    x = x[int(quiet.onset * sr) + sr:int(quiet.offset * sr) - sr]
+    feats = FrontEnd(card).batch(windows_of(x, card.window_samples, sr // 20))
+    save_profile(fit_profile(feats, card), profile_path_for(d / "demo.tflite"))
+    start = quiet.offset - 6.0
+    audio = clip_of(tour, tmp_path, start, 16.0)
+    src = stepped(audio)
+    plan = SessionPlan(source=src, models=(ModelPlan(d / "demo.tflite"),),
+                       output=OutputPlan(tmp_path / "s", "t"))
+    app = MonitorApp(session_starter(plan), heading="u", show_timings=False,
+                     cpu_meter=lambda: 0.0)
+    seen = []
+
+    async def drive(pilot):
+        for n in range(1, 30):
+            await step(pilot, src, 2 if n == 1 else 1, n)
+            seen.append((app.state.lanes[0].unfamiliar, panel_text(app, "decision"),
+                         panel_text(app, "session")))
+
+    run_app(app, drive)
+    flagged = [p for u, p, _ in seen if u]
+    assert flagged and all("◆ unfamiliar" in p for p in flagged)
+    assert not any("unfamiliar" in p for u, p, _ in seen if not u)
+    assert any("◆ unfamiliar" in s for _, _, s in seen)  # the session panel's count
+
+
+# --- the stage font -----------------------------------------------------------------------------
+def test_stage_font_every_letter_distinct():
+    import itertools
+    import string
+
+    from monitor.snippets import safe_label
+    from monitor.ui.draw import FONT, FONT_H, FONT_W, big_text
+
+    # every character a class name can hold (the label rule of monitor.snippets), upper-cased
+    # as the stage shows it
+    chars = sorted({c.upper() for c in string.ascii_letters + string.digits + "_-"
+                    if safe_label(f"a{c}b") == f"a{c}b"})
+    assert len(chars) == 26 + 10 + 2
+    for ch in chars:
+        assert len(FONT[ch]) == FONT_H and all(len(r) == FONT_W for r in FONT[ch]), ch
+    cells = {ch: "".join(FONT[ch]) for ch in chars}
+    worst = min((sum(a != b for a, b in zip(cells[p], cells[q])), p, q)
+                for p, q in itertools.combinations(chars, 2))
+    assert worst[0] >= 3, worst  # every pair differs in at least 3 of the 35 cells
+    # and so does what the stage draws, at both scales
+    for scale_width in (10 ** 6, 6):
+        drawn = {ch: big_text(ch, max_width=scale_width).plain for ch in chars}
+        assert len(set(drawn.values())) == len(chars)
 
 
 @pytest.mark.system
@@ -363,3 +593,27 @@ def test_relabel_view_plays_on_enter_and_space(snippet_session, key):
 
     asyncio.run(drive())
     assert len(screens[0].played) == 1 and screens[0].played[0].suffix == ".wav"
+
+
+def test_feature_picture_axis_and_no_colour_form(demo_card):
+    """The picture's frequency labels are the card's mel band centres (HTK mel, as the card
+    says: m = 2595 log10(1 + f / 700), bands evenly spaced in mel), and without colour the
+    picture reads by glyph density: a spectrum rising with frequency is denser on top."""
+    import numpy as np
+
+    from monitor.ui.draw import SHADES, heat_text, picture_spec
+
+    spec = picture_spec(demo_card)
+    bands, frames = demo_card.mel_bands, demo_card.frames_per_window
+    m_lo, m_hi = (2595 * np.log10(1 + f / 700) for f in (demo_card.fmin, demo_card.fmax))
+    mel = np.linspace(m_lo, m_hi, bands + 2)[1:-1]
+    centres = 700 * (10 ** (mel / 2595) - 1)
+    assert np.allclose(spec.centres_hz, centres, rtol=1e-9)
+    # scaled features that undo to a level rising from the ramp's bottom to its top
+    want = np.linspace(spec.lo, spec.hi, bands)[None, :].repeat(frames, axis=0)
+    feats = (want - spec.offset) / spec.gain
+    text = heat_text(feats, spec, 5, 20, color=False).plain.split("\n")
+    assert len(text) == 5
+    density = [max(SHADES.index(ch) for ch in line[4:]) for line in text]
+    assert density == sorted(density, reverse=True) and density[0] > density[-1]
+    assert text[0][:3].strip() == f"{centres[-1] / 1000:.1f}"  # the top row's highest band

@@ -132,8 +132,8 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
         by: dict[str, int] = {}
         for sn in snips:
             by[sn.reason] = by.get(sn.reason, 0) + 1
-        states = {st: sum(1 for sn in snips if (sn.state or "not reviewed") == st)
-                  for st in sorted({sn.state or "not reviewed" for sn in snips})}
+        states = {st: sum(1 for sn in snips if review_word(sn.state) == st)
+                  for st in sorted({review_word(sn.state) for sn in snips})}
         lines.append("")
         lines.append(f"snippets  {len(snips)}: " + ", ".join(f"{k} {v}" for k, v in sorted(by.items()))
                      + "; " + ", ".join(f"{k} {v}" for k, v in states.items()))
@@ -188,9 +188,11 @@ def timeline_svg(s: Session, m: Metrics) -> str:
     sm = np.array([w["smoothed"] if w.get("smoothed") else [np.nan] * len(classes)
                    for w in s.windows], dtype=float) if s.windows else np.zeros((0, len(classes)))
     bands = [("decision" if len(ws) == 1 else f"{'AB'[k]} decision", k) for k in range(len(ws))]
-    fig, axes = plt.subplots(2 + len(bands), 1, figsize=(11, 3.4 + 0.55 * (len(bands) + 1)),
-                             sharex=True,
-                             gridspec_kw={"height_ratios": [4] + [0.6] * (len(bands) + 1)})
+    extra = 1 if len(ws) > 1 else 0  # a row marking where A and B differ
+    n_rows = 2 + len(bands) + extra
+    fig, axes = plt.subplots(n_rows, 1, figsize=(11, 3.4 + 0.55 * (n_rows - 1)), sharex=True,
+                             gridspec_kw={"height_ratios": [4] + [0.6] * (len(bands) + 1)
+                                          + [0.35] * extra})
     ax = axes[0]
     for i, c in enumerate(classes):
         ax.plot(t, sm[:, i] if len(sm) else [], color=P.class_colour(classes, c), lw=1.3,
@@ -207,7 +209,16 @@ def timeline_svg(s: Session, m: Metrics) -> str:
     ax.legend(loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=8, frameon=False)
     hop = (t[1] - t[0]) if len(t) > 1 else 0.5
     rows = [(axes[1 + k], ws[k], "decision", title) for title, k in bands]
-    rows.append((axes[-1], s.windows, "truth", "truth"))
+    rows.append((axes[1 + len(bands)], s.windows, "truth", "truth"))
+    if extra:
+        ax = axes[-1]
+        differ = [{"t1": a["t1"], "differ": a.get("decision") != b.get("decision")}
+                  for a, b in zip(ws[0], ws[1])]
+        for start, end, v in _runs(differ, "differ", hop):
+            if v:
+                ax.axvspan(start, end, color=P.ALERT, lw=0)
+        ax.set_yticks([])
+        ax.set_ylabel("A ≠ B", rotation=0, ha="right", va="center")
     for ax, windows, key, title in rows:
         for start, end, v in _runs(windows, key, hop):
             if v in classes:
@@ -233,7 +244,7 @@ def level_svg(s: Session, m: Metrics) -> str:
         ax.axvspan(a, z, color=P.MUTED, alpha=0.35, lw=0)
     for a, z in m.levels.get("clipping_stretches", []):
         ax.axvspan(a, z, color=P.ALERT, alpha=0.45, lw=0)
-    ax.plot(t, lv, color=P.CLASS_COLOURS[0], lw=1.0)
+    ax.plot(t, lv, color=P.TEXT, lw=0.9)  # not a class colour: the level belongs to no class
     ax.axhline(SILENT_BELOW_DBFS, color=P.MUTED, lw=0.7, ls=":")
     ax.set_ylim(max(-165.0, float(np.nanmin(lv)) - 5 if lv.size else -100), 3)
     ax.set_ylabel("dBFS")
@@ -269,8 +280,16 @@ def confusion_svg(m: Metrics, title: str = "") -> str:
 
 
 CSS = f"""
-body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 74em;
+:root {{ color-scheme: dark; }}
+body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 74em; padding: 0 2em;
        background: {P.GROUND}; color: {P.TEXT}; }}
+.kpis {{ display: grid; grid-template-columns: repeat(auto-fill, minmax(10.5em, 1fr));
+        gap: 0.6em; margin: 1em 0; }}
+.kpis .kpi {{ background: {P.PANEL}; border: 1px solid {P.LINE}; border-radius: 4px;
+             padding: 0.5em 0.8em; margin: 0; }}
+.confusions {{ display: flex; flex-wrap: wrap; gap: 2em; }}
+.state-new {{ color: {P.MUTED}; }} .state-kept, .state-relabeled {{ color: {P.CLASS_COLOURS[2]}; }}
+.state-dropped {{ color: {P.MUTED}; }}
 h1 {{ font-size: 1.4em; margin-bottom: 0.2em; }} h2 {{ font-size: 1.1em; margin-top: 1.8em; }}
 .meta, .legend {{ color: {P.MUTED}; font-size: 0.88em; }} .note {{ color: {P.CLASS_COLOURS[4]}; }}
 table {{ border-collapse: collapse; font-size: 0.9em; }}
@@ -284,9 +303,25 @@ audio {{ height: 2em; vertical-align: middle; }}
 """
 
 
+def review_word(state: str | None) -> str:
+    """A snippet's review state in one word (as the relabel view shows it): dropped,
+    relabeled, kept or new."""
+    state = state or ""
+    for word in ("dropped", "relabeled", "kept"):
+        if word in state:
+            return word
+    return "new"
+
+
 def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> str:
     e = html.escape
     m = ms[0]
+
+    def swatch(label: str) -> str:
+        if label not in m.classes:
+            return ""
+        return f"<span class='sw' style='background:{P.class_colour(m.classes, label)}'></span>"
+
     parts = ["<!DOCTYPE html>", REPORT_MARK,
              "<html lang='en'><head><meta charset='utf-8'>",
              f"<title>scenemon session {e(s.dir.name)}</title><style>{CSS}</style></head><body>",
@@ -312,8 +347,8 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
     summ = s.summary or {}
     over = summ.get("overruns")
     kpis.append(("overruns", str(over) if isinstance(over, int) else "-"))
-    parts.append("<p>" + "".join(f"<span class='kpi'><b>{e(v)}</b>{e(k)}</span>" for k, v in kpis)
-                 + "</p>")
+    parts.append("<div class='kpis'>" + "".join(f"<span class='kpi'><b>{e(v)}</b>{e(k)}</span>"
+                                                for k, v in kpis) + "</div>")
     if len(ms) > 1 and m.with_truth:
         pr = paired(s.windows, s.windows_b or [])
         parts.append(f"<p>Decisions agree on {pr['decision_agreement']:.1%} of the windows. "
@@ -324,7 +359,9 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
                  f"{' (model A)' if len(ms) > 1 else ''} with the enter threshold dashed"
                  f"{'; red marks: unfamiliar sounds' if m.unfamiliar else ''}. Below: the "
                  f"decision of each model and the truth, one colour per class ({swatches}); "
-                 f"blank where undecided or unknown.</p><div class='figure' id='timeline'>"
+                 f"blank where undecided or unknown"
+                 f"{'; the last row marks in red where A and B decide differently' if len(ms) > 1 else ''}"
+                 f".</p><div class='figure' id='timeline'>"
                  + timeline_svg(s, m) + "</div>")
     lv = m.levels
     parts.append("<h2>Input level</h2><p class='legend'>Uncalibrated dBFS per window (AES17: a "
@@ -349,17 +386,20 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
         parts.append("<h2>Confusion</h2><p class='legend'>Rows: the truth; columns: the "
                      "decision (the last column: undecided). Each cell: windows; its shade: the "
                      "share of its row.</p>")
+        parts.append("<div class='confusions'>")
         for k, mm in enumerate(ms):
             title = "" if len(ms) == 1 else f"model {'AB'[k]}"
             parts.append(f"<div class='figure confusion' id='confusion{'' if k == 0 else '_b'}'>"
                          + confusion_svg(mm, title) + "</div>")
+        parts.append("</div>")
     snips = iter_snippets(s.dir)
     parts.append(f"<h2>Snippets ({len(snips)})</h2>")
     skipped = count_unreadable(s.dir)
     if snips:
         parts.append("<p class='legend'>Captured sounds: label (what it truly is), what the "
-                     "model said, why it was kept, and its review state (kept, dropped, "
-                     "relabeled).</p><table><tr><th>label</th><th>predicted</th><th>reason</th>"
+                     "model said, why it was kept, and its review state: new (not reviewed yet), "
+                     "kept, dropped (struck through; harvest leaves it out) or relabeled (the "
+                     "label it had before in brackets).</p><table><tr><th>label</th><th>predicted</th><th>reason</th>"
                      "<th>from</th><th>length</th><th>confidence</th><th>state</th><th>listen"
                      "</th></tr>")
         for k, sn in enumerate(snips):
@@ -377,13 +417,14 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
             if mt.get("relabeled_from") is not None:
                 relabel = f" (was {e(str(mt.get('relabeled_from')))})"
             dur = mt.get("duration_s")
+            word = review_word(sn.state)
             parts.append(
-                f"<tr class='{'dropped' if sn.dropped else ''}'><td>{e(sn.label)}{relabel}</td>"
-                f"<td>{e(str(mt.get('predicted')))}</td><td>{e(sn.reason)}</td>"
+                f"<tr class='{'dropped' if sn.dropped else ''}'><td>{swatch(sn.label)}{e(sn.label)}"
+                f"{relabel}</td><td>{swatch(str(mt.get('predicted')))}{e(str(mt.get('predicted')))}</td><td>{e(sn.reason)}</td>"
                 f"<td>{_fmt(mt.get('t0') if isinstance(mt.get('t0'), (int, float)) else None, '.1f')} s</td>"
                 f"<td>{_fmt(dur if isinstance(dur, (int, float)) else None, '.1f')} s</td>"
                 f"<td>{_fmt(mt.get('confidence') if isinstance(mt.get('confidence'), (int, float)) else None, '.2f')}</td>"
-                f"<td>{e(sn.state or 'not reviewed')}</td><td>{player}</td></tr>")
+                f"<td class='state-{word}'>{word}</td><td>{player}</td></tr>")
         parts.append("</table>")
     if skipped:
         parts.append(f"<p class='note'>{skipped} snippet(s) not shown or not embedded: an "

@@ -7,6 +7,10 @@ it posts `SessionReady` once with the session's `SessionHandle`, then `NewWindow
 own `ViewState` at most `redraw_hz` times a second, however fast windows arrive. Keys reach
 the session only through the handle's thread-safe methods (`set_truth`, `capture_now`) and
 the stop `Event`; the UI never reads the engine, the source or the writer.
+
+The layout is computed from the terminal size (`layout_for`): at the minimum (80 x 24)
+everything fits; extra room goes to the feature picture and the strip; below it the screen
+says the size it needs. Notices go to the top line, never over a panel.
 """
 
 from __future__ import annotations
@@ -24,19 +28,70 @@ from rich.text import Text
 from textual import work
 from textual.app import App, ComposeResult
 from textual.binding import Binding
-from textual.containers import Horizontal
+from textual.containers import Horizontal, Vertical
 from textual.message import Message
 from textual.reactive import var
+from textual.theme import Theme
 from textual.widgets import Footer, Static
 from textual.worker import Worker, WorkerState
 
+from monitor import palette as P
 from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence, summary_failure
 from monitor.tally import SILENT_BELOW_DBFS, Tally
 from monitor.ui import draw as D
 from monitor.ui.bridge import NewWindows, SessionStatus, Status, UIBridge
 from monitor.ui.screens import AskLabel, RelabelScreen, StageScreen
 
-STRIP_HOPS = 120  # one minute at a 0.5 s hop
+MIN_W, MIN_H = 80, 24
+KEEP_HOPS = 1000  # strip history: wider than any terminal
+
+THEME = Theme(  # the framework's widgets (footer, tables) in our palette
+    name="scenemon", primary=P.CLASS_COLOURS[0], secondary=P.CLASS_COLOURS[2],
+    accent=P.CLASS_COLOURS[1], warning=P.CLASS_COLOURS[4], error=P.ALERT,
+    success=P.CLASS_COLOURS[2], foreground=P.TEXT, background=P.GROUND, surface=P.PANEL,
+    panel=P.PANEL, boost=P.LINE, dark=True,
+    variables={"line": P.LINE, "muted": P.MUTED, "footer-key-foreground": P.CLASS_COLOURS[1],
+               "footer-background": P.PANEL, "footer-description-foreground": P.TEXT})
+
+
+@dataclass(frozen=True)
+class Layout:
+    """Outer sizes of the live view's parts for one terminal size (cells)."""
+
+    width: int
+    height: int
+    row1: int
+    strip: int
+    row2: int
+    decision_w: int
+    health_w: int = 22
+    session_w: int = 30
+
+    @property
+    def fits(self) -> bool:
+        return self.width >= MIN_W and self.height >= MIN_H and self.row2 >= 9
+
+    @property
+    def needed(self) -> tuple[int, int]:
+        return MIN_W, max(MIN_H, self.height - self.row2 + 9)
+
+    # inner sizes: a round border and one cell of padding left and right
+    @property
+    def classes_inner(self) -> int:
+        return self.width - self.decision_w - 4
+
+    @property
+    def hears_inner(self) -> tuple[int, int]:
+        return self.width - self.health_w - self.session_w - 4, self.row2 - 2
+
+
+def layout_for(width: int, height: int, n_classes: int, two: bool) -> Layout:
+    """The live view's layout (see module docstring)."""
+    row1 = max(6, n_classes + 2)
+    strip = 6 if two else 5
+    row2 = height - 2 - row1 - strip
+    decision_w = 40 + min(10, max(0, width - MIN_W) // 4)
+    return Layout(width, height, row1, strip, row2, decision_w)
 
 
 @dataclass
@@ -56,6 +111,35 @@ class SessionReady(Message):
 
 
 @dataclass
+class Lane:
+    """One model's part of what the UI shows (UI thread only)."""
+
+    decision: str | None = None
+    since_t: float = 0.0
+    probs: Any = None
+    smoothed: Any = None
+    unfamiliar: bool = False
+    unfamiliar_windows: int = 0
+    decisions: deque = field(default_factory=lambda: deque(maxlen=KEEP_HOPS))
+    tally: Tally | None = None
+
+    def add(self, r) -> None:
+        if self.decision != r.decision:
+            self.decision, self.since_t = r.decision, r.t1
+        if r.probs is not None:
+            self.probs, self.smoothed = r.probs, r.smoothed
+        self.unfamiliar = bool(r.unfamiliar)
+        self.unfamiliar_windows += int(self.unfamiliar)
+        self.decisions.append(r.decision)
+        self.tally.add(r.t0, r.t1, r.decision, r.truth, r.gap)
+
+    def view(self, name: str, t1: float) -> D.ModelView:
+        top = float(max(self.smoothed)) if self.smoothed is not None else 0.0
+        acc = self.tally.accuracy if self.tally.with_truth else None
+        return D.ModelView(name, self.decision, t1 - self.since_t, top, acc, self.unfamiliar)
+
+
+@dataclass
 class ViewState:
     """The UI's own copy of what it shows (UI thread only)."""
 
@@ -63,49 +147,61 @@ class ViewState:
     keys: dict = field(default_factory=dict)
     hop_s: float = 0.5
     enter: float = 0.6
-    decision: str | None = None
-    since_t: float = 0.0
     t1: float = 0.0
-    probs: Any = None
-    smoothed: Any = None
     features: Any = None
     level: float = -160.0
     clipped: float = 0.0
     quiet_s: float = 0.0
     truth: str | None = None
-    tally: Tally | None = None
-    decisions: deque = field(default_factory=lambda: deque(maxlen=STRIP_HOPS * 2))
-    truths: deque = field(default_factory=lambda: deque(maxlen=STRIP_HOPS * 2))
-    b_decision: str | None = None
-    b_tally: Tally | None = None
+    truths: deque = field(default_factory=lambda: deque(maxlen=KEEP_HOPS))
+    lanes: list[Lane] = field(default_factory=list)
     agree: int = 0
-    unfamiliar: bool = False
+    profiled: bool = False  # a profile gives unfamiliar flags
     status: SessionStatus | None = None
 
     def start(self, classes, hop_s: float, enter: float, two: bool) -> None:
         self.classes, self.hop_s, self.enter = tuple(classes), hop_s, enter
         self.keys = D.class_keys(self.classes)
-        self.tally = Tally(self.classes, hop_s=hop_s)
-        self.b_tally = Tally(self.classes, hop_s=hop_s) if two else None
+        self.lanes = [Lane(tally=Tally(self.classes, hop_s=hop_s)) for _ in range(2 if two else 1)]
+
+    # model A's figures under their old names (the stage view and the tests read them)
+    @property
+    def decision(self) -> str | None:
+        return self.lanes[0].decision if self.lanes else None
+
+    @property
+    def smoothed(self):
+        return self.lanes[0].smoothed if self.lanes else None
+
+    @property
+    def decisions(self) -> deque:
+        return self.lanes[0].decisions
+
+    @property
+    def tally(self) -> Tally | None:
+        return self.lanes[0].tally if self.lanes else None
+
+    @property
+    def two(self) -> bool:
+        return len(self.lanes) > 1
+
+    @property
+    def agreement(self) -> float | None:
+        n = self.lanes[0].tally.windows if self.lanes else 0
+        return self.agree / n if n and self.two else None
 
     def add(self, r) -> None:
-        if self.decision != r.decision:
-            self.decision, self.since_t = r.decision, r.t1
         self.t1 = r.t1
-        if r.probs is not None:
-            self.probs, self.smoothed = r.probs, r.smoothed
         self.features = r.features
         self.level, self.clipped = r.level_dbfs, r.clipped
         self.quiet_s = self.quiet_s + self.hop_s if r.level_dbfs < SILENT_BELOW_DBFS else 0.0
         self.truth = r.truth
-        self.unfamiliar = bool(r.unfamiliar)
-        self.decisions.append(r.decision)
         self.truths.append(r.truth)
-        self.tally.add(r.t0, r.t1, r.decision, r.truth, r.gap)
-        if r.others and self.b_tally is not None:
+        self.profiled = self.profiled or r.novelty is not None
+        self.lanes[0].add(r)
+        if r.others and self.two:
             b = r.others[0]
-            self.b_decision = b.decision
-            self.b_tally.add(b.t0, b.t1, b.decision, b.truth, b.gap)
+            self.lanes[1].add(b)
             self.agree += int(b.decision == r.decision)
 
 
@@ -121,6 +217,12 @@ class CpuMeter:
         return (c1 - c0) / (w1 - w0) if w1 > w0 else 0.0
 
 
+def too_small_text(width: int, height: int, need: tuple[int, int]) -> Text:
+    return Text(f"scenemon needs a terminal of at least {need[0]} x {need[1]} characters; "
+                f"this one is {width} x {height}. Make the window larger or the font "
+                f"smaller.", style=f"bold {P.TEXT}")
+
+
 class MonitorApp(App):
     """The live view (see module docstring)."""
 
@@ -128,11 +230,12 @@ class MonitorApp(App):
     TITLE = "scenemon"
     ENABLE_COMMAND_PALETTE = False
     BINDINGS = [
-        Binding("1", "truth(1)", "truth", key_display="1-9", id="truth"),
+        Binding("1", "truth(1)", "truth", id="truth"),
         *[Binding(str(k), f"truth({k})", f"truth {k}", show=False, id=f"truth_{k}")
           for k in range(2, 10)],
         Binding("0", "truth(0)", "unknown", id="truth_unknown"),
         Binding("c", "capture", "capture", id="capture"),
+        Binding("m", "model", "A/B table", id="model"),
         Binding("p", "pause", "pause", id="pause"),
         Binding("s", "stage", "stage", id="stage"),
         Binding("r", "relabel", "relabel", id="relabel"),
@@ -141,6 +244,8 @@ class MonitorApp(App):
 
     paused: var[bool] = var(False)
     """Display frozen; capture and the session go on."""
+    shown_model: var[int] = var(0)
+    """Whose confusion table the session panel shows (0: A, 1: B)."""
 
     def __init__(self, start: Callable[[SessionHooks], dict], *, heading: str = "",
                  redraw_hz: float = 12.0, show_timings: bool = True,
@@ -157,37 +262,74 @@ class MonitorApp(App):
         self.stop_event = threading.Event()
         self.state = ViewState()
         self.handle = None
+        self.key_truth: str | None = None  # what this UI last set with a key
         self.summary: dict | None = None
         self.error: BaseException | None = None
         self.finished = False
         self.quitting = False
         self.dirty = True
         self.message = "starting …"
+        self.notice_text = ""
+        self.notice_until = 0.0
         self.redraws = 0
+        self.layout: Layout | None = None
+        self.spec: D.PictureSpec | None = None
         self._health_t = 0.0
         self._shown: dict[str, Text] = {}
+        self.register_theme(THEME)
+        self.theme = "scenemon"
 
     # --- layout -----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
         yield Static(id="top")
-        with Horizontal(id="row1"):
-            yield Static(id="decision", classes="panel")
-            yield Static(id="classes", classes="panel")
-        yield Static(id="strip", classes="panel")
-        with Horizontal(id="row2"):
-            yield Static(id="hears", classes="panel")
-            yield Static(id="health", classes="panel")
-            yield Static(id="session", classes="panel")
+        with Vertical(id="main"):
+            with Horizontal(id="row1"):
+                yield Static(id="decision", classes="panel")
+                yield Static(id="classes", classes="panel")
+            yield Static(id="strip", classes="panel")
+            with Horizontal(id="row2"):
+                yield Static(id="hears", classes="panel")
+                yield Static(id="health", classes="panel")
+                yield Static(id="session", classes="panel")
+        yield Static(id="too_small")
         yield Footer()
 
     def on_mount(self) -> None:
-        titles = {"decision": "decision", "classes": "classes", "strip": "last minute",
+        titles = {"decision": "decision", "classes": "classes", "strip": "recent",
                   "hears": "what it hears", "health": "health", "session": "session"}
         for wid, title in titles.items():
             self.query_one(f"#{wid}").border_title = title
+        self.apply_layout(self.size.width, self.size.height)
         self.set_interval(1.0 / self.redraw_hz, self.redraw)
         self.run_worker_session()
         self.redraw(force=True)
+
+    def on_resize(self, event) -> None:
+        self.apply_layout(event.size.width, event.size.height)
+        self.redraw(force=True)
+
+    @property
+    def mode_two(self) -> bool:
+        return self.handle is not None and len(self.handle.models) > 1
+
+    def apply_layout(self, width: int | None = None, height: int | None = None) -> None:
+        n = len(self.state.classes) if self.state.classes else 4
+        if width is None or height is None:
+            width, height = (self.layout.width, self.layout.height) if self.layout else \
+                (self.size.width, self.size.height)
+        lay = self.layout = layout_for(width, height, n, self.mode_two)
+        main, small = self.query_one("#main"), self.query_one("#too_small", Static)
+        main.display = lay.fits
+        small.display = not lay.fits
+        if not lay.fits:
+            small.update(too_small_text(lay.width, lay.height, lay.needed))
+            return
+        self.query_one("#row1").styles.height = lay.row1
+        self.query_one("#strip").styles.height = lay.strip
+        self.query_one("#decision").styles.width = lay.decision_w
+        self.query_one("#health").styles.width = lay.health_w
+        self.query_one("#session").styles.width = lay.session_w
+        self._shown.clear()
 
     # --- the session worker ---------------------------------------------------------------------
     def say(self, text: str) -> None:
@@ -212,7 +354,16 @@ class MonitorApp(App):
     def on_session_ready(self, message: SessionReady) -> None:
         h = self.handle = message.handle
         self.state.start(h.classes, h.card.hop_s, h.decisions[0].enter, len(h.models) > 1)
+        self.spec = D.picture_spec(h.card)
         self.message = "running"
+        self.query_one("#classes").border_title = (
+            "smoothed p · A │ B" if self.mode_two else "classes · raw │ smoothed")
+        self.query_one("#classes").border_subtitle = f"│ enter {self.state.enter:g}"
+        hears = self.query_one("#hears")
+        hears.border_title = "what it hears" + (" (kHz)" if self.spec.centres_hz else "")
+        hears.border_subtitle = f"{self.spec.what} · {h.card.window_s:g} s"
+        self.apply_layout()
+        self.refresh_bindings()
         self.dirty = True
 
     def on_new_windows(self, message: NewWindows) -> None:
@@ -234,6 +385,7 @@ class MonitorApp(App):
             self.on_new_windows(NewWindows())
             fail = summary_failure(self.summary)
             self.message = fail or "session closed; q quits"
+            self.refresh_bindings()
         elif event.state == WorkerState.ERROR:
             # bad input or a failure before or during the session: leave the screen and let
             # the command line say it in one sentence with the right exit code
@@ -253,15 +405,38 @@ class MonitorApp(App):
         return ExitCode.FAILURE if summary_failure(self.summary) else ExitCode.OK
 
     # --- keys ------------------------------------------------------------------------------------
+    def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        """Only the keys that work now are offered (and shown in the footer)."""
+        h = self.handle
+        running = h is not None and not self.finished
+        if action == "truth":
+            k = int(parameters[0]) if parameters else 0
+            return running and h.live_truth is not None and k <= len(self.state.classes)
+        if action == "capture":
+            return running and h.capture is not None
+        if action == "model":
+            return self.mode_two
+        if action == "relabel":
+            return h is not None
+        return True
+
+    def get_key_display(self, binding: Binding) -> str:
+        if binding.id == "truth" and self.state.classes:
+            n = min(len(self.state.classes), 9)
+            return "1" if n == 1 else f"1-{n}"
+        return super().get_key_display(binding)
+
+    def notice(self, text: str, seconds: float = 3.0) -> None:
+        """Say something on the top line for a few seconds (it covers no panel)."""
+        self.notice_text, self.notice_until = text, time.monotonic() + seconds
+        self.dirty = True
+
     def _now(self) -> float:
         return self.handle.now_s()
 
     def action_truth(self, k: int) -> None:
         st = self.state
-        if self.handle is None or self.finished:
-            return
-        if self.handle.live_truth is None:
-            self.notify("the truth comes from the truth file in this session")
+        if self.handle is None or self.finished or self.handle.live_truth is None:
             return
         if k == 0:
             label = None
@@ -270,17 +445,13 @@ class MonitorApp(App):
         else:
             return
         self.handle.set_truth(label)
-        self.notify(f"truth: {label or 'unknown'}", timeout=1.5)
-        self.dirty = True
+        self.key_truth = label
+        self.notice(f"truth: {label or 'unknown'} from {D.clock(self._now())}", 2.0)
 
     def action_capture(self) -> None:
-        if self.handle is None or self.finished:
+        if self.handle is None or self.finished or self.handle.capture is None:
             return
-        if self.handle.capture is None:
-            self.notify("capture is off (--capture none)")
-            return
-        lt = self.handle.live_truth
-        label = lt.current if lt is not None else self.state.truth
+        label = self.key_truth if self.handle.live_truth is not None else self.state.truth
         if label is not None:
             self._capture(label)
             return
@@ -290,10 +461,14 @@ class MonitorApp(App):
     def _capture(self, label: str) -> None:
         snip = self.handle.capture_now(label)
         if snip is None:
-            self.notify("nothing to capture yet")
+            self.notice("nothing to capture yet")
         else:
-            self.notify(f"captured {snip['t1'] - snip['t0']:.1f} s as {label}", timeout=2)
-        self.dirty = True
+            self.notice(f"captured {snip['t1'] - snip['t0']:.1f} s as {label}")
+
+    def action_model(self) -> None:
+        if self.mode_two:
+            self.shown_model = 1 - self.shown_model
+            self.dirty = True
 
     def action_pause(self) -> None:
         self.paused = not self.paused
@@ -320,41 +495,78 @@ class MonitorApp(App):
             self.exit(self.return_code_for())
 
     # --- drawing -----------------------------------------------------------------------------
+    @property
+    def truth_mode(self) -> str:
+        """"keys" (the operator gives the truth) or "file" (the session has a truth file: the
+        UI asks for live truth whenever no file is given)."""
+        h = self.handle
+        if h is None:
+            return "none"
+        return "keys" if h.live_truth is not None else "file"
+
+    def _top(self) -> Text:
+        w = self.layout.width if self.layout else self.size.width
+        now = time.monotonic()
+        right = self.notice_text if now < self.notice_until else self.message
+        if self.paused:
+            right = "DISPLAY PAUSED (p resumes)"
+        left = Text(no_wrap=True, overflow="crop")
+        left.append(" scenemon ", style=f"bold {P.GROUND} on {P.CLASS_COLOURS[0]}")
+        left.append(" " + D.fit(self.heading, max(10, w - len(right) - 16)), style=P.TEXT)
+        pad = max(1, w - left.cell_len - len(right) - 1)
+        left.append(" " * pad)
+        style = f"bold reverse {P.CLASS_COLOURS[4]}" if self.paused else \
+            f"bold {P.CLASS_COLOURS[1]}" if now < self.notice_until else P.MUTED
+        left.append(D.fit(right, max(0, w - left.cell_len - 1)), style=style)
+        return left
+
     def redraw(self, force: bool = False) -> None:
         if not (self.dirty or force):
+            if self.notice_text and time.monotonic() >= self.notice_until:
+                self.notice_text = ""
+                self._set("top", self._top())
             return
         if self.paused and not force:
             return
         self.dirty = False
         self.redraws += 1
         st = self.state
-        top = Text(f" scenemon  {self.heading}", style="bold")
-        top.append(f"   {self.message}", style="dim")
-        if self.paused:
-            top.append("   DISPLAY PAUSED (p)", style="bold reverse")
-        self.query_one("#top", Static).update(top, layout=False)
+        self._set("top", self._top())
         if isinstance(self.screen, StageScreen):
             self.screen.refresh_view()
-        if st.classes is None:
-            text = Text(f"\n  {self.message}", style="bold")
-            self.query_one("#decision", Static).update(text, layout=False)
+        lay = self.layout
+        if lay is None or not lay.fits:
             return
-        top_p = float(max(st.smoothed)) if st.smoothed is not None else 0.0
-        self._set("decision", D.decision_text(
-            st.classes, st.keys, st.decision, st.t1 - st.since_t, st.truth, top_p))
-        inner = max(30, self.query_one("#classes").size.width - 4)
-        name_w = min(12, max(len(c) for c in st.classes))
-        bar_w = max(5, (inner - name_w - 10) // 2)
-        self.query_one("#classes", Static).update(D.class_bars(
-            st.classes, st.keys, st.probs, st.smoothed, st.enter, width=bar_w, name_w=name_w),
-            layout=False)
-        width = max(20, self.query_one("#strip").size.width - 14)
-        self._set("strip", D.strip_text(st.classes, st.keys, st.decisions, st.truths, width,
-                                        st.hop_s))
-        hw = max(12, self.query_one("#hears").size.width - 4)
-        hears = D.heat_text(st.features, rows=5, cols=hw, color=not self.no_color)
-        hears.append_text(D.level_text(st.level, st.clipped, st.quiet_s, width=max(4, hw - 17)))
-        self.query_one("#hears", Static).update(hears, layout=False)
+        if st.classes is None:
+            self._set("decision", Text(self.message, style=f"bold {P.TEXT}"))
+            return
+        color = not self.no_color
+        inner_d = lay.decision_w - 4
+        names = ("A", "B") if st.two else ("",)
+        views = [lane.view(n, st.t1) for lane, n in zip(st.lanes, names)]
+        self._set("decision", D.decision_text(st.classes, st.keys, views, st.truth,
+                                              truth_mode=self.truth_mode,
+                                              agreement=st.agreement, width=inner_d))
+        if st.two:
+            cols = [(ln.smoothed, True, True) for ln in st.lanes]
+        else:
+            cols = [(st.lanes[0].probs, False, False), (st.lanes[0].smoothed, True, True)]
+        self._set("classes", D.class_bars(st.classes, st.keys, cols, st.enter,
+                                          width=lay.classes_inner))
+        strip_w = lay.width - 4
+        rows = [("A", st.lanes[0].decisions), ("B", st.lanes[1].decisions)] if st.two else \
+            [("decision", st.lanes[0].decisions)]
+        rows.append(("truth", st.truths))
+        strip = self.query_one("#strip")
+        strip.border_title = D.strip_title(strip_w, st.hop_s)
+        self._set("strip", D.strip_text(st.classes, st.keys, rows, strip_w, st.hop_s))
+        hw, hh = lay.hears_inner
+        hears = D.heat_text(st.features, self.spec, max(1, hh - 2), hw - D.AXIS_W, color=color)
+        hears.append("\n")
+        hears.append_text(D.scale_text(self.spec, hw, color=color))
+        hears.append("\n")
+        hears.append_text(D.level_text(st.level, st.clipped, st.quiet_s, hw))
+        self._set("hears", hears)
         now = time.monotonic()
         if force or now - self._health_t >= 1.0:  # figures that need no faster refresh
             self._health_t = now
@@ -371,38 +583,29 @@ class MonitorApp(App):
         st = self.state
         src = self.handle.source if self.handle else {}
         status = st.status
-        t = Text()
-        name = src.get("device") or Path(str(src.get("file", ""))).name
-        t.append(f"{src.get('kind', '')} {name}"[:26] + "\n")
-        t.append(f"native {src.get('native_rate', '-')} Hz\n")
         eng = status.engine if status else None
-        if self.show_timings:
-            ms = "-" if eng is None or eng.ms is None else f"{eng.ms:6.2f} ms"
-            t.append(f"compute {ms}\n")
-            lat = "-" if eng is None or eng.latency_ms is None else f"{eng.latency_ms:6.1f} ms"
-            t.append(f"latency {lat}\n")
-            t.append(f"CPU {self.cpu_meter() * 100:5.1f}%\n")
-        else:
-            t.append("timings hidden\n\n\n")
-        if status is not None and status.write_error:
-            t.append("DISK: writing stopped\n", style="bold reverse red")
-        over = eng.overruns if eng else 0
-        gaps = eng.gap_windows if eng else 0
-        t.append(f"overruns {over}  gaps {gaps}", style="bold reverse" if over or gaps else "")
-        return t
+        name = src.get("device") or Path(str(src.get("file", ""))).name
+        return D.health_text(
+            source=f"{src.get('kind', '')} {name}", rate=src.get("native_rate", "-"),
+            ms=eng.ms if eng else None, latency_ms=eng.latency_ms if eng else None,
+            cpu=self.cpu_meter(), overruns=eng.overruns if eng else 0,
+            gaps=eng.gap_windows if eng else 0,
+            write_error=bool(status is not None and status.write_error),
+            width=self.layout.health_w - 4, show_timings=self.show_timings)
 
     def _session(self) -> Text:
         st = self.state
-        t = Text()
-        snips = st.status.snippets if st.status else 0
-        tl = st.tally
-        t.append(f"{st.t1:6.1f} s · {tl.windows} win · {snips} snip\n")
-        if tl.with_truth:
-            t.append(f"accuracy {tl.accuracy:6.1%} of {tl.with_truth}\n", style="bold")
-            t.append_text(D.confusion_text(st.classes, st.keys, tl.confusion.tolist()))
-        else:
-            t.append("no truth yet: press 1-9\n", style="dim")
-        return t
+        k = self.shown_model if st.two else 0
+        lay = self.layout
+        session = self.query_one("#session")
+        session.border_title = f"session · model {'AB'[k]}" if st.two else "session"
+        return D.session_text(
+            t_s=st.t1, windows=st.tally.windows,
+            snippets=st.status.snippets if st.status else 0, tally=st.lanes[k].tally,
+            classes=st.classes, keys=st.keys, width=lay.session_w - 4, height=lay.row2 - 2,
+            truth_mode=self.truth_mode, which="AB"[k] if st.two else "",
+            unfamiliar=st.lanes[k].unfamiliar_windows if st.profiled else None,
+            color=not self.no_color)
 
     def on_unmount(self) -> None:
         self.stop_event.set()
@@ -418,6 +621,8 @@ class RelabelApp(App):
     def __init__(self, session_dir: Path, classes: list[str]) -> None:
         super().__init__()
         self.session_dir, self.class_names = Path(session_dir), list(classes)
+        self.register_theme(THEME)
+        self.theme = "scenemon"
 
     def on_mount(self) -> None:
         self.push_screen(RelabelScreen(self.session_dir, self.class_names, standalone=True))

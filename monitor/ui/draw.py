@@ -1,21 +1,68 @@
-"""What the live view draws, as plain functions from state to Rich `Text`.
+"""What the screens draw, as plain functions from state to Rich `Text`.
 
-Every class is told apart by its text key (a letter) as well as its colour, so the screen
-reads the same with NO_COLOR or on a monochrome terminal.
+Pure and cheap: they run on the UI thread at every redraw, so they build no widgets, read no
+files and touch no session object; the app hands them plain values. Every class is told
+apart by its letter as well as its colour (`monitor.palette`), and every picture has a form
+without colour (glyph density), so the screens read the same under NO_COLOR. Every function
+that takes a ``width`` returns lines no longer than it: panels never wrap.
 """
 
 from __future__ import annotations
 
+import math
+from dataclasses import dataclass
+from functools import lru_cache
+
 import numpy as np
+from rich.style import Style
 from rich.text import Text
 
-PALETTE = ("#5d9bd5", "#e3a13b", "#62b26f", "#d0607a", "#a283d6", "#4fb7b3", "#c9874f",
-           "#9aa3ad", "#7fc4e8", "#d7c35a")
-SHADES = " .:-=+*#%@"  # intensity without colour
-HEAT = ("#10141c", "#1b2a44", "#24466b", "#2f6a8c", "#3f8f9c", "#63ad97", "#9cc687",
-        "#d2d97a", "#f1e38a", "#fff4c2")
+from monitor import palette as P
+
+SHADES = " .:-=+*#%@"  # intensity by glyph density, for NO_COLOR
+EIGHTHS = " ▏▎▍▌▋▊▉"
+UNFAMILIAR = "◆"  # the unfamiliar-sound mark, always with its word
+DIFFER = "≠"  # two models' decisions differ
 
 
+# --- numbers that keep their columns ------------------------------------------------------
+def clock(t_s: float) -> str:
+    """Session time as h:mm:ss (7 characters up to 9:59:59)."""
+    s = int(max(t_s, 0.0))
+    return f"{s // 3600}:{s // 60 % 60:02d}:{s % 60:02d}"
+
+
+def held(t_s: float) -> str:
+    """A duration in 7 characters: "  4.5 s", "  12:34", "1:02:03"."""
+    t_s = max(t_s, 0.0)
+    if t_s < 60:
+        return f"{t_s:5.1f} s"
+    s = int(t_s)
+    if s < 3600:
+        return f"{s // 60:4d}:{s % 60:02d}"
+    return f"{clock(t_s):>7}"
+
+
+def count4(n: int) -> str:
+    """A count in at most 4 characters: 9999, 12k, 999k, 1.2M."""
+    if n < 10000:
+        return str(n)
+    if n < 999500:
+        return f"{n / 1000:.0f}k"
+    return f"{n / 1e6:.1f}M" if n < 9.95e6 else f"{n / 1e6:.0f}M"
+
+
+def pct(x: float | None) -> str:
+    """A share in 6 characters ("100.0%", " 97.6%", "     -")."""
+    return "     -" if x is None else f"{x:6.1%}"
+
+
+def fit(s: str, width: int) -> str:
+    """`s` cut to `width` cells with an ellipsis (labels are short ASCII)."""
+    return s if len(s) <= width else (s[:max(width - 1, 0)] + "…" if width > 0 else "")
+
+
+# --- classes --------------------------------------------------------------------------------
 def class_keys(classes) -> dict[str, str]:
     """One distinct character per class: its first unused letter, else a digit."""
     used, out = set(), {}
@@ -27,106 +74,172 @@ def class_keys(classes) -> dict[str, str]:
 
 
 def colour(classes, c) -> str:
-    return PALETTE[list(classes).index(c) % len(PALETTE)] if c in classes else "#777777"
+    """The class colour (`monitor.palette`, the same as the HTML report's)."""
+    return P.class_colour(classes, c)
 
 
 def bar(frac: float, width: int, *, mark: float | None = None, style: str = "") -> Text:
-    """A horizontal bar of `width` cells; `mark` draws a threshold tick at that fraction."""
+    """A horizontal bar of `width` cells in eighths; `mark` draws a threshold tick."""
     frac = min(max(float(frac), 0.0), 1.0)
-    cells = frac * width
-    full = int(cells)
-    parts = "█" * full + ("▌" if cells - full >= 0.5 and full < width else "")
-    text = Text(parts.ljust(width), style=style)
-    if mark is not None and 0 <= mark <= 1:
+    eighths = int(round(frac * width * 8))
+    full, part = divmod(eighths, 8)
+    s = "█" * min(full, width) + (EIGHTHS[part] if part and full < width else "")
+    text = Text(s.ljust(width), style=style)
+    if mark is not None and 0 <= mark <= 1 and width > 1:
         pos = min(width - 1, int(round(mark * width)))
-        text = text[:pos] + Text("│", style="bold") + text[pos + 1:]
+        text = text[:pos] + Text("│", style=f"bold {P.TEXT}") + text[pos + 1:]
     return text
 
 
-def decision_text(classes, keys, decision, held_s, truth, top_p) -> Text:
-    t = Text()
-    if decision is None:
-        t.append("  undecided\n", style="bold dim")
-        t.append("  waiting for a class to pass the\n  enter threshold\n", style="dim")
-    else:
-        col = colour(classes, decision)
-        t.append("  ██ ", style=col)
-        t.append(decision.upper(), style=f"bold {col}")
-        t.append(f"  [{keys[decision]}]\n", style="dim")
-        t.append(f"  held {held_s:5.1f} s   p {top_p:.2f}\n", style="")
+@dataclass(frozen=True)
+class ModelView:
+    """What the decision panel shows of one model (UI thread values)."""
+
+    name: str  # "" for a one-model session, else "A" / "B"
+    decision: str | None
+    held_s: float
+    top_p: float
+    accuracy: float | None = None
+    unfamiliar: bool = False
+
+
+def _truth_line(classes, truth, decision, truth_mode: str, width: int) -> Text:
+    t = Text("truth  ", style=P.MUTED)
     if truth is None:
-        t.append("  truth  not given (keys 1-9)", style="dim")
-    else:
+        hint = {"keys": f"not given · keys 1-{min(len(classes), 9)}",
+                "file": "not in the truth file here"}.get(truth_mode, "none")
+        t.append(fit(hint, width - 7), style=P.MUTED)
+        return t
+    t.append(fit(truth, 12), style=f"bold {colour(classes, truth)}")
+    if decision is not None or truth_mode != "none":
         same = truth == decision
-        t.append("  truth  ", style="")
-        t.append(truth, style=f"bold {colour(classes, truth)}")
-        t.append("   agrees" if same else "   ✗ DIFFERS", style="bold" if same else "bold reverse")
+        t.append("  ")
+        t.append("✓ agrees" if same else "✗ DIFFERS", style="bold" if same else f"bold reverse {P.ALERT}")
+    t.truncate(width)
     return t
 
 
-def class_bars(classes, keys, probs, smoothed, enter, width=12, name_w=12) -> Text:
-    t = Text()
-    name_w = min(name_w, max(len(c) for c in classes))
-    t.append(f"{'':{name_w + 4}}{'raw':<{width + 1}}{'smoothed':<{width + 1}}\n", style="dim")
+def decision_text(classes, keys, models: list[ModelView], truth: str | None, *,
+                  truth_mode: str = "keys", agreement: float | None = None,
+                  width: int = 36) -> Text:
+    """The decision panel: one model, or A and B side by side with a mark where they
+    differ, each model's running accuracy and how often they agree.
+
+    ``truth_mode``: "keys" (the operator gives it), "file" (a truth file) or "none".
+    """
+    t = Text(no_wrap=True, overflow="crop")
+    if len(models) == 1:
+        m = models[0]
+        if m.decision is None:
+            t.append("·· undecided", style=f"bold {P.MUTED}")
+        else:
+            col = colour(classes, m.decision)
+            t.append("██ ", style=col)
+            t.append(fit(m.decision.upper(), width - 20), style=f"bold {col}")
+            t.append(f"  {keys[m.decision]}", style=P.MUTED)
+        if m.unfamiliar:
+            t.append(f"  {UNFAMILIAR} unfamiliar", style=f"bold {P.ALERT}")
+        t.append("\n")
+        if m.decision is None:
+            t.append("no class above the enter threshold\n", style=P.MUTED)
+        else:
+            t.append(f"held {held(m.held_s)}   p {m.top_p:4.2f}\n")
+        t.append_text(_truth_line(classes, truth, m.decision, truth_mode, width))
+        if m.accuracy is not None:
+            t.append(f"\naccuracy {pct(m.accuracy)}")
+        return t
+    col_w = (width - 1) // 2
+    a, b = models[0], models[1]
+    differ = a.decision != b.decision
+    for k, m in enumerate((a, b)):
+        if k:
+            t.append(DIFFER if differ else " ", style=f"bold reverse {P.ALERT}" if differ else "")
+        cell = Text(f"{m.name} ", style=f"bold {P.TEXT}")
+        if m.decision is None:
+            cell.append("·· undecided", style=P.MUTED)
+        else:
+            col = colour(classes, m.decision)
+            cell.append("██ ", style=col)
+            cell.append(fit(m.decision.upper(), col_w - 5), style=f"bold {col}")
+        cell.truncate(col_w, pad=True)
+        t.append_text(cell)
+    t.append("\n")
+    for k, m in enumerate((a, b)):
+        if k:
+            t.append(" ")
+        if m.unfamiliar:
+            cell = Text(f"  {UNFAMILIAR} unfamiliar", style=f"bold {P.ALERT}")
+        else:
+            cell = Text(f"  held {held(m.held_s)}" if m.decision else "")
+        cell.truncate(col_w, pad=True)
+        t.append_text(cell)
+    t.append("\n")
+    for k, m in enumerate((a, b)):
+        if k:
+            t.append(" ")
+        cell = Text(f"  acc {pct(m.accuracy)}")
+        if m.accuracy is not None and truth is not None:
+            ok = m.decision == truth
+            cell.append(" ✓" if ok else " ✗", style="bold" if ok else f"bold {P.ALERT}")
+        cell.truncate(col_w, pad=True)
+        t.append_text(cell)
+    t.append("\n")
+    line = Text("truth ", style=P.MUTED)
+    if truth is None:
+        line.append("-" if truth_mode != "keys" else f"keys 1-{min(len(classes), 9)}",
+                    style=P.MUTED)
+    else:
+        line.append(fit(truth, 12), style=f"bold {colour(classes, truth)}")
+    line.truncate(col_w, pad=True)
+    line.append(" ")
+    line.append(f"  agree {pct(agreement)}")
+    t.append_text(line)
+    t.truncate(width * 5)
+    return t
+
+
+def name_width(classes, limit: int = 12) -> int:
+    return min(limit, max(len(c) for c in classes))
+
+
+def class_bars(classes, keys, columns: list, enter: float, *, width: int) -> Text:
+    """One line per class: its letter, name and one bar per column.
+
+    ``columns``: a list of (values or None, with_enter_mark, with_number); one model shows
+    raw and smoothed, two models A's and B's smoothed.
+    """
+    t = Text(no_wrap=True, overflow="crop")
+    nw = name_width(classes)
+    fixed = 2 + nw + 1 + sum(5 if num else 0 for _, _, num in columns) + len(columns) - 1
+    bw = max(4, (width - fixed) // len(columns))
     for i, c in enumerate(classes):
         col = colour(classes, c)
         t.append(f"{keys[c]} ", style=f"bold {col}")
-        t.append(f"{c[:name_w]:<{name_w}}  ")
-        t.append_text(bar(probs[i] if probs is not None else 0, width, style=col))
-        t.append(" ")
-        t.append_text(bar(smoothed[i] if smoothed is not None else 0, width, mark=enter, style=col))
-        t.append(f" {smoothed[i] if smoothed is not None else 0:.2f}\n")
-    t.append(f"{'':{name_w + 4}}{'':<{width + 1}}│ = enter {enter:g}", style="dim")
+        t.append(f"{fit(c, nw):<{nw}} ")
+        for k, (vals, marked, num) in enumerate(columns):
+            v = float(vals[i]) if vals is not None else 0.0
+            if k:
+                t.append(" ")
+            t.append_text(bar(v, bw, mark=enter if marked else None, style=col))
+            if num:
+                t.append(f" {v:4.2f}")
+        if i < len(classes) - 1:
+            t.append("\n")
     return t
 
 
-def strip_text(classes, keys, decisions, truths, width, hop_s, span_s=60.0) -> Text:
-    """The last `span_s` seconds in `width` cells: decisions above, truth beneath, newest on
-    the right; a cell shows the newest window it covers."""
-    t = Text()
-    per = max(1, -(-int(round(span_s / hop_s)) // width))  # hops per cell
-    width = min(width, -(-int(round(span_s / hop_s)) // per))
-    for row, label in ((decisions, "decision"), (truths, "truth   ")):
-        t.append(f"{label} ", style="dim")
-        vals = list(row)
-        seq = vals[::-1][::per][:width][::-1]  # the newest window of each cell
-        pad = width - len(seq)
-        t.append("·" * pad, style="dim")
-        for v, run in _runs(seq):  # one segment per run keeps rendering cheap
-            if v is None:
-                t.append("·" * run, style="dim")
-            else:
-                t.append(keys[v] * run, style=f"bold {colour(classes, v)} reverse")
-        t.append("\n")
-    span = width * per * hop_s
-    left = f"-{span:.0f} s"
-    t.append(f"{'':9}{left}{'now':>{width - len(left)}}", style="dim")
-    return t
+# --- the strip --------------------------------------------------------------------------------
+STRIP_LABEL = 9
 
 
-def heat_text(features, rows=6, cols=30, *, color=True) -> Text:
-    """The window's log-mel as a small heat map: low bands at the bottom."""
-    t = Text()
-    if features is None:
-        return Text("\n" * (rows - 1) + "(no window yet)", style="dim")
-    f = np.asarray(features, dtype=np.float64)
-    if f.ndim != 2:
-        return Text("(waveform model: no spectrum)", style="dim")
-    frames, bands = f.shape
-    fb = np.array_split(np.arange(bands), rows)
-    ft = np.array_split(np.arange(frames), cols)
-    grid = np.array([[f[np.ix_(tt, bb)].mean() for tt in ft] for bb in fb])
-    z = np.clip((grid + 2.5) / 5.0, 0.0, 0.999)
-    for r in range(rows - 1, -1, -1):
-        for k, run in _runs([int(v * len(SHADES)) for v in z[r]]):
-            t.append(SHADES[k] * run, style=f"{HEAT[k]} on {HEAT[k]}" if color else "")
-        t.append("\n")
-    return t
+def strip_cells(width: int) -> int:
+    """How many hops the strip shows in a panel `width` cells wide (one cell per hop)."""
+    return max(8, width - STRIP_LABEL)
 
 
 def _runs(seq):
     """(value, count) of consecutive equal values."""
-    out = []
+    out: list[list] = []
     for v in seq:
         if out and out[-1][0] == v:
             out[-1][1] += 1
@@ -135,58 +248,412 @@ def _runs(seq):
     return [(v, n) for v, n in out]
 
 
-def level_text(level_dbfs, clipped, quiet_s, width=22) -> Text:
-    t = Text("dBFS ")
-    frac = (max(-60.0, min(0.0, level_dbfs)) + 60.0) / 60.0
-    style = "red" if level_dbfs > -3 else "yellow" if level_dbfs > -12 else "green"
-    t.append_text(bar(frac, width, style=style))
-    t.append(f" {level_dbfs:6.1f}")
+def _axis(cells: int, hop_s: float) -> str:
+    """Time ticks under the strip: "-20 s" at their cells, "now" at the right."""
+    line = [" "] * cells
+    now = "now"
+    line[cells - len(now):] = now
+    step = next((s for s in (5, 10, 15, 30, 60, 120, 300, 600, 1800, 3600)
+                 if s / hop_s >= 9), 3600)
+    k = 1
+    free_until = cells - len(now) - 1
+    while True:
+        pos = cells - 1 - int(round(k * step / hop_s))
+        if pos < 0:
+            break
+        label = f"╵-{k * step:g}s" if k * step < 60 or k * step % 60 else f"╵-{k * step // 60:g}m"
+        if pos + len(label) <= free_until:
+            line[pos:pos + len(label)] = label
+            free_until = pos - 1
+        k += 1
+    return "".join(line)
+
+
+def strip_text(classes, keys, rows: list[tuple[str, list]], width: int, hop_s: float) -> Text:
+    """The newest hops, one cell each, newest on the right: a row per model and the truth,
+    then the time axis."""
+    cells = strip_cells(width)
+    t = Text(no_wrap=True, overflow="crop")
+    for label, values in rows:
+        t.append(f"{fit(label, STRIP_LABEL - 1):<{STRIP_LABEL}}", style=P.MUTED)
+        seq = list(values)[-cells:]
+        if len(seq) < cells:
+            t.append("·" * (cells - len(seq)), style=P.LINE)
+        for v, run in _runs(seq):  # one segment per run keeps rendering cheap
+            if v is None:
+                t.append("·" * run, style=P.MUTED)
+            else:
+                t.append(keys.get(v, "?") * run, style=f"bold {P.GROUND} on {colour(classes, v)}")
+        t.append("\n")
+    t.append(" " * STRIP_LABEL + _axis(cells, hop_s), style=P.MUTED)
+    return t
+
+
+def strip_title(width: int, hop_s: float) -> str:
+    span = strip_cells(width) * hop_s
+    return f"last {span:.0f} s · a cell per {hop_s:g} s hop"
+
+
+# --- what it hears: the feature picture -------------------------------------------------------
+@dataclass(frozen=True)
+class PictureSpec:
+    """How to draw one card's features: orientation, frequency axis and value scale.
+
+    ``display = features * gain + offset`` (broadcast to the card's layout) gives the values
+    drawn, from ``lo`` (the ramp's first step) to ``hi`` (its last), in ``unit``.
+    """
+
+    time_axis: int | None  # None: no picture (a waveform model)
+    centres_hz: tuple[float, ...] | None  # per band, low to high; None: no frequency axis
+    gain: np.ndarray
+    offset: np.ndarray
+    lo: float
+    hi: float
+    unit: str
+    what: str  # "log-mel", "spectrogram", "MFCC" ...
+
+
+def picture_spec(card) -> PictureSpec:
+    """The picture of a model card's features.
+
+    A log-mel or linear spectrogram card with a fixed scaling is drawn in dB (the scaling
+    undone, the card's log turned into 10 log10 of power), its frequency axis from the
+    card's band centres (`monitor.frontend.mel_band_edges`) or FFT bins. Anything else
+    (MFCC, per-window standardisation) is drawn as the model's scaled input in standard
+    deviations, without a frequency axis.
+    """
+    kind = getattr(card, "kind", "logmel")
+    one = np.ones((), np.float32)
+    if kind == "waveform":
+        return PictureSpec(None, None, one, one * 0, 0.0, 1.0, "", "waveform")
+    shape = tuple(card.feature_shape)
+    frames = card.frames_per_window
+    time_axis = 0 if shape[0] == frames else 1
+    centres: tuple[float, ...] | None = None
+    if kind == "logmel":
+        from monitor.frontend import mel_band_edges
+
+        edges = mel_band_edges(mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
+                               scale=card.mel_scale)
+        centres = tuple(float(f) for f in edges[1:-1])
+    elif kind == "spectrogram":
+        n = shape[1 - time_axis]
+        centres = tuple(k * card.sample_rate / card.fft_length for k in range(n))
+    per_window = getattr(card, "per_window", "none")
+    log = getattr(card, "log", "ln")
+    power = float(getattr(card, "power", 2.0)) or 2.0
+    factor = {"db": 1.0, "ln": 20.0 / power / math.log(10.0), "log10": 20.0 / power}.get(log)
+    if centres is None or per_window != "none" or factor is None:
+        return PictureSpec(time_axis, centres if per_window == "none" else None, one,
+                           one * 0, -2.5, 2.5, "σ", "scaled input")
+    mean = np.asarray(card.mean, np.float32)
+    std = np.asarray(card.std, np.float32)
+    gain, offset = std * factor, mean * factor
+    # the training features' spread: from the quietest band's mean less 1.5 std to the
+    # loudest band's mean plus 1 std (on the demo tour: -60 to +20 dB, where 98% of it lies)
+    hi = float(np.max(offset + 1.0 * gain))
+    lo = float(np.min(offset - 1.5 * gain))
+    if log != "db":  # nothing lies below the log of the offset (digital silence)
+        base = math.log(card.log_offset) if log == "ln" else math.log10(card.log_offset)
+        lo = max(lo, factor * base)
+    lo, hi = 10.0 * math.floor(lo / 10.0), 10.0 * math.ceil(hi / 10.0)
+    if hi - lo < 20:
+        lo = hi - 20
+    return PictureSpec(time_axis, centres, gain, offset, lo, hi, "dB",
+                       "log-mel" if kind == "logmel" else "spectrogram")
+
+
+@lru_cache(maxsize=64)
+def _pool(n_in: int, n_out: int) -> np.ndarray:
+    """(n_out, n_in) averaging matrix: output j is the mean of its share of the inputs
+    (the nearest input when there are more outputs than inputs)."""
+    m = np.zeros((n_out, n_in), np.float32)
+    for j in range(n_out):
+        a = int(j * n_in / n_out)
+        z = max(a + 1, int((j + 1) * n_in / n_out))
+        m[j, a:z] = 1.0 / (z - a)
+    return m
+
+
+@lru_cache(maxsize=64)
+def _top_band(n_in: int, n_out: int) -> tuple[int, ...]:
+    """For each output row, the highest input band it covers."""
+    return tuple(max(int(j * n_in / n_out) + 1, int((j + 1) * n_in / n_out)) - 1
+                 for j in range(n_out))
+
+
+_HALF: dict[tuple[int, int], Style] = {}
+
+
+def _half(top: int, bottom: int) -> Style:
+    st = _HALF.get((top, bottom))
+    if st is None:
+        st = _HALF[(top, bottom)] = Style(color=P.HEAT[top], bgcolor=P.HEAT[bottom])
+    return st
+
+
+AXIS_W = 4
+
+
+def khz(f_hz: float) -> str:
+    f = f_hz / 1000.0
+    return f"{f:.1f}" if f < 9.95 else f"{f:.0f}"
+
+
+def heat_text(features, spec: PictureSpec, rows: int, cols: int, *, color: bool = True) -> Text:
+    """The current window's features as a picture `rows` lines high and ``AXIS_W + cols``
+    wide: low bands at the bottom, time to the right, a kHz label on every other line.
+
+    In colour each cell is two pixels (the upper half block's foreground and its
+    background), steps of `monitor.palette.HEAT`; without colour one pixel per cell, by
+    glyph density (`SHADES`).
+    """
+    t = Text(no_wrap=True, overflow="crop")
+    if spec.time_axis is None:
+        return Text("waveform model: the input is the samples", style=P.MUTED)
+    if features is None:
+        return Text("\n" * (rows // 2) + " " * AXIS_W + "waiting for the first window",
+                    style=P.MUTED)
+    f = np.asarray(features, dtype=np.float32)
+    if f.ndim == 3:
+        f = f[..., 0]
+    v = f * spec.gain + spec.offset
+    if spec.time_axis == 0:
+        v = v.T  # (bands, frames)
+    bands, frames = v.shape
+    px = 2 * rows if color else rows
+    grid = _pool(bands, px) @ v @ _pool(frames, cols).T  # row 0: the lowest band
+    n = len(P.HEAT)
+    z = np.clip(((grid - spec.lo) / (spec.hi - spec.lo) * n).astype(np.int64), 0, n - 1)
+    tops = _top_band(bands, rows)
+    for r in range(rows):
+        label = ""
+        row_from_bottom = rows - 1 - r
+        if spec.centres_hz is not None and (r % 2 == 0 or rows <= 4):
+            label = khz(spec.centres_hz[min(tops[row_from_bottom], len(spec.centres_hz) - 1)])
+        elif spec.centres_hz is None and r in (0, rows - 1):
+            label = str(bands - 1 if r == 0 else 0)
+        t.append(f"{label:>{AXIS_W - 1}} ", style=P.MUTED)
+        if color:
+            top, bottom = z[2 * row_from_bottom + 1], z[2 * row_from_bottom]
+            for (a, b), run in _runs(zip(top.tolist(), bottom.tolist())):
+                t.append("▀" * run, style=_half(a, b))
+        else:
+            for k, run in _runs(z[row_from_bottom].tolist()):
+                t.append(SHADES[k * len(SHADES) // n] * run)
+        if r < rows - 1:
+            t.append("\n")
+    return t
+
+
+def scale_text(spec: PictureSpec, width: int, *, color: bool = True) -> Text:
+    """The picture's value scale on one line: lowest value, the ramp, highest value."""
+    t = Text(no_wrap=True, overflow="crop")
+    if spec.time_axis is None:
+        return t
+    unit = f" {spec.unit}"
+    lo, hi = f"{spec.lo:+.0f}" if spec.unit == "σ" else f"{spec.lo:.0f}", f"{spec.hi:+.0f}"
+    n = len(P.HEAT)
+    room = width - AXIS_W - len(lo) - len(hi) - len(unit) - 2
+    if room < n:  # narrow: the ramp starts at the left edge
+        room += AXIS_W - 1
+        t.append(" ")
+    else:
+        t.append(" " * AXIS_W)
+    per = max(1, min(3, room // n))
+    t.append(lo + " ", style=P.MUTED)
+    for k in range(n):
+        if color:
+            t.append(" " * per, style=Style(bgcolor=P.HEAT[k]))
+        else:
+            t.append(SHADES[k * len(SHADES) // n] * per)
+    t.append(" " + hi + unit, style=P.MUTED)
+    return t
+
+
+def level_text(level_dbfs: float, clipped: float, quiet_s: float, width: int) -> Text:
+    """The input level: its value, then a meter from -60 to 0 dBFS, or in its place the
+    warning that matters (clipping; silent for 3 s or more: a muted input?)."""
+    t = Text(no_wrap=True, overflow="crop")
+    t.append(f"{max(level_dbfs, -99.9):6.1f} dBFS ")
+    room = max(4, width - 12)
     if clipped > 0.001:
-        t.append("\nCLIPPING", style="bold reverse red")
-    elif quiet_s >= 3.0:
-        t.append("\nSILENT: input muted?", style="bold reverse yellow")
+        t.append(fit(" CLIPPING ", room).ljust(room), style=f"bold reverse {P.ALERT}")
+        return t
+    if quiet_s >= 3.0:
+        t.append(fit(" SILENT: muted? ", room).ljust(room), style=f"bold reverse {P.CLASS_COLOURS[4]}")
+        return t
+    frac = (max(-60.0, min(0.0, level_dbfs)) + 60.0) / 60.0
+    style = P.ALERT if level_dbfs > -3 else P.CLASS_COLOURS[4] if level_dbfs > -12 \
+        else P.CLASS_COLOURS[2]
+    t.append("▕", style=P.LINE)
+    t.append_text(bar(frac, room - 2, style=style))
+    t.append("▏", style=P.LINE)
     return t
 
 
-def confusion_text(classes, keys, cm) -> Text:
-    t = Text("     " + " ".join(f"{keys[c]:>3}" for c in classes) + "   ?\n", style="dim")
+# --- session and health -------------------------------------------------------------------------
+def confusion_text(classes, keys, cm, width: int, *, color: bool = True) -> Text | None:
+    """Counts, rows truth and columns decision (the last: undecided), each cell shaded by
+    its share of the row on the heat ramp; None when it does not fit in `width`."""
+    cols = [keys[c] for c in classes] + ["?"]
+    cell = 5
+    if 3 + cell * len(cols) > width:
+        cell = 4
+        if 3 + cell * len(cols) > width:
+            return None
+    t = Text(no_wrap=True, overflow="crop")
+    t.append("   " + "".join(f"{k:>{cell - 1}} " for k in cols), style=P.MUTED)
     for i, c in enumerate(classes):
-        t.append(f"  {keys[c]}  ", style=f"bold {colour(classes, c)}")
-        t.append(" ".join(f"{v:>3}" for v in cm[i][:len(classes)]) + f" {cm[i][-1]:>3}\n")
+        row = cm[i]
+        total = sum(row) or 1
+        t.append("\n")
+        t.append(f" {keys[c]} ", style=f"bold {colour(classes, c)}")
+        for v in row[:len(cols)]:
+            share = v / total
+            txt = f"{count4(v) if v else '·':>{cell - 1}} "
+            if color and v:
+                k = P.heat_index(share)
+                fg = P.GROUND if k >= 6 else P.TEXT
+                t.append(txt, style=Style(color=fg, bgcolor=P.HEAT[k]))
+            else:
+                t.append(txt, style=P.MUTED if not v else "")
     return t
 
 
-BIG = {  # a 3x5 block font of our own, for the stage view
-    "A": ["███", "█ █", "███", "█ █", "█ █"], "B": ["██ ", "█ █", "██ ", "█ █", "██ "],
-    "C": ["███", "█  ", "█  ", "█  ", "███"], "D": ["██ ", "█ █", "█ █", "█ █", "██ "],
-    "E": ["███", "█  ", "██ ", "█  ", "███"], "F": ["███", "█  ", "██ ", "█  ", "█  "],
-    "G": ["███", "█  ", "█ █", "█ █", "███"], "H": ["█ █", "█ █", "███", "█ █", "█ █"],
-    "I": ["███", " █ ", " █ ", " █ ", "███"], "J": ["  █", "  █", "  █", "█ █", "███"],
-    "K": ["█ █", "█ █", "██ ", "█ █", "█ █"], "L": ["█  ", "█  ", "█  ", "█  ", "███"],
-    "M": ["█ █", "███", "███", "█ █", "█ █"], "N": ["██ ", "█ █", "█ █", "█ █", "█ █"],
-    "O": ["███", "█ █", "█ █", "█ █", "███"], "P": ["███", "█ █", "███", "█  ", "█  "],
-    "Q": ["███", "█ █", "█ █", "███", "  █"], "R": ["██ ", "█ █", "██ ", "█ █", "█ █"],
-    "S": ["███", "█  ", "███", "  █", "███"], "T": ["███", " █ ", " █ ", " █ ", " █ "],
-    "U": ["█ █", "█ █", "█ █", "█ █", "███"], "V": ["█ █", "█ █", "█ █", "█ █", " █ "],
-    "W": ["█ █", "█ █", "███", "███", "█ █"], "X": ["█ █", "█ █", " █ ", "█ █", "█ █"],
-    "Y": ["█ █", "█ █", " █ ", " █ ", " █ "], "Z": ["███", "  █", " █ ", "█  ", "███"],
-    " ": ["   "] * 5, "_": ["   ", "   ", "   ", "   ", "███"], "-": ["   ", "   ", "███", "   ", "   "],
-    "?": ["███", "  █", " ██", "   ", " █ "],
+def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, keys,
+                 width: int, height: int, truth_mode: str, which: str = "",
+                 unfamiliar: int | None = None, color: bool = True) -> Text:
+    """The session panel: time, windows, snippets, accuracy and the confusion table, then
+    what fits of latency and switch rate. At most `height` lines of at most `width`."""
+    acc = pct(tally.accuracy) if tally.with_truth else "     -"
+    lines: list[Text] = [Text(f"time {clock(t_s):>8}  win {windows:>7,}"),
+                         Text(f"snip {snippets:>8,}  acc {acc:>7}")]
+    extra: list[Text] = []
+    if not tally.with_truth:
+        hint = {"keys": f"no truth yet: keys 1-{min(len(classes), 9)}",
+                "file": "no truth yet in the file"}.get(truth_mode, "no truth in this session")
+        lines.append(Text(hint, style=P.MUTED))
+    else:
+        cm = confusion_text(classes, keys, tally.confusion.tolist(), width, color=color)
+        if cm is not None and height >= 3 + 1 + len(classes):
+            head = f"truth↓ decision→{' of ' + which if which else ''}"
+            lines.append(Text(fit(head, width), style=P.MUTED))
+            lines.extend(cm.split("\n"))
+        else:
+            recalls = tally.per_class()
+            for c in classes:
+                r = recalls[c].get("recall")
+                lines.append(Text(f" {keys[c]} {fit(c, width - 12):<{width - 12}} "
+                                  f"{pct(r) if r is not None else '     -'}"))
+        lat = tally.latency_median
+        extra.append(Text(f"latency med {'-' if lat is None else f'{lat:.1f} s':>7}",
+                          style=P.MUTED))
+        if tally.switches_per_min is not None:
+            extra.append(Text(f"switches    {tally.switches_per_min:>5.1f}/min", style=P.MUTED))
+    if unfamiliar is not None:
+        extra.insert(0, Text(f"{UNFAMILIAR} unfamiliar  {unfamiliar:>7,}", style=P.MUTED))
+    lines.extend(extra)
+    t = Text(no_wrap=True, overflow="crop")
+    for k, line in enumerate(lines[:height]):
+        if k:
+            t.append("\n")
+        line.truncate(width)
+        t.append_text(line)
+    return t
+
+
+def health_text(*, source: str, rate, ms: float | None, latency_ms: float | None,
+                cpu: float | None, overruns: int, gaps: int, write_error: bool,
+                width: int, show_timings: bool = True) -> Text:
+    """The health panel: source, native rate, compute and latency, CPU, losses."""
+    t = Text(no_wrap=True, overflow="crop")
+
+    def num(v, spec, unit):
+        return "-" if v is None or not show_timings else f"{v:{spec}}{unit}"
+
+    rows = [(fit(source, width), ""), ("rate", f"{rate} Hz"),
+            ("compute", num(ms, ".2f", " ms")), ("latency", num(latency_ms, ".1f", " ms")),
+            ("CPU", num(None if cpu is None else cpu * 100, ".1f", " %")),
+            ("overruns", f"{overruns:,}"), ("gaps", f"{gaps:,}")]
+    for k, (name, value) in enumerate(rows):
+        if k:
+            t.append("\n")
+        style = f"bold reverse {P.ALERT}" if name in ("overruns", "gaps") and value != "0" else ""
+        t.append(f"{name:<{width - len(value)}}{value}"[:width], style=style)
+    if write_error:
+        t.append("\n")
+        t.append(fit("DISK: writing stopped", width), style=f"bold reverse {P.ALERT}")
+    return t
+
+
+# --- the stage font ---------------------------------------------------------------------------
+# A 5 x 7 block font of our own for the stage view: every letter a class name can hold
+# (a-z, 0-9, "_", "-") differs from every other in at least three of its 35 cells; the
+# zero carries a stroke so it is never the letter O.
+_FONT_ROWS = {
+    "A": ".###. #...# #...# ##### #...# #...# #...#",
+    "B": "####. #...# #...# ####. #...# #...# ####.",
+    "C": ".###. #...# #.... #.... #.... #...# .###.",
+    "D": "###.. #..#. #...# #...# #...# #..#. ###..",
+    "E": "##### #.... #.... ####. #.... #.... #####",
+    "F": "##### #.... #.... ####. #.... #.... #....",
+    "G": ".###. #...# #.... #.### #...# #...# .####",
+    "H": "#...# #...# #...# ##### #...# #...# #...#",
+    "I": ".###. ..#.. ..#.. ..#.. ..#.. ..#.. .###.",
+    "J": "..### ...#. ...#. ...#. ...#. #..#. .##..",
+    "K": "#...# #..#. #.#.. ##... #.#.. #..#. #...#",
+    "L": "#.... #.... #.... #.... #.... #.... #####",
+    "M": "#...# ##.## #.#.# #.#.# #...# #...# #...#",
+    "N": "#...# ##..# ##..# #.#.# #..## #..## #...#",
+    "O": ".###. #...# #...# #...# #...# #...# .###.",
+    "P": "####. #...# #...# ####. #.... #.... #....",
+    "Q": ".###. #...# #...# #...# #.#.# #..#. .##.#",
+    "R": "####. #...# #...# ####. #.#.. #..#. #...#",
+    "S": ".#### #.... #.... .###. ....# ....# ####.",
+    "T": "##### ..#.. ..#.. ..#.. ..#.. ..#.. ..#..",
+    "U": "#...# #...# #...# #...# #...# #...# .###.",
+    "V": "#...# #...# #...# #...# #...# .#.#. ..#..",
+    "W": "#...# #...# #...# #.#.# #.#.# ##.## #...#",
+    "X": "#...# #...# .#.#. ..#.. .#.#. #...# #...#",
+    "Y": "#...# #...# .#.#. ..#.. ..#.. ..#.. ..#..",
+    "Z": "##### ....# ...#. ..#.. .#... #.... #####",
+    "0": ".###. #...# #..## #.#.# ##..# #...# .###.",
+    "1": "..#.. .##.. #.#.. ..#.. ..#.. ..#.. #####",
+    "2": ".###. #...# ....# ...#. ..#.. .#... #####",
+    "3": "####. ....# ....# .###. ....# ....# ####.",
+    "4": "...#. ..##. .#.#. #..#. ##### ...#. ...#.",
+    "5": "##### #.... ####. ....# ....# #...# .###.",
+    "6": "..##. .#... #.... ####. #...# #...# .###.",
+    "7": "##### ....# ...#. ..#.. ..#.. ..#.. ..#..",
+    "8": ".###. #...# #...# .###. #...# #...# .###.",
+    "9": ".###. #...# #...# .#### ....# ...#. .##..",
+    "_": "..... ..... ..... ..... ..... ..... #####",
+    "-": "..... ..... ..... .###. ..... ..... .....",
+    "?": ".###. #...# ....# ...#. ..#.. ..... ..#..",
+    " ": "..... ..... ..... ..... ..... ..... .....",
 }
-for _d, _rows in zip("0123456789", (
-        ["███", "█ █", "█ █", "█ █", "███"], [" █ ", "██ ", " █ ", " █ ", "███"],
-        ["███", "  █", "███", "█  ", "███"], ["███", "  █", "███", "  █", "███"],
-        ["█ █", "█ █", "███", "  █", "  █"], ["███", "█  ", "███", "  █", "███"],
-        ["███", "█  ", "███", "█ █", "███"], ["███", "  █", "  █", "  █", "  █"],
-        ["███", "█ █", "███", "█ █", "███"], ["███", "█ █", "███", "  █", "███"])):
-    BIG[_d] = _rows
+FONT: dict[str, tuple[str, ...]] = {ch: tuple(rows.split()) for ch, rows in _FONT_ROWS.items()}
+FONT_W, FONT_H = 5, 7
+STAGE_SCALES = (2, 1)  # cells per font pixel, across; one line per pixel row
 
 
-def big_text(word: str, style: str = "") -> Text:
-    word = word.upper().replace("_", " ")
-    rows = ["", "", "", "", ""]
-    for ch in word:
-        glyph = BIG.get(ch, BIG["?"])
-        for i in range(5):
-            rows[i] += glyph[i] + " "
-    return Text("\n".join(rows), style=style)
+def big_width(word: str, scale: int) -> int:
+    return len(word) * (FONT_W + 1) * scale - scale if word else 0
+
+
+def big_text(word: str, *, max_width: int = 10 ** 6, style: str = "") -> Text:
+    """`word` in the stage font, at the widest scale that fits `max_width` (two cells or one
+    per pixel); a word too long even at one cell per pixel is cut with a trailing "-"."""
+    word = word.upper()
+    scale = next((s for s in STAGE_SCALES if big_width(word, s) <= max_width), 1)
+    while big_width(word, scale) > max_width and len(word) > 1:
+        word = word[:-2] + "-"
+    lines = []
+    for r in range(FONT_H):
+        parts = []
+        for ch in word:
+            row = FONT.get(ch, FONT["?"])[r]
+            parts.append("".join(("█" if p == "#" else " ") * scale for p in row))
+        lines.append((" " * scale).join(parts))
+    return Text("\n".join(lines), style=style, no_wrap=True, overflow="crop")

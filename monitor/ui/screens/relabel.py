@@ -11,13 +11,31 @@ from __future__ import annotations
 import threading
 from pathlib import Path
 
+from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.screen import Screen
 from textual.widgets import DataTable, Footer, Static
 
+from monitor import palette as P
 from monitor import snippets as S
 from monitor.ui.screens.ask import AskLabel
+
+# (heading, width): 76 cells with the table's padding, so the state column shows at 80
+COLUMNS = (("from", 9), ("len", 5), ("label", 12), ("predicted", 12), ("reason", 10),
+           ("conf", 4), ("state", 10))
+REASONS = {"disagreement": "disagree", "models_disagree": "A≠B", "uncertain": "uncertain",
+           "unfamiliar": "unfamiliar", "manual": "manual"}
+
+
+def state_word(sn: S.SnippetFile) -> str:
+    """One word for the review state: dropped, relabeled, kept, or new (not reviewed)."""
+    state = sn.state or ""
+    if "dropped" in state:
+        return "dropped"
+    if "relabeled" in state:
+        return "relabeled"
+    return "kept" if "kept" in state else "new"
 
 
 class RelabelScreen(Screen):
@@ -42,14 +60,15 @@ class RelabelScreen(Screen):
         self.last_status = ""
 
     def compose(self) -> ComposeResult:
-        yield Static(f"snippets of {self.session_dir}", id="relabel_title")
+        yield Static(f" snippets of session {self.session_dir.name}", id="relabel_title")
         yield DataTable(id="snippets", cursor_type="row", zebra_stripes=True)
         yield Static("", id="relabel_status")
         yield Footer()
 
     def on_mount(self) -> None:
         table = self.query_one(DataTable)
-        table.add_columns("from", "len", "label", "predicted", "reason", "conf", "state")
+        for name, width in COLUMNS:
+            table.add_column(name, width=width, key=name)
         self.reload()
 
     def reload(self) -> None:
@@ -61,14 +80,23 @@ class RelabelScreen(Screen):
             m = sn.meta
             conf = m.get("confidence")
             dur = m.get("duration_s")
-            table.add_row(f"{sn.t0:7.1f} s", f"{dur:4.1f}" if isinstance(dur, (int, float)) else "-",
-                          sn.label, str(m.get("predicted")), sn.reason,
-                          f"{conf:.2f}" if isinstance(conf, (int, float)) else "-",
-                          sn.state, key=str(sn.sidecar))
+            word = state_word(sn)
+            table.add_row(
+                Text(f"{sn.t0:7.1f} s", justify="right"),
+                Text(f"{dur:4.1f}" if isinstance(dur, (int, float)) else "-", justify="right"),
+                self._label(sn.label), self._label(str(m.get("predicted"))),
+                REASONS.get(sn.reason, sn.reason[:10]),
+                f"{conf:.2f}" if isinstance(conf, (int, float)) else "-",
+                Text(word, style=P.MUTED if word == "dropped" else
+                     f"bold {P.CLASS_COLOURS[2]}" if word in ("kept", "relabeled") else ""),
+                key=str(sn.sidecar))
         if self.items:
             table.move_cursor(row=min(row, len(self.items) - 1))
-        self.status(f"{len(self.items)} snippet(s). enter or space: play  k: keep  d: drop  "
-                    f"l: label")
+        self.status(f"{len(self.items)} snippet(s) · enter or space plays · state: new, kept, "
+                    f"dropped, relabeled")
+
+    def _label(self, label: str) -> Text:
+        return Text(label[:12], style=P.class_colour(self.class_names, label))
 
     def status(self, text: str) -> None:
         self.last_status = text
