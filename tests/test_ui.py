@@ -20,7 +20,7 @@ import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
-from monitor.plan import ModelPlan, OutputPlan, SessionPlan
+from monitor.plan import FileInput, ModelPlan, OutputPlan, SessionPlan
 from monitor.sources import FileSource
 from monitor.ui.app import MonitorApp, RelabelApp, session_starter
 from monitor.ui.screens import StageScreen
@@ -617,3 +617,25 @@ def test_feature_picture_axis_and_no_colour_form(demo_card):
     density = [max(SHADES.index(ch) for ch in line[4:]) for line in text]
     assert density == sorted(density, reverse=True) and density[0] > density[-1]
     assert text[0][:3].strip() == f"{centres[-1] / 1000:.1f}"  # the top row's highest band
+
+
+def test_the_screen_says_what_happens_before_the_model_loads(quiet_clip, tmp_path):
+    # while the plan's preparation runs (the demo makes its tour) the screen says so, not
+    # "loading the model"; then it loads the model
+    gate, seen = threading.Event(), []
+    plan = SessionPlan(source=FileInput(quiet_clip, realtime=False),
+                       models=(ModelPlan(MODELS / "demo.tflite"),),
+                       output=OutputPlan(tmp_path / "s", "t"), prepare=gate.wait,
+                       prepare_note="making the demo tour (the first run only) …")
+    app = MonitorApp(session_starter(plan), heading="test", show_timings=False)
+
+    async def drive():
+        async with app.run_test(size=(80, 24)) as pilot:
+            await wait_for(pilot, lambda: "making the demo tour" in app.message)
+            seen.append(app.message)
+            gate.set()
+            await wait_for(pilot, lambda: app.finished)
+            await pilot.press("q")
+
+    asyncio.run(drive())
+    assert seen and "loading the model" not in seen[0]
