@@ -58,6 +58,27 @@ class LoadedModel:
 
 
 def load_card(plan: ModelPlan) -> ModelCard:
+    """The card of a planned model: its ``--card``, or the card beside the model file.
+
+    Run first for every model, so that a bad card is refused before any model loads or any
+    session directory exists. Unlike `card.load_card`, it takes the plan, not a path.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The model's path and, optionally, an explicit card path.
+
+    Returns
+    -------
+    ModelCard
+
+    Raises
+    ------
+    ModelError
+        The model file does not exist.
+    CardError
+        No card beside the model and none given, or the card is invalid.
+    """
     return card_for_model(plan.path, plan.card)
 
 
@@ -166,10 +187,12 @@ class SessionHandle:
 
     @property
     def card(self) -> ModelCard:
+        """Model A's card (the session's rate, window and hop)."""
         return self.models[0].card
 
     @property
     def classes(self) -> tuple[str, ...]:
+        """Model A's classes in output order (the ones the truth keys name)."""
         return self.card.classes
 
     def now_s(self) -> float:

@@ -92,6 +92,16 @@ class AudioHistory:
         self.end = 0  # samples seen (gaps as silence)
 
     def add(self, chunk: np.ndarray, gap: int) -> None:
+        """Append the next chunk, after `gap` lost samples that are held as silence.
+
+        Parameters
+        ----------
+        chunk : numpy.ndarray
+            float32 samples at the model rate, 1-D (may be empty).
+        gap : int
+            Samples lost just before `chunk` (>= 0). The clock advances by them, so cut times
+            stay on the session clock.
+        """
         if gap:
             self._put(np.zeros(min(gap, self.cap), np.float32), gap)
         if chunk.size:
@@ -167,11 +177,23 @@ class CapturePolicy(ObserverBase):
 
     # --- observer interface (compute thread) -------------------------------------------
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Keep the chunk in the history; cut the pending snippets whose post-roll has now arrived.
+
+        Runs on the engine's compute thread and must not block: the lock is held only for the copy
+        into the history and the hand-over to the sink, which only queues.
+        """
         with self._lock:
             self.audio.add(chunk, gap)
             self._flush(final=False)
 
     def on_window(self, r: WindowResult) -> None:
+        """Classify one window and start, extend or end the run that becomes a snippet.
+
+        A window of another kind (another reason, or another (truth, predicted) pair) ends the open
+        run, and so does a run that reaches `max_s` with its rolls; an ended run is rate-limited,
+        then cut once its post-roll has arrived. A window with a model fault is ignored. Runs on
+        the engine's compute thread and must not block.
+        """
         if r.fault is not None:
             return
         with self._lock:

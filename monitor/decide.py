@@ -25,6 +25,15 @@ _EPS = 1e-9  # slack on time comparisons of sample-clock times
 
 
 class Smoother:
+    """Smoothing of the raw probability vectors by the card's method (see module docstring).
+
+    Parameters
+    ----------
+    settings : DecisionSettings
+        ``smoothing`` names the method; ``smoothing_windows`` is N for mean and median,
+        ``ema_alpha`` the weight of the newest vector for ema.
+    """
+
     def __init__(self, settings: DecisionSettings) -> None:
         self.method = settings.smoothing
         self.n = settings.smoothing_windows if settings.smoothing in ("mean", "median") else 1
@@ -33,6 +42,13 @@ class Smoother:
         self._ema: np.ndarray | None = None
 
     def update(self, p: np.ndarray) -> np.ndarray:
+        """Take the next raw vector `p` and return the smoothed one.
+
+        Returns
+        -------
+        numpy.ndarray
+            float64, same shape as `p`; a new array each call, so the caller may keep it.
+        """
         p = np.asarray(p, dtype=np.float64)
         if self.method == "none":
             return p.copy()
@@ -75,6 +91,21 @@ class Hysteresis:
         self.last: int | None = None
 
     def update(self, smoothed: np.ndarray, t1: float) -> int | None:
+        """Take the smoothed vector of the window ending at `t1`; return the decision.
+
+        Parameters
+        ----------
+        smoothed : numpy.ndarray
+            The smoothed probabilities, ``(n_classes,)``.
+        t1 : float
+            The window's end in session seconds; the minimum hold is timed on it.
+
+        Returns
+        -------
+        int or None
+            Index of the decided class, None while undecided (the four steps of the class
+            docstring, in order).
+        """
         s, st = smoothed, self.s
         d = self.decision
         if st.exit > 0 and d is not None and s[d] < st.exit:
@@ -100,6 +131,15 @@ class Decider:
         self.hysteresis = Hysteresis(settings)
 
     def step(self, p: np.ndarray, t1: float) -> tuple[np.ndarray, int | None]:
+        """Smooth the raw vector `p` of the window ending at `t1`, then decide.
+
+        Returns
+        -------
+        smoothed : numpy.ndarray
+            float64, shape ``(n_classes,)``.
+        decision : int or None
+            Index of the decided class; None while undecided.
+        """
         s = self.smoother.update(p)
         return s, self.hysteresis.update(s, t1)
 

@@ -121,21 +121,41 @@ class EngineStatus:
 class Observer(Protocol):
     """What the engine calls, on its own thread; no method may block."""
 
-    def on_audio(self, chunk: np.ndarray, gap: int) -> None: ...
-    def on_window(self, result: WindowResult) -> None: ...
-    def on_status(self, status: EngineStatus) -> None: ...
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Every chunk read from the ring, after `gap` lost samples, before it is windowed.
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
+
+    def on_window(self, result: WindowResult) -> None:
+        """One published result per window (model A's; model B's in ``result.others``).
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
+
+    def on_status(self, status: EngineStatus) -> None:
+        """One `EngineStatus` snapshot after each batch of windows.
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
 
 
 class ObserverBase:
     """An `Observer` whose hooks do nothing; subclasses override what they need."""
 
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
         return None
 
     def on_window(self, result: WindowResult) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
         return None
 
     def on_status(self, status: EngineStatus) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
         return None
 
 
@@ -148,10 +168,21 @@ class Source(Protocol):
     error: BaseException | None  # an unexpected failure of the producer thread
     failure: str | None  # a runtime failure the session survives (a lost device)
 
-    def start(self) -> None: ...
-    def stop(self) -> None: ...
-    def describe(self) -> dict: ...
-    def stats(self) -> dict: ...
+    def start(self) -> None:
+        """Start producing into `ring` on the source's own thread; `Engine.run` calls it once."""
+        ...
+
+    def stop(self) -> None:
+        """Stop producing and join the producer; `Engine.run` calls it once, also after an error."""
+        ...
+
+    def describe(self) -> dict:
+        """session.json's ``source`` entry (kind, file or device, native rate, channels, pace)."""
+        ...
+
+    def stats(self) -> dict:
+        """The source's own figures, merged into summary.json at the end (may be empty)."""
+        ...
 
 
 @dataclass
@@ -248,6 +279,10 @@ class Engine:
         return self.lanes[0].tally
 
     def status(self) -> EngineStatus:
+        """A snapshot of the chain's counters now: what the ``on_status`` observers receive.
+
+        Made on the compute thread after each batch of windows; it shares nothing with the engine.
+        """
         ring = self.source.ring
         return EngineStatus(
             now_s=self.windower.end / self.card.sample_rate, windows=self.count,

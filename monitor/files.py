@@ -139,6 +139,14 @@ class SessionLock:
         self._fd: int | None = None
 
     def acquire(self) -> None:
+        """Take the lock without waiting and write this process's id into the lock file.
+
+        Raises
+        ------
+        OSError
+            Another process holds the lock, or the lock file cannot be opened (a symbolic link
+            there is refused, never followed).
+        """
         fd = os.open(self.path, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
         try:
             fcntl.flock(fd, fcntl.LOCK_EX | fcntl.LOCK_NB)
@@ -150,6 +158,7 @@ class SessionLock:
         self._fd = fd
 
     def release(self) -> None:
+        """Remove the lock file, then close it (which drops the lock); a no-op when not held."""
         if self._fd is not None:
             with contextlib.suppress(OSError):
                 os.unlink(self.path)

@@ -67,12 +67,28 @@ EXAMPLES = {
 
 
 class Parser(argparse.ArgumentParser):
+    """The command line's parser: a bad flag is one line on stderr and exit code 2 (BAD_INPUT)."""
+
     def error(self, message: str) -> None:  # argparse's own bad-flag path: exit 2, one line
+        """Print argparse's complaint in one line that points to ``--help``, then exit.
+
+        Raises
+        ------
+        SystemExit
+            Always, with `ExitCode.BAD_INPUT`.
+        """
         sys.stderr.write(f"{self.prog}: {message} (see {self.prog} --help)\n")
         raise SystemExit(ExitCode.BAD_INPUT)
 
 
 def number(text: str) -> float:
+    """A flag value as a finite float.
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not a number, or NaN or an infinity; argparse reports it against the flag.
+    """
     try:
         v = float(text)
     except ValueError:
@@ -83,6 +99,13 @@ def number(text: str) -> float:
 
 
 def fraction(text: str) -> float:
+    """A flag value as a finite number in [0, 1] (a probability, the ema weight).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not a finite number, or outside [0, 1].
+    """
     v = number(text)
     if not 0.0 <= v <= 1.0:
         raise argparse.ArgumentTypeError(f"{text} is not a fraction in [0, 1]")
@@ -90,6 +113,13 @@ def fraction(text: str) -> float:
 
 
 def seconds(text: str) -> float:
+    """A flag value as a finite number of seconds >= 0 (rolls, hold times, rate limits).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not a finite number, or negative.
+    """
     v = number(text)
     if v < 0:
         raise argparse.ArgumentTypeError(f"{text} is not a number of seconds >= 0")
@@ -97,6 +127,13 @@ def seconds(text: str) -> float:
 
 
 def positive(text: str) -> float:
+    """A flag value as a finite number above 0 (durations that cannot be empty).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not a finite number, or 0 or below.
+    """
     v = number(text)
     if v <= 0:
         raise argparse.ArgumentTypeError(f"{text} must be above 0")
@@ -104,6 +141,13 @@ def positive(text: str) -> float:
 
 
 def positive_int(text: str) -> int:
+    """A flag value as an integer >= 1 (window counts, ``--confirm``).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not an integer, or below 1.
+    """
     try:
         v = int(text)
     except ValueError:
@@ -114,12 +158,37 @@ def positive_int(text: str) -> int:
 
 
 def subcommand(sub, name: str, help_: str, description: str, epilog: str | None = None):
+    """Add the command `name` to the sub-parsers `sub`, with its examples as the epilog.
+
+    Parameters
+    ----------
+    sub : argparse subparsers action
+        What ``add_subparsers()`` returned.
+    name : str
+        The command's name; its examples are ``EXAMPLES[name]`` unless `epilog` is given.
+    help_ : str
+        Its line in the list of commands.
+    description : str
+        The paragraph at the top of its own ``--help``.
+    epilog : str, optional
+        Text after the flags instead of the examples.
+
+    Returns
+    -------
+    argparse.ArgumentParser
+        The command's parser; its raw-description formatter keeps the examples' line breaks.
+    """
     return sub.add_parser(name, help=help_, description=description,
                           epilog=epilog or EXAMPLES.get(name),
                           formatter_class=argparse.RawDescriptionHelpFormatter)
 
 
 def add_decision_flags(p: argparse.ArgumentParser) -> None:
+    """Add the ``[decision]`` overrides, ``--smoothing`` to ``--min-hold``, to `p`.
+
+    Each defaults to None, so only a flag that is given replaces the card's value; the help
+    shows the built-in `DecisionSettings` defaults in brackets.
+    """
     from monitor.card import DecisionSettings
 
     d = DecisionSettings()
@@ -145,6 +214,23 @@ def add_decision_flags(p: argparse.ArgumentParser) -> None:
 
 def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: bool = False,
                      default_help: str = "") -> None:
+    """Add ``--model``, ``--card``, ``--runtime`` and ``--trust-model`` to `p`.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+    required : bool
+        ``--model`` must be given.
+    many : bool
+        ``--model``, ``--card`` and ``--runtime`` may be given more than once and collect into
+        lists, in order (model A, then B).
+    default_help : str
+        Added to ``--model``'s help: what is used without it.
+
+    Notes
+    -----
+    The hidden ``--spec`` is the old name of ``--card`` and fills the same list.
+    """
     p.add_argument("--model", action="append" if many else "store", required=required,
                    metavar="M", help=(".keras, .h5 or .tflite model; its card is M's stem + "
                                       ".toml" + ("; give twice for two models side by side (A, "
@@ -164,6 +250,7 @@ def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: 
 
 
 def add_live_flags(p: argparse.ArgumentParser) -> None:
+    """Add the input device flags: ``--input``, ``--seconds``, ``--latency``, ``--blocksize``."""
     g = p.add_argument_group("input device")
     g.add_argument("--input", metavar="DEVICE",
                    help="device index or a case-insensitive part of its name (see scenemon "
@@ -178,6 +265,7 @@ def add_live_flags(p: argparse.ArgumentParser) -> None:
 
 
 def add_session_flags(p: argparse.ArgumentParser) -> None:
+    """Add the session flags: ``--out``, ``--no-audio``, ``--segment-min``, ``--headless``."""
     from monitor.plan import DEFAULT_SEGMENT_S
 
     p.add_argument("--out", metavar="DIR",
@@ -192,6 +280,10 @@ def add_session_flags(p: argparse.ArgumentParser) -> None:
 
 
 def add_capture_flags(p: argparse.ArgumentParser) -> None:
+    """Add the ``--capture*`` flags, the rolls and the uncertainty thresholds to `p`.
+
+    Each defaults to None, so `CaptureSettings`'s own default stands unless the flag is given.
+    """
     from monitor.capture import POLICIES, CaptureSettings
 
     c = CaptureSettings()

@@ -37,6 +37,13 @@ MAX_ARENA = 512 * 1024 * 1024
 
 
 def import_micro():
+    """The ``tflite_micro.runtime`` module, imported only when the micro runtime is asked for.
+
+    Raises
+    ------
+    ModelError
+        The optional ``tflite-micro`` package is not installed (the message says how to get it).
+    """
     try:
         from tflite_micro import runtime
     except ImportError:
@@ -174,12 +181,19 @@ class MicroRunner:
 
     # the same quantisation rules as LiteRT's runner (TFLite int8 quantization spec)
     def quantize_input(self, x: np.ndarray) -> np.ndarray:
+        """Features in the input tensor's type (int8: quantised with its scale and zero point).
+
+        For int8, ``q = clip(round(x / scale) + zero_point, -128, 127)``: the same rule as
+        LiteRT's runner (the TFLite int8 quantization specification), so both runtimes are given
+        identical int8 inputs.
+        """
         if self.in_dtype != np.int8:
             return np.asarray(x, self.in_dtype)
         q = np.round(np.asarray(x, np.float32) / np.float32(self.in_scale)) + self.in_zero
         return np.clip(q, -128, 127).astype(np.int8)
 
     def dequantize_output(self, q: np.ndarray) -> np.ndarray:
+        """The output tensor as float32: ``scale * (q - zero_point)`` for int8, else a cast."""
         if self.out_dtype != np.int8:
             return q.astype(np.float32)
         return np.float32(self.out_scale) * (q.astype(np.float32) - self.out_zero)
@@ -192,6 +206,11 @@ class MicroRunner:
         return q.reshape(-1), self.interp.get_output(0).reshape(-1)
 
     def predict(self, features: np.ndarray) -> np.ndarray:
+        """Probabilities ``(n, n_outputs)``, float32, for features ``(n, *card.feature_shape)``.
+
+        One ``invoke`` per window at batch 1, like the other runners; a ``"logits"`` card's
+        outputs go through a softmax.
+        """
         feats = np.asarray(features, np.float32)
         out = np.empty((feats.shape[0], self.n_outputs), np.float32)
         for i in range(feats.shape[0]):

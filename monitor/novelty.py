@@ -148,6 +148,7 @@ class Profile:
                        self.time_axis, self.windows, confirm, self.path, self.shrinkage)
 
     def describe(self) -> dict[str, Any]:
+        """session.json's ``profile``: file, threshold, quantile, windows, classes, confirm."""
         return {"path": Path(self.path).name if self.path else None,
                 "threshold": round(self.threshold, 4), "quantile": self.quantile,
                 "windows": self.windows, "classes": int(self.means.shape[0]),
@@ -215,6 +216,17 @@ def fit_profile(features: np.ndarray, card: ModelCard, *, labels: np.ndarray | N
 
 
 def save_profile(prof: Profile, path: Path) -> None:
+    """Write `prof` to `path` as a plain ``.npz`` (no pickle), atomically.
+
+    The confirmation count is not stored: `load_profile` takes it from the card's
+    ``[decision]`` table, so the profile follows the decision settings.
+
+    Parameters
+    ----------
+    prof : Profile
+    path : Path
+        Usually `profile_path_for` the model, where `profile_beside` finds it.
+    """
     import io
 
     from monitor.files import atomic_write

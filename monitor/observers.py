@@ -62,6 +62,10 @@ class HeadlessPrinter(_Printer):
     """One JSON object per window on the stream (the ``windows.jsonl`` fields of model A)."""
 
     def on_window(self, r: WindowResult) -> None:
+        """Write the window's JSON line (pushed out once per batch by `on_status`).
+
+        Runs on the compute thread; a closed pipe stops the session instead of raising.
+        """
         self._write(r.json_line())
 
 
@@ -74,6 +78,11 @@ class ChangePrinter(_Printer):
         self.last: str | None = None
 
     def on_window(self, r: WindowResult) -> None:
+        """Write one line when the decision differs from the previous window's.
+
+        The line holds the time, the decision, its smoothed probability, model B's decision, the
+        truth and "(differs)" when the truth is known and is not the decision. Compute thread.
+        """
         if r.decision == self.last:
             return
         self.last = r.decision
@@ -96,6 +105,7 @@ class WriteWatch(ObserverBase):
         self.stream = stream or sys.stderr
 
     def on_window(self, r: WindowResult) -> None:
+        """Say the writer's error once, on the first window after it appears (compute thread)."""
         if not self.said and self.writer.error_text:
             self.said = True
             self.stream.write(f"scenemon: {self.writer.error_text}; monitoring goes on\n")
@@ -111,6 +121,10 @@ class Collector(ObserverBase):
         self.timings = timings
 
     def on_window(self, r: WindowResult) -> None:
+        """Keep a copy of the window's record, and of model B's in `others`.
+
+        Without `timings` the copy's ``ms`` is None, so results do not depend on where they ran.
+        """
         rec = dict(r.record())  # a copy: the record itself is shared
         if not self.timings:
             rec["ms"] = None  # a timing would make results differ run to run: left out

@@ -107,6 +107,22 @@ def fix_wav(path: Path) -> int | None:
 
 
 def truth_from_windows(windows: list[dict]) -> list[Span]:
+    """Truth spans rebuilt from the windows' own truth labels, for a session without truth.tsv.
+
+    A window extends the last span when it has that span's label and starts no later than the
+    span ends (windows without truth in between do not break it); otherwise it opens a span
+    that starts where the last one ends, so that overlapping windows give no overlapping spans.
+
+    Parameters
+    ----------
+    windows : list of dict
+        ``windows.jsonl`` records in stream order (``t0``, ``t1`` and ``truth`` are read).
+
+    Returns
+    -------
+    list of Span
+        In time order and non-overlapping, as `format_truth` writes them.
+    """
     spans: list[Span] = []
     for w in windows:
         t = w.get("truth")

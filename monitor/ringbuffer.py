@@ -64,13 +64,20 @@ class RingBuffer:
     # consumer side
     @property
     def written(self) -> int:
+        """The producer's published write count: the absolute end of the stream, skips included."""
         return self._written
 
     @property
     def read_position(self) -> int:
+        """Consumer side: the absolute sample the next `read` starts at (before any skip)."""
         return self._read
 
     def available(self) -> int:
+        """Samples written and not yet read (consumer side).
+
+        Above `capacity` when the producer has overrun the consumer; the next `read` then skips
+        the lost ones and reports them as its gap.
+        """
         return self._written - self._read
 
     def read(self, max_samples: int | None = None) -> tuple[np.ndarray, int]:

@@ -34,6 +34,7 @@ MIN_KERAS = (3, 12)
 
 
 def file_sha256(path: str | Path) -> str:
+    """Hex sha256 of a file, read in 1 MiB blocks (the model and audio fingerprints)."""
     h = hashlib.sha256()
     with open(path, "rb") as f:
         for block in iter(lambda: f.read(1 << 20), b""):
@@ -57,6 +58,10 @@ class Runner(Protocol):
 
 
 def softmax(z: np.ndarray) -> np.ndarray:
+    """Softmax over the last axis, as float32.
+
+    The row maximum is subtracted first, so large logits do not overflow.
+    """
     z = z - np.max(z, axis=-1, keepdims=True)
     e = np.exp(z)
     return (e / np.sum(e, axis=-1, keepdims=True)).astype(np.float32)
@@ -158,6 +163,11 @@ class KerasRunner(_Base):
         self.check_outputs()
 
     def predict(self, features: np.ndarray) -> np.ndarray:
+        """Probabilities ``(n, n_outputs)``, float32, for features ``(n, *card.feature_shape)``.
+
+        One call of the batch-1 `tf.function` per window, so a window's result does not depend on
+        how many came with it; a ``"logits"`` card's outputs go through a softmax.
+        """
         feats = np.asarray(features, np.float32)
         out = np.empty((feats.shape[0], self.n_outputs), np.float32)
         for i in range(feats.shape[0]):
@@ -231,6 +241,11 @@ class TFLiteRunner(_Base):
         return q.reshape(-1), self.interp.get_tensor(self._out["index"]).reshape(-1).copy()
 
     def predict(self, features: np.ndarray) -> np.ndarray:
+        """Probabilities ``(n, n_outputs)``, float32, for features ``(n, *card.feature_shape)``.
+
+        One ``invoke`` per window at batch 1 (int8 inputs quantised, int8 outputs dequantised with
+        the tensors' own scale and zero point); a ``"logits"`` card's outputs go through a softmax.
+        """
         feats = np.asarray(features, np.float32)
         out = np.empty((feats.shape[0], self.n_outputs), np.float32)
         set_tensor, invoke, get = self.interp.set_tensor, self.interp.invoke, self.interp.get_tensor

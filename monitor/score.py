@@ -43,6 +43,8 @@ RESULTS_VERSION = 2
 
 @dataclass(frozen=True)
 class Item:
+    """One input of the archive: its key, its audio file(s) and its truth file, if any."""
+
     key: str  # the input's path below the archive ("/"-separated)
     audio: tuple[str, ...]  # one file, or a session's audio segments in order
     truth: str | None
@@ -54,6 +56,7 @@ def results_name(key: str) -> str:
 
 
 def key_of_results(name: str) -> str:
+    """The input key of a results file name without its extension; the inverse of `results_name`."""
     return name.replace("%2F", "/").replace("%25", "%")
 
 
@@ -89,12 +92,26 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
 
 
 def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
+    """Where one input's results live under `out`.
+
+    Returns
+    -------
+    results : Path
+        ``results/<name>.jsonl`` for model A (`model` 0), ``results/<name>.b.jsonl`` for B.
+    meta : Path
+        ``results/<name>.meta.json``, shared by both models.
+    """
     name = results_name(item.key)
     tag = "" if model == 0 else ".b"
     return out / "results" / f"{name}{tag}.jsonl", out / "results" / f"{name}.meta.json"
 
 
 def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
+    """What makes a stored result current (compared by `up_to_date`).
+
+    The results version, the sha256 of each audio file and of the truth file, and `models`
+    (path, model and card sha256, and runtime of each).
+    """
     from monitor.runners import file_sha256
 
     return {"version": RESULTS_VERSION, "audio_sha256": [file_sha256(a) for a in item.audio],
@@ -103,6 +120,20 @@ def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
 
 
 def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
+    """True when each model's results file exists and the meta file holds `fp` unchanged.
+
+    Such an input is skipped, so an interrupted run resumes where it stopped.
+
+    Parameters
+    ----------
+    out : Path
+        The output folder.
+    item : Item
+    fp : dict
+        The input's `fingerprint` now.
+    n_models : int
+        1, or 2 for an A/B run.
+    """
     paths = [result_paths(out, item, m)[0] for m in range(n_models)]
     meta = result_paths(out, item)[1]
     if not (all(p.is_file() for p in paths) and meta.is_file()):
@@ -311,6 +342,11 @@ def _merge(total, t) -> None:
 
 
 def aggregate_text(agg: dict) -> str:
+    """The aggregate as a few lines for the terminal.
+
+    What was scored and how fast, each model's overall figures, A against B with McNemar's
+    exact test in an A/B run, and model A's worst files.
+    """
     def overall_line(name: str, part: dict) -> str:
         o = part["overall"] or {}
         acc = o.get("accuracy")
@@ -338,6 +374,15 @@ def aggregate_text(agg: dict) -> str:
 
 def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *,
                       truth_glob: str | None, workers: int | None, cluster: str | None) -> int:
+    """`scenemon score`: score the archive and print the aggregate; returns the exit code.
+
+    The progress bar is drawn only when stderr is a terminal.
+
+    Raises
+    ------
+    ScenemonError
+        No ``--model`` given, or bad input found by `run_score`.
+    """
     if not models:
         raise ScenemonError("score: give --model")
     agg = run_score(archive, models, out, truth_glob=truth_glob, workers=workers,

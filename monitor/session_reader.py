@@ -37,14 +37,17 @@ class Session:
 
     @property
     def complete(self) -> bool:
+        """True when summary.json was read: the session closed cleanly, or was repaired."""
         return self.summary is not None
 
     @property
     def classes(self) -> list[str]:
+        """Model A's classes in output order, from session.json (``classes``, else the card's)."""
         return list(self.meta.get("classes") or self.meta.get("card", {}).get("classes", []))
 
     @property
     def hop_s(self) -> float | None:
+        """Seconds between windows, from session.json's card (None when missing or not a number)."""
         v = self.meta.get("card", {}).get("audio", {}).get("hop_s")
         return float(v) if isinstance(v, _NUM) else None
 

@@ -133,6 +133,10 @@ class SessionWriter:
 
     # --- observer interface: called from the compute thread, never blocks ------------------
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Queue a chunk and the `gap` before it for the audio file; compute thread, never blocks.
+
+        The chunk is queued without a copy: the ring's `read` has already made one.
+        """
         self._q.put(("audio", chunk, gap))
 
     def on_window(self, result: Any) -> None:

@@ -49,23 +49,28 @@ class SnippetFile:
 
     @property
     def wav(self) -> Path:
+        """The audio file beside the sidecar (same stem, ``.wav``)."""
         return self.sidecar.with_suffix(".wav")
 
     @property
     def label(self) -> str:
+        """What the sound truly is: the sidecar's ``label`` (after a relabel), else "unknown"."""
         return str(self.meta.get("label") or "unknown")
 
     @property
     def reason(self) -> str:
+        """Why it was kept (one of `REASONS`), as text ("None" when the sidecar names no reason)."""
         return str(self.meta.get("reason"))
 
     @property
     def t0(self) -> float:
+        """Where the snippet starts, in session seconds (0.0 when the sidecar holds no number)."""
         v = self.meta.get("t0")
         return float(v) if isinstance(v, (int, float)) else 0.0
 
     @property
     def dropped(self) -> bool:
+        """True only when the sidecar's ``dropped`` is JSON true (harvest then leaves it out)."""
         return self.meta.get("dropped") is True
 
     @property

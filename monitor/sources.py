@@ -206,6 +206,10 @@ class FileSource:
         self._thread: threading.Thread | None = None
 
     def describe(self) -> dict:
+        """session.json's ``source`` entry: kind "file", first file, native rate, channels, pace.
+
+        A recording of several files also lists them all under ``files``.
+        """
         d = {"kind": "file", "file": str(self.path), "native_rate": self.native_rate,
              "channels": self.channels, "pace": "realtime" if self.realtime else "fast"}
         if len(self.paths) > 1:
@@ -213,13 +217,16 @@ class FileSource:
         return d
 
     def stats(self) -> dict:
+        """No figures of its own for summary.json: an empty dict."""
         return {}
 
     def start(self) -> None:
+        """Start the "file-source" producer thread and return at once."""
         self._thread = threading.Thread(target=self._run, name="file-source", daemon=True)
         self._thread.start()
 
     def stop(self) -> None:
+        """Ask the producer thread to stop and join it (for at most 5 s)."""
         self._stop.set()
         if self._thread is not None:
             self._thread.join(timeout=5)
@@ -395,10 +402,15 @@ class MicSource:
         self._thread: threading.Thread | None = None
 
     def stats(self) -> dict:
+        """summary.json's source figures: reopens, seconds of input lost, and the failure, if any.
+
+        ``source_failure`` is the sentence that ended the source, None when it did not fail.
+        """
         return {"reopens": self.reopens, "lost_s": round(self.lost_s, 3),
                 "source_failure": self.failure}
 
     def describe(self) -> dict:
+        """session.json's ``source`` entry: device, host API, rate, channels, blocksize, latency."""
         return {"kind": "mic", "device": self.device["name"], "index": self.device["index"],
                 "hostapi": self.device["hostapi"], "native_rate": self.native_rate,
                 "channels": self.channels, "pace": "realtime", "blocksize": self.blocksize,
@@ -431,6 +443,14 @@ class MicSource:
                 pass
 
     def start(self) -> None:
+        """Open the input stream and start the "mic-pump" thread.
+
+        Raises
+        ------
+        DeviceError
+            The device cannot be opened; `assemble.run_session` then removes the empty session
+            directory again.
+        """
         try:
             self._open()
         except Exception as exc:  # noqa: BLE001
@@ -441,6 +461,7 @@ class MicSource:
         self._thread.start()
 
     def stop(self) -> None:
+        """Stop the pump thread (joined for at most 10 s), then abort and close the stream."""
         self._stop.set()
         if self._thread is not None:
             self._thread.join(timeout=10)

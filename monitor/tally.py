@@ -159,18 +159,25 @@ class Tally:
     # --- figures -----------------------------------------------------------------------------
     @property
     def duration_s(self) -> float:
+        """Seconds from the stream's start to the end ``t1`` of the last window counted."""
         return self.end_t
 
     @property
     def accuracy(self) -> float | None:
+        """Correct windows over windows with truth (undecided is wrong); None without truth."""
         return self.correct / self.with_truth if self.with_truth else None
 
     @property
     def switches_per_min(self) -> float | None:
+        """Decision changes per minute of stream; None before any time has passed."""
         minutes = self.end_t / 60.0
         return self.changes / minutes if minutes > 0 else None
 
     def decided_s(self) -> dict[str, float]:
+        """Seconds each class was the decision: its decided windows times the hop.
+
+        Every class reads 0 s while the hop is unknown (a single window and no `hop_s` given).
+        """
         hop = self.hop_s or 0.0
         return {c: float(n) * hop for c, n in zip(self.classes, self.decided_windows)}
 
@@ -197,10 +204,12 @@ class Tally:
 
     @property
     def latency_median(self) -> float | None:
+        """Median decision latency after a truth change, in seconds; None when none was reached."""
         return float(np.median(self.latencies)) if self.latencies else None
 
     @property
     def latency_worst(self) -> float | None:
+        """Longest decision latency after a truth change, in seconds; None when none was reached."""
         return float(max(self.latencies)) if self.latencies else None
 
 
@@ -249,6 +258,17 @@ class LevelTally:
         self._clip: list[float] | None = None
 
     def add(self, t0: float, t1: float, level_dbfs: float, clipped: float) -> None:
+        """Count one window, in stream order, extending or closing the silent and clipping runs.
+
+        Parameters
+        ----------
+        t0, t1 : float
+            The window's start and end, session seconds.
+        level_dbfs : float
+            Its level in dBFS.
+        clipped : float
+            The share of its samples at full scale, in [0, 1].
+        """
         if level_dbfs < SILENT_BELOW_DBFS:
             self.silent_windows += 1
             self._quiet = [t0, t1] if self._quiet is None else [self._quiet[0], t1]
@@ -277,6 +297,7 @@ class LevelTally:
         return 0.0 if self._quiet is None else self._quiet[1] - self._quiet[0]
 
     def finish(self) -> LevelTally:
+        """End of the stream: close the open runs (a silent one only when long enough); self."""
         self._close_quiet()
         if self._clip is not None:
             self._keep(self.clipping, self._clip)
@@ -284,6 +305,10 @@ class LevelTally:
         return self
 
     def summary(self) -> dict:
+        """summary.json's level figures: silent and clipping stretches, their totals.
+
+        At most `MAX_STRETCHES` stretches of each kind are kept; ``silent_s`` adds up those kept.
+        """
         return {"silent_stretches": [list(s) for s in self.silent],
                 "silent_s": round(sum(b - a for a, b in self.silent), 3),
                 "clipping_stretches": [list(s) for s in self.clipping],

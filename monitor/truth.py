@@ -12,6 +12,8 @@ from monitor.errors import TruthError
 
 @dataclass(frozen=True)
 class Span:
+    """One labelled stretch of truth, from `onset` to `offset` in seconds."""
+
     onset: float
     offset: float
     label: str
@@ -25,6 +27,7 @@ class TruthTrack:
         self.spans = sorted(spans, key=lambda s: s.onset)
 
     def label_for(self, t0: float, t1: float) -> str | None:
+        """The label covering most of ``[t0, t1]``, if it covers at least half of it; else None."""
         half = (t1 - t0) / 2.0
         cover: dict[str, float] = {}
         for s in self.spans:
@@ -91,6 +94,20 @@ def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None
 
 
 def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> TruthTrack:
+    """Read a truth file (see `parse_truth`).
+
+    Parameters
+    ----------
+    path : str or Path
+        The file, UTF-8 text.
+    classes : tuple of str, optional
+        When given, every label must be one of them.
+
+    Raises
+    ------
+    TruthError
+        The file is missing, not UTF-8 text, or not valid truth lines.
+    """
     path = Path(path)
     if not path.is_file():
         raise TruthError(f"{path}: truth file not found")
@@ -102,6 +119,7 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
 
 
 def format_truth(spans: list[Span]) -> str:
+    """Spans as truth lines, times to the millisecond (the text of truth.tsv)."""
     return "".join(f"{s.onset:.3f}\t{s.offset:.3f}\t{s.label}\n" for s in spans)
 
 
@@ -120,6 +138,7 @@ class LiveTruth:
 
     @property
     def current(self) -> str | None:
+        """The label set now, or None while the truth is unknown (any thread)."""
         with self._lock:
             return self._open[1] if self._open else None
 
@@ -145,4 +164,8 @@ class LiveTruth:
         return out
 
     def label_for(self, t0: float, t1: float) -> str | None:
+        """The truth of one window from the spans told so far, the open one up to `t1`.
+
+        Called on the compute thread; the rule is `TruthTrack.label_for`'s.
+        """
         return TruthTrack(self.spans(end_t=t1)).label_for(t0, t1)

@@ -15,12 +15,29 @@ import numpy as np
 
 @dataclass
 class Window:
+    """One window: its first sample on the session clock, its samples and the gap before it."""
+
     start: int  # first sample, from session start
     samples: np.ndarray  # (window,) float32
     gap: int  # samples lost since the previous window
 
 
 class Windower:
+    """Cuts a stream, pushed chunk by chunk, into windows on the hop grid (see module docstring).
+
+    Parameters
+    ----------
+    window : int
+        Samples per window, >= 1.
+    hop : int
+        Samples between window starts, >= 1.
+
+    Raises
+    ------
+    ValueError
+        `window` or `hop` below 1.
+    """
+
     def __init__(self, window: int, hop: int) -> None:
         if window < 1 or hop < 1:
             raise ValueError(f"window={window} and hop={hop} must be >= 1")

@@ -81,6 +81,13 @@ def write_profiles(models: Path) -> list[Path]:
 
 
 def main(argv: list[str] | None = None) -> int:
+    """`python -m monitor.demo.profile`: write the profile beside every demo model; exit code 0.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments (default: the command line's); ``--models DIR`` names the models folder.
+    """
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--models", default="models", help="the models folder (default: models)")
     args = ap.parse_args(argv)

@@ -29,6 +29,8 @@ TOUR_VERSION = 2  # part of the file names' content check: an older tour is rebu
 
 
 class Leg(NamedTuple):
+    """One leg of the tour: a place (or "alarm") for some seconds, its short sounds, its fade-in."""
+
     place: str  # one of the four places, or "alarm" (no place: no truth)
     seconds: float
     events: tuple[tuple[str, float], ...] = ()  # (event, seconds from the leg's start)

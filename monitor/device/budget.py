@@ -40,6 +40,12 @@ CYCLES_PER_FRONTEND_OP = 2.0
 
 @dataclass
 class Layer:
+    """One node of the model: its operator, shapes and work per window (see module docstring).
+
+    ``filter`` is the weight tensor's shape for convolutions and fully connected layers, else
+    None; ``other_ops`` counts the comparisons of pooling or the additions of a mean.
+    """
+
     index: int
     op: str
     input: tuple[int, ...]
@@ -51,6 +57,13 @@ class Layer:
 
 @dataclass
 class Budget:
+    """What a model and its front end cost on the target, as `budget` measured and counted it.
+
+    ``arena_bytes`` is None when the model does not load in the microcontroller runtime
+    (``unsupported_ops`` then names the operator). ``frontend_ram`` also holds the caller's
+    buffers (one window of int16 PCM, the feature tensor), not only the front end's own.
+    """
+
     model: str
     runtime: str
     arena_bytes: int | None
@@ -67,17 +80,37 @@ class Budget:
 
     @property
     def macs(self) -> int:
+        """Multiply-accumulates of one inference (all layers)."""
         return sum(x.macs for x in self.layers)
 
     @property
     def ram_bytes(self) -> int:
+        """RAM in all: the arena (0 when unknown) and every entry of ``frontend_ram``."""
         return (self.arena_bytes or 0) + sum(self.frontend_ram.values())
 
     @property
     def flash_bytes(self) -> int:
+        """Flash in all: the model flatbuffer and the front end's constant tables."""
         return self.model_bytes + sum(self.frontend_flash.values())
 
     def duty_cycle(self, clock_mhz: float) -> dict[str, float]:
+        """An estimate of the share of the core one hop's work takes at `clock_mhz`.
+
+        One inference plus the front end's operations per hop, at the assumed cycles per MAC (int8
+        or float) and per front-end operation, over the cycles of one hop. An assumption, not a
+        measurement.
+
+        Parameters
+        ----------
+        clock_mhz : float
+            The core clock in MHz, > 0.
+
+        Returns
+        -------
+        dict
+            The clock, the cycle figures assumed, the model's and the front end's cycles, and
+            ``duty_cycle`` (a fraction; above 1 the core cannot keep up).
+        """
         cpm = CYCLES_PER_INT8_MAC if self.int8 else CYCLES_PER_FLOAT_MAC
         model_cycles = self.macs * cpm
         fe_cycles = sum(self.frontend_ops_per_hop.values()) * CYCLES_PER_FRONTEND_OP
@@ -89,6 +122,7 @@ class Budget:
                 "duty_cycle": per_hop / budget}
 
     def to_dict(self, clock_mhz: float | None = None) -> dict[str, Any]:
+        """The budget as JSON-ready data (``budget --json``); with a clock, its estimate too."""
         d = {"model": self.model, "runtime": self.runtime, "arena_bytes": self.arena_bytes,
              "ram_bytes": self.ram_bytes, "flash_bytes": self.flash_bytes,
              "model_bytes": self.model_bytes, "macs": self.macs, "ops": self.ops,
@@ -201,6 +235,11 @@ def budget(plan: ModelPlan, card: ModelCard) -> Budget:
 
 
 def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
+    """The budget as tables for the terminal.
+
+    Each RAM and flash figure with where it comes from, the work per layer and per hop, the
+    operators (and those the runtime cannot run), and the estimate when a clock is given.
+    """
     def kb(n: int | None) -> str:
         return "-" if n is None else f"{n / 1024:,.1f} KiB"
 

@@ -98,6 +98,11 @@ def compare(a, b, sources: list[Path]) -> dict:
 
 
 def compare_text(res: dict) -> str:
+    """A `compare` result for the terminal.
+
+    Agreements, probability differences, the int8 comparison when there is one, the front
+    end's error, the agreement per class of A, and the table of A's against B's top class.
+    """
     a, b = res["a"], res["b"]
     lines = [f"A = {a['model']} ({a['kind']}, {a['runtime']})",
              f"B = {b['model']} ({b['kind']}, {b['runtime']})",

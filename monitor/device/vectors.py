@@ -65,6 +65,7 @@ def _csv(path: Path, rows: np.ndarray, fmt: str) -> None:
 
 
 def read_csv(path: Path, dtype=np.float64) -> np.ndarray:
+    """A vectors CSV file as a 2-D array, one window per row (`dtype` for the integer files)."""
     return np.loadtxt(path, delimiter=",", dtype=dtype, ndmin=2)
 
 
@@ -77,6 +78,19 @@ def _check_target(out: Path) -> None:
 
 
 def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) -> str:
+    """The text of ``check_params.h``: what ``check.c`` checks against and its tolerances.
+
+    Parameters
+    ----------
+    card : ModelCard
+    runner : Runner
+        An int8 model also gives the input tensor's scale and zero point, so the check can
+        quantise the C front end's features itself.
+    windows : int
+        Windows written; the check insists on reading exactly as many.
+    features : numpy.ndarray
+        The written features; the feature tolerance is `FEATURE_TOL_OF_RANGE` of their range.
+    """
     from monitor.device.constants import cfloat
 
     span = float(features.max() - features.min()) if features.size else 1.0

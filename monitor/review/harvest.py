@@ -49,6 +49,12 @@ def csv_cell(value) -> str:
 
 @dataclass
 class HarvestResult:
+    """What a harvest did: snippets added and in the set per label, and those left out by cause.
+
+    ``adopted`` counts files an interrupted run had copied that are now entered in the
+    manifest; ``notes`` are the sessions' notes and why untrusted audio was skipped.
+    """
+
     added: dict[str, int] = field(default_factory=dict)
     total: dict[str, int] = field(default_factory=dict)
     duplicates: int = 0
@@ -180,6 +186,11 @@ def _sha(path: Path) -> str | None:
 
 
 def progress_bar(stream=sys.stderr):
+    """A ``progress(done, total)`` callback that draws a bar on `stream`.
+
+    It draws only on a terminal and for 20 snippets or more, so a small harvest and a pipe
+    stay quiet.
+    """
     width = 30
 
     def show(done: int, total: int) -> None:

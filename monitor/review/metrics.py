@@ -46,15 +46,22 @@ class Metrics:
 
     @property
     def latency_median(self) -> float | None:
+        """Median decision latency after a truth change, in seconds; None when none was reached."""
         import numpy as np
 
         return float(np.median(self.latencies)) if self.latencies else None
 
     @property
     def latency_worst(self) -> float | None:
+        """Longest decision latency after a truth change, in seconds; None when none was reached."""
         return float(max(self.latencies)) if self.latencies else None
 
     def to_dict(self) -> dict[str, Any]:
+        """The figures as JSON-ready data (``report --json`` and the score aggregate).
+
+        The confusion matrix comes with its row and column names (undecided last) and the
+        latencies as their median and worst.
+        """
         return {
             "windows": self.windows, "duration_s": self.duration_s,
             "windows_with_truth": self.with_truth, "accuracy": self.accuracy,

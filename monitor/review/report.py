@@ -55,6 +55,19 @@ def _switch_line(m: Metrics) -> str:
 
 
 def text_report(s: Session, ms: list[Metrics]) -> str:
+    """A session's account for the terminal (see module docstring).
+
+    Parameters
+    ----------
+    s : Session
+    ms : list of Metrics
+        Each model's metrics, A first (`model_metrics`); with two, both side by side.
+
+    Returns
+    -------
+    str
+        The lines, ending in a newline.
+    """
     m = ms[0]
     lines = [f"session {s.dir}"]
     lines += [f"  note: {n}" for n in s.notes]
@@ -255,6 +268,11 @@ def level_svg(s: Session, m: Metrics) -> str:
 
 
 def confusion_svg(m: Metrics, title: str = "") -> str:
+    """One model's confusion matrix as an SVG figure (rows: truth, columns: decision and undecided).
+
+    Each cell shows its window count; its shade is the share of its row, so classes with few
+    windows read as clearly as the common ones.
+    """
     plt = _plt()
     from matplotlib.colors import ListedColormap
 
@@ -314,6 +332,22 @@ def review_word(state: str | None) -> str:
 
 
 def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> str:
+    """A session's account as one self-contained HTML page (see module docstring).
+
+    Parameters
+    ----------
+    s : Session
+    ms : list of Metrics
+        Each model's metrics, A first.
+    embed_audio : bool
+        Embed the first `MAX_EMBEDDED_SNIPPETS` snippets as players, each only after
+        `snippets.verified_audio` accepts it.
+
+    Returns
+    -------
+    str
+        The page; every string from the session is escaped.
+    """
     e = html.escape
     m = ms[0]
 
@@ -461,6 +495,13 @@ def check_output(out: Path, mark: str, what: str) -> None:
 
 
 def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
+    """Write the HTML report to `out`, atomically; returns `out`.
+
+    Raises
+    ------
+    ScenemonError
+        `out` exists and is not an earlier report, or is one of a session's own files.
+    """
     from monitor.files import atomic_write
 
     check_output(out, REPORT_MARK, "a report")

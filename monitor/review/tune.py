@@ -83,6 +83,8 @@ def expand(grid: dict[str, list]) -> list[DecisionSettings]:
 
 @dataclass
 class Row:
+    """One decision setting's figures over all sessions, and whether it is on the front."""
+
     settings: DecisionSettings
     accuracy: float
     switches_per_min: float
@@ -91,6 +93,7 @@ class Row:
     front: bool = False
 
     def label(self) -> str:
+        """The setting in one line: smoothing (its N or alpha), enter, margin, confirm, hold."""
         s = self.settings
         m = s.smoothing
         if m in ("mean", "median"):
@@ -133,6 +136,12 @@ def _key(r: Row) -> tuple[float, float, float]:
 
 
 def mark_front(rows: list[Row]) -> None:
+    """Set each row's ``front``: True when no other row beats it (see module docstring).
+
+    A row is beaten by one at least as good on all three figures and better on one. The
+    figures are accuracy, switch rate, and the median latency with 1000 s added for each
+    truth change never reached, so a setting that misses changes does not look fast.
+    """
     keys = [_key(r) for r in rows]
     for i, r in enumerate(rows):
         a = keys[i]
@@ -140,6 +149,11 @@ def mark_front(rows: list[Row]) -> None:
 
 
 def recommend(rows: list[Row]) -> Row:
+    """The recommended row (the rule of the module docstring).
+
+    On the front, the highest accuracy; among rows within `RECOMMEND_SLACK` of it, the fewest
+    switches per minute, then the lowest latency. Without a marked front every row competes.
+    """
     front = [r for r in rows if r.front] or rows
     best = max(r.accuracy for r in front)
     near = [r for r in front if r.accuracy >= best - RECOMMEND_SLACK]
@@ -147,6 +161,26 @@ def recommend(rows: list[Row]) -> Row:
 
 
 def sweep(sessions: list[Session], grid: dict[str, list], model: int = 0) -> list[Row]:
+    """Every setting of `grid` evaluated on `sessions`, the front marked, best first.
+
+    Parameters
+    ----------
+    sessions : list of Session
+    grid : dict
+        Values per `DecisionSettings` field (`parse_grid`).
+    model : int
+        0 for model A, 1 for model B of A/B sessions.
+
+    Returns
+    -------
+    list of Row
+        Sorted by accuracy (highest first), then switch rate, then latency (as `mark_front`).
+
+    Raises
+    ------
+    ScenemonError
+        No window of any session has a truth label.
+    """
     if not any(x.get("truth") is not None for s in sessions for x in s.windows):
         raise ScenemonError(f"{sessions[0].dir}: no window has a truth label; tune needs "
                             f"sessions with truth")
@@ -157,6 +191,10 @@ def sweep(sessions: list[Session], grid: dict[str, list], model: int = 0) -> lis
 
 
 def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
+    """The front as a table for the terminal, at most `limit` rows, `chosen` marked ``>``.
+
+    A last line counts the settings and states the rule that chose the recommendation.
+    """
     out = [f"  {'':1} {'setting':<52} {'accuracy':>8} {'switch/min':>10} {'latency':>8}"]
     shown = [r for r in rows if r.front][:limit]
     for r in shown:

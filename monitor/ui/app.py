@@ -69,19 +69,27 @@ class Layout:
 
     @property
     def fits(self) -> bool:
+        """True when the live view fits: at least 80 x 24, and 9 lines for the second row."""
         return self.width >= MIN_W and self.height >= MIN_H and self.row2 >= 9
 
     @property
     def needed(self) -> tuple[int, int]:
+        """The smallest terminal (width, height) that fits with the rows of this layout.
+
+        80 wide, and tall enough for the top and footer lines, the first row, the strip and a
+        second row of 9 lines.
+        """
         return MIN_W, max(MIN_H, self.height - self.row2 + 9)
 
     # inner sizes: a round border and one cell of padding left and right
     @property
     def classes_inner(self) -> int:
+        """Inner width of the classes panel: what the first row leaves beside the decision panel."""
         return self.width - self.decision_w - 4
 
     @property
     def hears_inner(self) -> tuple[int, int]:
+        """Inner (width, height) of the "what it hears" panel, beside health and session."""
         return self.width - self.health_w - self.session_w - 4, self.row2 - 2
 
 
@@ -105,6 +113,8 @@ class SessionHooks:
 
 
 class SessionReady(Message):
+    """Posted once by the session worker with its `SessionHandle`, before the first window."""
+
     def __init__(self, handle) -> None:
         super().__init__()
         self.handle = handle
@@ -124,6 +134,11 @@ class Lane:
     tally: Tally | None = None
 
     def add(self, r) -> None:
+        """Take this model's result of the newest window (UI thread).
+
+        The decision and since when it holds, the newest finite probabilities (a faulty window
+        keeps the previous ones), the unfamiliar flag, the strip's history and the tally.
+        """
         if self.decision != r.decision:
             self.decision, self.since_t = r.decision, r.t1
         if r.probs is not None:
@@ -134,6 +149,11 @@ class Lane:
         self.tally.add(r.t0, r.t1, r.decision, r.truth, r.gap)
 
     def view(self, name: str, t1: float) -> D.ModelView:
+        """What the decision panel shows of this model at session time `t1`.
+
+        The decision, how long it has held, the top smoothed probability, the accuracy so far
+        (None without truth) and the unfamiliar flag.
+        """
         top = float(max(self.smoothed)) if self.smoothed is not None else 0.0
         acc = self.tally.accuracy if self.tally.with_truth else None
         return D.ModelView(name, self.decision, t1 - self.since_t, top, acc, self.unfamiliar)
@@ -160,6 +180,7 @@ class ViewState:
     status: SessionStatus | None = None
 
     def start(self, classes, hop_s: float, enter: float, two: bool) -> None:
+        """Set up for a session: classes and their keys, hop, enter threshold, a lane per model."""
         self.classes, self.hop_s, self.enter = tuple(classes), hop_s, enter
         self.keys = D.class_keys(self.classes)
         self.lanes = [Lane(tally=Tally(self.classes, hop_s=hop_s)) for _ in range(2 if two else 1)]
@@ -167,30 +188,41 @@ class ViewState:
     # model A's figures under their old names (the stage view and the tests read them)
     @property
     def decision(self) -> str | None:
+        """Model A's current decision (None before a session and while undecided)."""
         return self.lanes[0].decision if self.lanes else None
 
     @property
     def smoothed(self):
+        """Model A's newest smoothed probabilities (None before the first)."""
         return self.lanes[0].smoothed if self.lanes else None
 
     @property
     def decisions(self) -> deque:
+        """Model A's recent decisions, one per window (the strip's row)."""
         return self.lanes[0].decisions
 
     @property
     def tally(self) -> Tally | None:
+        """Model A's running tally (None before a session)."""
         return self.lanes[0].tally if self.lanes else None
 
     @property
     def two(self) -> bool:
+        """True in an A/B session (two lanes)."""
         return len(self.lanes) > 1
 
     @property
     def agreement(self) -> float | None:
+        """Share of windows where A and B decided alike; None with one model or before a window."""
         n = self.lanes[0].tally.windows if self.lanes else 0
         return self.agree / n if n and self.two else None
 
     def add(self, r) -> None:
+        """Take the newest window's result (model A's, B's in ``others``); UI thread.
+
+        Level, truth, features and each lane follow it; ``quiet_s`` grows by a hop for each window
+        below the silence level and starts again at 0 after a louder one.
+        """
         self.t1 = r.t1
         self.features = r.features
         self.level, self.clipped = r.level_dbfs, r.clipped
@@ -218,6 +250,7 @@ class CpuMeter:
 
 
 def too_small_text(width: int, height: int, need: tuple[int, int]) -> Text:
+    """The sentence shown instead of the live view while the terminal is smaller than `need`."""
     return Text(f"scenemon needs a terminal of at least {need[0]} x {need[1]} characters; "
                 f"this one is {width} x {height}. Make the window larger or the font "
                 f"smaller.", style=f"bold {P.TEXT}")
@@ -281,6 +314,11 @@ class MonitorApp(App):
 
     # --- layout -----------------------------------------------------------------------------
     def compose(self) -> ComposeResult:
+        """The live view's widgets: top line, two rows of panels around the strip, footer.
+
+        The first row holds decision and classes, the second what it hears, health and session; a
+        too-small notice takes the place of all of them when the terminal is too small.
+        """
         yield Static(id="top")
         with Vertical(id="main"):
             with Horizontal(id="row1"):
@@ -295,6 +333,7 @@ class MonitorApp(App):
         yield Footer()
 
     def on_mount(self) -> None:
+        """Title the panels, lay them out, start the redraw timer and the session worker."""
         titles = {"decision": "decision", "classes": "classes", "strip": "recent",
                   "hears": "what it hears", "health": "health", "session": "session"}
         for wid, title in titles.items():
@@ -305,14 +344,20 @@ class MonitorApp(App):
         self.redraw(force=True)
 
     def on_resize(self, event) -> None:
+        """Lay the view out again for the new size and redraw at once."""
         self.apply_layout(event.size.width, event.size.height)
         self.redraw(force=True)
 
     @property
     def mode_two(self) -> bool:
+        """True once an A/B session is running (two models in the handle)."""
         return self.handle is not None and len(self.handle.models) > 1
 
     def apply_layout(self, width: int | None = None, height: int | None = None) -> None:
+        """Size the panels for `width` x `height`, or show the too-small notice instead.
+
+        Without a size, the last layout's size is used (a new session may bring more classes).
+        """
         n = len(self.state.classes) if self.state.classes else 4
         if width is None or height is None:
             width, height = (self.layout.width, self.layout.height) if self.layout else \
@@ -345,6 +390,12 @@ class MonitorApp(App):
 
     @work(thread=True, exclusive=True, exit_on_error=False, name="session")
     def run_worker_session(self) -> dict:
+        """The "session" worker: run the session function on its own thread (the compute thread).
+
+        Its ready callback attaches the handle to the bridge before posting `SessionReady`, so the
+        bridge's first status already has the counts; the summary it returns is picked up by
+        `on_worker_state_changed`.
+        """
         def ready(handle) -> None:
             self.bridge.attach(handle)
             self.post_message(SessionReady(handle))
@@ -352,6 +403,11 @@ class MonitorApp(App):
         return self.start_session(SessionHooks(self.bridge, self.stop_event, ready, self.say))
 
     def on_session_ready(self, message: SessionReady) -> None:
+        """Set the view up for the session that has just become ready.
+
+        Classes, hop and enter threshold, the feature picture's axis, and the panel titles for one
+        model or two.
+        """
         h = self.handle = message.handle
         self.state.start(h.classes, h.card.hop_s, h.decisions[0].enter, len(h.models) > 1)
         self.spec = D.picture_spec(h.card)
@@ -367,6 +423,10 @@ class MonitorApp(App):
         self.dirty = True
 
     def on_new_windows(self, message: NewWindows) -> None:
+        """Drain every result waiting in the bridge into the view state (UI thread).
+
+        Before `SessionReady` the results stay in the bridge; the redraw follows at the next tick.
+        """
         if self.state.classes is None:
             return
         for r in self.bridge.drain():
@@ -374,9 +434,20 @@ class MonitorApp(App):
         self.dirty = True
 
     def on_status(self, message: Status) -> None:
+        """Keep the newest `SessionStatus` for the health and session panels.
+
+        The handler of the bridge's `Status` message, on the UI thread; not the engine observer
+        hook of the same name.
+        """
         self.state.status = message.status
 
     def on_worker_state_changed(self, event: Worker.StateChanged) -> None:
+        """React to the end of the session worker.
+
+        On success keep the summary, drain the last windows and show whether it failed; on an
+        error leave the app with that error's exit code. After a success the app exits when q was
+        pressed or when it was told to end with the session (`exit_when_done`).
+        """
         if event.worker.name != "session":
             return
         if event.state == WorkerState.SUCCESS:
@@ -400,6 +471,7 @@ class MonitorApp(App):
             self.exit(self.return_code_for())
 
     def return_code_for(self) -> int:
+        """The app's exit code: the error's, else FAILURE when the summary reports one, else OK."""
         if self.error is not None:
             return exit_code_for(self.error)
         return ExitCode.FAILURE if summary_failure(self.summary) else ExitCode.OK
@@ -421,6 +493,7 @@ class MonitorApp(App):
         return True
 
     def get_key_display(self, binding: Binding) -> str:
+        """The footer's key: "1-N" for the truth keys (N classes, at most 9), else textual's own."""
         if binding.id == "truth" and self.state.classes:
             n = min(len(self.state.classes), 9)
             return "1" if n == 1 else f"1-{n}"
@@ -435,6 +508,10 @@ class MonitorApp(App):
         return self.handle.now_s()
 
     def action_truth(self, k: int) -> None:
+        """Keys 1-9: from the newest sample on the truth is class `k` (1-based); 0: unknown.
+
+        Only with live truth and while the session runs; a key beyond the classes does nothing.
+        """
         st = self.state
         if self.handle is None or self.finished or self.handle.live_truth is None:
             return
@@ -449,6 +526,11 @@ class MonitorApp(App):
         self.notice(f"truth: {label or 'unknown'} from {D.clock(self._now())}", 2.0)
 
     def action_capture(self) -> None:
+        """Key c: save the last seconds as a manual snippet labelled with the truth now.
+
+        The truth is the one last set with a key (live truth) or the truth file's; without one the
+        label is asked for first.
+        """
         if self.handle is None or self.finished or self.handle.capture is None:
             return
         label = self.key_truth if self.handle.live_truth is not None else self.state.truth
@@ -466,27 +548,35 @@ class MonitorApp(App):
             self.notice(f"captured {snip['t1'] - snip['t0']:.1f} s as {label}")
 
     def action_model(self) -> None:
+        """Key m: show the other model's figures in the session panel (A/B sessions only)."""
         if self.mode_two:
             self.shown_model = 1 - self.shown_model
             self.dirty = True
 
     def action_pause(self) -> None:
+        """Key p: freeze or resume the display; the session and capture go on."""
         self.paused = not self.paused
         self.dirty = True
         self.redraw(force=True)
 
     def action_stage(self) -> None:
+        """Key s: open the stage view, or close it when it is showing."""
         if isinstance(self.screen, StageScreen):
             self.pop_screen()
         else:
             self.push_screen(StageScreen())
 
     def action_relabel(self) -> None:
+        """Key r: open the relabel view of this session's snippets (once the session exists)."""
         if self.handle is None:
             return
         self.push_screen(RelabelScreen(self.handle.dir, list(self.state.classes)))
 
     def action_quit_session(self) -> None:
+        """Key q: stop the session cleanly; the app exits once the worker has closed it.
+
+        When the session has already ended, the app exits at once.
+        """
         self.quitting = True
         self.stop_event.set()
         self.message = "closing the session …"
@@ -521,6 +611,12 @@ class MonitorApp(App):
         return left
 
     def redraw(self, force: bool = False) -> None:
+        """Redraw the panels from the view state (the timer calls it `redraw_hz` times a second).
+
+        Unless something changed or `force` is given, only an expired notice is cleared. A paused
+        display is drawn only when forced, the health panel at most once a second, and a panel
+        whose text did not change is not updated.
+        """
         if not (self.dirty or force):
             if self.notice_text and time.monotonic() >= self.notice_until:
                 self.notice_text = ""
@@ -608,6 +704,7 @@ class MonitorApp(App):
             color=not self.no_color)
 
     def on_unmount(self) -> None:
+        """Set the stop event, so that the session ends however the app is closed."""
         self.stop_event.set()
 
 
@@ -625,6 +722,7 @@ class RelabelApp(App):
         self.theme = "scenemon"
 
     def on_mount(self) -> None:
+        """Open the relabel view as the app's only screen (its back key leaves the app)."""
         self.push_screen(RelabelScreen(self.session_dir, self.class_names, standalone=True))
 
 

@@ -21,6 +21,7 @@ class NewWindows(Message):
     """Results are waiting in the bridge (many notifications collapse into one)."""
 
     def can_replace(self, message: Message) -> bool:
+        """True for another `NewWindows`: one waiting notification is enough to drain them all."""
         return isinstance(message, NewWindows)
 
 
@@ -42,29 +43,45 @@ class Status(Message):
         self.status = status
 
     def can_replace(self, message: Message) -> bool:
+        """True for another `Status`: only the newest snapshot matters."""
         return isinstance(message, Status)
 
 
 class UIBridge(ObserverBase):
+    """The engine observer that hands results and status to the UI (see module docstring).
+
+    Parameters
+    ----------
+    app : textual.app.App
+        Receives the messages through ``post_message``, which never blocks.
+    """
+
     def __init__(self, app) -> None:
         self.app = app
         self._q: collections.deque[WindowResult] = collections.deque()
         self.handle = None  # the session's handle, attached before the first window
 
     def attach(self, handle) -> None:
+        """Keep the session's handle, for each status's snippet count and writer error."""
         self.handle = handle
 
     def on_window(self, result: WindowResult) -> None:
+        """Queue the result and post a `NewWindows` notification; compute thread, never blocks."""
         self._q.append(result)
         self.app.post_message(NewWindows())
 
     def on_status(self, status: EngineStatus) -> None:
+        """Post the engine's snapshot with the snippet count and the writer's error as a `Status`.
+
+        Runs on the compute thread and never blocks.
+        """
         h = self.handle
         snippets = h.capture.total if h is not None and h.capture is not None else 0
         error = h.writer.error_text if h is not None else None
         self.app.post_message(Status(SessionStatus(status, snippets, error)))
 
     def drain(self) -> list[WindowResult]:
+        """Every result queued so far, oldest first (UI thread)."""
         out = []
         while True:
             try:

@@ -199,6 +199,7 @@ def decision_text(classes, keys, models: list[ModelView], truth: str | None, *,
 
 
 def name_width(classes, limit: int = 12) -> int:
+    """Width of the class-name column: the longest class name, at most `limit`."""
     return min(limit, max(len(c) for c in classes))
 
 
@@ -290,6 +291,7 @@ def strip_text(classes, keys, rows: list[tuple[str, list]], width: int, hop_s: f
 
 
 def strip_title(width: int, hop_s: float) -> str:
+    """The strip's border title: the seconds it spans at `width` and the hop of one cell."""
     span = strip_cells(width) * hop_s
     return f"last {span:.0f} s · a cell per {hop_s:g} s hop"
 
@@ -396,6 +398,7 @@ AXIS_W = 4
 
 
 def khz(f_hz: float) -> str:
+    """A frequency in Hz as its kHz axis label: one decimal below 10 kHz, none from there on."""
     f = f_hz / 1000.0
     return f"{f:.1f}" if f < 9.95 else f"{f:.0f}"
 
@@ -639,6 +642,7 @@ STAGE_SCALES = (2, 1)  # cells per font pixel, across; one line per pixel row
 
 
 def big_width(word: str, scale: int) -> int:
+    """Cells `word` takes in the stage font at `scale` cells per pixel (letters one pixel apart)."""
     return len(word) * (FONT_W + 1) * scale - scale if word else 0
 
 

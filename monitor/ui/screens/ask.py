@@ -18,11 +18,13 @@ class AskLabel(ModalScreen[str | None]):
         self.class_names, self.prompt = list(classes), prompt
 
     def compose(self) -> ComposeResult:
+        """The question, a numbered line per class, 0 for unknown, and how to cancel."""
         lines = [self.prompt, ""] + [f"  {i + 1}  {c}" for i, c in enumerate(self.class_names)]
         lines += ["  0  unknown", "", "Esc: cancel"]
         yield Static("\n".join(lines), id="ask")
 
     def on_key(self, event) -> None:
+        """A digit answers: 0 with "unknown", 1 to N with that class; every digit key stops here."""
         if event.key.isdigit():
             k = int(event.key)
             if k == 0:
@@ -32,4 +34,5 @@ class AskLabel(ModalScreen[str | None]):
             event.stop()
 
     def action_cancel(self) -> None:
+        """Escape: dismiss with None (no label)."""
         self.dismiss(None)

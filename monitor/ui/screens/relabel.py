@@ -60,18 +60,25 @@ class RelabelScreen(Screen):
         self.last_status = ""
 
     def compose(self) -> ComposeResult:
+        """The title, the snippets table, the status line and the footer."""
         yield Static(f" snippets of session {self.session_dir.name}", id="relabel_title")
         yield DataTable(id="snippets", cursor_type="row", zebra_stripes=True)
         yield Static("", id="relabel_status")
         yield Footer()
 
     def on_mount(self) -> None:
+        """Add the table's columns and fill it."""
         table = self.query_one(DataTable)
         for name, width in COLUMNS:
             table.add_column(name, width=width, key=name)
         self.reload()
 
     def reload(self) -> None:
+        """Read the snippets again and refill the table, keeping the cursor row.
+
+        The table shows what the sidecars on disk say after each change; the status line counts
+        the snippets.
+        """
         table = self.query_one(DataTable)
         row = table.cursor_row
         table.clear()
@@ -99,10 +106,12 @@ class RelabelScreen(Screen):
         return Text(label[:12], style=P.class_colour(self.class_names, label))
 
     def status(self, text: str) -> None:
+        """Show `text` on the status line (kept in `last_status`)."""
         self.last_status = text
         self.query_one("#relabel_status", Static).update(text)
 
     def current(self) -> S.SnippetFile | None:
+        """The snippet under the cursor, or None when there is none."""
         if not self.items:
             return None
         return self.items[self.query_one(DataTable).cursor_row]
@@ -113,18 +122,24 @@ class RelabelScreen(Screen):
         self.action_play()
 
     def action_keep(self) -> None:
+        """Key k: mark the snippet under the cursor reviewed and kept."""
         cur = self.current()
         if cur is not None:
             S.keep(cur, self.session_dir)
             self.reload()
 
     def action_drop(self) -> None:
+        """Key d: mark the snippet under the cursor dropped (harvest leaves it out)."""
         cur = self.current()
         if cur is not None:
             S.drop(cur, self.session_dir)
             self.reload()
 
     def action_label(self) -> None:
+        """Key l: ask for another label and relabel the snippet under the cursor.
+
+        Its first label is kept in the sidecar's ``relabeled_from``.
+        """
         cur = self.current()
         if cur is None:
             return
@@ -137,6 +152,10 @@ class RelabelScreen(Screen):
         self.app.push_screen(AskLabel(self.class_names, "What is this sound?"), done)
 
     def action_play(self) -> None:
+        """Space or Enter: play the snippet under the cursor on the "playback" thread.
+
+        The view does not wait; the status line says when it has played, or why it cannot.
+        """
         cur = self.current()
         if cur is None:
             return
@@ -170,6 +189,7 @@ class RelabelScreen(Screen):
             pass
 
     def action_close(self) -> None:
+        """Escape, r or q: back to the live view, or leave the app when the view runs on its own."""
         if self.standalone:
             self.app.exit(0)
         else:

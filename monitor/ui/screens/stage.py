@@ -73,28 +73,34 @@ class StageScreen(Screen):
         self.show = "A"
 
     def compose(self) -> ComposeResult:
+        """The stage view's one panel and the footer."""
         with Vertical(id="stage"):
             yield Static(id="stage_view")
         yield Footer()
 
     def on_mount(self) -> None:
+        """Show both models in an A/B session, then draw."""
         if self.app.state.two:
             self.show = "both"
         self.refresh_view()
 
     def on_resize(self, event) -> None:
+        """Draw again for the new size."""
         self.refresh_view()
 
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
+        """Offer key m (A, B, both) only in an A/B session."""
         if action == "show_next":
             return self.app.state.two
         return True
 
     def action_show_next(self) -> None:
+        """Key m: show model A, then B, then both."""
         self.show = SHOW[(SHOW.index(self.show) + 1) % len(SHOW)]
         self.refresh_view()
 
     def refresh_view(self) -> None:
+        """Draw from the app's view state (the app calls it on each redraw while the view shows)."""
         st = self.app.state
         if st.classes is None:
             return
