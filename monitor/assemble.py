@@ -212,7 +212,7 @@ class SessionHandle:
 
 def describe_session(plan: SessionPlan, models: list[LoadedModel],
                      decisions: list[DecisionSettings], source: Source) -> dict[str, Any]:
-    """session.json (DESIGN.md): model A as a one-model session has it, plus ``models``."""
+    """session.json (the README's session directory): model A as a one-model session has it, plus ``models``."""
     a = models[0]
     meta = {
         "tool": "scenemon", "version": __version__,

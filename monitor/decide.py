@@ -1,4 +1,4 @@
-"""Decision smoothing and the hysteresis state machine, exactly as DESIGN.md states them.
+"""Decision smoothing and the hysteresis state machine, exactly as the README states them.
 
 Smoothing of the raw probability vectors ``p_t``:
 
@@ -72,7 +72,7 @@ class Smoother:
 
 
 class Hysteresis:
-    """The decision state machine (DESIGN.md, "Decision semantics").
+    """The decision state machine (the README's decision rules).
 
     For each window, in this order:
 

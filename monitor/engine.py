@@ -69,7 +69,7 @@ class WindowResult:
     _line: str | None = field(default=None, repr=False, compare=False)
 
     def record(self) -> dict[str, Any]:
-        """The `windows.jsonl` fields (DESIGN.md); made once, shared by every reader (the
+        """The `windows.jsonl` fields (the README's session directory); made once, shared by every reader (the
         writer and a printer need the same dict; nobody changes it)."""
         if self._record is None:
             object.__setattr__(self, "_record", self._make_record())

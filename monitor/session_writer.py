@@ -7,7 +7,7 @@ never stalls the audio or compute path. The writing process holds the session's 
 (`files.SessionLock`) from the start to the close, so `repair` and the start-up notice can
 tell a session being written from one that was killed.
 
-Layout (DESIGN.md): ``session.json``, ``windows.jsonl`` (one line per window, flushed as it
+Layout (the README's session directory): ``session.json``, ``windows.jsonl`` (one line per window, flushed as it
 happens, one ``write`` per record; ``windows.b.jsonl`` for a second model), ``truth.tsv``,
 ``audio.wav`` (PCM_16 at the model rate, header brought up to date about once a second so a
 killed process leaves a WAV any reader opens; later segments ``audio-0001.wav``...),

@@ -1,4 +1,4 @@
-"""Decision rules of DESIGN.md: worked examples and a property test against a plain reference."""
+"""The decision rules the README states: worked examples and a property test against a plain reference."""
 
 import numpy as np
 import pytest
@@ -72,7 +72,7 @@ def test_double_threshold_worked_example():
 
 
 def test_plain_argmax_with_neutral_settings():
-    # DESIGN.md: none / confirm 1 / enter 0 / margin 0 / exit 0 is the plain argmax
+    # the README: none / confirm 1 / enter 0 / margin 0 / exit 0 is the plain argmax
     cfg = DecisionSettings(smoothing="none", confirm=1, enter=0.0, margin=0.0, exit=0.0)
     rng = np.random.default_rng(0)
     p = rng.dirichlet(np.ones(4), size=200)
@@ -118,7 +118,7 @@ def test_tie_goes_to_lowest_index():
 
 # --- property test against a deliberately simple second implementation ------------------
 def reference(probs, t1, cfg):
-    """Straight from DESIGN.md's text, with lists and no numpy tricks."""
+    """Straight from the README's text, with lists and no numpy tricks."""
     n = cfg.smoothing_windows
     D, set_t, k, L, out = None, 0.0, 0, None, []
     prev = None

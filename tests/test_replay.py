@@ -146,7 +146,7 @@ def test_foreign_rate_and_channels_are_resampled(tmp_path, demo_card):
 
 @pytest.mark.slow
 def test_wav_stays_readable_when_killed(tmp_path, tour):
-    # DESIGN.md: the header is rewritten about once a second, so a killed process leaves a WAV
+    # the README's session directory: the header is rewritten about once a second, so a killed process leaves a WAV
     # that Python's own `wave` module (not only libsndfile) opens
     out = tmp_path / "k"
     p = subprocess.Popen([sys.executable, "-m", "monitor", "replay", str(tour[0]), "--model",

@@ -151,7 +151,7 @@ def test_tflite_never_imports_tensorflow():
 
 
 def test_core_imports_no_ui_or_audio_device():
-    # STYLE.md: the core works without textual or sounddevice imported
+    # the core works without textual or sounddevice imported (DEVELOPERS.md)
     code = ("import sys; import monitor.card, monitor.frontend, monitor.decide, monitor.tally,"
             " monitor.session_writer, monitor.session_reader, monitor.snippets, monitor.files,"
             " monitor.runners, monitor.engine, monitor.sources, monitor.ringbuffer,"
