@@ -57,11 +57,11 @@ class LoadedModel:
                 "card": self.card.name}
 
 
-def load_card(plan: ModelPlan) -> ModelCard:
+def card_of(plan: ModelPlan) -> ModelCard:
     """The card of a planned model: its ``--card``, or the card beside the model file.
 
     Run first for every model, so that a bad card is refused before any model loads or any
-    session directory exists. Unlike `card.load_card`, it takes the plan, not a path.
+    session directory exists.
 
     Parameters
     ----------
@@ -84,7 +84,7 @@ def load_card(plan: ModelPlan) -> ModelCard:
 
 def load_model(plan: ModelPlan, card: ModelCard | None = None) -> LoadedModel:
     """Card (unless given) and runner of one model, checked against each other."""
-    card = card or load_card(plan)
+    card = card or card_of(plan)
     runner = load_runner(plan.path, card, runtime=plan.runtime, trust_model=plan.trust)
     from monitor.novelty import profile_beside
 
@@ -267,7 +267,7 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
     say("loading the model …")
     if not plan.models:
         raise ScenemonError("no model given (--model M)")
-    cards = [load_card(m) for m in plan.models]
+    cards = [card_of(m) for m in plan.models]
     decisions = [decision_settings(c, plan.decision) for c in cards]
     truth: TruthTrack | None = None
     if plan.truth is not None:

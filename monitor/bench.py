@@ -47,13 +47,13 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
     if not seconds > 0:
         raise ScenemonError(f"--seconds {seconds} must be above 0")
     t0 = time.perf_counter()
-    from monitor.assemble import load_card, load_model, replay_file
+    from monitor.assemble import card_of, load_model, replay_file
     from monitor.decide import Decider
     from monitor.frontend import FrontEnd
     from monitor.sources import StreamResampler
 
     t_import = time.perf_counter() - t0
-    card = load_card(plan)
+    card = card_of(plan)
     t1 = time.perf_counter()
     loaded = load_model(plan, card)
     runner = loaded.runner

@@ -302,7 +302,8 @@ def add_capture_flags(p: argparse.ArgumentParser) -> None:
     g.add_argument("--max-snippet", type=positive, metavar="SECONDS",
                    help=f"longest snippet [{c.max_s}]")
     g.add_argument("--capture-every", type=seconds, metavar="SECONDS",
-                   help=f"at most one snippet per (truth, predicted) pair this often [{c.every_s}]")
+                   help=f"at most one snippet of a kind this often: per (truth, predicted) pair for "
+                        f"disagreements, per reason for unfamiliar and uncertain sounds [{c.every_s}]")
     g.add_argument("--uncertain-below", type=fraction, metavar="P",
                    help=f"uncertain when the top smoothed probability is below P [{c.uncertain_below}]")
     g.add_argument("--uncertain-margin", type=fraction, metavar="P",

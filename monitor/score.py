@@ -190,13 +190,13 @@ def _progress(done: int, total: int, audio_s: float, t0: float, stream=sys.stder
 
 
 def _describe_models(models: tuple[ModelPlan, ...]) -> tuple[list, list[dict]]:
-    from monitor.assemble import load_card
+    from monitor.assemble import card_of
     from monitor.card import card_beside
     from monitor.runners import file_sha256
 
     cards, described = [], []
     for m in models:
-        card = load_card(m)  # bad card: exit 2 before any work
+        card = card_of(m)  # bad card: exit 2 before any work
         cards.append(card)
         text = Path(m.card or card_beside(m.path)).read_bytes()
         described.append({"path": str(m.path), "sha256": file_sha256(m.path),

@@ -223,7 +223,7 @@ def budget(plan: ModelPlan, card: ModelCard) -> Budget:
         name = text.split("operator ", 1)[1].split(";")[0].split(" (")[0].strip()
         unsupported = [name]
         notes.append(text)
-        int8 = False
+        int8 = load_runner(path, card).model_kind == "tflite-int8"
     ram = c_buffers(card) if card.kind != "waveform" else {}
     ram = {f"front end: {k}": v for k, v in ram.items()}
     ram["one window of int16 PCM"] = 2 * card.window_samples
@@ -283,9 +283,9 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
 
 def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> int:
     """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime."""
-    from monitor.assemble import load_card
+    from monitor.assemble import card_of
 
-    card = load_card(plan)
+    card = card_of(plan)
     if clock_mhz is not None and not clock_mhz > 0:
         raise ScenemonError(f"--clock-mhz {clock_mhz} must be above 0")
     b = budget(plan, card)
