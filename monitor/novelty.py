@@ -121,7 +121,7 @@ class Profile:
 
 
 def time_axis_of(card: ModelCard) -> int:
-    return 1 if card.layout == "mel_time" else 0
+    return card.time_axis
 
 
 def fit_profile(features: np.ndarray, card: ModelCard, *,
@@ -167,7 +167,7 @@ def load_profile(path: Path, card: ModelCard) -> Profile:
             shrink = float(z["shrinkage"]) if "shrinkage" in z else 0.0
     except (OSError, KeyError, ValueError) as exc:
         raise ScenemonError(f"{path}: not a readable novelty profile ({exc})") from None
-    bands = card.feature_shape[-1 - time_axis_of(card)] if len(card.feature_shape) == 2 else 1
+    bands = card.bands
     if mean.shape != (2 * bands,) or cov.shape != (2 * bands, 2 * bands):
         raise ScenemonError(f"{path}: holds {mean.shape[0]} numbers per window but the card "
                             f"{card.name} gives {2 * bands}; make it again with scenemon profile")

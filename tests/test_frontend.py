@@ -4,6 +4,7 @@ import numpy as np
 import pytest
 import scipy.signal
 
+from conftest import card_dict
 from monitor.card import card_from_dict
 from monitor.frontend import (
     FrontEnd,
@@ -21,7 +22,7 @@ def make_card(**fe):
     base = {"kind": "logmel", "frame_length": 400, "frame_step": 160, "fft_length": 512,
             "mel_bands": 40, "fmin": 0.0, "fmax": 8000.0, "mel_scale": "htk",
             "mel_norm": "none", "mel_triangles": "hz", "power": 2.0, "log": "ln",
-            "log_offset": 1e-6}
+            "log_offset": 1e-6, "window": "hann", "layout": "time_mel"}
     base.update(fe)
     return card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000,
                            "window_s": 1.0, "hop_s": 0.5}, "frontend": base})
@@ -193,10 +194,9 @@ def test_standardisation_matches_sklearn(layout):
     x = np.stack([_noise(s) for s in range(4)])
     feats = fe0.logmel(x).reshape(-1, 40)
     sc = StandardScaler().fit(feats)
-    card = card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000},
-                           "frontend": {"layout": layout, "fmax": 8000.0},
-                           "scaling": {"mean": sc.mean_.tolist(),
-                                       "std": np.sqrt(sc.var_).tolist()}})
+    card = card_from_dict(card_dict(frontend={**card0.frontend.settings(), "layout": layout},
+                                    scaling={"mean": sc.mean_.tolist(),
+                                             "std": np.sqrt(sc.var_).tolist()}))
     ours = FrontEnd(card).batch(x)
     ref = sc.transform(feats).reshape(4, 98, 40)
     if layout == "mel_time":
@@ -245,7 +245,7 @@ def test_hamming_matches_scipy():
 def test_pcm16_quantises_like_the_device():
     card = make_card(pcm_bits=16)
     x = np.full((1, 16000), 0.3, np.float32) + np.float32(1e-7)
-    q = FrontEnd(card)._pcm(x)
+    q = FrontEnd(card).stages[0].run(x)
     assert np.all(q * 32768 == np.round(q * 32768))
 
 

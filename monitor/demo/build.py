@@ -49,7 +49,7 @@ def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
     for seed in seeds:
         for k, place in enumerate(CLASSES):
             w = windows_of(clip(place, CLIP_S, seed), c.window_samples, c.hop_samples)
-            xs.append(fe.logmel(w))
+            xs.append(fe.unscaled(w))
             ys.append(np.full(len(w), k))
     return np.concatenate(xs).astype(np.float32), np.concatenate(ys)
 
