@@ -102,7 +102,7 @@ class Key:
     def check(self, label: str, value: Any) -> Any:
         """The value, converted (an integer is a fine float); CardProblem when not allowed."""
         def bad(v: Any = value) -> CardProblem:
-            return CardProblem(f"{label}={_show(v)} must be {self.allowed()}")
+            return CardProblem(f"{label}={show_value(v)} must be {self.allowed()}")
 
         if self.type is bool:
             if not isinstance(value, bool):
@@ -120,7 +120,7 @@ class Key:
         else:
             value = float(value)
             if not math.isfinite(value):
-                raise CardProblem(f"{label}={_show(value)} must be a finite number "
+                raise CardProblem(f"{label}={show_value(value)} must be a finite number "
                                   f"({self.allowed()})")
         if self.choices and value not in self.choices:
             raise bad(value)
@@ -131,7 +131,7 @@ class Key:
         return value
 
 
-def _show(value: Any) -> str:
+def show_value(value: Any) -> str:
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, str):
@@ -434,10 +434,10 @@ def frontend_from_table(table: dict[str, Any], audio: AudioConfig) -> FrontendCo
                     k.check(label, table[name])
                     if k.off is not NO_OFF:
                         users = ", ".join(f'"{n}"' for n, s in KINDS.items() if st.name in s)
-                        raise CardProblem(f"{label}={_show(table[name])} has no effect with "
+                        raise CardProblem(f"{label}={show_value(table[name])} has no effect with "
                                           f"kind = \"{kind}\" (the {st.name} stage runs in "
                                           f"kind {users}); remove it or set it to "
-                                          f"{_show(k.off)}")
+                                          f"{show_value(k.off)}")
                 continue
             needed = k.needs is None or values.get(k.needs) is True
             if not given:
@@ -447,7 +447,7 @@ def frontend_from_table(table: dict[str, Any], audio: AudioConfig) -> FrontendCo
                 continue
             value = k.check(label, table[name])
             if not needed and value != k.off:
-                raise CardProblem(f"{label}={_show(value)} needs {k.needs} = true")
+                raise CardProblem(f"{label}={show_value(value)} needs {k.needs} = true")
             values[name] = value
         if st.name in used:
             runs[st.name] = st.config(**values)

@@ -20,7 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor.card import ModelCard
-from monitor.stages import STAGES, _show, build_stages, c_define, cfloat, sparse_bank
+from monitor.stages import STAGES, build_stages, c_define, cfloat, show_value, sparse_bank
 
 KIND_CODE = {"waveform": 0, "spectrogram": 1, "logmel": 2, "mfcc": 3}
 
@@ -33,7 +33,7 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
     running = {s.name for s in stages if s.active}
     names = ", ".join('"' + c.replace("\\", "\\\\").replace('"', '\\"') + '"'
                       for c in card.classes)
-    summary = ", ".join(f"{k} = {_show(v)}" for k, v in card.frontend.settings().items())
+    summary = ", ".join(f"{k} = {show_value(v)}" for k, v in card.frontend.settings().items())
     lines = [
         "/* frontend_constants.h: written by `scenemon vectors` for one model card.",
         f" * card: {Path(card.name).name}" + (f"\n * model sha256: {model_sha256}"
