@@ -208,8 +208,7 @@ class ModelCard:
     def describe_shape(self) -> str:
         if self.frontend.framing is None:
             return f"{self.window_samples} samples"
-        what = {"spectrogram": "bins", "mfcc": "coefficients"}.get(self.kind, "bands")
-        return f"{self.frames_per_window} frames x {self.bands} {what}"
+        return f"{self.frames_per_window} frames x {self.bands} {self.frontend.band_name()}"
 
     def settings_dict(self) -> dict[str, Any]:
         """The card as plain data, for session.json."""

@@ -191,7 +191,7 @@ def _ranges(idx: np.ndarray) -> str:
 
 
 def _axes(card: ModelCard) -> tuple[str, str]:
-    what = {"spectrogram": "bins", "mfcc": "coefficients"}.get(card.kind, "bands")
+    what = card.frontend.band_name()
     return ("frames", what) if card.layout != "mel_time" else (what, "frames")
 
 

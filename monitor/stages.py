@@ -388,6 +388,13 @@ class FrontendConfig:
             width = STAGES[name].width(cfg, self, width)
         return width
 
+    def band_name(self) -> str:
+        """What the values of a frame are: "bins", "bands", "coefficients" ("samples")."""
+        name = "samples"
+        for stage, _ in self.stage_configs():
+            name = STAGES[stage].band_name or name
+        return name
+
     def time_major_shape(self, audio: AudioConfig) -> tuple[int, ...]:
         """One window's features before layout: ``(frames, bands)``, or ``(samples,)``."""
         if self.framing is None:
@@ -523,6 +530,7 @@ class Stage:
     config: ClassVar[type | None]
     part: ClassVar[Part]
     left: ClassVar[int] = 0  # samples at a window's start that differ from the stream's
+    band_name: ClassVar[str | None] = None  # what its output values per frame are called
 
     def __init__(self, card: ModelCard) -> None:
         self.card = card
@@ -745,6 +753,7 @@ class WindowStage(Stage):
 
 class SpectrumStage(Stage):
     name, config, part = "spectrum", SpectrumConfig, "frames"
+    band_name = "bins"
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
@@ -778,6 +787,7 @@ class SpectrumStage(Stage):
 
 class MelStage(Stage):
     name, config, part = "mel", MelConfig, "features"
+    band_name = "bands"
 
     def __init__(self, card: ModelCard) -> None:
         super().__init__(card)
@@ -889,6 +899,7 @@ class LogStage(Stage):
 
 class DctStage(Stage):
     name, config, part = "dct", DctConfig, "features"
+    band_name = "coefficients"
 
     def __init__(self, card: ModelCard) -> None:
         super().__init__(card)

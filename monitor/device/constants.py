@@ -20,9 +20,7 @@ from pathlib import Path
 import numpy as np
 
 from monitor.card import ModelCard
-from monitor.stages import STAGES, build_stages, c_define, cfloat, show_value, sparse_bank
-
-KIND_CODE = {"waveform": 0, "spectrogram": 1, "logmel": 2, "mfcc": 3}
+from monitor.stages import KINDS, STAGES, build_stages, c_define, cfloat, show_value, sparse_bank
 
 __all__ = ["header", "c_buffers", "c_tables", "cfloat", "sparse_bank", "scaling_tables"]
 
@@ -41,7 +39,8 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
         f" * {summary} */",
         "#ifndef SCENEMON_FRONTEND_CONSTANTS_H", "#define SCENEMON_FRONTEND_CONSTANTS_H", "",
         "#include <stdint.h>", "",
-        c_define("SM_KIND", KIND_CODE[card.kind], "0 waveform, 1 spectrogram, 2 logmel, 3 mfcc"),
+        c_define("SM_KIND", list(KINDS).index(card.kind),
+                 ", ".join(f"{i} {k}" for i, k in enumerate(KINDS))),
         c_define("SM_SAMPLE_RATE", card.sample_rate),
         c_define("SM_WINDOW_SAMPLES", card.window_samples),
         c_define("SM_HOP_SAMPLES", card.hop_samples),
