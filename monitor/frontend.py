@@ -94,13 +94,16 @@ class FrontEnd:
         """Shared frames of a stream of windows one hop apart: frame j starts at sample
         ``first_sample + j * frame_step`` of `signal`; frames first .. first + count - 1."""
         f = self.framing
-        y = signal
-        for s in self._samples:
-            y = s.stream(y)
         step, length = f.cfg.frame_step, f.cfg.frame_length
         a = f.first_sample + first * step
-        view = np.lib.stride_tricks.sliding_window_view(y[a:a + (count - 1) * step + length],
-                                                        length)[::step]
+        left = sum(s.left for s in self._samples)  # samples the stages look back
+        y = signal[a - left:a + (count - 1) * step + length]
+        for s in self._samples:
+            y = s.stream(y)
+        y = np.ascontiguousarray(y[left:])
+        item = y.strides[0]
+        view = np.lib.stride_tricks.as_strided(y, (count, length), (step * item, item),
+                                               writeable=False)
         return self._run(self._frames[1:], view)
 
     def _finish(self, spectra: np.ndarray) -> np.ndarray:
@@ -188,10 +191,9 @@ class FrontEnd:
         ``q + j`` is this run's shared frame j.
         """
         c = self.card
-        windows = windows_of(signal, c.window_samples, c.hop_samples)[:n]
         f = self.framing
         if f is None or f.share_step == 0:
-            return self.batch(windows), None
+            return self.batch(windows_of(signal, c.window_samples, c.hop_samples)[:n]), None
         lo, hi = f.shared
         cnt, r = hi - lo + 1, f.share_step
         total = (n - 1) * r + cnt
@@ -206,8 +208,10 @@ class FrontEnd:
         idx = (np.arange(n) * r)[:, None] + np.arange(cnt)[None, :]
         spectra[:, lo:hi + 1] = shared[idx]
         if f.edges.size:
+            windows = windows_of(signal, c.window_samples, c.hop_samples)[:n]
             spectra[:, f.edges] = self._spectra(windows, f.edges)
-        return self._finish(spectra), shared[(n - 1) * r:].copy()
+        last = shared if n == 1 else shared[(n - 1) * r:].copy()
+        return self._finish(spectra), last
 
     def _frame_shape(self) -> tuple[int, ...]:
         fe = self.card.frontend
