@@ -114,3 +114,16 @@ def test_scaling_npz_is_read(tmp_path):
     raw = card_dict(scaling={"mean": "s.npz", "std": "s.npz", "per_window": "standardise"})
     c = card_from_dict(raw, tmp_path / "m.toml")
     assert float(c.mean[0]) == 0.5 and c.scaling.per_window == "standardise"
+
+
+def test_the_readme_lists_every_card_key():
+    # the README's card listing names every key of every table, and says which are required
+    from monitor.card import _TABLES
+
+    text = (MODELS.parent / "README.md").read_text()
+    listing = text[text.index("## The model card"):text.index("### When the numbers differ")]
+    for table, keys in _TABLES.items():
+        for name in keys:
+            assert f"\n{name} = " in listing, f"{table}.{name} is not in the README's card"
+    for name in OPTIONAL | {"per_window"}:
+        assert f"{name}`" in listing.split("**May be left out**")[1].split("\n-")[0], name
