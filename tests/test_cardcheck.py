@@ -165,3 +165,10 @@ def test_bad_input(made, tmp_path, what, problem):
     r = cli("card", "check", d / "lib.toml", audio, f, "--start", start)
     assert r.returncode == 2, r.stdout + r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and problem in r.stderr, r.stderr
+
+
+def test_help_has_an_example():
+    r = cli("card", "check", "--help")
+    assert r.returncode == 0 and "examples:" in r.stdout and "FEATURES.npy" in r.stdout
+    r = cli("card")
+    assert r.returncode == 2 and "give an action" in r.stderr
