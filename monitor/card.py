@@ -44,7 +44,7 @@ SMOOTHING = ("none", "mean", "ema", "median")
 
 @dataclass(frozen=True)
 class DecisionSettings:
-    """Smoothing and hysteresis settings (DESIGN.md, "Decision semantics")."""
+    """Smoothing and hysteresis settings (the README's decision rules)."""
 
     smoothing: Smoothing = "mean"
     smoothing_windows: int = 3
@@ -188,7 +188,8 @@ class ModelCard:
 
     @property
     def frames_per_window(self) -> int:
-        """``1 + (L - n) // frame_step`` (DESIGN, "Front ends"); 0 for a kind without frames."""
+        """``1 + (L - n) // frame_step``, L the (padded) window, n the frame's span; 0 for a kind
+        without frames."""
         return self.frontend.frames(self.audio)
 
     @property

@@ -9,7 +9,7 @@ stage class, one field of `FrontendConfig` and its place in `KINDS`, here, plus 
 ``device/frontend.c`` and its tests; the card, `FrontEnd`, the C header, ``budget`` and
 ``card check`` pick it up from here.
 
-The order and the exact semantics are DESIGN's "Front ends": int16 quantisation,
+The order and the exact semantics (the README's "The model card"): int16 quantisation,
 pre-emphasis within each window, centre padding, framing, window, ``|rfft|^power``, mel
 matrix, log (offset, floor, log, dB reference, top_db), DCT-II and lifter, layout, scaling.
 
@@ -693,7 +693,7 @@ class FramingStage(Stage):
         return view if which is None else view[..., which, :]
 
     def reference(self, x: np.ndarray) -> np.ndarray:
-        """Frames ``(n, frames, span)``: all the samples each frame covers (DESIGN)."""
+        """Frames ``(n, frames, span)``: all the samples each frame covers, as the card says."""
         c = self.cfg
         idx = np.arange(c.span)[None, :] + c.frame_step * np.arange(self.frames)[:, None]
         return x[..., idx]

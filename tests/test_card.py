@@ -73,8 +73,8 @@ def test_every_required_key_is_named_when_missing(kind):
             card_from_dict(broken)
 
 
-def test_the_design_card_listing_loads():
-    # DESIGN's card lists every further key at its default beside kind = "logmel" (mfcc = 0,
+def test_a_card_listing_every_key_at_its_default_loads():
+    # a card may list every further key at its default beside kind = "logmel" (mfcc = 0,
     # dct_norm, lifter = 0 for a stage the kind does not run): those values change nothing
     raw = card_dict(frontend={"preemphasis": 0.0, "center": False, "pad_mode": "constant",
                               "window_in_frame": "start", "log_floor": 0.0, "db_ref": "one",
@@ -105,7 +105,8 @@ def test_same_front_end_and_settings_dict(demo_card):
     ({"kind": "spectrogram", "layout": "mel_time"}, (257, 98)),
 ])
 def test_feature_shapes(changes, shape):
-    # librosa's 101 frames with center=True and 97 with win_length < n_fft (REFERENCES's counts)
+    # librosa.stft's frame counts: 1 + (16000 + 512 - 512) // 160 = 101 with center=True and
+    # 1 + (16000 - 512) // 160 = 97 with win_length < n_fft (computed)
     assert card_from_dict(card_dict(frontend=changes, scaling=None)).feature_shape == shape
 
 

@@ -449,7 +449,7 @@ def option_card(name, per_window=False):
 @pytest.mark.parametrize("per_window", [False, True])
 def test_float32_against_the_float64_reference(name, per_window):
     # each stage's float32 run against its own float64 reference (built separately: the
-    # literal DESIGN semantics, scipy's DCT): within 1e-4 of the features' range
+    # literal semantics of the card, scipy's DCT): within 1e-4 of the features' range
     from monitor.frontend import reference_features
 
     card = option_card(name, per_window)
