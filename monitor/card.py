@@ -1,16 +1,17 @@
 """The model card: the sidecar TOML that says exactly how the model hears.
 
-`load_card(path)` reads and validates it into one frozen `ModelCard`. Every field a front
-end needs is explicit; nothing is inferred silently. Units are in the field names
-(`window_s`, `hop_s`) or documented here (`fmin`, `fmax` in Hz, `sample_rate` in Hz).
+`load_card(path)` reads and validates it into one frozen `ModelCard` with one frozen config
+per card table: `AudioConfig`, the stages' `FrontendConfig` (its keys are declared by the
+stages in `monitor.stages`), `ScalingConfig` and `DecisionSettings`. Every key a front end
+needs is explicit; nothing is inferred silently: a missing key that changes the numbers and
+an unknown key are refused. Units are in the key names (`window_s`, `hop_s`) or documented
+with the key (`fmin`, `fmax` and `sample_rate` in Hz).
 """
 
 from __future__ import annotations
 
 import dataclasses
-import math
 import sys
-import warnings
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Literal
@@ -18,6 +19,18 @@ from typing import Any, Literal
 import numpy as np
 
 from monitor.errors import CardError, ModelError
+from monitor.stages import (
+    MAX_SAMPLES,
+    SCALING_KEYS,
+    STAGES,
+    CardProblem,
+    FrontendConfig,
+    ScalingConfig,
+    frontend_from_table,
+    key,
+    keys_of,
+    nearest,
+)
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -31,7 +44,7 @@ SMOOTHING = ("none", "mean", "ema", "median")
 
 @dataclass(frozen=True)
 class DecisionSettings:
-    """Smoothing and hysteresis settings (DESIGN.md, "Decision semantics")."""
+    """Smoothing and hysteresis settings (the README's decision rules)."""
 
     smoothing: Smoothing = "mean"
     smoothing_windows: int = 3
@@ -71,55 +84,15 @@ class DecisionSettings:
 
 
 @dataclass(frozen=True)
-class ModelCard:
-    """Everything the front end, runner and decider need to treat audio as the device will.
+class AudioConfig:
+    """The ``[audio]`` table: the rate the model was trained on, its window and hop."""
 
-    Attributes
-    ----------
-    classes : tuple of str
-        Output classes in the model's output order.
-    sample_rate : int
-        Hz, the rate the model was trained on.
-    window_s, hop_s : float
-        Seconds of audio per decision, and between decisions.
-    kind : {"logmel", "waveform"}
-        Front end; "waveform" passes the samples straight to the model.
-    frame_length, frame_step, fft_length : int
-        STFT frame size, hop and FFT size in samples (no centre padding).
-    fmin, fmax : float
-        Mel filterbank edges in Hz.
-    mean, std : numpy.ndarray
-        Standardisation, broadcastable to one window's features (frames, bands).
-    """
+    sample_rate: int = key(int, "Hz, what the model was trained on", lo=1000, hi=768000)
+    window_s: float = key(float, "seconds of audio per decision (a whole number of samples)",
+                          lo=0.0, above=True)
+    hop_s: float = key(float, "seconds between decisions (a whole number of samples)",
+                       lo=0.0, above=True)
 
-    path: Path | None
-    classes: tuple[str, ...]
-    sample_rate: int = 16000
-    window_s: float = 1.0
-    hop_s: float = 0.5
-    kind: Literal["logmel", "waveform"] = "logmel"
-    frame_length: int = 400
-    frame_step: int = 160
-    fft_length: int = 512
-    window: Literal["hann", "hamming"] = "hann"
-    window_symmetric: bool = False
-    mel_bands: int = 40
-    fmin: float = 0.0
-    fmax: float = 8000.0
-    mel_scale: Literal["htk", "slaney"] = "htk"
-    mel_norm: Literal["none", "slaney"] = "none"
-    mel_triangles: Literal["hz", "mel"] = "hz"
-    power: float = 2.0
-    log: Literal["ln", "log10", "db"] = "ln"
-    log_offset: float = 1e-6
-    layout: Literal["time_mel", "mel_time"] = "time_mel"
-    pcm_bits: int = 0
-    output: Literal["probabilities", "logits"] = "probabilities"
-    mean: np.ndarray = field(default_factory=lambda: np.zeros((), np.float32), compare=False)
-    std: np.ndarray = field(default_factory=lambda: np.ones((), np.float32), compare=False)
-    decision: DecisionSettings = field(default_factory=DecisionSettings)
-
-    # Derived values
     @property
     def window_samples(self) -> int:
         return int(round(self.window_s * self.sample_rate))
@@ -128,34 +101,115 @@ class ModelCard:
     def hop_samples(self) -> int:
         return int(round(self.hop_s * self.sample_rate))
 
+
+@dataclass(frozen=True)
+class ModelCard:
+    """Everything the front end, runner and decider need to treat audio as the device will.
+
+    One frozen config per card table; the derived values (and the names older code reads)
+    are properties.
+
+    Attributes
+    ----------
+    classes : tuple of str
+        Output classes in the model's output order.
+    audio : AudioConfig
+        ``[audio]``: sample rate (Hz), window and hop (seconds).
+    frontend : monitor.stages.FrontendConfig
+        ``[frontend]``: the kind and one config per stage it runs.
+    scaling : monitor.stages.ScalingConfig
+        ``[scaling]``: mean and std broadcastable to one window's model input, per_window.
+    decision : DecisionSettings
+        ``[decision]``.
+    output : {"probabilities", "logits"}
+        What the model's output is ("logits": scenemon applies a softmax).
+    """
+
+    path: Path | None
+    classes: tuple[str, ...]
+    audio: AudioConfig
+    frontend: FrontendConfig
+    scaling: ScalingConfig = field(default_factory=ScalingConfig)
+    decision: DecisionSettings = field(default_factory=DecisionSettings)
+    output: Literal["probabilities", "logits"] = "probabilities"
+
+    # Derived values and the flat names kept for the code that reads them
+    @property
+    def sample_rate(self) -> int:
+        return self.audio.sample_rate
+
+    @property
+    def window_s(self) -> float:
+        return self.audio.window_s
+
+    @property
+    def hop_s(self) -> float:
+        return self.audio.hop_s
+
+    @property
+    def window_samples(self) -> int:
+        return self.audio.window_samples
+
+    @property
+    def hop_samples(self) -> int:
+        return self.audio.hop_samples
+
+    @property
+    def kind(self) -> str:
+        return self.frontend.kind
+
+    @property
+    def pcm_bits(self) -> int:
+        return self.frontend.pcm.pcm_bits
+
+    @property
+    def layout(self) -> str:
+        """"time_mel" or "mel_time"; "samples" for a kind without frames."""
+        return self.frontend.layout.layout if self.frontend.layout is not None else "samples"
+
+    @property
+    def time_axis(self) -> int:
+        """The frames axis of one window's model input (0 without frames)."""
+        return 1 if self.layout == "mel_time" else 0
+
+    @property
+    def bands(self) -> int:
+        """Values per frame of the model input: mel bands, coefficients or bins (1 for
+        samples)."""
+        return self.frontend.bands()
+
+    @property
+    def mean(self) -> np.ndarray:
+        return self.scaling.mean
+
+    @property
+    def std(self) -> np.ndarray:
+        return self.scaling.std
+
     @property
     def frames_per_window(self) -> int:
-        """1 + (window samples - frame_length) // frame_step (no centre padding)."""
-        return 1 + (self.window_samples - self.frame_length) // self.frame_step
+        """``1 + (L - n) // frame_step``, L the (padded) window, n the frame's span; 0 for a kind
+        without frames."""
+        return self.frontend.frames(self.audio)
 
     @property
     def feature_shape(self) -> tuple[int, ...]:
         """Shape of one window's model input, without batch or channel axis."""
-        if self.kind == "waveform":
-            return (self.window_samples,)
-        if self.layout == "time_mel":
-            return (self.frames_per_window, self.mel_bands)
-        return (self.mel_bands, self.frames_per_window)
+        return self.frontend.shape(self.audio)
 
     def same_front_end(self, other: ModelCard) -> bool:
         """True when `other` computes the very same features from the same windows."""
-        keys = ("sample_rate", "window_s", "hop_s", *FRONTEND_KEYS)
-        return (all(getattr(self, k) == getattr(other, k) for k in keys)
-                and np.array_equal(self.mean, other.mean) and np.array_equal(self.std, other.std))
+        return (self.audio == other.audio and self.frontend == other.frontend
+                and self.scaling.same(other.scaling))
 
     @property
     def name(self) -> str:
         return str(self.path) if self.path else "<card>"
 
     def describe_shape(self) -> str:
-        if self.kind == "waveform":
+        if self.frontend.framing is None:
             return f"{self.window_samples} samples"
-        return f"{self.frames_per_window} frames x {self.mel_bands} bands"
+        return f"{self.frames_per_window} frames x {self.bands} {self.frontend.band_name()}"
 
     def settings_dict(self) -> dict[str, Any]:
         """The card as plain data, for session.json."""
@@ -165,10 +219,10 @@ class ModelCard:
         return {
             "classes": list(self.classes),
             "output": self.output,
-            "audio": {"sample_rate": self.sample_rate, "window_s": self.window_s,
-                      "hop_s": self.hop_s},
-            "frontend": {k: getattr(self, k) for k in FRONTEND_KEYS},
-            "scaling": {"mean": arr(self.mean), "std": arr(self.std)},
+            "audio": dataclasses.asdict(self.audio),
+            "frontend": self.frontend.settings(),
+            "scaling": {"mean": arr(self.mean), "std": arr(self.std),
+                        "per_window": self.scaling.per_window},
             "card": str(self.path) if self.path else None,
         }
 
@@ -200,8 +254,12 @@ class ModelCard:
             shape, channel = shape[:-1], True
         if len(shape) != len(want) or any(s is not None and s != w for s, w in zip(shape, want)):
             hint = ""
-            if self.kind == "logmel":
-                hint = ": check frame_step, frame_length, window_s, mel_bands and layout"
+            if self.frontend.framing is not None:
+                keys = self.frontend.settings()
+                shaping = [k for k in ("frame_step", "frame_length", "fft_length", "window_s",
+                                       "center", "window_in_frame", "mel_bands", "mfcc",
+                                       "layout") if k in keys or k == "window_s"]
+                hint = f": check {', '.join(shaping[:-1])} and {shaping[-1]}"
             raise ModelError(
                 f"{model_path}: model expects {tuple(input_shape)} but the card "
                 f"{self.name} gives {self.describe_shape()}{hint}"
@@ -214,23 +272,11 @@ class ModelCard:
         return channel
 
 
-FRONTEND_KEYS = (
-    "kind", "frame_length", "frame_step", "fft_length", "window", "window_symmetric",
-    "mel_bands", "fmin", "fmax", "mel_scale", "mel_norm", "mel_triangles", "power", "log",
-    "log_offset", "layout", "pcm_bits",
-)
-_CHOICES = {
-    "kind": ("logmel", "waveform"),
-    "window": ("hann", "hamming"),
-    "mel_scale": ("htk", "slaney"),
-    "mel_norm": ("none", "slaney"),
-    "mel_triangles": ("hz", "mel"),
-    "log": ("ln", "log10", "db"),
-    "layout": ("time_mel", "mel_time"),
-    "output": ("probabilities", "logits"),
-}
-_TABLES = {"audio": ("sample_rate", "window_s", "hop_s"), "frontend": FRONTEND_KEYS,
-           "scaling": ("mean", "std"),
+FRONTEND_KEYS = ("kind", *dict.fromkeys(k for st in STAGES.values()
+                                        if st.config is not None and st.name != "scaling"
+                                        for k in keys_of(st.config)))
+_TABLES = {"audio": tuple(keys_of(AudioConfig)), "frontend": FRONTEND_KEYS,
+           "scaling": SCALING_KEYS,
            "decision": tuple(f.name for f in dataclasses.fields(DecisionSettings))}
 _TOP = ("classes", "output", *_TABLES)
 
@@ -240,42 +286,69 @@ def card_beside(model_path: str | Path) -> Path:
     return Path(model_path).with_suffix(".toml")
 
 
+def read_card_table(path: str | Path) -> dict[str, Any]:
+    """The parsed TOML of a card file (a UTF-8 byte-order mark is allowed), not validated.
+
+    Raises
+    ------
+    CardError
+        The file is missing, not a regular file, not UTF-8 or not TOML.
+    """
+    from monitor.files import read_regular_bytes
+
+    path = Path(path)
+    if not path.exists():
+        raise CardError(f"{path}: model card not found (give one with --card, or put "
+                        f"a .toml with the model's stem beside it)")
+    try:
+        data = read_regular_bytes(path)
+    except OSError as exc:
+        raise CardError(f"{path}: the model card cannot be read "
+                        f"({exc.strerror or exc})") from None
+    try:
+        return tomllib.loads(data.decode("utf-8-sig"))
+    except UnicodeDecodeError:
+        raise CardError(f"{path}: not a UTF-8 text file, so not a model card") from None
+    except tomllib.TOMLDecodeError as exc:
+        raise CardError(f"{path}: not valid TOML ({exc})") from None
+
+
 def load_card(path: str | Path) -> ModelCard:
     """Load and validate a model card.
 
     Raises
     ------
     CardError
-        With the file, the field, its value and the rule broken.
+        With the file, the key, its value and the rule broken.
     """
-    path = Path(path)
-    if not path.is_file():
-        raise CardError(f"{path}: model card not found (give one with --card, or put "
-                        f"a .toml with the model's stem beside it)")
-    try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise CardError(f"{path}: not valid TOML ({exc})") from None
-    return card_from_dict(raw, path)
+    return card_from_dict(read_card_table(path), Path(path))
 
 
 def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
-    """Validate a parsed card (see `load_card`)."""
+    """Validate a parsed card (see `load_card`).
+
+    Every value is checked; an unknown key is refused with the nearest known one; a key that
+    changes the numbers must be given (only the switches that are off by default may be left
+    out); combinations that make no sense are refused. Sizes are bounded before anything is
+    allocated.
+    """
     where = str(path) if path else "<card>"
 
     def fail(msg: str) -> CardError:
         return CardError(f"{where}: {msg}")
 
-    for key in raw:
-        if key not in _TOP:
-            warnings.warn(f"{where}: unknown key {key!r} ignored", stacklevel=2)
+    for name in raw:
+        if name not in _TOP:
+            raise fail(f"{name} is not a card key{nearest(name, _TOP)}")
     for table, keys in _TABLES.items():
         sub = raw.get(table, {})
         if not isinstance(sub, dict):
             raise fail(f"[{table}] must be a table")
-        for key in sub:
-            if key not in keys:
-                warnings.warn(f"{where}: unknown key {table}.{key} ignored", stacklevel=2)
+        if table == "frontend":
+            continue  # the stages' own check names the nearest of their keys
+        for name in sub:
+            if name not in keys:
+                raise fail(f"{table}.{name} is not a card key{nearest(name, keys)}")
 
     classes = raw.get("classes")
     if classes is None:
@@ -286,130 +359,88 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
     if len(set(classes)) != len(classes):
         dup = sorted({c for c in classes if classes.count(c) > 1})
         raise fail(f"classes lists {', '.join(dup)} more than once")
+    output = raw.get("output", "probabilities")
+    if output not in ("probabilities", "logits"):
+        raise fail(f"output={output!r} must be one of probabilities, logits")
 
-    kw: dict[str, Any] = {"path": path, "classes": tuple(classes)}
-    defaults = {f.name: f.default for f in dataclasses.fields(ModelCard)
-                if f.default is not dataclasses.MISSING}
+    try:
+        audio = _audio(raw.get("audio", {}))
+        if "frontend" not in raw:
+            raise CardProblem("[frontend] is missing: the card must say how the features are "
+                              "made (kind and the keys of its stages)")
+        frontend = frontend_from_table(raw["frontend"], audio)
+    except CardProblem as exc:
+        raise fail(str(exc)) from None
 
-    def take(table: str | None, key: str) -> None:
-        src = raw if table is None else raw.get(table, {})
-        if key not in src:
-            return
-        value = src[key]
-        want = defaults[key]
-        label = key if table is None else f"{table}.{key}"
-        if isinstance(want, bool):
-            if not isinstance(value, bool):
-                raise fail(f"{label}={value!r} must be true or false")
-        elif isinstance(want, int):
-            if isinstance(value, bool) or not isinstance(value, int):
-                raise fail(f"{label}={value!r} must be an integer")
-        elif isinstance(want, float):
-            if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise fail(f"{label}={value!r} must be a number")
-            value = float(value)
-            if not math.isfinite(value):
-                raise fail(f"{label}={value!r} must be finite")
-        elif isinstance(want, str):
-            if value not in _CHOICES.get(key, (value,)):
-                raise fail(f"{label}={value!r} must be one of {', '.join(_CHOICES[key])}")
-        kw[key] = value
-
-    take(None, "output")
-    for key in _TABLES["audio"]:
-        take("audio", key)
-    for key in FRONTEND_KEYS:
-        take("frontend", key)
-
-    sr = kw.get("sample_rate", defaults["sample_rate"])
-    g = {**defaults, **kw}
-    if sr <= 0:
-        raise fail(f"audio.sample_rate={sr} must be > 0")
-    for key in ("window_s", "hop_s"):
-        v = g[key]
-        if v <= 0:
-            raise fail(f"audio.{key}={v} must be > 0")
-        n = v * sr
-        if abs(n - round(n)) > 1e-6:
-            raise fail(f"audio.{key}={v} is not a whole number of samples at {sr} Hz "
-                       f"({n:.4f} samples)")
-    if g["kind"] == "logmel":
-        nyq = sr / 2
-        checks = [
-            (g["frame_length"] >= 2, f"frontend.frame_length={g['frame_length']} must be >= 2"),
-            (g["frame_step"] >= 1, f"frontend.frame_step={g['frame_step']} must be >= 1"),
-            (g["fft_length"] >= g["frame_length"],
-             f"frontend.frame_length={g['frame_length']} must not exceed "
-             f"fft_length={g['fft_length']}"),
-            (g["frame_length"] <= round(g["window_s"] * sr),
-             f"frontend.frame_length={g['frame_length']} is longer than the window "
-             f"({round(g['window_s'] * sr)} samples)"),
-            (g["mel_bands"] >= 1, f"frontend.mel_bands={g['mel_bands']} must be >= 1"),
-            (0 <= g["fmin"] < g["fmax"],
-             f"frontend.fmin={g['fmin']} must be >= 0 and below fmax={g['fmax']}"),
-            (g["fmax"] <= nyq, f"frontend.fmax={g['fmax']} is above the Nyquist frequency "
-                               f"{nyq:g} Hz of sample_rate={sr}"),
-            (g["power"] in (1.0, 2.0), f"frontend.power={g['power']} must be 1 or 2"),
-            (g["log_offset"] > 0, f"frontend.log_offset={g['log_offset']} must be > 0"),
-            (g["pcm_bits"] in (0, 16), f"frontend.pcm_bits={g['pcm_bits']} must be 0 or 16"),
-        ]
-        for ok, msg in checks:
-            if not ok:
-                raise fail(msg)
-    elif g["pcm_bits"] not in (0, 16):
-        raise fail(f"frontend.pcm_bits={g['pcm_bits']} must be 0 or 16")
-
-    card_shape = ModelCard(**{**kw, "decision": DecisionSettings()}).feature_shape
-    scaling = raw.get("scaling", {})
-    kw["mean"], kw["std"] = _load_scaling(scaling, card_shape, g, path, fail)
+    shape = frontend.shape(audio)
+    scaling = _scaling(raw.get("scaling", {}), frontend, shape, path, fail)
 
     dec = raw.get("decision", {})
     dkw = {}
     dfields = {f.name: f.default for f in dataclasses.fields(DecisionSettings)}
-    for key, value in dec.items():
-        if key not in dfields:
-            continue
-        want = dfields[key]
+    for k, value in dec.items():
+        want = dfields[k]
         if isinstance(want, int) and (isinstance(value, bool) or not isinstance(value, int)):
-            raise fail(f"decision.{key}={value!r} must be an integer")
+            raise fail(f"decision.{k}={value!r} must be an integer")
         if isinstance(want, float):
             if isinstance(value, bool) or not isinstance(value, (int, float)):
-                raise fail(f"decision.{key}={value!r} must be a number")
+                raise fail(f"decision.{k}={value!r} must be a number")
             value = float(value)
-        dkw[key] = value
+        dkw[k] = value
     try:
-        kw["decision"] = DecisionSettings(**dkw)
+        decision = DecisionSettings(**dkw)
     except ValueError as exc:
         raise fail(f"[decision] {exc}") from None
-    return ModelCard(**kw)
+    return ModelCard(path=path, classes=tuple(classes), audio=audio, frontend=frontend,
+                     scaling=scaling, decision=decision, output=output)
 
 
-def _load_scaling(scaling: dict[str, Any], shape: tuple[int, ...], g: dict[str, Any],
-                  path: Path | None, fail: Any) -> tuple[np.ndarray, np.ndarray]:
-    """Mean and std as float32 arrays broadcastable to one window's features."""
-    mean, std = scaling.get("mean", 0.0), scaling.get("std", 1.0)
+def _audio(table: dict[str, Any]) -> AudioConfig:
+    values = {}
+    for name, k in keys_of(AudioConfig).items():
+        if name not in table:
+            raise CardProblem(f"audio.{name} is missing: it changes the numbers and has no "
+                              f"default; give {k.allowed()} ({k.doc})")
+        values[name] = k.check(f"audio.{name}", table[name])
+    sr = values["sample_rate"]
+    for name in ("window_s", "hop_s"):
+        n = values[name] * sr
+        if abs(n - round(n)) > 1e-6:
+            raise CardProblem(f"audio.{name}={values[name]} is not a whole number of samples "
+                              f"at {sr} Hz ({n:.4f} samples)")
+        if not 1 <= round(n) <= MAX_SAMPLES:
+            raise CardProblem(f"audio.{name}={values[name]} is {round(n)} samples at {sr} Hz; "
+                              f"it must be from 1 to {MAX_SAMPLES} samples")
+    return AudioConfig(**values)
+
+
+def _scaling(table: dict[str, Any], fe: FrontendConfig, shape: tuple[int, ...],
+             path: Path | None, fail: Any) -> ScalingConfig:
+    """Mean and std as float32 arrays broadcastable to one window's model input."""
+    per = keys_of(ScalingConfig)["per_window"]
+    try:
+        per_window = per.check("scaling.per_window", table.get("per_window", per.default))
+    except CardProblem as exc:
+        raise fail(str(exc)) from None
+    mean, std = table.get("mean", 0.0), table.get("std", 1.0)
     if isinstance(mean, str) or isinstance(std, str):
         if mean != std:
             raise fail("scaling.mean and scaling.std must name the same .npz file")
-        npz = (path.parent if path else Path(".")) / mean
-        try:
-            with np.load(npz, allow_pickle=False) as data:
-                mean, std = data["mean"], data["std"]
-        except (OSError, KeyError, ValueError) as exc:
-            raise fail(f"scaling file {npz} cannot be read: it needs arrays 'mean' and "
-                       f"'std' ({exc})") from None
+        mean, std = _scaling_file(mean, path, fail)
     out = []
-    bands_axis = 0 if (g["kind"] == "logmel" and g["layout"] == "mel_time") else -1
+    bands = fe.bands()
+    mel_time = fe.layout is not None and fe.layout.layout == "mel_time"
     for name, value in (("mean", mean), ("std", std)):
         try:
             a = np.asarray(value, dtype=np.float32)
         except (TypeError, ValueError):
-            raise fail(f"scaling.{name} must be a number, a list of numbers, or a .npz file") from None
-        if a.ndim == 1 and g["kind"] == "logmel":
-            if a.shape[0] != g["mel_bands"]:
-                raise fail(f"scaling.{name} has {a.shape[0]} values but mel_bands="
-                           f"{g['mel_bands']}")
-            if bands_axis == 0:
+            raise fail(f"scaling.{name} must be a number, a list of numbers, or a .npz "
+                       f"file") from None
+        if a.ndim == 1 and len(shape) == 2:
+            if a.shape[0] != bands:
+                raise fail(f"scaling.{name} has {a.shape[0]} values but the features have "
+                           f"{bands} per frame")
+            if mel_time:
                 a = a[:, None]
         elif a.ndim >= 1 and a.shape != shape:
             raise fail(f"scaling.{name} has shape {a.shape}; one window's features are {shape}")
@@ -418,7 +449,31 @@ def _load_scaling(scaling: dict[str, Any], shape: tuple[int, ...], g: dict[str, 
         if name == "std" and np.any(a <= 0):
             raise fail("scaling.std must be > 0 everywhere")
         out.append(a)
-    return out[0], out[1]
+    return ScalingConfig(out[0], out[1], per_window)
+
+
+def _scaling_file(name: str, path: Path | None, fail: Any) -> tuple[np.ndarray, np.ndarray]:
+    import io
+
+    from monitor.files import read_regular_bytes
+
+    npz = (path.parent if path else Path(".")) / name
+    if npz.suffix.lower() != ".npz":
+        raise fail(f"scaling names {name}, but the scaling file must be a .npz holding arrays "
+                   f"'mean' and 'std' (numpy.savez(file, mean=..., std=...)), not "
+                   f"{npz.suffix or 'a file without extension'}")
+    try:
+        data = read_regular_bytes(npz)
+    except OSError as exc:
+        raise fail(f"scaling file {npz} cannot be read ({exc.strerror or exc})") from None
+    try:
+        with np.load(io.BytesIO(data), allow_pickle=False) as z:
+            if not isinstance(z, np.lib.npyio.NpzFile):  # pragma: no cover
+                raise ValueError("not an .npz archive")
+            return np.asarray(z["mean"]), np.asarray(z["std"])
+    except (OSError, KeyError, ValueError, AttributeError, EOFError) as exc:
+        raise fail(f"scaling file {npz} is not an .npz holding arrays 'mean' and 'std' "
+                   f"({type(exc).__name__}: {exc})") from None
 
 
 def card_for_model(model_path: str | Path, card: str | Path | None = None) -> ModelCard:
@@ -449,5 +504,5 @@ def card_for_model(model_path: str | Path, card: str | Path | None = None) -> Mo
     return load_card(beside)
 
 
-__all__ = ["DecisionSettings", "ModelCard", "load_card", "card_from_dict", "card_for_model",
+__all__ = ["AudioConfig", "DecisionSettings", "ModelCard", "read_card_table", "load_card", "card_from_dict", "card_for_model",
            "card_beside"]

@@ -15,6 +15,7 @@ from pathlib import Path
 from monitor import __version__
 from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence
 from monitor.flags import (
+    EXAMPLES,
     Parser,
     add_capture_flags,
     add_decision_flags,
@@ -24,8 +25,20 @@ from monitor.flags import (
     fraction,
     positive,
     positive_int,
+    seconds,
     subcommand,
 )
+
+CARD_CHECK_HELP = """\
+Compare the card's features of one window of AUDIO with FEATURES.npy: what your
+training code computed for the window that starts at --start, unscaled (or with
+--scaled after the card's scaling), in the model's input order (a channel axis of
+1 allowed). Prints the shapes, the max abs difference (tolerance: 1e-3 of the
+file's range) and which frames and bands it sits in. When they differ, it tries
+the card with one key changed, then two (center, pad_mode, window_in_frame,
+mel_scale, mel_norm, mel_triangles, power, log, log_offset/log_floor, db_ref,
+top_db, window, window_symmetric, pcm_bits, layout, dct_norm) and prints the card
+lines that make it match. Exit 0 match, 1 mismatch, 2 bad input."""
 
 
 def build_parser() -> argparse.ArgumentParser:
@@ -202,6 +215,26 @@ def build_parser() -> argparse.ArgumentParser:
     p.add_argument("--json", action="store_true",
                    help="print arena_bytes, ram_bytes, flash_bytes, macs, ops, "
                         "unsupported_ops and the rest as JSON")
+
+    p = subcommand(sub, "card", "check a model card against features from training code",
+             "Model card tools. card check: compute one window of AUDIO through the card's "
+             "front end and compare it with FEATURES.npy from your own training code; when "
+             "they differ, say where, and try the card with one key, then two keys changed.")
+    actions = p.add_subparsers(dest="card_command", metavar="ACTION", parser_class=Parser)
+    c = actions.add_parser("check", help="compare the card's features with a .npy from training",
+                           description=CARD_CHECK_HELP,
+                           epilog=EXAMPLES["card check"],
+                           formatter_class=argparse.RawDescriptionHelpFormatter)
+    c.add_argument("card", metavar="CARD", help="the model card (.toml)")
+    c.add_argument("audio", metavar="AUDIO", help="the recording the features were made from")
+    c.add_argument("features", metavar="FEATURES.npy",
+                   help="one window's features from your training code (numpy.save)")
+    c.add_argument("--start", type=seconds, default=0.0, metavar="SECONDS",
+                   help="where the window starts in AUDIO (default 0)")
+    c.add_argument("--scaled", action="store_true",
+                   help="FEATURES.npy is after the card's [scaling] (default: before it)")
+    c.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
+                   help="show tracebacks")
 
     for p in sub.choices.values():  # --debug also after the command; SUPPRESS keeps the top one
         p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
@@ -436,11 +469,21 @@ def cmd_profile(args) -> int:
                        out=Path(args.out) if args.out else None, quantile=args.quantile)
 
 
+def cmd_card(args) -> int:
+    if args.card_command != "check":
+        raise ScenemonError("card: give an action: scenemon card check CARD AUDIO FEATURES.npy "
+                            "(see scenemon card --help)")
+    from monitor.cardcheck import run_card_check
+
+    return run_card_check(Path(args.card), Path(args.audio), Path(args.features),
+                          start_s=args.start, scaled=args.scaled)
+
+
 HANDLERS = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices, "demo": cmd_demo,
             "bench": cmd_bench, "report": cmd_report, "tune": cmd_tune, "harvest": cmd_harvest,
             "relabel": cmd_relabel, "quantize": cmd_quantize, "compare": cmd_compare,
             "vectors": cmd_vectors, "repair": cmd_repair, "score": cmd_score,
-            "profile": cmd_profile, "budget": cmd_budget}
+            "profile": cmd_profile, "budget": cmd_budget, "card": cmd_card}
 
 
 def main(argv: list[str] | None = None) -> int:

@@ -361,13 +361,10 @@ class Engine:
         return min(0.05, max(poll, missing / self.card.sample_rate))
 
     def _features(self, fe: FrontEnd, wins: list[Window]) -> np.ndarray:
-        hop, win = self.card.hop_samples, self.card.window_samples
-        if len(wins) > 1 and hop <= win and all(b.start - a.start == hop
-                                                 for a, b in zip(wins, wins[1:])):
-            # one hop apart: frames shared by overlapping windows are computed once
-            span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]])
-            return fe.batch_consecutive(span, len(wins))
-        return fe.batch(np.stack([w.samples for w in wins]))
+        # live as in fast replay, a frame shared by overlapping windows is computed once (the
+        # front end's stream keeps the newest window's frames); the same numbers as whole
+        # windows, byte for byte
+        return fe.stream.features([w.start for w in wins], [w.samples for w in wins])
 
     def _levels(self, wins: list[Window]) -> tuple[np.ndarray, np.ndarray]:
         """Level and clipped share of each window, from hop-long pieces (`window_levels`)."""

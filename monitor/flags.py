@@ -60,6 +60,14 @@ EXAMPLES = {
     "budget": """examples:
   scenemon budget --model models/demo.int8.tflite
   scenemon budget --model models/demo.int8.tflite --clock-mhz 80 --json""",
+    "card check": """examples:
+  scenemon card check models/demo.toml recordings/demo/tour.wav train_feats.npy
+  scenemon card check m.toml clip.wav clip_features.npy --start 2.5 --scaled
+
+  # train_feats.npy: what your training code gives for the window, e.g.
+  #   np.save("train_feats.npy", my_features(audio[0:16000]))""",
+    "card": """examples:
+  scenemon card check models/demo.toml recordings/demo/tour.wav train_feats.npy""",
     "profile": """examples:
   scenemon profile --model models/demo.tflite recordings/site-a recordings/site-b
   scenemon profile --model m.tflite training/clips/*.wav --out m.profile.npz --quantile 0.99""",

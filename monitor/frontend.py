@@ -1,9 +1,21 @@
-"""The device-faithful front end: framing, window, FFT, mel filterbank, log, scaling, layout.
+"""The device-faithful front end: the card's stages run in order, float32 throughout.
 
-Pure numpy, float32 throughout (as the device computes it). The window and the mel matrix
-are built once per card (`FrontEnd(card)`), never per window. `FrontEnd.batch` computes
-many windows at once for fast replay; `FrontEnd.single` is the same computation for one
-window and gives the same numbers.
+`FrontEnd(card)` builds the stages once per card (`monitor.stages`: window, mel matrix, DCT
+matrix, scaling), never per window. `batch` computes whole windows; `single` is the same
+computation for one window; `batch_consecutive` and `stream` compute each frame once for
+windows that overlap, and give the very same numbers, byte for byte:
+
+- the frames that lie inside a window (past the pre-emphasis start, clear of the centre
+  padding) are the same samples through the same float32 operations in every window that
+  holds them, so they are framed, windowed and transformed once and shared;
+- the frames at a window's edges (centre padding, the pre-emphasis start) and everything
+  after the spectrum (mel, log, dB reference, top_db, DCT, layout, scaling) are computed per
+  window, on the window's stack of frames, exactly as the whole-window computation does
+  (one matrix product per window, so a window's numbers never depend on how many windows
+  were computed with it).
+
+`reference_features(card, windows)` is the same card in float64 through each stage's own
+reference, the check on the float32 path.
 
 References
 ----------
@@ -15,123 +27,22 @@ References
 
 from __future__ import annotations
 
-from typing import Literal
+from collections.abc import Sequence
 
 import numpy as np
-import scipy.fft
 
 from monitor.card import ModelCard
-from monitor.samples import quantise_pcm16
-
-MelScale = Literal["htk", "slaney"]
-
-_SLANEY_F_SP = 200.0 / 3.0  # Hz per mel below the break
-_SLANEY_MIN_LOG_HZ = 1000.0
-_SLANEY_MIN_LOG_MEL = _SLANEY_MIN_LOG_HZ / _SLANEY_F_SP  # 15 mel
-_SLANEY_LOGSTEP = np.log(6.4) / 27.0
-
-
-def hz_to_mel(freq_hz: np.ndarray | float, *, scale: MelScale = "htk") -> np.ndarray:
-    """Convert Hz to mel.
-
-    Parameters
-    ----------
-    freq_hz : float or numpy.ndarray
-        Frequencies in Hz, >= 0.
-    scale : {"htk", "slaney"}
-        "htk": ``2595 log10(1 + f/700)`` [1]_; "slaney": linear below 1 kHz at 200/3 Hz
-        per mel, logarithmic above [2]_.
-
-    Returns
-    -------
-    numpy.ndarray
-        Mel values, float64, same shape as `freq_hz`.
-    """
-    f = np.asarray(freq_hz, dtype=np.float64)
-    if scale == "htk":
-        return 2595.0 * np.log10(1.0 + f / 700.0)
-    lin = f / _SLANEY_F_SP
-    with np.errstate(divide="ignore"):
-        log = _SLANEY_MIN_LOG_MEL + np.log(np.maximum(f, 1e-12) / _SLANEY_MIN_LOG_HZ) / _SLANEY_LOGSTEP
-    return np.where(f >= _SLANEY_MIN_LOG_HZ, log, lin)
-
-
-def mel_to_hz(mel: np.ndarray | float, *, scale: MelScale = "htk") -> np.ndarray:
-    """Inverse of `hz_to_mel`; float64, same shape as `mel`."""
-    m = np.asarray(mel, dtype=np.float64)
-    if scale == "htk":
-        return 700.0 * (10.0 ** (m / 2595.0) - 1.0)
-    lin = _SLANEY_F_SP * m
-    log = _SLANEY_MIN_LOG_HZ * np.exp(_SLANEY_LOGSTEP * (m - _SLANEY_MIN_LOG_MEL))
-    return np.where(m >= _SLANEY_MIN_LOG_MEL, log, lin)
-
-
-def mel_band_edges(*, mel_bands: int, fmin: float, fmax: float,
-                   scale: MelScale = "htk") -> np.ndarray:
-    """The ``mel_bands + 2`` band edges in Hz, evenly spaced in mel; float64."""
-    m = np.linspace(hz_to_mel(fmin, scale=scale), hz_to_mel(fmax, scale=scale), mel_bands + 2)
-    return mel_to_hz(m, scale=scale)
-
-
-def mel_filterbank(*, sample_rate: int, fft_length: int, mel_bands: int, fmin: float,
-                   fmax: float, scale: MelScale = "htk",
-                   norm: Literal["none", "slaney"] = "none",
-                   triangles: Literal["hz", "mel"] = "hz", dtype=np.float32) -> np.ndarray:
-    """Triangular mel filterbank.
-
-    Parameters
-    ----------
-    sample_rate : int
-        Hz, > 0.
-    fft_length : int
-        FFT size; the bank covers its ``fft_length // 2 + 1`` bins.
-    mel_bands : int
-        Number of triangles, >= 1.
-    fmin, fmax : float
-        Lower and upper edge in Hz, ``0 <= fmin < fmax <= sample_rate / 2``.
-    scale : {"htk", "slaney"}
-        Mel formula.
-    norm : {"none", "slaney"}
-        "slaney" scales band i by ``2 / (f[i+2] - f[i])`` (unit area in Hz).
-    triangles : {"hz", "mel"}
-        "hz": each triangle linear in Hz, evaluated at the FFT bin frequencies (as
-        `librosa.filters.mel`); "mel": linear in mel with the DC bin excluded (as
-        `tf.signal.linear_to_mel_weight_matrix` and CMSIS-DSP).
-
-    dtype : numpy dtype
-        Of the result (float32 unless a float64 reference is wanted).
-
-    Returns
-    -------
-    numpy.ndarray
-        Weights, shape ``(mel_bands, fft_length // 2 + 1)``.
-    """
-    n_bins = fft_length // 2 + 1
-    bin_hz = np.linspace(0.0, sample_rate / 2.0, n_bins)
-    edges_hz = mel_band_edges(mel_bands=mel_bands, fmin=fmin, fmax=fmax, scale=scale)
-    if triangles == "hz":
-        x, edges = bin_hz, edges_hz
-    else:
-        x, edges = hz_to_mel(bin_hz, scale=scale), hz_to_mel(edges_hz, scale=scale)
-    lower, centre, upper = edges[:-2, None], edges[1:-1, None], edges[2:, None]
-    rising = (x[None, :] - lower) / (centre - lower)
-    falling = (upper - x[None, :]) / (upper - centre)
-    weights = np.maximum(0.0, np.minimum(rising, falling))
-    if triangles == "mel":
-        weights[:, 0] = 0.0
-    if norm == "slaney":
-        weights *= (2.0 / (edges_hz[2:] - edges_hz[:-2]))[:, None]
-    return weights.astype(dtype)
-
-
-def window_coefficients(length: int, *, kind: Literal["hann", "hamming"] = "hann",
-                        symmetric: bool = False) -> np.ndarray:
-    """Hann or Hamming window [3]_, periodic unless `symmetric`; shape (length,), float32."""
-    n = np.arange(length, dtype=np.float64)
-    denom = (length - 1) if symmetric else length
-    a0 = 0.5 if kind == "hann" else 0.54
-    w = a0 - (1.0 - a0) * np.cos(2.0 * np.pi * n / denom)
-    return w.astype(np.float32)
+from monitor.dsp import (
+    dct_matrix,
+    hz_to_mel,
+    lifter_weights,
+    mel_band_edges,
+    mel_filterbank,
+    mel_to_hz,
+    window_coefficients,
+)
+from monitor.stages import FramingStage, Stage, build_stages
+from monitor.windower import windows_of
 
 
 class FrontEnd:
@@ -140,91 +51,97 @@ class FrontEnd:
     Parameters
     ----------
     card : ModelCard
-        The model card; its window, mel matrix and scaling arrays are precomputed here.
+        The model card; its stages (window, mel matrix, DCT matrix, scaling arrays) are
+        built here.
+
+    Attributes
+    ----------
+    stages : list of Stage
+        The kind's stages that change the numbers (switches that are off are left out).
+    stream : FrameStream
+        The live path's frame cache (see `FrameStream`).
     """
 
     def __init__(self, card: ModelCard) -> None:
         self.card = card
         self.shape = card.feature_shape
-        if card.kind == "logmel":
-            self.window = window_coefficients(card.frame_length, kind=card.window,
-                                              symmetric=card.window_symmetric)
-            self.mel_t = np.ascontiguousarray(mel_filterbank(
-                sample_rate=card.sample_rate, fft_length=card.fft_length,
-                mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
-                scale=card.mel_scale, norm=card.mel_norm, triangles=card.mel_triangles).T)
-        self.mean = card.mean.astype(np.float32)
-        self.inv_std = (1.0 / card.std).astype(np.float32)
+        self.all_stages = build_stages(card)
+        self.stages = [s for s in self.all_stages if s.active]
+        by = {s.name: s for s in self.all_stages}
+        self._samples = [s for s in self.stages if s.part == "samples"]
+        self._frames = [s for s in self.stages if s.part == "frames"]
+        self._features = [s for s in self.stages if s.part == "features"]
+        self._output = [s for s in self.stages if s.part == "output"]
+        self.framing: FramingStage | None = by.get("framing")  # type: ignore[assignment]
+        scaling = by["scaling"]
+        self.mean, self.inv_std = scaling.mean, scaling.inv_std  # type: ignore[attr-defined]
+        self.stream = FrameStream(self)
 
-    def _pcm(self, x: np.ndarray) -> np.ndarray:
-        return quantise_pcm16(x) if self.card.pcm_bits == 16 else x
+    # --- the parts ----------------------------------------------------------------------
+    def _run(self, stages: Sequence[Stage], x: np.ndarray) -> np.ndarray:
+        for s in stages:
+            x = s.run(x)
+        return x
 
-    def _power_frames(self, x: np.ndarray, n_frames: int) -> np.ndarray:
-        """Power (or magnitude) spectra of `n_frames` frames along the last axis of `x`."""
-        c = self.card
-        x = self._pcm(np.asarray(x, dtype=np.float32))
-        frames = np.lib.stride_tricks.sliding_window_view(x, c.frame_length, axis=-1)
-        frames = frames[..., : n_frames * c.frame_step : c.frame_step, :]
-        padded = np.zeros((*frames.shape[:-1], c.fft_length), np.float32)  # zero-pad at the end
-        np.multiply(frames, self.window, out=padded[..., : c.frame_length])
-        spec = scipy.fft.rfft(padded, axis=-1, workers=1, overwrite_x=True)
-        if c.power == 2.0:  # |X|^2 without the square root
-            mag = np.square(spec.real)
-            mag += np.square(spec.imag)
-            return mag
-        return np.abs(spec).astype(np.float32)
+    def _spectra(self, windows: np.ndarray, which: np.ndarray | None = None) -> np.ndarray:
+        """The frames part of whole windows ``(n, W)``: ``(n, frames, values)`` (only the
+        frames `which` when given)."""
+        x = self._run(self._samples, windows)
+        x = self.framing.run(x, which)
+        return self._run(self._frames[1:], x)
 
-    def _log_mel(self, mag: np.ndarray) -> np.ndarray:
-        c = self.card
-        # np.matmul on a stack runs one GEMM per window, so batch and single agree exactly.
-        mel = np.matmul(mag, self.mel_t)
-        mel += np.float32(c.log_offset)
-        if c.log == "ln":
-            return np.log(mel)
-        if c.log == "log10":
-            return np.log10(mel)
-        return np.float32(10.0 * 2.0 / c.power) * np.log10(mel)
+    def _stream_frames(self, signal: np.ndarray, first: int, count: int) -> np.ndarray:
+        """Shared frames of a stream of windows one hop apart: frame j starts at sample
+        ``first_sample + j * frame_step`` of `signal`; frames first .. first + count - 1."""
+        f = self.framing
+        step, length = f.cfg.frame_step, f.cfg.frame_length
+        a = f.first_sample + first * step
+        left = sum(s.left for s in self._samples)  # samples the stages look back
+        y = signal[a - left:a + (count - 1) * step + length]
+        for s in self._samples:
+            y = s.stream(y)
+        y = np.ascontiguousarray(y[left:])
+        item = y.strides[0]
+        view = np.lib.stride_tricks.as_strided(y, (count, length), (step * item, item),
+                                               writeable=False)
+        return self._run(self._frames[1:], view)
 
-    def logmel(self, windows: np.ndarray) -> np.ndarray:
-        """Unscaled log-mel, time-major.
+    def _finish(self, spectra: np.ndarray) -> np.ndarray:
+        return self._run(self._output, self._run(self._features, spectra))
 
-        Parameters
-        ----------
-        windows : numpy.ndarray
-            Shape ``(n, window_samples)``, float32 in [-1, 1].
+    def _check(self, windows: np.ndarray) -> np.ndarray:
+        windows = np.asarray(windows, dtype=np.float32)
+        if windows.ndim != 2 or windows.shape[1] != self.card.window_samples:
+            raise ValueError(f"windows must have shape (n, {self.card.window_samples}), "
+                             f"got {windows.shape}")
+        return windows
+
+    # --- the public calls ---------------------------------------------------------------
+    def unscaled(self, windows: np.ndarray, *, model_order: bool = False) -> np.ndarray:
+        """Features before scaling of whole windows ``(n, window_samples)``.
 
         Returns
         -------
         numpy.ndarray
-            Shape ``(n, frames, mel_bands)``, float32.
+            float32; time-major ``(n, frames, bands)`` (``(n, samples)`` for a kind without
+            frames), or with `model_order` in the card's layout (the model's input order).
         """
-        return self._log_mel(self._power_frames(windows, self.card.frames_per_window))
+        windows = self._check(windows)
+        if self.framing is None:
+            x = self._run(self._samples, windows)
+        else:
+            x = self._run(self._features, self._spectra(windows))
+        if model_order:
+            x = self._run([s for s in self._output if s.name != "scaling"], x)
+        return np.ascontiguousarray(x, dtype=np.float32)
 
-    def logmel_consecutive(self, signal: np.ndarray, n: int) -> np.ndarray:
-        """`logmel` of `n` windows one hop apart in `signal`, each frame computed once.
+    def logmel(self, windows: np.ndarray) -> np.ndarray:
+        """Unscaled time-major features ``(n, frames, bands)`` (the old name of `unscaled`)."""
+        return self.unscaled(windows)
 
-        Overlapping windows share frames when the hop is a whole number of frame steps;
-        the numbers equal `logmel` of the windows cut one by one.
-
-        Parameters
-        ----------
-        signal : numpy.ndarray
-            Shape ``((n - 1) * hop_samples + window_samples,)``.
-        """
-        c = self.card
-        step = c.hop_samples // c.frame_step
-        if c.hop_samples % c.frame_step or n == 1:
-            hop = c.hop_samples
-            return self.logmel(np.stack([signal[i * hop:i * hop + c.window_samples]
-                                         for i in range(n)]))
-        f = c.frames_per_window
-        mag = self._power_frames(signal, (n - 1) * step + f)
-        stack = np.stack([mag[i * step:i * step + f] for i in range(n)])
-        return self._log_mel(stack)
-
-    def unscaled(self, windows: np.ndarray) -> np.ndarray:
-        """Features before layout and scaling, time-major ``(n, frames, bands)``."""
-        return self.logmel(np.asarray(windows, dtype=np.float32))
+    def scale(self, unscaled: np.ndarray) -> np.ndarray:
+        """Layout and scaling of time-major unscaled features: the model input."""
+        return self._run(self._output, np.asarray(unscaled, np.float32))
 
     def batch(self, windows: np.ndarray) -> np.ndarray:
         """Scaled model input for many windows.
@@ -239,34 +156,124 @@ class FrontEnd:
         numpy.ndarray
             Shape ``(n, *card.feature_shape)``, float32, in the card's layout (no channel).
         """
-        windows = np.asarray(windows, dtype=np.float32)
-        if windows.ndim != 2 or windows.shape[1] != self.card.window_samples:
-            raise ValueError(f"windows must have shape (n, {self.card.window_samples}), "
-                             f"got {windows.shape}")
-        if self.card.kind == "waveform":
-            return self._scale(self._pcm(windows))
-        return self._scale(self.logmel(windows))
-
-    def _scale(self, feats: np.ndarray) -> np.ndarray:
-        if self.card.kind == "logmel" and self.card.layout == "mel_time":
-            feats = np.swapaxes(feats, 1, 2)
-        out = (feats - self.mean) * self.inv_std
-        return np.ascontiguousarray(out, dtype=np.float32)
-
-    def batch_consecutive(self, signal: np.ndarray, n: int) -> np.ndarray:
-        """`batch` of `n` windows one hop apart in `signal` (fast replay; same numbers)."""
-        c = self.card
-        signal = np.asarray(signal, dtype=np.float32)
-        if signal.shape != ((n - 1) * c.hop_samples + c.window_samples,):
-            raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
-        if c.kind == "waveform":
-            return self.batch(np.stack([signal[i * c.hop_samples:i * c.hop_samples + c.window_samples]
-                                        for i in range(n)]))
-        return self._scale(self.logmel_consecutive(signal, n))
+        windows = self._check(windows)
+        if self.framing is None:
+            return self._run(self._output, self._run(self._samples, windows))
+        return self._finish(self._spectra(windows))
 
     def single(self, window: np.ndarray) -> np.ndarray:
         """Scaled model input for one window of shape ``(window_samples,)``."""
         return self.batch(np.asarray(window, dtype=np.float32)[None, :])[0]
+
+    def batch_consecutive(self, signal: np.ndarray, n: int) -> np.ndarray:
+        """`batch` of `n` windows one hop apart in `signal` (fast replay), each shared frame
+        computed once; the same numbers.
+
+        Parameters
+        ----------
+        signal : numpy.ndarray
+            Shape ``((n - 1) * hop_samples + window_samples,)``.
+        """
+        c = self.card
+        signal = np.asarray(signal, dtype=np.float32)
+        if signal.shape != ((n - 1) * c.hop_samples + c.window_samples,):
+            raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
+        return self._consecutive(signal, n, None)[0]
+
+    def _shares(self, n: int = 2) -> bool:
+        return self.framing is not None and self.framing.share_step > 0 and n > 1
+
+    def _consecutive(self, signal: np.ndarray, n: int,
+                     known: tuple[int, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray | None]:
+        """Scaled features of `n` windows one hop apart, and the last window's shared frames.
+
+        `known` is ``(q, frames)``: the shared frames of an earlier window whose shared frame
+        ``q + j`` is this run's shared frame j.
+        """
+        c = self.card
+        f = self.framing
+        if f is None or f.share_step == 0:
+            return self.batch(windows_of(signal, c.window_samples, c.hop_samples)[:n]), None
+        lo, hi = f.shared
+        cnt, r = hi - lo + 1, f.share_step
+        total = (n - 1) * r + cnt
+        have = 0
+        if known is not None and 0 < known[0] < cnt:
+            have = cnt - known[0]
+        shared = np.empty((total, *self._frame_shape()), np.float32)
+        if have:
+            shared[:have] = known[1][known[0]:]
+        shared[have:] = self._stream_frames(signal, have, total - have)
+        spectra = np.empty((n, f.frames, *shared.shape[1:]), np.float32)
+        idx = (np.arange(n) * r)[:, None] + np.arange(cnt)[None, :]
+        spectra[:, lo:hi + 1] = shared[idx]
+        if f.edges.size:
+            windows = windows_of(signal, c.window_samples, c.hop_samples)[:n]
+            spectra[:, f.edges] = self._spectra(windows, f.edges)
+        last = shared if n == 1 else shared[(n - 1) * r:].copy()
+        return self._finish(spectra), last
+
+    def _frame_shape(self) -> tuple[int, ...]:
+        fe = self.card.frontend
+        return (fe.framing.fft_length // 2 + 1,)
+
+
+class FrameStream:
+    """The live path: windows as they arrive, each shared frame computed once.
+
+    It keeps the shared frames of the newest window it computed; a later window one or more
+    frame steps further on reuses those it holds. `features` gives the same numbers as
+    `FrontEnd.batch` of the same windows, byte for byte. One caller thread (the engine's).
+    """
+
+    def __init__(self, frontend: FrontEnd) -> None:
+        self.fe = frontend
+        self.reset()
+
+    def reset(self) -> None:
+        self._start: int | None = None
+        self._shared: np.ndarray | None = None
+
+    def features(self, starts: Sequence[int], windows: Sequence[np.ndarray]) -> np.ndarray:
+        """Scaled model input of windows that start at the given sample positions.
+
+        Parameters
+        ----------
+        starts : sequence of int
+            Each window's first sample on the session clock, in increasing order.
+        windows : sequence of numpy.ndarray
+            Each ``(window_samples,)`` float32.
+
+        Returns
+        -------
+        numpy.ndarray
+            ``(n, *card.feature_shape)`` float32.
+        """
+        fe, c = self.fe, self.fe.card
+        if not fe._shares(2):
+            return fe.batch(np.stack(windows))
+        hop, step = c.hop_samples, fe.framing.cfg.frame_step
+        out = []
+        i = 0
+        while i < len(windows):  # runs of windows one hop apart
+            j = i + 1
+            while j < len(windows) and starts[j] - starts[j - 1] == hop:
+                j += 1
+            signal = np.concatenate([windows[i]] + [w[-hop:] for w in windows[i + 1:j]]) \
+                if j - i > 1 else np.asarray(windows[i], np.float32)
+            known = None
+            if self._start is not None:
+                d = starts[i] - self._start
+                if d > 0 and d % step == 0:
+                    known = (d // step, self._shared)
+            feats, shared = fe._consecutive(np.asarray(signal, np.float32), j - i, known)
+            out.append(feats)
+            if shared is None:
+                self.reset()
+            else:
+                self._start, self._shared = starts[j - 1], shared
+            i = j
+        return out[0] if len(out) == 1 else np.concatenate(out)
 
 
 def reference_features(card: ModelCard, windows: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
@@ -275,36 +282,22 @@ def reference_features(card: ModelCard, windows: np.ndarray) -> tuple[np.ndarray
     Returns
     -------
     unscaled : numpy.ndarray
-        ``(n, frames, bands)`` float64, time-major (as `FrontEnd.unscaled`).
+        float64, time-major ``(n, frames, bands)`` (``(n, samples)`` without frames), as
+        `FrontEnd.unscaled`.
     scaled : numpy.ndarray
         ``(n, *card.feature_shape)`` float64, the model input (as `FrontEnd.batch`).
     """
-    from monitor.samples import quantise_pcm16
-
     x = np.asarray(windows, np.float64)
-    if card.pcm_bits == 16:
-        x = quantise_pcm16(x).astype(np.float64)
-    win = window_coefficients(card.frame_length, kind=card.window,
-                              symmetric=card.window_symmetric).astype(np.float64)
-    n = card.frames_per_window
-    idx = np.arange(card.frame_length)[None, :] + card.frame_step * np.arange(n)[:, None]
-    spec = np.abs(np.fft.rfft(x[:, idx] * win, n=card.fft_length, axis=-1))
-    if card.power == 2.0:
-        spec = spec ** 2
-    w = mel_filterbank(sample_rate=card.sample_rate, fft_length=card.fft_length,
-                       mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
-                       scale=card.mel_scale, norm=card.mel_norm, triangles=card.mel_triangles,
-                       dtype=np.float64)
-    mel = spec @ w.T + card.log_offset
-    if card.log == "ln":
-        out = np.log(mel)
-    elif card.log == "log10":
-        out = np.log10(mel)
-    else:
-        out = (20.0 / card.power) * np.log10(mel)
-    mean, std = card.mean.astype(np.float64), card.std.astype(np.float64)
-    if card.layout == "mel_time":
-        scaled = (np.swapaxes(out, 1, 2) - mean) / std
-    else:
-        scaled = (out - mean) / std
-    return out, scaled
+    out = None
+    for s in build_stages(card):
+        if not s.active:
+            continue
+        if s.part == "output" and out is None:
+            out = x
+        x = s.reference(x)
+    return (x if out is None else out), x
+
+
+__all__ = ["FrontEnd", "FrameStream", "reference_features", "hz_to_mel", "mel_to_hz",
+           "mel_band_edges", "mel_filterbank", "window_coefficients", "dct_matrix",
+           "lifter_weights"]

@@ -159,7 +159,7 @@ def time_axis_of(card: ModelCard) -> int:
     """The frames axis of one window's features (-1: a waveform, no frames)."""
     if len(card.feature_shape) == 1:
         return -1
-    return 1 if card.layout == "mel_time" else 0
+    return card.time_axis
 
 
 def block_groups(n: int, block: int = 20) -> np.ndarray:
@@ -251,9 +251,7 @@ def load_profile(path: Path, card: ModelCard) -> Profile:
             shrink = np.asarray(z["shrinkage"], np.float64) if "shrinkage" in z else None
     except (OSError, KeyError, ValueError) as exc:
         raise ScenemonError(f"{path}: not a readable novelty profile ({exc})") from None
-    shape, axis_c = card.feature_shape, time_axis_of(card)
-    bands = shape[1 - axis_c] if axis_c >= 0 else 1
-    d = 2 * bands
+    d = 2 * card.bands
     if means.ndim != 2 or means.shape[1] != d or covs.shape != (means.shape[0], d, d):
         raise ScenemonError(f"{path}: holds {means.shape[-1]} numbers per window but the card "
                             f"{card.name} gives {d}; make it again with scenemon profile")

@@ -73,6 +73,28 @@ def run_cli(*args, timeout=300, env=None, cwd=None):
                           cwd=cwd or ROOT)
 
 
+def card_dict(*, frontend=None, audio=None, scaling="demo", classes=None, **top):
+    """A complete card as parsed TOML: the demo card's tables with the given [frontend] and
+    [audio] keys changed (a value of None removes the key); `scaling` None drops the table."""
+    from monitor.card import read_card_table
+
+    raw = read_card_table(MODELS / "demo.toml")
+    for table, changes in (("frontend", frontend), ("audio", audio)):
+        for k, v in (changes or {}).items():
+            if v is None:
+                raw[table].pop(k, None)
+            else:
+                raw[table][k] = v
+    if scaling is None:
+        raw.pop("scaling")
+    elif scaling != "demo":
+        raw["scaling"] = scaling
+    if classes is not None:
+        raw["classes"] = list(classes)
+    raw.update(top)
+    return raw
+
+
 def write_wav(path, x, sr=16000, subtype="PCM_16"):
     sf.write(str(path), np.asarray(x, dtype=np.float32), sr, subtype=subtype)
     return path

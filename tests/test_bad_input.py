@@ -91,12 +91,12 @@ def case_card_frame_length(tmp_path):
 
 def case_card_negative_hop(tmp_path):
     p = card_with(tmp_path, "hop_s = 0.5", "hop_s = -0.5")
-    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "hop_s=-0.5 must be > 0"
+    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "hop_s=-0.5 must be a number > 0"
 
 
 def case_card_zero_hop(tmp_path):
     p = card_with(tmp_path, "hop_s = 0.5", "hop_s = 0")
-    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "hop_s=0.0 must be > 0"
+    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "hop_s=0.0 must be a number > 0"
 
 
 def case_card_fractional_window(tmp_path):
@@ -189,6 +189,136 @@ def case_model_random_bytes(tmp_path):
     return ["replay", _good(tmp_path), "--model", m], "r.tflite", "not a TFLite model file"
 
 
+# --- the card rules (issue 12): unknown keys, missing keys, combinations, sizes -------------
+def case_card_unknown_frontend_key(tmp_path):
+    p = card_with(tmp_path, 'mel_scale = "htk"', 'mel_sclae = "htk"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.mel_sclae is not a card key; did you mean mel_scale?")
+
+
+def case_card_unknown_top_key(tmp_path):
+    p = card_with(tmp_path, "[audio]", "colour = 3\n\n[audio]")
+    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "colour is not a card key"
+
+
+def case_card_unknown_scaling_key(tmp_path):
+    p = card_with(tmp_path, "[scaling]  # per mel band, from the training features",
+                  '[scaling]\nper_windw = "standardise"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "scaling.per_windw is not a card key; did you mean per_window?")
+
+
+def case_card_missing_triangles(tmp_path):
+    p = card_with(tmp_path, 'mel_triangles = "mel"\n', "")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.mel_triangles is missing: kind = "logmel" needs it and it has no default '
+            "(one of hz, mel)")
+
+
+def case_card_missing_sample_rate(tmp_path):
+    p = card_with(tmp_path, "sample_rate = 16000\n", "")
+    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "audio.sample_rate is missing"
+
+
+def case_card_center_without_pad_mode(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", "pcm_bits = 16\ncenter = true")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.pad_mode is missing: center = true needs it")
+
+
+def case_card_pad_mode_without_center(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", 'pcm_bits = 16\npad_mode = "reflect"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.pad_mode="reflect" needs center = true')
+
+
+def case_card_top_db_without_db(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", "pcm_bits = 16\ntop_db = 80.0")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.top_db=80.0 needs log = "db"')
+
+
+def case_card_db_ref_without_db(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", 'pcm_bits = 16\ndb_ref = "max"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.db_ref="max" needs log = "db"')
+
+
+def case_card_lifter_without_mfcc(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", "pcm_bits = 16\nlifter = 22")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.lifter=22 has no effect with kind = "logmel"')
+
+
+def case_card_mfcc_over_mel_bands(tmp_path):
+    p = card_with(tmp_path, 'kind = "logmel"', 'kind = "mfcc"\nmfcc = 50\ndct_norm = "ortho"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.mfcc=50 must not exceed mel_bands=40")
+
+
+def case_card_mfcc_missing(tmp_path):
+    p = card_with(tmp_path, 'kind = "logmel"', 'kind = "mfcc"\ndct_norm = "ortho"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.mfcc is missing: kind = "mfcc" needs it')
+
+
+def case_card_kind(tmp_path):
+    p = card_with(tmp_path, 'kind = "logmel"', 'kind = "mfccs"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.kind="mfccs" must be one of waveform, spectrogram, logmel, mfcc')
+
+
+def case_card_log_offset_zero(tmp_path):
+    p = card_with(tmp_path, "log_offset = 1e-06", "log_offset = 0")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.log_offset=0.0 needs a log_floor > 0")
+
+
+def case_card_center_not_bool(tmp_path):
+    p = card_with(tmp_path, "pcm_bits = 16", 'pcm_bits = 16\ncenter = "yes"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.center="yes" must be true or false')
+
+
+def case_card_fft_length_huge(tmp_path):
+    # issue 15: accepted once, and the process was killed for memory
+    p = card_with(tmp_path, "fft_length = 512", "fft_length = 2147483648")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.fft_length=2147483648 must be an integer from 16 to 32768")
+
+
+def case_card_fft_length_not_power_of_two(tmp_path):
+    # issue 15: accepted once, and the C front end overflowed its buffers
+    p = card_with(tmp_path, "fft_length = 512", "fft_length = 500")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "frontend.fft_length=500 must be a power of two")
+
+
+def case_card_window_huge(tmp_path):
+    p = card_with(tmp_path, "window_s = 1.0", "window_s = 100000.0")
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "audio.window_s=100000.0 is 1600000000 samples at 16000 Hz; it must be from 1 to")
+
+
+def case_card_scaling_npy(tmp_path):
+    # issue 15: a traceback once
+    np.save(tmp_path / "scale.npy", np.zeros(40))
+    text = CARD[:CARD.index("[scaling]")] + '[scaling]\nmean = "scale.npy"\nstd = "scale.npy"\n'
+    p = tmp_path / "bad.toml"
+    p.write_text(text)
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            "the scaling file must be a .npz holding arrays 'mean' and 'std'")
+
+
+def case_card_scaling_npz_without_std(tmp_path):
+    np.savez(tmp_path / "scale.npz", mean=np.zeros(40))
+    text = CARD[:CARD.index("[scaling]")] + '[scaling]\nmean = "scale.npz"\nstd = "scale.npz"\n'
+    p = tmp_path / "bad.toml"
+    p.write_text(text)
+    return (["replay", _good(tmp_path), "--card", p], "scale.npz",
+            "is not an .npz holding arrays 'mean' and 'std'")
+
+
 def case_truth_not_numbers(tmp_path):
     t = tmp_path / "t.tsv"
     t.write_text("start\tend\tvoices\n")
@@ -243,11 +373,13 @@ def test_out_dir_holding_a_session_is_refused(tmp_path):
     assert (out / "windows.jsonl").read_bytes() == before  # nothing captured is damaged
 
 
-def test_unknown_card_key_warns(tmp_path):
-    p = card_with(tmp_path, "[audio]", "colour = 3\n\n[audio]")
-    r = run_cli("replay", _good(tmp_path), "--model", MODELS / "demo.tflite", "--card", p,
-                "--fast", "--out", tmp_path / "s")
-    assert r.returncode == 0 and "unknown key 'colour'" in r.stderr
+def test_card_with_a_byte_order_mark_is_read(tmp_path):
+    # issue 15: a card saved with a UTF-8 byte-order mark (some editors on Windows) is read
+    p = tmp_path / "bom.toml"
+    p.write_bytes(b"\xef\xbb\xbf" + CARD.encode())
+    r = cli("replay", _good(tmp_path), "--model", MODELS / "demo.tflite", "--card", p, "--fast",
+            "--out", tmp_path / "s")
+    assert r.returncode == 0, r.stderr
 
 
 def test_help_explains_every_flag():

@@ -2,8 +2,10 @@
 
 import numpy as np
 import pytest
+import scipy.fft
 import scipy.signal
 
+from conftest import card_dict
 from monitor.card import card_from_dict
 from monitor.frontend import (
     FrontEnd,
@@ -21,7 +23,7 @@ def make_card(**fe):
     base = {"kind": "logmel", "frame_length": 400, "frame_step": 160, "fft_length": 512,
             "mel_bands": 40, "fmin": 0.0, "fmax": 8000.0, "mel_scale": "htk",
             "mel_norm": "none", "mel_triangles": "hz", "power": 2.0, "log": "ln",
-            "log_offset": 1e-6}
+            "log_offset": 1e-6, "window": "hann", "layout": "time_mel"}
     base.update(fe)
     return card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000,
                            "window_s": 1.0, "hop_s": 0.5}, "frontend": base})
@@ -193,10 +195,9 @@ def test_standardisation_matches_sklearn(layout):
     x = np.stack([_noise(s) for s in range(4)])
     feats = fe0.logmel(x).reshape(-1, 40)
     sc = StandardScaler().fit(feats)
-    card = card_from_dict({"classes": ["a", "b"], "audio": {"sample_rate": 16000},
-                           "frontend": {"layout": layout, "fmax": 8000.0},
-                           "scaling": {"mean": sc.mean_.tolist(),
-                                       "std": np.sqrt(sc.var_).tolist()}})
+    card = card_from_dict(card_dict(frontend={**card0.frontend.settings(), "layout": layout},
+                                    scaling={"mean": sc.mean_.tolist(),
+                                             "std": np.sqrt(sc.var_).tolist()}))
     ours = FrontEnd(card).batch(x)
     ref = sc.transform(feats).reshape(4, 98, 40)
     if layout == "mel_time":
@@ -245,7 +246,7 @@ def test_hamming_matches_scipy():
 def test_pcm16_quantises_like_the_device():
     card = make_card(pcm_bits=16)
     x = np.full((1, 16000), 0.3, np.float32) + np.float32(1e-7)
-    q = FrontEnd(card)._pcm(x)
+    q = FrontEnd(card).stages[0].run(x)
     assert np.all(q * 32768 == np.round(q * 32768))
 
 
@@ -258,3 +259,255 @@ def test_consecutive_batch_equals_single(demo_card, n):
     b = fe.batch_consecutive(x, n)
     for i in range(n):
         np.testing.assert_array_equal(b[i], fe.single(x[i * hop:i * hop + win]))
+
+
+# --- the stages against outside references (issue 12) ------------------------------------
+def fe_card(**fe):
+    """The demo card's [frontend] with float input and the given keys (no scaling)."""
+    return card_from_dict(card_dict(frontend={"pcm_bits": 0, **fe}, scaling=None))
+
+
+LIBROSA_DB = {"log": "db", "log_offset": 0.0, "log_floor": 1e-10, "top_db": 80.0,
+              "mel_triangles": "hz", "mel_scale": "slaney", "mel_norm": "slaney"}
+
+
+@pytest.mark.parametrize("center,pad_mode", [(True, "constant"), (True, "reflect"),
+                                             (False, None)])
+@pytest.mark.parametrize("ref", ["one", "max"])
+def test_librosa_melspectrogram_power_to_db(center, pad_mode, ref):
+    # librosa.feature.melspectrogram (0.10 / 0.11; n_fft 512, win_length 400 < n_fft, so the
+    # window sits centred in each 512-sample frame: window_in_frame "centre") + power_to_db
+    # with amin 1e-10 (log_floor), ref 1.0 or np.max (db_ref), top_db 80; center=True pads
+    # n_fft // 2 with pad_mode (constant, reflect): 101 frames, else 97 (librosa's counts)
+    fe = {**LIBROSA_DB, "center": center, "window_in_frame": "centre", "db_ref": ref}
+    if pad_mode:
+        fe["pad_mode"] = pad_mode
+    x = _noise()
+    ours = FrontEnd(fe_card(**fe)).unscaled(x[None])[0]
+    S = librosa.feature.melspectrogram(y=x.astype(np.float64), sr=16000, n_fft=512,
+                                       hop_length=160, win_length=400, window="hann",
+                                       center=center, pad_mode=pad_mode or "constant", n_mels=40,
+                                       fmin=0.0, fmax=8000.0, htk=False, norm="slaney")
+    want = librosa.power_to_db(S, ref=np.max if ref == "max" else 1.0, amin=1e-10,
+                               top_db=80.0).T
+    assert ours.shape == want.shape == ((101 if center else 97), 40)
+    assert np.max(np.abs(ours - want)) <= 1e-4  # dB
+
+
+@pytest.mark.parametrize("window_in_frame,frames", [("centre", 97), ("start", 98)])
+def test_librosa_win_length_below_n_fft_without_centring(window_in_frame, frames):
+    # librosa.stft(center=False, n_fft=512, win_length=400) frames 512 samples (97 frames of
+    # a second) with the window in the middle; "start" frames 400 samples (98, TensorFlow's
+    # count): the same spectra where the frames coincide, one frame step of 56 samples apart
+    x = _noise(4)
+    fe = {**LIBROSA_DB, "top_db": 0.0, "window_in_frame": window_in_frame}
+    ours = FrontEnd(fe_card(**fe)).unscaled(x[None])[0]
+    assert ours.shape == (frames, 40)
+    S = librosa.feature.melspectrogram(y=x.astype(np.float64), sr=16000, n_fft=512,
+                                       hop_length=160, win_length=400, center=False, n_mels=40,
+                                       fmax=8000.0, htk=False, norm="slaney")
+    want = librosa.power_to_db(S, amin=1e-10, top_db=None).T
+    if window_in_frame == "centre":
+        np.testing.assert_allclose(ours, want, atol=1e-4)
+    else:  # librosa's frame t windows samples 56 .. 456 of its 512: our frame t, 56 later
+        shifted = FrontEnd(fe_card(**fe)).unscaled(np.pad(x[56:], (0, 56))[None])[0]
+        np.testing.assert_allclose(shifted[:97], want, atol=1e-4)
+
+
+@pytest.mark.parametrize("n_mfcc", [13, 20])
+@pytest.mark.parametrize("lifter", [0, 22])
+def test_librosa_mfcc(n_mfcc, lifter):
+    # librosa.feature.mfcc 0.11 defaults: power_to_db(ref 1, amin 1e-10, top_db 80) of the
+    # Slaney-normalised mel spectrogram, DCT-II norm "ortho", the lifter 1 + (L/2) sin(pi n / L)
+    fe = {**LIBROSA_DB, "kind": "mfcc", "mfcc": n_mfcc, "dct_norm": "ortho",
+          "lifter": float(lifter), "center": True, "pad_mode": "constant",
+          "window_in_frame": "centre"}
+    x = _noise(5)
+    ours = FrontEnd(fe_card(**fe)).unscaled(x[None])[0]
+    want = librosa.feature.mfcc(y=x.astype(np.float64), sr=16000, n_mfcc=n_mfcc, lifter=lifter,
+                                n_fft=512, hop_length=160, win_length=400, n_mels=40,
+                                fmax=8000.0).T
+    assert ours.shape == want.shape == (101, n_mfcc)
+    assert np.max(np.abs(ours - want)) <= 2e-4 * max(1.0, np.abs(want).max())
+
+
+@pytest.mark.slow
+def test_tensorflow_mfccs_from_log_mel_spectrograms(tf):
+    # tf.signal.stft(400, 160, 512) (periodic Hann, no padding: "start"), |X|^2,
+    # linear_to_mel_weight_matrix (triangles linear in mel), log(x + 1e-6),
+    # mfccs_from_log_mel_spectrograms (DCT-II times rsqrt(2 M): "uniform")
+    c = fe_card(kind="mfcc", mfcc=13, dct_norm="uniform", mel_triangles="mel", fmin=20.0,
+                fmax=7600.0)
+    x = _noise(6)
+    ours = FrontEnd(c).unscaled(x[None])[0]
+    S = tf.abs(tf.signal.stft(x, 400, 160, 512)) ** 2
+    W = tf.signal.linear_to_mel_weight_matrix(40, 257, 16000, 20.0, 7600.0)
+    log_mel = tf.math.log(tf.matmul(S, W) + 1e-6)
+    want = tf.signal.mfccs_from_log_mel_spectrograms(log_mel)[..., :13].numpy()
+    assert ours.shape == want.shape == (98, 13)
+    assert np.max(np.abs(ours - want)) <= 1e-4
+
+
+@pytest.mark.parametrize("window", ["hann", "hamming"])
+@pytest.mark.parametrize("fmin,fmax", [(20.0, 4000.0), (0.0, 8000.0)])
+def test_cmsis_dsp_arm_mfcc_f32_frame_by_frame(window, fmin, fmax):
+    # CMSIS-DSP's own Python package (cmsisdsp 1.10.1, the library the firmware links):
+    # arm_mfcc_f32 with its melFilterMatrix and dctMatrix and our window, frame by frame.
+    # Its conventions (its C source): frame_length = fft_length, magnitude, triangles linear in
+    # mel, ln(x + 1e-6), DCT-II times sqrt(2 / M) on every row ("uniform"). Noise-like frames:
+    # where bands fall 1e5 below the peak its float32 FFT floor dominates (common practice)
+    dsp = pytest.importorskip("cmsisdsp")
+    import cmsisdsp.mfcc as cm
+    from cmsisdsp.datatype import F32
+
+    c = fe_card(kind="mfcc", mfcc=13, dct_norm="uniform", frame_length=512, power=1.0,
+                mel_triangles="mel", fmin=fmin, fmax=fmax, window=window)
+    x = (np.random.default_rng(7).standard_normal(16000) * 0.1).astype(np.float32)
+    ours = FrontEnd(c).unscaled(x[None])[0]
+    lengths, firsts, packed = cm.melFilterMatrix(F32, fmin, fmax, 40, 16000, 512)
+    dct = cm.dctMatrix(F32, 13, 40)
+    win = window_coefficients(512, kind=window)
+    inst = dsp.arm_mfcc_instance_f32()
+    assert dsp.arm_mfcc_init_f32(inst, 512, 40, 13, dct, firsts, lengths, packed, win) == 0
+    tmp = np.zeros(2 * 512, np.float32)  # 2N floats: arm_cmplx_mag_f32 reads 2N
+    want = np.stack([dsp.arm_mfcc_f32(inst, x[t * 160:t * 160 + 512], tmp)
+                     for t in range(ours.shape[0])])
+    np.testing.assert_allclose(ours, want, atol=1e-4)
+    # and its tables are ours: the DCT rows, the mel weights (its 1127 ln(1 + f/700) scale)
+    from monitor.dsp import dct_matrix
+
+    np.testing.assert_allclose(dct_matrix(13, 40, norm="uniform"),
+                               np.asarray(dct).reshape(13, 40), atol=1e-7)
+    dense = np.zeros((40, 257))
+    o = 0
+    for i, (p, n) in enumerate(zip(firsts, lengths)):
+        dense[i, p:p + n] = packed[o:o + n]
+        o += n
+    bank = mel_filterbank(sample_rate=16000, fft_length=512, mel_bands=40, fmin=fmin, fmax=fmax,
+                          triangles="mel")
+    bank[:, -1] = 0.0  # CMSIS-DSP never weights the Nyquist bin (zero here anyway at fmax)
+    np.testing.assert_allclose(bank, dense, atol=1e-6)
+
+
+@pytest.mark.parametrize("m,k", [(40, 13), (40, 40), (26, 20)])
+def test_dct_matrix_against_scipy(m, k):
+    # scipy.fft.dct(type=2, norm="ortho") is "ortho"; scipy.fft.dct(type=2) / sqrt(2 M) is
+    # "uniform" (TensorFlow's mfccs_from_log_mel_spectrograms); the lifter as librosa.feature.mfcc
+    from monitor.dsp import dct_matrix
+
+    eye = np.eye(m)
+    ortho = scipy.fft.dct(eye, type=2, norm="ortho", axis=0)[:k]
+    np.testing.assert_allclose(dct_matrix(k, m, norm="ortho", dtype=np.float64), ortho,
+                               atol=1e-12)
+    uniform = scipy.fft.dct(eye, type=2, axis=0)[:k] / np.sqrt(2 * m)
+    np.testing.assert_allclose(dct_matrix(k, m, norm="uniform", dtype=np.float64), uniform,
+                               atol=1e-12)
+    lift = 1 + (22 / 2) * np.sin(np.pi * np.arange(1, k + 1) / 22)
+    np.testing.assert_allclose(dct_matrix(k, m, norm="ortho", lifter=22, dtype=np.float64),
+                               ortho * lift[:, None], atol=1e-10)
+
+
+def test_silence_mfcc_uniform_c0():
+    # silence: every log-mel band reads ln(1e-6), so with "uniform" c0 = sqrt(2 / M) M ln(1e-6)
+    # = -123.5697 for M = 40 (as CMSIS-DSP gives) and the other coefficients 0
+    c = fe_card(kind="mfcc", mfcc=13, dct_norm="uniform")
+    out = FrontEnd(c).unscaled(np.zeros((1, 16000), np.float32))[0]
+    np.testing.assert_allclose(out[:, 0], np.sqrt(2 / 40) * 40 * np.log(1e-6), atol=1e-3)
+    np.testing.assert_allclose(out[:, 1:], 0.0, atol=1e-4)
+
+
+# --- every kind and option: float32 against the float64 reference ---------------------------
+OPTIONS = {
+    "demo": {},
+    "pre-emphasis": {"preemphasis": 0.97},
+    "centre constant": {"center": True, "pad_mode": "constant"},
+    "centre reflect, window centred": {"center": True, "pad_mode": "reflect",
+                                       "window_in_frame": "centre"},
+    "dB, ref max, top_db": {"log": "db", "db_ref": "max", "top_db": 60.0},
+    "log10, floor, no offset": {"log": "log10", "log_offset": 0.0, "log_floor": 1e-8},
+    "magnitude, hamming symmetric": {"power": 1.0, "window": "hamming",
+                                     "window_symmetric": True},
+    "mfcc ortho lifter": {"kind": "mfcc", "mfcc": 20, "dct_norm": "ortho", "lifter": 22.0},
+    "mfcc uniform mel_time": {"kind": "mfcc", "mfcc": 13, "dct_norm": "uniform",
+                              "layout": "mel_time"},
+    "spectrogram": {"kind": "spectrogram"},
+    "waveform": {"kind": "waveform"},
+}
+
+
+def option_card(name, per_window=False):
+    fe = dict(OPTIONS[name])
+    raw = card_dict(frontend=fe, scaling={"mean": 0.25, "std": 1.5,
+                                          **({"per_window": "standardise"} if per_window
+                                             else {})})
+    if fe.get("kind") == "waveform":
+        raw["frontend"] = {"kind": "waveform", "pcm_bits": 16, "preemphasis": 0.5}
+    return card_from_dict(raw)
+
+
+@pytest.mark.parametrize("name", list(OPTIONS))
+@pytest.mark.parametrize("per_window", [False, True])
+def test_float32_against_the_float64_reference(name, per_window):
+    # each stage's float32 run against its own float64 reference (built separately: the
+    # literal semantics of the card, scipy's DCT): within 1e-4 of the features' range
+    from monitor.frontend import reference_features
+
+    card = option_card(name, per_window)
+    w = np.stack([_noise(s) for s in range(3)])
+    fe = FrontEnd(card)
+    ref_unscaled, ref = reference_features(card, w)
+    ours = fe.batch(w)
+    assert ours.shape == ref.shape == (3, *card.feature_shape)
+    span = float(ref.max() - ref.min())
+    assert np.max(np.abs(ours - ref)) <= 1e-4 * span
+    np.testing.assert_allclose(fe.unscaled(w), ref_unscaled,
+                               atol=1e-4 * float(np.ptp(ref_unscaled)))
+
+
+# --- streaming frames: computed once, the same numbers byte for byte ---------------------
+@pytest.mark.parametrize("name", list(OPTIONS))
+def test_stream_and_consecutive_equal_whole_windows(tour, name):
+    # windows one at a time as the live engine gets them, in runs as fast replay gets them,
+    # and after gaps: byte-identical to computing each window whole
+    import soundfile as sf
+
+    card = option_card(name)
+    x, _ = sf.read(str(tour[0]), dtype="float32", frames=16000 * 40)
+    hop, win = card.hop_samples, card.window_samples
+    n = 1 + (x.size - win) // hop
+    starts = [i * hop for i in range(n)]
+    wins = [x[s:s + win] for s in starts]
+    fe = FrontEnd(card)
+    whole = fe.batch(np.stack(wins))
+    live = np.concatenate([fe.stream.features([s], [w]) for s, w in zip(starts, wins)])
+    np.testing.assert_array_equal(live, whole)
+    np.testing.assert_array_equal(fe.batch_consecutive(x[:(n - 1) * hop + win], n), whole)
+    fe.stream.reset()
+    keep = [i for i in range(n) if i % 7 not in (3, 4)]  # gaps, and runs of several windows
+    runs = [keep[:10], keep[10:11], keep[11:30], keep[30:]]
+    got = np.concatenate([fe.stream.features([starts[i] for i in r], [wins[i] for i in r])
+                          for r in runs])
+    np.testing.assert_array_equal(got, whole[keep])
+
+
+def test_stream_computes_only_the_new_frames(monkeypatch, demo_card):
+    # the demo card: 98 frames a window, 50 new ones a hop (0.5 s / 10 ms); the others come
+    # from the window before
+    from monitor import stages
+
+    counted = []
+    run = stages.SpectrumStage.run
+    monkeypatch.setattr(stages.SpectrumStage, "run",
+                        lambda self, x: counted.append(int(np.prod(x.shape[:-1]))) or run(self, x))
+    fe = FrontEnd(demo_card)
+    x = _noise(9, 16000 * 3)
+    for i in range(5):
+        fe.stream.features([i * 8000], [x[i * 8000:i * 8000 + 16000]])
+    assert counted == [98, 50, 50, 50, 50]
+    counted.clear()
+    fe = FrontEnd(option_card("centre reflect, window centred"))  # 2 + 2 edge frames per window
+    for i in range(3):
+        fe.stream.features([i * 8000], [x[i * 8000:i * 8000 + 16000]])
+    lo, hi = fe.framing.shared
+    assert (lo, hi, fe.framing.frames) == (2, 98, 101)
+    assert counted == [97, 4, 50, 4, 50, 4]  # per window: shared frames (all, then new), edges

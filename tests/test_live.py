@@ -74,8 +74,9 @@ class Keep:
 
 
 def band_of(freq, card):
-    centres = mel_band_edges(mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
-                             scale=card.mel_scale)[1:-1]
+    mel = card.frontend.mel
+    centres = mel_band_edges(mel_bands=mel.mel_bands, fmin=mel.fmin, fmax=mel.fmax,
+                             scale=mel.mel_scale)[1:-1]
     return int(np.argmin(np.abs(centres - freq)))
 
 

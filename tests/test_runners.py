@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, ROOT
+from conftest import MODELS, ROOT, card_dict
 from monitor.card import card_from_dict, load_card
 from monitor.errors import ModelError
 from monitor.frontend import FrontEnd
@@ -110,21 +110,19 @@ def test_logits_model_warns_and_softmax_on_request(tmp_path, demo_card, keras_ru
         warnings.simplefilter("always")
         load_runner(path, demo_card)
     assert any("do not look like probabilities" in str(x.message) for x in w)
-    card = card_from_dict({"classes": list(demo_card.classes), "output": "logits",
-                           "frontend": {"fmax": 8000.0}})
+    card = card_from_dict(card_dict(output="logits"))
     p = load_runner(path, card).predict(np.random.default_rng(0).standard_normal((3, 98, 40)))
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-6)
 
 
 def test_shape_mismatch_names_the_problem(demo_card):
-    card = card_from_dict({"classes": list(demo_card.classes),
-                           "frontend": {"frame_step": 320, "fmax": 8000.0}})
+    card = card_from_dict(card_dict(frontend={"frame_step": 320}, scaling=None))
     with pytest.raises(ModelError, match=r"expects \(98, 40, 1\) but the card .* gives 49 frames x 40 bands: check frame_step"):
         load_runner(MODELS / "demo.tflite", card)
 
 
 def test_class_count_mismatch(demo_card):
-    card = card_from_dict({"classes": ["a", "b", "c"], "frontend": {"fmax": 8000.0}})
+    card = card_from_dict(card_dict(classes=["a", "b", "c"]))
     with pytest.raises(ModelError, match="4 outputs but the card .* 3 classes"):
         load_runner(MODELS / "demo.tflite", card)
 

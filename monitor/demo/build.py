@@ -1,10 +1,15 @@
-"""Deterministic build of the demo model: `python -m monitor.demo.build [--out models]`.
+"""Deterministic build of the demo models: `python -m monitor.demo.build [--out models]`.
 
-Synthesises seeded clips of the four places, computes features with the very front end the
-card describes, trains a small depthwise-separable CNN (Zhang et al. 2017, "Hello Edge")
-with fixed seeds and deterministic ops on the CPU, and writes ``demo.keras``,
-``demo.tflite`` (float), ``demo.int8.tflite`` (full-integer), ``demo.toml`` and
-``demo.int8.toml``. Also prints the held-out window accuracy (other seeds).
+Two models of the same four places, one per front end: ``demo`` on log-mel features and
+``demo-mfcc`` on MFCCs (13 coefficients of the same log-mel, DCT-II "uniform" as
+TensorFlow's ``mfccs_from_log_mel_spectrograms``). For each: synthesises seeded clips,
+computes features with the very front end its card describes, trains a small
+depthwise-separable CNN (Zhang et al. 2017, "Hello Edge") with fixed seeds and
+deterministic ops on the CPU, and writes ``NAME.keras``, ``NAME.tflite`` (float),
+``NAME.int8.tflite`` (full-integer), ``NAME.toml`` and ``NAME.int8.toml`` (`make models`
+then fits the novelty profiles with `monitor.demo.profile`). Also prints the held-out window accuracy (other seeds). Each model is built in a process of its
+own (TensorFlow's converter leaks memory on every call), so one model's build never depends
+on the other's.
 """
 
 from __future__ import annotations
@@ -33,6 +38,9 @@ CARD = {
     "decision": {"smoothing": "mean", "smoothing_windows": 3, "ema_alpha": 0.5,
                  "enter": 0.6, "exit": 0.0, "margin": 0.1, "confirm": 2, "min_hold_s": 0.0},
 }
+MFCC_CARD = {**CARD, "frontend": {**CARD["frontend"], "kind": "mfcc", "mfcc": 13,
+                                   "dct_norm": "uniform"}}
+MODELS = {"demo": CARD, "demo-mfcc": MFCC_CARD}
 TRAIN_SEEDS = range(1000, 1070)
 HELD_OUT_SEEDS = range(9000, 9016)
 CLIP_S = 3.0
@@ -49,12 +57,13 @@ def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
     for seed in seeds:
         for k, place in enumerate(CLASSES):
             w = windows_of(clip(place, CLIP_S, seed), c.window_samples, c.hop_samples)
-            xs.append(fe.logmel(w))
+            xs.append(fe.unscaled(w))
             ys.append(np.full(len(w), k))
     return np.concatenate(xs).astype(np.float32), np.concatenate(ys)
 
 
-def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str) -> str:
+def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str,
+              per: str = "per mel band") -> str:
     def v(x):
         if isinstance(x, bool):
             return "true" if x else "false"
@@ -69,7 +78,7 @@ def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str) -> str:
         lines.append(f"[{table}]")
         lines += [f"{k} = {v(x)}" for k, x in card[table].items()]
         lines.append("")
-    lines.append("[scaling]  # per mel band, from the training features")
+    lines.append(f"[scaling]  # {per}, from the training features")
     lines.append("mean = [" + ", ".join(f"{m:.6f}" for m in mean) + "]")
     lines.append("std = [" + ", ".join(f"{s:.6f}" for s in std) + "]")
     lines.append("")
@@ -78,11 +87,11 @@ def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str) -> str:
     return "\n".join(lines) + "\n"
 
 
-def build_model(shape, n_classes):
+def build_model(shape, n_classes, input_name="logmel"):
     import keras
     from keras import layers
 
-    inp = keras.Input(shape=(*shape, 1), name="logmel")
+    inp = keras.Input(shape=(*shape, 1), name=input_name)
     x = layers.Conv2D(12, 3, strides=2, padding="same", use_bias=False)(inp)
     x = layers.BatchNormalization()(x)
     x = layers.ReLU()(x)
@@ -104,20 +113,36 @@ def main(argv: list[str] | None = None) -> int:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="models", help="output folder (default: models)")
     ap.add_argument("--epochs", type=int, default=30)
+    ap.add_argument("--only", choices=list(MODELS),
+                    help="build this model here (default: each in a process of its own)")
     args = ap.parse_args(argv)
+    if args.only:
+        return build(args.only, Path(args.out), epochs=args.epochs)
+    import subprocess
+
+    for name in MODELS:
+        r = subprocess.run([sys.executable, "-m", "monitor.demo.build", "--out", args.out,
+                            "--epochs", str(args.epochs), "--only", name])
+        if r.returncode:
+            return r.returncode
+    return 0
+
+
+def build(name: str, out: Path, *, epochs: int = 30) -> int:
+    """Train and write one demo model (module docstring)."""
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
     os.environ["TF_DETERMINISTIC_OPS"] = "1"
     t_start = time.time()
-    out = Path(args.out)
     out.mkdir(parents=True, exist_ok=True)
+    card = MODELS[name]
 
-    base = card_from_dict(CARD)
+    base = card_from_dict(card)
     fe = FrontEnd(base)
     x_train, y_train = dataset(TRAIN_SEEDS, fe)
     x_test, y_test = dataset(HELD_OUT_SEEDS, fe)
     mean = x_train.mean(axis=(0, 1)).astype(np.float32)
     std = (x_train.std(axis=(0, 1)) + 1e-3).astype(np.float32)
-    print(f"features: train {x_train.shape}, held out {x_test.shape} "
+    print(f"{name} features: train {x_train.shape}, held out {x_test.shape} "
           f"({time.time() - t_start:.1f} s)", flush=True)
 
     import tensorflow as tf
@@ -130,18 +155,18 @@ def main(argv: list[str] | None = None) -> int:
     tf.config.experimental.enable_op_determinism()
     xt = ((x_train - mean) / std)[..., None]
     xv = ((x_test - mean) / std)[..., None]
-    model = build_model(x_train.shape[1:], len(CLASSES))
+    model = build_model(x_train.shape[1:], len(CLASSES), base.kind)
     model.compile(optimizer=keras.optimizers.Adam(3e-3),
                   loss="sparse_categorical_crossentropy", metrics=["accuracy"])
-    model.fit(xt, y_train, epochs=args.epochs, batch_size=32, shuffle=True, verbose=2,
+    model.fit(xt, y_train, epochs=epochs, batch_size=32, shuffle=True, verbose=2,
               validation_data=(xv, y_test))
     acc = float(np.mean(np.argmax(model.predict(xv, verbose=0), axis=1) == y_test))
-    print(f"held-out window accuracy (seeds {HELD_OUT_SEEDS.start}-{HELD_OUT_SEEDS.stop - 1}): "
-          f"{acc:.4f}", flush=True)
-    model.save(out / "demo.keras")
+    print(f"{name} held-out window accuracy (seeds {HELD_OUT_SEEDS.start}-"
+          f"{HELD_OUT_SEEDS.stop - 1}): {acc:.4f}", flush=True)
+    model.save(out / f"{name}.keras")
 
     conv = tf.lite.TFLiteConverter.from_keras_model(model)
-    (out / "demo.tflite").write_bytes(conv.convert())
+    (out / f"{name}.tflite").write_bytes(conv.convert())
     rng = np.random.default_rng(11)
     pick = rng.choice(len(xt), size=300, replace=False)
 
@@ -155,14 +180,15 @@ def main(argv: list[str] | None = None) -> int:
     conv.target_spec.supported_ops = [tf.lite.OpsSet.TFLITE_BUILTINS_INT8]
     conv.inference_input_type = tf.int8
     conv.inference_output_type = tf.int8
-    (out / "demo.int8.tflite").write_bytes(conv.convert())
+    (out / f"{name}.int8.tflite").write_bytes(conv.convert())
 
     note = "scenemon demo model card (written by python -m monitor.demo.build)"
-    text = card_toml(CARD, mean, std, note)
-    (out / "demo.toml").write_text(text)
-    (out / "demo.int8.toml").write_text(text)
-    print(f"wrote {out}/demo.keras, demo.tflite, demo.int8.tflite, demo.toml, demo.int8.toml "
-          f"in {time.time() - t_start:.1f} s", flush=True)
+    per = "per mel band" if base.kind == "logmel" else "per coefficient"
+    text = card_toml(card, mean, std, note, per)
+    (out / f"{name}.toml").write_text(text)
+    (out / f"{name}.int8.toml").write_text(text)
+    print(f"wrote {out}/{name}.keras, {name}.tflite, {name}.int8.tflite, {name}.toml, "
+          f"{name}.int8.toml in {time.time() - t_start:.1f} s", flush=True)
     return 0
 
 

@@ -178,23 +178,21 @@ def layers_of(path: Path) -> list[Layer]:
 
 
 def frontend_ops_per_hop(card: ModelCard) -> dict[str, int]:
-    """Operations the front end does for each new hop of audio (frames shared across windows
-    computed once, as the streaming C call does)."""
-    if card.kind == "waveform":
-        return {"scaling": card.window_samples}
-    from monitor.device.constants import sparse_bank
-    from monitor.frontend import FrontEnd
+    """Operations the front end does for each new hop of audio, stage by stage (frames shared
+    across windows computed once, as the streaming C call does)."""
+    from monitor.stages import build_stages
 
-    frames = max(1, card.hop_samples // card.frame_step)
-    n = card.fft_length
-    fe = FrontEnd(card)
-    _, _, packed = sparse_bank(fe.mel_t.T)
-    return {"window multiply": frames * card.frame_length,
-            "FFT butterflies (radix-2)": frames * (n // 2) * int(math.log2(n)),
-            "power spectrum": frames * (n // 2 + 1),
-            "mel weights": frames * int(packed.size),
-            "logs": frames * card.mel_bands,
-            "scaling (whole window)": int(np.prod(card.feature_shape))}
+    stages = build_stages(card)
+    framing = next((s for s in stages if s.name == "framing"), None)
+    new = 0
+    if framing is not None:
+        lo, hi = framing.shared
+        new = framing.frames - (hi - lo + 1 - framing.share_step if framing.share_step else 0)
+    out: dict[str, int] = {}
+    for s in stages:
+        if s.active:
+            out.update(s.ops(new))
+    return out
 
 
 def budget(plan: ModelPlan, card: ModelCard) -> Budget:
@@ -224,12 +222,10 @@ def budget(plan: ModelPlan, card: ModelCard) -> Budget:
         unsupported = [name]
         notes.append(text)
         int8 = load_runner(path, card).model_kind == "tflite-int8"
-    ram = c_buffers(card) if card.kind != "waveform" else {}
-    ram = {f"front end: {k}": v for k, v in ram.items()}
+    ram = {f"front end: {k}": v for k, v in c_buffers(card).items()}
     ram["one window of int16 PCM"] = 2 * card.window_samples
     ram["feature tensor (float32)"] = 4 * int(np.prod(card.feature_shape))
-    flash = {f"front end: {k}": v for k, v in c_tables(card).items()} \
-        if card.kind != "waveform" else {}
+    flash = {f"front end: {k}": v for k, v in c_tables(card).items()}
     return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path), ops,
                   unsupported, frontend_ops_per_hop(card), card.hop_s, int8, notes)
 

@@ -55,10 +55,9 @@ def compare(a, b, sources: list[Path]) -> dict:
                 steps = max(steps, d)
         t1.append((np.arange(len(w)) * card_a.hop_samples + card_a.window_samples)
                   / card_a.sample_rate)
-        if card_a.kind != "waveform":
-            ref, ref_scaled = reference_features(card_a, w)
-            fe_err = max(fe_err, float(np.max(np.abs(fa.unscaled(w) - ref))))
-            fe_err_scaled = max(fe_err_scaled, float(np.max(np.abs(xa - ref_scaled))))
+        ref, ref_scaled = reference_features(card_a, w)
+        fe_err = max(fe_err, float(np.max(np.abs(fa.unscaled(w) - ref))))
+        fe_err_scaled = max(fe_err_scaled, float(np.max(np.abs(xa - ref_scaled))))
     classes = list(card_a.classes)
     top_a = np.concatenate([np.argmax(p, 1) for p in pa])
     top_b = np.concatenate([np.argmax(p, 1) for p in pb])

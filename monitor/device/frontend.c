@@ -1,35 +1,96 @@
-/* scenemon portable front end; see frontend.h. */
+/* scenemon portable front end; see frontend.h.
+ *
+ * One block per stage, in the order the samples go through them (pcm, pre-emphasis, centre
+ * padding, framing and window, spectrum, mel, log, then per window: dB reference and top_db,
+ * DCT, layout, scaling). frontend_constants.h switches each on or off (SM_HAS_*) and holds
+ * its sizes and tables. C99, no allocation, libm only for logf / log10f / sqrtf / cosf. */
 #include <math.h>
 #include <stdint.h>
 
 #include "frontend_constants.h"
 #include "frontend.h"
 
-#define SM_HALF (SM_FFT_LENGTH / 2)
+/* --- compile-time checks: a negative array size stops a C99 build ----------------------- */
+#define SM_CHECK(name, cond) typedef char sm_check_##name[(cond) ? 1 : -1]
 
+SM_CHECK(window_samples, SM_WINDOW_SAMPLES >= 1 && SM_WINDOW_SAMPLES <= (1L << 22));
+SM_CHECK(hop_samples, SM_HOP_SAMPLES >= 1 && SM_HOP_SAMPLES <= (1L << 22));
+SM_CHECK(history, SM_HIST_SAMPLES >= SM_WINDOW_SAMPLES && SM_HIST_SAMPLES % SM_HOP_SAMPLES == 0
+                  && SM_HIST_SAMPLES - SM_HOP_SAMPLES < SM_WINDOW_SAMPLES);
+SM_CHECK(pcm_bits, SM_PCM_BITS == 0 || SM_PCM_BITS == 16);
+SM_CHECK(features, SM_FEATURES >= 1);
+SM_CHECK(scale_mode, SM_SCALE_MODE >= 0 && SM_SCALE_MODE <= 2);
+SM_CHECK(scale_table, sizeof(sm_scale_mean) == sizeof(sm_scale_inv_std)
+                      && (SM_SCALE_MODE != 2 || sizeof(sm_scale_mean) == sizeof(float) * SM_FEATURES));
+
+/* --- stage: pcm (and the stream's history of samples) ----------------------------------- */
+static float sm_hist[SM_HIST_SAMPLES]; /* the newest samples; the window is sm_hist[0..W) */
+static int32_t sm_filled;              /* samples in sm_hist, at most SM_HIST_SAMPLES */
+
+static float sm_pcm_f32(float x) {
+#if SM_PCM_BITS == 16
+    /* round half to even, saturated to int16 (as numpy's round and clip) */
+    float v = x * 32768.0f;
+    if (v >= 32767.0f) return 32767.0f / 32768.0f;
+    if (v <= -32768.0f) return -1.0f;
+    int i = (int)v; /* toward zero */
+    float f = v - (float)i;
+    if (f > 0.5f || (f == 0.5f && (i & 1))) i += 1;
+    else if (f < -0.5f || (f == -0.5f && (i & 1))) i -= 1;
+    return (float)i / 32768.0f;
+#else
+    return x;
+#endif
+}
+
+/* --- stage: pre-emphasis, within each window: y[0] = x[0], y[j] = x[j] - a x[j-1] ------- */
+static float sm_emphasised(const float *x, int j) {
+#if SM_HAS_PREEMPHASIS
+    return j == 0 ? x[0] : x[j] - SM_PREEMPHASIS * x[j - 1];
+#else
+    return x[j];
+#endif
+}
+
+#if SM_HAS_FRAMING
+SM_CHECK(fft_power_of_two, SM_FFT_LENGTH >= 16 && SM_FFT_LENGTH <= 32768
+                           && (SM_FFT_LENGTH & (SM_FFT_LENGTH - 1)) == 0);
+SM_CHECK(frame_fits_fft, SM_FRAME_LENGTH >= 1 && SM_FRAME_LENGTH <= SM_FFT_LENGTH
+                         && SM_FRAME_OFFSET >= 0 && SM_FRAME_OFFSET + SM_FRAME_LENGTH <= SM_FRAME_SPAN
+                         && SM_FRAME_SPAN <= SM_FFT_LENGTH);
+SM_CHECK(frames_fit, SM_FRAMES >= 1 && SM_FRAME_STEP >= 1
+                     && (SM_FRAMES - 1) * (long)SM_FRAME_STEP + SM_FRAME_SPAN
+                        <= SM_WINDOW_SAMPLES + 2L * SM_PAD);
+SM_CHECK(pad, SM_PAD >= 0 && (!SM_PAD_REFLECT || SM_PAD < SM_WINDOW_SAMPLES));
+SM_CHECK(window_table, sizeof(sm_window) == sizeof(float) * SM_FRAME_LENGTH);
+SM_CHECK(bins, SM_BINS == SM_FFT_LENGTH / 2 + 1);
+SM_CHECK(shared, SM_SHARE_STEP == 0 || (SM_SHARED_FIRST >= 0 && SM_SHARED_LAST < SM_FRAMES
+                                        && SM_SHARE_STEP * SM_FRAME_STEP == SM_HOP_SAMPLES
+                                        && SM_SHARE_STEP <= SM_SHARED_LAST - SM_SHARED_FIRST));
+SM_CHECK(output, SM_FEATURES == SM_FRAMES * SM_CHANNELS);
+
+/* --- stage: centre padding: sample j of the padded window (0 <= j < W + 2 pad) ----------- */
+static float sm_padded(const float *x, int j) {
+    j -= SM_PAD;
+#if SM_PAD > 0
+    if (j < 0 || j >= SM_WINDOW_SAMPLES) {
+#if SM_PAD_REFLECT
+        j = j < 0 ? -j : 2 * (SM_WINDOW_SAMPLES - 1) - j;
+#else
+        return 0.0f;
+#endif
+    }
+#endif
+    return sm_emphasised(x, j);
+}
+
+/* --- stage: spectrum: radix-2 FFT ------------------------------------------------------ */
+#define SM_HALF (SM_FFT_LENGTH / 2)
 static float sm_cos[SM_HALF];
 static float sm_sin[SM_HALF];
 static uint16_t sm_bitrev[SM_FFT_LENGTH];
 static float sm_re[SM_FFT_LENGTH];
 static float sm_im[SM_FFT_LENGTH];
-static float sm_power[SM_FFT_LENGTH / 2 + 1];
-static float sm_pcm[SM_WINDOW_SAMPLES];
-
-void sm_frontend_init(void) {
-    const float two_pi = 6.283185307179586f;
-    int bits = 0;
-    while ((1 << bits) < SM_FFT_LENGTH) bits++;
-    for (int k = 0; k < SM_HALF; k++) {
-        float a = two_pi * (float)k / (float)SM_FFT_LENGTH;
-        sm_cos[k] = cosf(a);
-        sm_sin[k] = cosf(a - 1.5707963267948966f); /* sin(a) */
-    }
-    for (int i = 0; i < SM_FFT_LENGTH; i++) {
-        unsigned r = 0;
-        for (int b = 0; b < bits; b++) r |= ((unsigned)(i >> b) & 1u) << (bits - 1 - b);
-        sm_bitrev[i] = (uint16_t)r;
-    }
-}
 
 void sm_rfft(float *re, float *im) {
     for (int i = 0; i < SM_FFT_LENGTH; i++) {
@@ -54,90 +115,253 @@ void sm_rfft(float *re, float *im) {
     }
 }
 
-#if SM_PCM_BITS == 16
-/* round half to even, saturated to int16 (as numpy's round and clip) */
-static int16_t sm_q16(float x) {
-    float v = x * 32768.0f;
-    if (v >= 32767.0f) return 32767;
-    if (v <= -32768.0f) return -32768;
-    int i = (int)v; /* toward zero */
-    float f = v - (float)i;
-    if (f > 0.5f || (f == 0.5f && (i & 1))) i += 1;
-    else if (f < -0.5f || (f == -0.5f && (i & 1))) i -= 1;
-    return (int16_t)i;
-}
+#if SM_HAS_MEL
+/* --- stage: mel (sparse table: first bin and length per band, weights packed) ---------- */
+SM_CHECK(mel_table, sizeof(sm_mel_weights) == sizeof(float) * SM_MEL_COEFFS
+                    && sizeof(sm_mel_first_bin) == sizeof(int16_t) * SM_MEL_BANDS
+                    && sizeof(sm_mel_length) == sizeof(int16_t) * SM_MEL_BANDS);
+static float sm_power[SM_BINS];
 #endif
 
-static float sm_log(float x) {
+/* --- stage: log: offset, floor, ln / log10 / dB; the frames a stream shares ------------ */
+static float sm_frames[SM_FRAMES * SM_FRAME_FEATURES];
+
+static float sm_log(float v) {
+    v += SM_LOG_OFFSET;
+#if SM_HAS_LOG_FLOOR
+    if (v < SM_LOG_FLOOR) v = SM_LOG_FLOOR;
+#endif
 #if SM_LOG_KIND == 0
-    return logf(x);
+    return logf(v);
 #elif SM_LOG_KIND == 1
-    return logf(x) * 0.43429448190325176f;
+    return log10f(v);
 #else
-    return (20.0f / (float)SM_POWER) * logf(x) * 0.43429448190325176f;
+    return SM_DB_FACTOR * log10f(v);
 #endif
 }
 
-static float sm_scaled(float v, int frame, int band) {
-#if SM_LAYOUT_MEL_TIME
-    int idx = band * SM_FRAMES + frame;
-#else
-    int idx = frame * SM_MEL_BANDS + band;
-#endif
-#if SM_SCALE_MODE == 0
-    (void)idx;
-    return (v - sm_scale_mean[0]) * sm_scale_inv_std[0];
-#elif SM_SCALE_MODE == 1
-    (void)idx;
-    return (v - sm_scale_mean[band]) * sm_scale_inv_std[band];
-#else
-    return (v - sm_scale_mean[idx]) * sm_scale_inv_std[idx];
-#endif
-}
-
-static int sm_features(const float *x, float *out) {
-    for (int t = 0; t < SM_FRAMES; t++) {
-        const float *frame = x + t * SM_FRAME_STEP;
-        for (int i = 0; i < SM_FFT_LENGTH; i++) {
-            sm_re[i] = i < SM_FRAME_LENGTH ? frame[i] * sm_window[i] : 0.0f;
-            sm_im[i] = 0.0f;
-        }
-        sm_rfft(sm_re, sm_im);
-        for (int k = 0; k <= SM_HALF; k++) {
-            float p = sm_re[k] * sm_re[k] + sm_im[k] * sm_im[k];
+/* frame t of the window x: window, FFT, |X|^power, mel, log -> sm_frames row t */
+static void sm_frame(const float *x, int t) {
+    const int base = t * SM_FRAME_STEP + SM_FRAME_OFFSET; /* padded-window sample */
+    float *row = sm_frames + t * SM_FRAME_FEATURES;
+    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+        sm_re[i] = 0.0f;
+        sm_im[i] = 0.0f;
+    }
+    for (int i = 0; i < SM_FRAME_LENGTH; i++)
+        sm_re[SM_FRAME_OFFSET + i] = sm_padded(x, base + i) * sm_window[i];
+    sm_rfft(sm_re, sm_im);
+    for (int k = 0; k < SM_BINS; k++) {
+        float p = sm_re[k] * sm_re[k] + sm_im[k] * sm_im[k];
 #if SM_POWER == 1
-            p = sqrtf(p);
+        p = sqrtf(p);
 #endif
-            sm_power[k] = p;
-        }
-        int c = 0;
-        for (int m = 0; m < SM_MEL_BANDS; m++) {
-            float acc = 0.0f;
-            for (int k = 0; k < sm_mel_length[m]; k++) acc += sm_mel_weights[c + k] * sm_power[sm_mel_first_bin[m] + k];
-            c += sm_mel_length[m];
-            float v = sm_scaled(sm_log(acc + SM_LOG_OFFSET), t, m);
-#if SM_LAYOUT_MEL_TIME
-            out[m * SM_FRAMES + t] = v;
+#if SM_HAS_MEL
+        sm_power[k] = p;
 #else
-            out[t * SM_MEL_BANDS + m] = v;
+        row[k] = sm_log(p);
+#endif
+    }
+#if SM_HAS_MEL
+    int c = 0;
+    for (int m = 0; m < SM_MEL_BANDS; m++) {
+        float acc = 0.0f;
+        const float *p = sm_power + sm_mel_first_bin[m];
+        for (int k = 0; k < sm_mel_length[m]; k++) acc += sm_mel_weights[c + k] * p[k];
+        c += sm_mel_length[m];
+        row[m] = sm_log(acc);
+    }
+#endif
+}
+
+static void sm_frames_all(const float *x) {
+    for (int t = 0; t < SM_FRAMES; t++) sm_frame(x, t);
+}
+#endif /* SM_HAS_FRAMING */
+
+void sm_frontend_init(void) {
+#if SM_HAS_FRAMING
+    const float two_pi = 6.283185307179586f;
+    int bits = 0;
+    while ((1 << bits) < SM_FFT_LENGTH) bits++;
+    for (int k = 0; k < SM_HALF; k++) {
+        float a = two_pi * (float)k / (float)SM_FFT_LENGTH;
+        sm_cos[k] = cosf(a);
+        sm_sin[k] = cosf(a - 1.5707963267948966f); /* sin(a) */
+    }
+    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+        unsigned r = 0;
+        for (int b = 0; b < bits; b++) r |= ((unsigned)(i >> b) & 1u) << (bits - 1 - b);
+        sm_bitrev[i] = (uint16_t)r;
+    }
+#endif
+    sm_filled = 0;
+}
+
+#if SM_HAS_FRAMING
+/* the dB reference, then the top_db floor relative to the window's maximum */
+static float sm_db(float v, float ref, float low) {
+    v -= ref;
+#if SM_HAS_TOP_DB
+    if (v < low) v = low;
+#else
+    (void)low;
+#endif
+    return v;
+}
+#endif
+
+#if SM_HAS_DCT
+/* --- stage: DCT (DCT-II rows, the lifter folded in), per window after the dB floor ----- */
+SM_CHECK(dct_table, sizeof(sm_dct) == sizeof(float) * SM_MFCC * SM_MEL_BANDS
+                    && SM_CHANNELS == SM_MFCC && SM_FRAME_FEATURES == SM_MEL_BANDS);
+static float sm_row[SM_MEL_BANDS];
+#endif
+
+/* --- per window: dB reference and top_db (log), DCT, layout, per-window standardisation,
+ * scaling. Reads sm_frames (or the samples x), writes SM_FEATURES values to out. ---------- */
+static void sm_finish(const float *x, float *out) {
+#if SM_HAS_FRAMING
+    (void)x;
+#if SM_DB_REF_MAX || SM_HAS_TOP_DB
+    float peak = sm_frames[0];
+    for (int i = 1; i < SM_FRAMES * SM_FRAME_FEATURES; i++)
+        if (sm_frames[i] > peak) peak = sm_frames[i];
+#endif
+#if SM_DB_REF_MAX
+    const float ref = peak;
+#else
+    const float ref = 0.0f;
+#endif
+#if SM_HAS_TOP_DB
+    const float low = (peak - ref) - SM_TOP_DB;
+#else
+    const float low = 0.0f;
+#endif
+    for (int t = 0; t < SM_FRAMES; t++) {
+        const float *row = sm_frames + t * SM_FRAME_FEATURES;
+#if SM_HAS_DCT
+        for (int m = 0; m < SM_MEL_BANDS; m++) sm_row[m] = sm_db(row[m], ref, low);
+#endif
+        for (int c = 0; c < SM_CHANNELS; c++) {
+#if SM_HAS_DCT
+            const float *d = sm_dct + c * SM_MEL_BANDS;
+            float acc = 0.0f;
+            for (int m = 0; m < SM_MEL_BANDS; m++) acc += d[m] * sm_row[m];
+#else
+            float acc = sm_db(row[c], ref, low);
+#endif
+#if SM_LAYOUT_MEL_TIME
+            out[c * SM_FRAMES + t] = acc;
+#else
+            out[t * SM_CHANNELS + c] = acc;
 #endif
         }
     }
+#else
+    for (int j = 0; j < SM_WINDOW_SAMPLES; j++) out[j] = sm_emphasised(x, j);
+#endif
+#if SM_PER_WINDOW
+    /* minus the mean of all values, over their population std + eps (Kahan sums) */
+    float sum = 0.0f, comp = 0.0f;
+    for (int i = 0; i < SM_FEATURES; i++) {
+        float y = out[i] - comp, s = sum + y;
+        comp = (s - sum) - y;
+        sum = s;
+    }
+    const float mean = sum / (float)SM_FEATURES;
+    sum = 0.0f; comp = 0.0f;
+    for (int i = 0; i < SM_FEATURES; i++) {
+        float d = out[i] - mean;
+        float y = d * d - comp, s = sum + y;
+        comp = (s - sum) - y;
+        sum = s;
+    }
+    const float scale = 1.0f / (sqrtf(sum / (float)SM_FEATURES) + SM_PER_WINDOW_EPS);
+    for (int i = 0; i < SM_FEATURES; i++) out[i] = (out[i] - mean) * scale;
+#endif
+    for (int i = 0; i < SM_FEATURES; i++) {
+#if SM_SCALE_MODE == 0
+        const int s = 0;
+#elif SM_SCALE_MODE == 1
+#if SM_LAYOUT_MEL_TIME
+        const int s = i / SM_FRAMES;
+#else
+        const int s = i % SM_CHANNELS;
+#endif
+#else
+        const int s = i;
+#endif
+        out[i] = (out[i] - sm_scale_mean[s]) * sm_scale_inv_std[s];
+    }
+}
+
+/* --- whole windows ------------------------------------------------------------------- */
+static int sm_window_features(float *out) {
+    sm_filled = 0; /* sm_hist now holds this window, not the stream: the stream restarts */
+#if SM_HAS_FRAMING
+    sm_frames_all(sm_hist);
+#endif
+    sm_finish(sm_hist, out);
     return 0;
 }
 
 int sm_features_i16(const int16_t *pcm, float *out) {
-    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_pcm[i] = (float)pcm[i] / 32768.0f;
-    return sm_features(sm_pcm, out);
+    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_hist[i] = (float)pcm[i] / 32768.0f;
+    return sm_window_features(out);
 }
 
 int sm_features_f32(const float *pcm, float *out) {
-    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) {
-#if SM_PCM_BITS == 16
-        sm_pcm[i] = (float)sm_q16(pcm[i]) / 32768.0f;
-#else
-        sm_pcm[i] = pcm[i];
-#endif
-    }
-    return sm_features(sm_pcm, out);
+    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_hist[i] = sm_pcm_f32(pcm[i]);
+    return sm_window_features(out);
 }
+
+/* --- the stream: one hop at a time, only the new frames computed ----------------------- */
+static int sm_stream_features(float *out) {
+    const int was_full = sm_filled == SM_HIST_SAMPLES;
+    sm_filled += SM_HOP_SAMPLES;
+    if (sm_filled > SM_HIST_SAMPLES) sm_filled = SM_HIST_SAMPLES;
+    if (sm_filled < SM_HIST_SAMPLES) return 0;
+#if SM_HAS_FRAMING
+#if SM_SHARE_STEP > 0
+    if (was_full) {
+        /* the frames inside the window a hop ago are this window's, SM_SHARE_STEP rows on */
+        for (int t = SM_SHARED_FIRST; t <= SM_SHARED_LAST - SM_SHARE_STEP; t++)
+            for (int m = 0; m < SM_FRAME_FEATURES; m++)
+                sm_frames[t * SM_FRAME_FEATURES + m] =
+                    sm_frames[(t + SM_SHARE_STEP) * SM_FRAME_FEATURES + m];
+        for (int t = 0; t < SM_FRAMES; t++)
+            if (t < SM_SHARED_FIRST || t > SM_SHARED_LAST - SM_SHARE_STEP) sm_frame(sm_hist, t);
+    } else {
+        sm_frames_all(sm_hist);
+    }
+#else
+    (void)was_full;
+    sm_frames_all(sm_hist);
+#endif
+#else
+    (void)was_full;
+#endif
+    sm_finish(sm_hist, out);
+    return 1;
+}
+
+static void sm_shift_history(void) {
+    for (int i = 0; i < SM_HIST_SAMPLES - SM_HOP_SAMPLES; i++) sm_hist[i] = sm_hist[i + SM_HOP_SAMPLES];
+}
+
+int sm_push_hop(const int16_t *pcm_hop, float *out) {
+    sm_shift_history();
+    float *dst = sm_hist + (SM_HIST_SAMPLES - SM_HOP_SAMPLES);
+    for (int i = 0; i < SM_HOP_SAMPLES; i++) dst[i] = (float)pcm_hop[i] / 32768.0f;
+    return sm_stream_features(out);
+}
+
+int sm_push_hop_f32(const float *pcm_hop, float *out) {
+    sm_shift_history();
+    float *dst = sm_hist + (SM_HIST_SAMPLES - SM_HOP_SAMPLES);
+    for (int i = 0; i < SM_HOP_SAMPLES; i++) dst[i] = sm_pcm_f32(pcm_hop[i]);
+    return sm_stream_features(out);
+}
+
+void sm_stream_reset(void) { sm_filled = 0; }

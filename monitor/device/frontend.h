@@ -1,18 +1,26 @@
 /*
- * scenemon portable front end: scaled log-mel features from PCM, as the model card says.
+ * scenemon portable front end: scaled features from PCM, as the model card says.
  *
- * C99, no dynamic allocation, no libm beyond logf / sqrtf / cosf. Every size and table
- * comes from frontend_constants.h, which `scenemon vectors` writes for one model card.
+ * C99, no dynamic allocation, no libm beyond logf / log10f / sqrtf / cosf. Every size, switch
+ * and table comes from frontend_constants.h, which `scenemon vectors` writes for one model
+ * card; sizes the code cannot work with stop the build (a negative array size).
  *
- * Usage:
+ * Whole windows:
  *     #include "frontend_constants.h"
  *     #include "frontend.h"
  *     sm_frontend_init();                      // once: FFT twiddles
  *     float feats[SM_FEATURES];
  *     sm_features_i16(pcm, feats);             // SM_WINDOW_SAMPLES int16 samples
  *
- * Output order is the model's input order (card layout "time_mel" or "mel_time"),
- * standardised with the card's scaling: (log-mel - mean) / std.
+ * A stream, one hop at a time (only the frames the hop adds are computed; the others are
+ * kept from the window before):
+ *     if (sm_push_hop(hop, feats)) { ... }     // SM_HOP_SAMPLES int16 samples; 1 when feats
+ *                                              // holds the next window (window k starts at
+ *                                              // sample k * SM_HOP_SAMPLES, as scenemon cuts)
+ *
+ * Output order is the model's input order (card layout "time_mel" or "mel_time"), with the
+ * card's scaling: (features - mean) / std. The two forms share their buffers: a whole-window
+ * call restarts the stream.
  */
 #ifndef SCENEMON_FRONTEND_H
 #define SCENEMON_FRONTEND_H
@@ -23,11 +31,12 @@
 extern "C" {
 #endif
 
-/* Fill the FFT twiddle tables; call once before anything else. */
+/* Fill the FFT twiddle tables and empty the stream; call once before anything else. */
 void sm_frontend_init(void);
 
 /* In-place radix-2 FFT of SM_FFT_LENGTH points: re holds the real input (im must be all
- * zero); afterwards re/im hold the spectrum, bins 0..SM_FFT_LENGTH/2 are the real FFT. */
+ * zero); afterwards re/im hold the spectrum, bins 0..SM_FFT_LENGTH/2 are the real FFT.
+ * (Kinds with frames only.) */
 void sm_rfft(float *re, float *im);
 
 /* Scaled features of one window of int16 PCM (divided by 32768). Returns 0. */
@@ -36,6 +45,16 @@ int sm_features_i16(const int16_t *pcm, float *out);
 /* Scaled features of one window of float PCM in [-1, 1]; quantised to int16 first when the
  * card says pcm_bits = 16. Returns 0. */
 int sm_features_f32(const float *pcm, float *out);
+
+/* Push the next SM_HOP_SAMPLES samples of the stream; returns 1 and writes SM_FEATURES
+ * values to out when a window is complete, 0 while the first window is still filling. */
+int sm_push_hop(const int16_t *pcm_hop, float *out);
+
+/* The same for float PCM (quantised to int16 first when the card says pcm_bits = 16). */
+int sm_push_hop_f32(const float *pcm_hop, float *out);
+
+/* Forget the stream (the next window needs SM_HIST_SAMPLES new samples). */
+void sm_stream_reset(void);
 
 #ifdef __cplusplus
 }

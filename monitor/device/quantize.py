@@ -90,7 +90,7 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
     out.parent.mkdir(parents=True, exist_ok=True)
     atomic_write(out, data)
     card_out = out.with_suffix(".toml")
-    src_text = card.path.read_text(encoding="utf-8") if card.path else ""
+    src_text = card.path.read_text(encoding="utf-8-sig") if card.path else ""
     note = (f"# int8 model {out.name}: {CARD_MARK} from {Path(model).name} with "
             f"{len(features)} calibration windows; same front end as {Path(card.name).name}\n")
     atomic_write(card_out, (note + src_text).encode("utf-8"))

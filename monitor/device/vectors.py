@@ -142,7 +142,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
             "window_starts_s": [round(float(i) * hop, 6) for i in pick],
             "predicted": [card.classes[int(k)] for k in np.argmax(probs, 1)],
             "window_samples": card.window_samples, "hop_samples": card.hop_samples,
-            "layout": card.layout if card.kind != "waveform" else "samples",
+            "layout": card.layout,
             "feature_shape": list(card.feature_shape), "classes": list(card.classes),
             "source": Path(audio).name, "seed": seed,
             "files": {"pcm.csv": "int16 samples, one window per row",
@@ -158,15 +158,14 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
         meta["files"]["input_int8.csv"] = "the int8 input tensor, one window per row"
         meta["files"]["output_int8.csv"] = (f"the int8 output tensor, one window per row "
                                             f"({runner.runtime} runtime)")
-    if card.kind != "waveform":
-        (out / "frontend_constants.h").write_text(header(card, model_sha256=runner.sha256))
-        for src in C_SOURCES:
-            shutil.copyfile(src, out / src.name)
-        shutil.copyfile(CHECK_SOURCES[0], out / "check.c")
-        shutil.copyfile(CHECK_SOURCES[1], out / "Makefile")
-        (out / "check_params.h").write_text(check_params(card, runner, len(pick), feats))
-        meta["files"].update({"check.c": "the firmware-side check (make check)",
-                              "Makefile": "builds and runs check.c with frontend.c"})
+    (out / "frontend_constants.h").write_text(header(card, model_sha256=runner.sha256))
+    for src in C_SOURCES:
+        shutil.copyfile(src, out / src.name)
+    shutil.copyfile(CHECK_SOURCES[0], out / "check.c")
+    shutil.copyfile(CHECK_SOURCES[1], out / "Makefile")
+    (out / "check_params.h").write_text(check_params(card, runner, len(pick), feats))
+    meta["files"].update({"check.c": "the firmware-side check (make check)",
+                          "Makefile": "builds and runs check.c with frontend.c"})
     if runner.path.suffix.lower() == ".tflite":
         try:
             from monitor.device.budget import budget

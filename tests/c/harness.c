@@ -1,52 +1,58 @@
-/* Test harness for the portable C front end.
- *   harness i16 < pcm.csv      features of int16 windows (one window per line)
- *   harness f32 < pcm.csv      the same samples given as float PCM (value / 32768)
- *   harness fft < signal.csv   SM_FFT_LENGTH reals per line -> re,im of bins 0..N/2
- * Output: one row of comma-separated numbers per input row. */
+/* Test harness for the portable C front end; raw binary on stdin and stdout.
+ *   harness i16 < windows.i16          int16 windows of SM_WINDOW_SAMPLES -> float32 features
+ *   harness f32 < windows.f32          float32 windows in [-1, 1] -> float32 features
+ *   harness stream_i16 < signal.i16    an int16 stream, pushed one hop at a time -> the
+ *                                      features of every complete window
+ *   harness stream_f32 < signal.f32    the same for a float32 stream
+ *   harness fft < signal.f32           SM_FFT_LENGTH floats per row -> re, im of bins 0..N/2
+ * Output: SM_FEATURES float32 per window (or (N/2 + 1) * 2 per FFT row). */
 #include <stdio.h>
 #include <string.h>
 
 #include "frontend_constants.h"
 #include "frontend.h"
 
-static int16_t pcm[SM_WINDOW_SAMPLES];
-static float pcmf[SM_WINDOW_SAMPLES];
+static int16_t pcm[SM_HIST_SAMPLES];
+static float pcmf[SM_HIST_SAMPLES];
 static float feats[SM_FEATURES];
-static float re[SM_FFT_LENGTH], im[SM_FFT_LENGTH];
-
-static int read_row(float *dst, int n) {
-    for (int i = 0; i < n; i++) {
-        float v;
-        if (scanf(" %f%*c", &v) != 1) return 0;
-        dst[i] = v;
-    }
-    return 1;
-}
 
 int main(int argc, char **argv) {
     if (argc < 2) return 2;
+    const char *mode = argv[1];
     sm_frontend_init();
-    if (strcmp(argv[1], "fft") == 0) {
-        while (read_row(re, SM_FFT_LENGTH)) {
+#if SM_HAS_FRAMING
+    if (strcmp(mode, "fft") == 0) {
+        static float re[SM_FFT_LENGTH], im[SM_FFT_LENGTH], out[SM_FFT_LENGTH + 2];
+        while (fread(re, sizeof(float), SM_FFT_LENGTH, stdin) == SM_FFT_LENGTH) {
             memset(im, 0, sizeof im);
             sm_rfft(re, im);
-            for (int k = 0; k <= SM_FFT_LENGTH / 2; k++)
-                printf("%s%.9g,%.9g", k ? "," : "", re[k], im[k]);
-            printf("\n");
+            for (int k = 0; k <= SM_FFT_LENGTH / 2; k++) {
+                out[2 * k] = re[k];
+                out[2 * k + 1] = im[k];
+            }
+            fwrite(out, sizeof(float), SM_FFT_LENGTH + 2, stdout);
         }
         return 0;
     }
-    int as_float = strcmp(argv[1], "f32") == 0;
-    while (read_row(pcmf, SM_WINDOW_SAMPLES)) {
-        if (as_float) {
-            for (int i = 0; i < SM_WINDOW_SAMPLES; i++) pcmf[i] = pcmf[i] / 32768.0f;
-            sm_features_f32(pcmf, feats);
-        } else {
-            for (int i = 0; i < SM_WINDOW_SAMPLES; i++) pcm[i] = (int16_t)pcmf[i];
+#endif
+    if (strcmp(mode, "i16") == 0) {
+        while (fread(pcm, sizeof(int16_t), SM_WINDOW_SAMPLES, stdin) == SM_WINDOW_SAMPLES) {
             sm_features_i16(pcm, feats);
+            fwrite(feats, sizeof(float), SM_FEATURES, stdout);
         }
-        for (int i = 0; i < SM_FEATURES; i++) printf("%s%.9g", i ? "," : "", feats[i]);
-        printf("\n");
+    } else if (strcmp(mode, "f32") == 0) {
+        while (fread(pcmf, sizeof(float), SM_WINDOW_SAMPLES, stdin) == SM_WINDOW_SAMPLES) {
+            sm_features_f32(pcmf, feats);
+            fwrite(feats, sizeof(float), SM_FEATURES, stdout);
+        }
+    } else if (strcmp(mode, "stream_i16") == 0) {
+        while (fread(pcm, sizeof(int16_t), SM_HOP_SAMPLES, stdin) == SM_HOP_SAMPLES)
+            if (sm_push_hop(pcm, feats)) fwrite(feats, sizeof(float), SM_FEATURES, stdout);
+    } else if (strcmp(mode, "stream_f32") == 0) {
+        while (fread(pcmf, sizeof(float), SM_HOP_SAMPLES, stdin) == SM_HOP_SAMPLES)
+            if (sm_push_hop_f32(pcmf, feats)) fwrite(feats, sizeof(float), SM_FEATURES, stdout);
+    } else {
+        return 2;
     }
     return 0;
 }
