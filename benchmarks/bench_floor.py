@@ -47,13 +47,15 @@ def floor_seconds(x: np.ndarray, card) -> tuple[float, int]:
     interp = Interpreter(model_path=str(MODEL), num_threads=1)
     inp, out = interp.get_input_details()[0], interp.get_output_details()[0]
     interp.allocate_tensors()
-    win = window_coefficients(card.frame_length)
-    mel = mel_filterbank(sample_rate=card.sample_rate, fft_length=card.fft_length,
-                         mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
-                         scale=card.mel_scale, norm=card.mel_norm,
-                         triangles=card.mel_triangles).T.copy()
+    fe = card.frontend
+    fr, m = fe.framing, fe.mel
+    win = window_coefficients(fr.frame_length)
+    mel = mel_filterbank(sample_rate=card.sample_rate, fft_length=fr.fft_length,
+                         mel_bands=m.mel_bands, fmin=m.fmin, fmax=m.fmax,
+                         scale=m.mel_scale, norm=m.mel_norm,
+                         triangles=m.mel_triangles).T.copy()
     mean, inv_std = card.mean.astype(np.float32), (1.0 / card.std).astype(np.float32)
-    step = card.hop_samples // card.frame_step
+    step = card.hop_samples // fr.frame_step
     f = card.frames_per_window
     n = 1 + (len(x) - card.window_samples) // card.hop_samples
     block = 64  # windows per block: frames shared inside it, memory stays small
@@ -65,9 +67,9 @@ def floor_seconds(x: np.ndarray, card) -> tuple[float, int]:
         a = b0 * card.hop_samples
         span = x[a:a + (nb - 1) * card.hop_samples + card.window_samples]
         q = quantise_pcm16(span) if card.pcm_bits == 16 else span
-        frames = np.lib.stride_tricks.sliding_window_view(q, card.frame_length)[::card.frame_step]
-        spec = scipy.fft.rfft(frames * win, n=card.fft_length, axis=-1)
-        logmel = np.log((spec.real ** 2 + spec.imag ** 2) @ mel + np.float32(card.log_offset))
+        frames = np.lib.stride_tricks.sliding_window_view(q, fr.frame_length)[::fr.frame_step]
+        spec = scipy.fft.rfft(frames * win, n=fr.fft_length, axis=-1)
+        logmel = np.log((spec.real ** 2 + spec.imag ** 2) @ mel + np.float32(fe.log.log_offset))
         for i in range(nb):
             feats = (logmel[i * step:i * step + f] - mean) * inv_std
             set_tensor(inp["index"], feats.reshape(shape))

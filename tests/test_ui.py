@@ -604,8 +604,9 @@ def test_feature_picture_axis_and_no_colour_form(demo_card):
     from monitor.ui.draw import SHADES, heat_text, picture_spec
 
     spec = picture_spec(demo_card)
-    bands, frames = demo_card.mel_bands, demo_card.frames_per_window
-    m_lo, m_hi = (2595 * np.log10(1 + f / 700) for f in (demo_card.fmin, demo_card.fmax))
+    mel_cfg = demo_card.frontend.mel
+    bands, frames = mel_cfg.mel_bands, demo_card.frames_per_window
+    m_lo, m_hi = (2595 * np.log10(1 + f / 700) for f in (mel_cfg.fmin, mel_cfg.fmax))
     mel = np.linspace(m_lo, m_hi, bands + 2)[1:-1]
     centres = 700 * (10 ** (mel / 2595) - 1)
     assert np.allclose(spec.centres_hz, centres, rtol=1e-9)

@@ -320,31 +320,31 @@ def picture_spec(card) -> PictureSpec:
 
     A log-mel or linear spectrogram card with a fixed scaling is drawn in dB (the scaling
     undone, the card's log turned into 10 log10 of power), its frequency axis from the
-    card's band centres (`monitor.frontend.mel_band_edges`) or FFT bins. Anything else
+    card's band centres (`monitor.dsp.mel_band_edges`) or FFT bins. Anything else
     (MFCC, per-window standardisation) is drawn as the model's scaled input in standard
     deviations, without a frequency axis.
     """
-    kind = getattr(card, "kind", "logmel")
+    fe = card.frontend
+    kind = fe.kind
     one = np.ones((), np.float32)
     if kind == "waveform":
         return PictureSpec(None, None, one, one * 0, 0.0, 1.0, "", "waveform")
-    shape = tuple(card.feature_shape)
-    frames = card.frames_per_window
-    time_axis = 0 if shape[0] == frames else 1
+    time_axis = card.time_axis
     centres: tuple[float, ...] | None = None
-    if kind == "logmel":
-        from monitor.frontend import mel_band_edges
+    if kind == "logmel" and fe.mel is not None:
+        from monitor.dsp import mel_band_edges
 
-        edges = mel_band_edges(mel_bands=card.mel_bands, fmin=card.fmin, fmax=card.fmax,
-                               scale=card.mel_scale)
+        edges = mel_band_edges(mel_bands=fe.mel.mel_bands, fmin=fe.mel.fmin, fmax=fe.mel.fmax,
+                               scale=fe.mel.mel_scale)
         centres = tuple(float(f) for f in edges[1:-1])
-    elif kind == "spectrogram":
-        n = shape[1 - time_axis]
-        centres = tuple(k * card.sample_rate / card.fft_length for k in range(n))
-    per_window = getattr(card, "per_window", "none")
-    log = getattr(card, "log", "ln")
-    power = float(getattr(card, "power", 2.0)) or 2.0
+    elif kind == "spectrogram" and fe.framing is not None:
+        centres = tuple(k * card.sample_rate / fe.framing.fft_length for k in range(card.bands))
+    per_window = card.scaling.per_window
+    log = fe.log.log if fe.log is not None else None
+    power = fe.spectrum.power if fe.spectrum is not None else 2.0
     factor = {"db": 1.0, "ln": 20.0 / power / math.log(10.0), "log10": 20.0 / power}.get(log)
+    if log == "db" and fe.log.db_ref != "one":
+        factor = None  # relative to each window's own maximum: no absolute level to draw
     if centres is None or per_window != "none" or factor is None:
         return PictureSpec(time_axis, centres if per_window == "none" else None, one,
                            one * 0, -2.5, 2.5, "σ", "scaled input")
@@ -356,7 +356,8 @@ def picture_spec(card) -> PictureSpec:
     hi = float(np.max(offset + 1.0 * gain))
     lo = float(np.min(offset - 1.5 * gain))
     if log != "db":  # nothing lies below the log of the offset (digital silence)
-        base = math.log(card.log_offset) if log == "ln" else math.log10(card.log_offset)
+        floor = max(fe.log.log_offset, fe.log.log_floor)
+        base = math.log(floor) if log == "ln" else math.log10(floor)
         lo = max(lo, factor * base)
     lo, hi = 10.0 * math.floor(lo / 10.0), 10.0 * math.ceil(hi / 10.0)
     if hi - lo < 20:
