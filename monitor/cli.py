@@ -220,7 +220,8 @@ def build_parser() -> argparse.ArgumentParser:
              "Model card tools. card check: compute one window of AUDIO through the card's "
              "front end and compare it with FEATURES.npy from your own training code; when "
              "they differ, say where, and try the card with one key, then two keys changed.")
-    actions = p.add_subparsers(dest="card_command", metavar="ACTION", parser_class=Parser)
+    actions = p.add_subparsers(dest="card_command", metavar="ACTION", parser_class=Parser,
+                               help="check: compare one window's features with training's")
     c = actions.add_parser("check", help="compare the card's features with a .npy from training",
                            description=CARD_CHECK_HELP,
                            epilog=EXAMPLES["card check"],

@@ -354,6 +354,7 @@ def test_footer_offers_only_the_keys_that_work(long_app, quiet_clip, tmp_path):
                 await step(pilot, stepped_src, 4, 3)
             else:
                 await _until_finished(pilot)
+            await wait_for(pilot, lambda: screen_rows(app)[-1].strip())  # drawn, under load too
             footers[name] = screen_rows(app)[-1]
             await pilot.press("q")
             await wait_for(pilot, lambda: app.finished)

@@ -479,7 +479,7 @@ def level_text(level_dbfs: float, clipped: float, quiet_s: float, width: int) ->
     """The input level: its value, then a meter from -60 to 0 dBFS, or in its place the
     warning that matters (clipping; silent for 3 s or more: a muted input?)."""
     t = Text(no_wrap=True, overflow="crop")
-    t.append(f"{max(level_dbfs, -99.9):6.1f} dBFS ")
+    t.append(f"{max(level_dbfs, -160.0):6.1f} dBFS ")  # the windows' floor, -160
     room = max(4, width - 12)
     if clipped > 0.001:
         t.append(fit(" CLIPPING ", room).ljust(room), style=f"bold reverse {P.ALERT}")
