@@ -323,6 +323,29 @@ def test_two_harvests_at_once_lose_no_rows(session, tour, tmp_path):
     assert {r["session"] for r in rows} == {session.name, d2.name}
 
 
+def test_a_harvest_waits_for_one_that_has_only_just_begun(session, tmp_path):
+    """The moment another harvest has made the folder and taken its lock but not yet
+    written its marker (held here with a real flock on the real file) is not a folder of
+    someone else's files: the second harvest waits its turn instead of refusing."""
+    import fcntl
+    import time
+
+    target = tmp_path / "set"
+    target.mkdir()
+    fd = os.open(target / ".lock", os.O_RDWR | os.O_CREAT, 0o644)
+    fcntl.flock(fd, fcntl.LOCK_EX)
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "harvest", str(session), "--out",
+                          str(target)], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         text=True)
+    time.sleep(3.0)  # it has loaded the session and waits on the lock (or refused already)
+    waited = p.poll() is None
+    (target / ".scenemon-harvest").write_bytes(b"scenemon harvest\n")  # the first one's marker
+    fcntl.flock(fd, fcntl.LOCK_UN)
+    os.close(fd)
+    assert p.wait(120) == 0, p.stderr.read()
+    assert waited and list(target.rglob("*.wav"))
+
+
 def test_an_interrupted_harvest_resumes(session, tmp_path):
     target = tmp_path / "set"
     r = cli("harvest", session, "--out", target)

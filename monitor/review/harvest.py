@@ -81,10 +81,17 @@ def _read_manifest(out: Path) -> list[dict]:
     return rows
 
 
-def _check_target(out: Path) -> None:
+def _check_target(out: Path, *, locked: bool = False) -> None:
+    """Refuse a target that is a file, or a folder of other files.
+
+    Before the lock a folder with our lock file passes (another harvest may be writing its
+    marker); under the lock only our marker makes a non-empty folder ours."""
     if out.exists() and not out.is_dir():
         raise ScenemonError(f"{out}: exists and is not a directory")
-    if out.is_dir() and any(out.iterdir()) and not (out / MARKER).is_file():
+    if not out.is_dir() or (out / MARKER).is_file():
+        return
+    others = [p for p in out.iterdir() if not (locked and p.name == LOCK)]
+    if others and (locked or not (out / LOCK).exists()):
         raise ScenemonError(f"{out}: holds other files and is not an earlier harvest; "
                             f"choose an empty or new folder")
 
@@ -103,11 +110,12 @@ def harvest(sessions: list[Path], out: Path, *, include: tuple[str, ...],
         res.notes += [f"{sp}: {n}" for n in s.notes]
         loaded.append(s)
     out.mkdir(parents=True, exist_ok=True)
-    if not (out / MARKER).exists():
-        atomic_write(out / MARKER, b"scenemon harvest\n")  # first: a killed run is still ours
     lock_fd = os.open(out / LOCK, os.O_RDWR | os.O_CREAT | os.O_NOFOLLOW, 0o644)
     try:
         fcntl.flock(lock_fd, fcntl.LOCK_EX)  # the other harvest finishes first
+        _check_target(out, locked=True)
+        if not (out / MARKER).exists():
+            atomic_write(out / MARKER, b"scenemon harvest\n")  # first: a killed run is still ours
         _harvest_locked(loaded, out, include, drop_unknown, progress, res)
     finally:
         os.close(lock_fd)
