@@ -50,6 +50,7 @@ def sessions(tour, jumpy_b, tmp_path_factory):
     return ab, a1, b1
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_a_is_exactly_a_one_model_run(sessions):
     ab, a1, _ = sessions
     assert no_ms(records(ab / "windows.jsonl")) == no_ms(records(a1 / "windows.jsonl"))
@@ -60,6 +61,7 @@ def test_a_is_exactly_a_one_model_run(sessions):
     assert {"path", "sha256", "kind", "card", "runtime"} <= set(meta["models"][1])
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_b_equals_a_one_model_run_of_b(sessions):
     ab, _, b1 = sessions
     wb, w1 = records(ab / "windows.b.jsonl"), records(b1 / "windows.jsonl")
@@ -68,6 +70,7 @@ def test_b_equals_a_one_model_run_of_b(sessions):
     assert [w["t0"] for w in wb] == [w["t0"] for w in records(ab / "windows.jsonl")]
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_the_models_disagree_somewhere_and_it_is_captured(sessions):
     ab, _, _ = sessions
     wa, wb = records(ab / "windows.jsonl"), records(ab / "windows.b.jsonl")
@@ -98,6 +101,7 @@ def test_mcnemar_exact_against_scipy_and_a_worked_example():
     assert mcnemar_exact(0, 0) == 1.0
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_report_compares_both_against_the_windows(sessions):
     ab, _, _ = sessions
     r = cli("report", ab, "--json")
@@ -120,6 +124,7 @@ def test_report_compares_both_against_the_windows(sessions):
     assert f"B is right on {only_b} windows where A is wrong, A on {only_a}" in r.stdout
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_tune_works_on_model_b(sessions):
     ab, _, _ = sessions
     r = cli("tune", ab, "--model-b", "--grid", "smoothing=none,mean;confirm=1,2;enter=0.6")

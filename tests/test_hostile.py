@@ -337,7 +337,7 @@ def test_a_harvest_waits_for_one_that_has_only_just_begun(session, tmp_path):
     p = subprocess.Popen([sys.executable, "-m", "monitor", "harvest", str(session), "--out",
                           str(target)], cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
                          text=True)
-    time.sleep(3.0)  # it has loaded the session and waits on the lock (or refused already)
+    time.sleep(1.5)  # it has loaded the session and waits on the lock (or refused already)
     waited = p.poll() is None
     (target / ".scenemon-harvest").write_bytes(b"scenemon harvest\n")  # the first one's marker
     fcntl.flock(fd, fcntl.LOCK_UN)

@@ -94,6 +94,7 @@ def test_replay_with_the_micro_runtime_records_it(tour, tmp_path, tour_windows):
     assert len((out / "windows.jsonl").read_text().splitlines()) == tour_windows
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_compare_one_model_in_two_runtimes(tour):
     r = run_cli("compare", "--model", INT8, "--runtime", "litert", "--model", INT8,
                 "--runtime", "micro", tour[0], "--json")

@@ -381,6 +381,7 @@ def lagging_copy(tmp_path, confirm=8):
     return d / "demo.int8.tflite"
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_two_models_side_by_side(tour, tmp_path):
     start, seconds = 20.0, 30.0  # quiet room into voices
     audio = clip_of(tour, tmp_path, start, seconds)
@@ -425,6 +426,7 @@ def test_two_models_side_by_side(tour, tmp_path):
     assert f"agree {agree:6.1%}" in panels[-2][0]
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_unfamiliar_mark_beside_the_decision(tour, tmp_path):
     """A profile fitted on the quiet room alone, beside a copy of the model: the voices
     that follow are unfamiliar to it, and the decision panel says so."""
@@ -536,6 +538,7 @@ def snippet_session(tour, tmp_path_factory):
     return out
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_relabel_view_changes_a_sidecar_and_nothing_else(snippet_session, tmp_path):
     out = tmp_path / "s"
     shutil.copytree(snippet_session, out)
@@ -577,6 +580,7 @@ def test_relabel_view_changes_a_sidecar_and_nothing_else(snippet_session, tmp_pa
     assert f"{new_label}/" in rows and second["audio_sha256"] not in rows
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 @pytest.mark.parametrize("key", ["enter", "space"])
 def test_relabel_view_plays_on_enter_and_space(snippet_session, key):
     # the README, --help and the view say enter plays: the table's own enter must not eat it
