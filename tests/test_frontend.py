@@ -1,11 +1,15 @@
 """The front end against outside references (each check names its source)."""
 
+import os
+import subprocess
+import sys
+
 import numpy as np
 import pytest
 import scipy.fft
 import scipy.signal
 
-from conftest import card_dict
+from conftest import MODELS, ROOT, card_dict
 from monitor.card import card_from_dict
 from monitor.frontend import (
     FrontEnd,
@@ -511,3 +515,32 @@ def test_stream_computes_only_the_new_frames(monkeypatch, demo_card):
     lo, hi = fe.framing.shared
     assert (lo, hi, fe.framing.frames) == (2, 98, 101)
     assert counted == [97, 4, 50, 4, 50, 4]  # per window: shared frames (all, then new), edges
+
+
+def test_features_do_not_depend_on_what_the_program_imported_first(tour, tmp_path):
+    """A program that imports numpy before scenemon (a notebook, this test suite) gets the
+    very features the command line gets: the BLAS library runs one thread either way (with
+    two, OpenBLAS splits the mel product differently and the last bits change)."""
+    code = """if 1:
+        import sys
+        if sys.argv[1] == "numpy-first":
+            import numpy
+        else:
+            import monitor
+        import numpy as np, soundfile as sf
+        from monitor.card import load_card
+        from monitor.frontend import FrontEnd
+        x = sf.read(sys.argv[2], dtype="float32")[0][: 16000 * 20]
+        fe = FrontEnd(load_card(sys.argv[3]))
+        np.save(sys.argv[4], fe.batch_consecutive(x[: 37 * 8000 + 16000], 38))
+    """
+    outs = []
+    for order in ("scenemon-first", "numpy-first"):
+        out = tmp_path / f"{order}.npy"
+        env = {k: v for k, v in os.environ.items() if k != "OPENBLAS_NUM_THREADS"}
+        r = subprocess.run([sys.executable, "-c", code, order, str(tour[0]),
+                            str(MODELS / "demo.toml"), str(out)], cwd=ROOT, env=env,
+                           capture_output=True, text=True)
+        assert r.returncode == 0, r.stderr
+        outs.append(np.load(out))
+    assert outs[0].tobytes() == outs[1].tobytes()
