@@ -495,9 +495,10 @@ def main(argv: list[str] | None = None) -> int:
         ap.print_help()
         return ExitCode.BAD_INPUT
     debug = getattr(args, "debug", False)
-    from monitor.native import quiet_tensorflow
+    from monitor.native import keep_freed_memory, quiet_tensorflow
 
     quiet_tensorflow(debug)
+    keep_freed_memory()
     with warnings.catch_warnings():
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning
