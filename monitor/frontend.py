@@ -204,6 +204,13 @@ class FrontEnd:
         if have:
             shared[:have] = known[1][known[0]:]
         shared[have:] = self._stream_frames(signal, have, total - have)
+        if cnt == f.frames:  # every frame shared: each window is a block of rows, no copy
+            item = shared.strides[0]
+            spectra = np.lib.stride_tricks.as_strided(
+                shared, (n, cnt, *shared.shape[1:]), (r * item, *shared.strides),
+                writeable=False)
+            last = shared if n == 1 else shared[(n - 1) * r:].copy()
+            return self._finish(spectra), last
         spectra = np.empty((n, f.frames, *shared.shape[1:]), np.float32)
         idx = (np.arange(n) * r)[:, None] + np.arange(cnt)[None, :]
         spectra[:, lo:hi + 1] = shared[idx]
