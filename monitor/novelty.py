@@ -119,8 +119,9 @@ class Profile:
         for c, (m, p) in enumerate(zip(self.means, self._precisions)):
             d = x - m
             # einsum, not a matrix product: a window's distance must not depend on how many
-            # windows came with it (BLAS kernels differ for one row and for many)
-            out[:, c] = np.einsum("ij,jk,ik->i", d, p, d)
+            # windows came with it (BLAS kernels differ for one row and for many); in two
+            # steps, three times faster than the one three-operand einsum
+            out[:, c] = (np.einsum("ij,jk->ik", d, p) * d).sum(axis=1)
         return np.sqrt(np.maximum(out, 0.0))
 
     def distance(self, summaries: np.ndarray) -> np.ndarray:
