@@ -21,21 +21,21 @@ class _Printer(ObserverBase):
         self.stream = stream or sys.stdout
         self.stop = stop
         self.closed = False
+        self._pending: list[str] = []
 
     def _write(self, text: str) -> None:
-        if self.closed:
-            return
-        try:
-            self.stream.write(text)
-        except BrokenPipeError:
-            self._broken()
+        if not self.closed:
+            self._pending.append(text)
 
     def on_status(self, status) -> None:
-        """After each batch of windows: push the lines out (one flush per batch, not per
-        line: a fast replay writes thousands of lines a second)."""
-        if self.closed:
+        """After each batch of windows: write its lines at once and push them out (one write
+        and one flush per batch, not per line: a fast replay makes thousands of lines a
+        second, and an unbuffered stdout would make each its own system call)."""
+        if self.closed or not self._pending:
             return
+        text, self._pending = "".join(self._pending), []
         try:
+            self.stream.write(text)
             self.stream.flush()
         except BrokenPipeError:
             self._broken()
