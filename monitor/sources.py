@@ -197,7 +197,7 @@ class FileSource:
         self.frames = frames
         self.model_rate = int(model_rate)
         self.realtime = realtime
-        self.block = int(self.native_rate * (block_s or (0.05 if realtime else 0.5)))
+        self.block = int(self.native_rate * (block_s or (0.05 if realtime else 4.0)))
         cap = max(int(ring_seconds * model_rate), 4 * window_samples)
         self.ring = RingBuffer(cap)
         self.finished = threading.Event()
