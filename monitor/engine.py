@@ -394,6 +394,9 @@ class Engine:
         levels, clipped = self._levels(wins)
         novelty = [lane.profile.distances_of(feats[id(lane.frontend)])
                    if lane.profile is not None else None for lane in self.lanes]
+        # per batch, not per window: which rows are finite, and each row's top class
+        finite = [np.isfinite(pm).all(axis=1).tolist() for pm in probs]
+        tops = [pm.argmax(axis=1).tolist() for pm in probs]
         for k, w in enumerate(wins):
             t0, t1 = w.start / sr, (w.start + card.window_samples) / sr
             truth = self.truth(t0, t1) if self.truth else None
@@ -403,8 +406,9 @@ class Engine:
             for m, lane in enumerate(self.lanes):
                 f = feats[id(lane.frontend)][k]
                 nov = None if novelty[m] is None else float(novelty[m][k])
+                top = tops[m][k] if finite[m][k] else None
                 results.append(self._decide(lane, m, w, t0, t1, truth, level, clip, ms,
-                                            latency, probs[m][k], f, nov))
+                                            latency, probs[m][k], top, f, nov))
             res = results[0]
             if len(results) > 1:
                 res = _with_others(res, tuple(results[1:]))
@@ -421,13 +425,13 @@ class Engine:
 
     def _decide(self, lane: _Lane, m: int, w: Window, t0: float, t1: float,
                 truth: str | None, level: float, clipped: float, ms: float,
-                latency: float | None, p: np.ndarray, f: np.ndarray,
+                latency: float | None, p: np.ndarray, top: int | None, f: np.ndarray,
                 novelty: float | None) -> WindowResult:
         classes = lane.card.classes
         unfamiliar = None
         if novelty is not None:
             unfamiliar = lane.profile.count(novelty)
-        if not np.all(np.isfinite(p)):
+        if top is None:  # a non-finite output: a model fault
             lane.faults += 1
             d = lane.decider.hysteresis.decision
             decision = None if d is None else classes[d]
@@ -443,7 +447,7 @@ class Engine:
         lane.tally.add(t0, t1, decision, truth, w.gap)
         return WindowResult(
             i=self.count, start=w.start, t0=t0, t1=t1, probs=p, smoothed=smoothed,
-            top=classes[int(np.argmax(p))], decision=decision, truth=truth,
+            top=classes[top], decision=decision, truth=truth,
             level_dbfs=level, clipped=clipped, gap=w.gap, ms=ms, latency_ms=latency,
             features=f if self.keep_features else None, novelty=novelty,
             unfamiliar=unfamiliar, model=m)
