@@ -28,7 +28,7 @@ import json
 import os
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -236,9 +236,15 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
     if not items:
         raise ScenemonError(f"{archive}: holds no audio files or sessions")
     out.mkdir(parents=True, exist_ok=True)
-    todo, skipped, fps = [], 0, {}
+    todo, skipped = [], 0
+    n = workers or os.cpu_count() or 1
+    # the audio hashed on n threads (hashlib lets go of the GIL): a tenth of a second an
+    # hour of audio, before any worker starts; the threads are gone before a fork
+    with ThreadPoolExecutor(max_workers=n) as hashers:
+        fps = dict(zip([it.key for it in items],
+                       hashers.map(lambda it: fingerprint(it, described), items)))
     for it in items:
-        fp = fps[it.key] = fingerprint(it, described)
+        fp = fps[it.key]
         if up_to_date(out, it, fp, len(models)):
             skipped += 1
         else:
@@ -255,7 +261,6 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
             _progress(state["done"], len(items), state["audio_s"], t0)
 
     target = str(out.resolve())
-    n = workers or os.cpu_count() or 1
     if todo and cluster:
         from distributed import Client
         from distributed import as_completed as dask_completed
@@ -270,11 +275,29 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
         for it in todo:
             took(score_task(it, models, target, fps[it.key]))
     elif todo:
-        with ProcessPoolExecutor(max_workers=min(n, len(todo)),
+        # this process is one of the n workers (its imports, model and heap are warm): the
+        # other n - 1 take inputs from the front, it takes from the back those no worker has
+        # started (a future that can still be cancelled is one no worker will run)
+        with ProcessPoolExecutor(max_workers=min(n, len(todo)) - 1,
                                  mp_context=_worker_context()) as pool:
-            for f in as_completed([pool.submit(score_task, it, models, target, fps[it.key])
-                                   for it in todo]):
-                took(f.result())
+            futures = [(it, pool.submit(score_task, it, models, target, fps[it.key]))
+                       for it in todo]
+            reported: set[int] = set()
+
+            def report_done() -> None:
+                for k, (_, f) in enumerate(futures):
+                    if k not in reported and f.done() and not f.cancelled():
+                        reported.add(k)
+                        took(f.result())
+
+            for it, f in reversed(futures):
+                if not f.cancel():
+                    break
+                took(score_task(it, models, target, fps[it.key]))
+                report_done()
+            for f in as_completed([f for _, f in futures if not f.cancelled()]):
+                f.result()
+            report_done()
     audio_s = state["audio_s"]
     wall = time.monotonic() - t0
     agg = aggregate(out, items, list(cards[0].classes), len(models),
