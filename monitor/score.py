@@ -15,7 +15,8 @@ The aggregate adds the files up: windows, seconds, decision changes and confusio
 are sums over files; accuracy is correct windows over windows with truth (window-weighted);
 the switch rate is the changes over the minutes of all files; latencies are every file's.
 
-Tasks run on local worker processes (`--workers N`) or on a Dask distributed scheduler
+Tasks run on local worker processes (`--workers N`: this process is the first of them, the
+others are forked where that is safe) or on a Dask distributed scheduler
 (`--cluster tcp://host:8786`); either way the results are the same bytes. A result whose
 audio, truth, models and cards are unchanged is skipped, so an interrupted run resumes.
 """
