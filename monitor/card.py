@@ -80,6 +80,7 @@ class DecisionSettings:
         return dataclasses.replace(self, **{k: v for k, v in changes.items() if v is not None})
 
     def to_dict(self) -> dict[str, Any]:
+        """The settings as a plain dict of field name to value."""
         return dataclasses.asdict(self)
 
 
@@ -95,10 +96,12 @@ class AudioConfig:
 
     @property
     def window_samples(self) -> int:
+        """Window length in samples (window_s x sample_rate, rounded)."""
         return int(round(self.window_s * self.sample_rate))
 
     @property
     def hop_samples(self) -> int:
+        """Hop length in samples (hop_s x sample_rate, rounded)."""
         return int(round(self.hop_s * self.sample_rate))
 
 
@@ -136,30 +139,37 @@ class ModelCard:
     # Derived values and the flat names kept for the code that reads them
     @property
     def sample_rate(self) -> int:
+        """Sample rate in Hz the model was trained on (``[audio]``)."""
         return self.audio.sample_rate
 
     @property
     def window_s(self) -> float:
+        """Window length in seconds (``[audio]``)."""
         return self.audio.window_s
 
     @property
     def hop_s(self) -> float:
+        """Hop length in seconds (``[audio]``)."""
         return self.audio.hop_s
 
     @property
     def window_samples(self) -> int:
+        """Window length in samples (window_s x sample_rate, rounded)."""
         return self.audio.window_samples
 
     @property
     def hop_samples(self) -> int:
+        """Hop length in samples (hop_s x sample_rate, rounded)."""
         return self.audio.hop_samples
 
     @property
     def kind(self) -> str:
+        """The front end's kind: "waveform", "spectrogram", "logmel" or "mfcc"."""
         return self.frontend.kind
 
     @property
     def pcm_bits(self) -> int:
+        """16 when the input is quantised to int16 first, else 0."""
         return self.frontend.pcm.pcm_bits
 
     @property
@@ -180,10 +190,12 @@ class ModelCard:
 
     @property
     def mean(self) -> np.ndarray:
+        """The ``[scaling]`` mean, broadcastable to one window's model input."""
         return self.scaling.mean
 
     @property
     def std(self) -> np.ndarray:
+        """The ``[scaling]`` std, broadcastable to one window's model input."""
         return self.scaling.std
 
     @property
@@ -204,9 +216,11 @@ class ModelCard:
 
     @property
     def name(self) -> str:
+        """The card's path as text, or "<card>" for a card without a file."""
         return str(self.path) if self.path else "<card>"
 
     def describe_shape(self) -> str:
+        """One window's features in words: "N samples" or "F frames x B bands" (or bins, ...)."""
         if self.frontend.framing is None:
             return f"{self.window_samples} samples"
         return f"{self.frames_per_window} frames x {self.bands} {self.frontend.band_name()}"

@@ -132,6 +132,7 @@ class Key:
 
 
 def show_value(value: Any) -> str:
+    """A card value as a message shows it: TOML's true/false, a quoted string, else repr."""
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, str):
@@ -161,18 +162,21 @@ def nearest(name: str, known) -> str:
 # --- stage configs (one per stage; the field names are the card keys) ---------------------
 @dataclass(frozen=True)
 class PcmConfig:
+    """The pcm stage's key: ``pcm_bits``, 16 to quantise the input to int16, 0 to keep it."""
     pcm_bits: int = key(int, "16: quantise the input to int16 first, as the device's "
                         "microphone path does; 0: keep float", choices=(0, 16), default=0, off=0)
 
 
 @dataclass(frozen=True)
 class PreemphasisConfig:
+    """The pre-emphasis stage's key: the coefficient ``preemphasis`` (0: off)."""
     preemphasis: float = key(float, "a > 0: y[0] = x[0], y[n] = x[n] - a x[n-1], within each "
                              "window", lo=0.0, hi=1.0, default=0.0, off=0.0)
 
 
 @dataclass(frozen=True)
 class CentreConfig:
+    """The centre stage's keys: padding by fft_length // 2 samples, and with what."""
     center: bool = key(bool, "true: pad each window by fft_length // 2 on both sides first",
                        default=False, off=False)
     pad_mode: str = key(str, "with center: \"constant\" (zeros) or \"reflect\"",
@@ -180,9 +184,11 @@ class CentreConfig:
                         needs="center")
 
     def pad(self, fe: FrontendConfig) -> int:
+        """Samples padded on each side of a window: fft_length // 2 with center, else 0."""
         return fe.framing.fft_length // 2 if self.center else 0
 
     def check(self, fe: FrontendConfig, audio: AudioConfig) -> None:
+        """CardProblem for pad_mode "reflect" when the padding is not shorter than the window."""
         if self.center and self.pad_mode == "reflect" and self.pad(fe) >= audio.window_samples:
             raise CardProblem(f"frontend.pad_mode=\"reflect\" needs a window longer than the "
                               f"padding: fft_length // 2 = {self.pad(fe)} samples against "
@@ -191,6 +197,7 @@ class CentreConfig:
 
 @dataclass(frozen=True)
 class FramingConfig:
+    """The framing stage's keys: frame length, step and FFT size in samples, window place."""
     frame_length: int = key(int, "samples per frame (the window's length)", lo=2, hi=MAX_FFT)
     frame_step: int = key(int, "samples between frames", lo=1, hi=MAX_SAMPLES)
     fft_length: int = key(int, "FFT size, a power of two >= frame_length (the C front end's "
@@ -214,6 +221,9 @@ class FramingConfig:
         return 1 + (padded - self.span) // self.frame_step if padded >= self.span else 0
 
     def check(self, fe: FrontendConfig, audio: AudioConfig) -> None:
+        """CardProblem unless fft_length is a power of two >= frame_length, a frame fits
+        in the (padded) window and frames x fft_length stays within MAX_WORK.
+        """
         n = self.fft_length
         if n & (n - 1):
             raise CardProblem(f"frontend.fft_length={n} must be a power of two from 16 to "
@@ -235,6 +245,7 @@ class FramingConfig:
 
 @dataclass(frozen=True)
 class WindowConfig:
+    """The window stage's keys: Hann or Hamming, periodic or symmetric."""
     window: str = key(str, "\"hann\" or \"hamming\" (Harris 1978); periodic unless "
                       "window_symmetric", choices=("hann", "hamming"))
     window_symmetric: bool = key(bool, "true: the symmetric window (np.hanning) instead of the "
@@ -243,11 +254,13 @@ class WindowConfig:
 
 @dataclass(frozen=True)
 class SpectrumConfig:
+    """The spectrum stage's key: ``power``, 1 for magnitude, 2 for power."""
     power: float = key(float, "1: magnitude |X|, 2: power |X|^2", choices=(1.0, 2.0))
 
 
 @dataclass(frozen=True)
 class MelConfig:
+    """The mel stage's keys: band count, edges in Hz, mel scale, normalisation, triangles."""
     mel_bands: int = key(int, "triangular mel bands", lo=1, hi=MAX_BANDS)
     fmin: float = key(float, "Hz, lower edge of the lowest band", lo=0.0)
     fmax: float = key(float, "Hz, upper edge of the highest band, at most sample_rate / 2",
@@ -261,6 +274,7 @@ class MelConfig:
                              choices=("hz", "mel"))
 
     def check(self, fe: FrontendConfig, audio: AudioConfig) -> None:
+        """CardProblem unless fmin < fmax <= sample_rate / 2 and mel_bands <= the FFT bins."""
         nyq = audio.sample_rate / 2
         if not self.fmin < self.fmax:
             raise CardProblem(f"frontend.fmin={self.fmin} must be >= 0 and below "
@@ -276,6 +290,7 @@ class MelConfig:
 
 @dataclass(frozen=True)
 class LogConfig:
+    """The log stage's keys: which log, its offset and floor, for dB its reference and top_db."""
     log: str = key(str, "\"ln\", \"log10\" or \"db\" (10 log10 of power, 20 log10 of "
                    "magnitude)", choices=("ln", "log10", "db"))
     log_offset: float = key(float, "added before the log (0 with a log_floor)", lo=0.0, hi=1e6)
@@ -288,6 +303,9 @@ class LogConfig:
                         "top_db are raised to it", lo=0.0, hi=1000.0, default=0.0, off=0.0)
 
     def check(self, fe: FrontendConfig, audio: AudioConfig) -> None:
+        """CardProblem when log_offset and log_floor are both 0, or top_db or db_ref "max"
+        is given without log = "db".
+        """
         if self.log_offset == 0 and self.log_floor == 0:
             raise CardProblem("frontend.log_offset=0.0 needs a log_floor > 0 (silence would "
                               "give log(0)); give log_offset > 0 or log_floor > 0")
@@ -305,6 +323,7 @@ class LogConfig:
 
 @dataclass(frozen=True)
 class DctConfig:
+    """The dct stage's keys (kind "mfcc"): coefficients kept, DCT-II normalisation, lifter."""
     mfcc: int = key(int, "kind = \"mfcc\": coefficients kept from the DCT-II of the log-mel",
                     lo=1, hi=MAX_BANDS, off=0)
     dct_norm: str = key(str, "\"ortho\" (scipy.fft.dct norm=\"ortho\") or \"uniform\" (every "
@@ -314,6 +333,7 @@ class DctConfig:
                         "sin(pi (n+1) / lifter)", lo=0.0, hi=1e4, default=0.0, off=0.0)
 
     def check(self, fe: FrontendConfig, audio: AudioConfig) -> None:
+        """CardProblem when mfcc exceeds mel_bands."""
         if self.mfcc > fe.mel.mel_bands:
             raise CardProblem(f"frontend.mfcc={self.mfcc} must not exceed "
                               f"mel_bands={fe.mel.mel_bands}")
@@ -321,6 +341,7 @@ class DctConfig:
 
 @dataclass(frozen=True)
 class LayoutConfig:
+    """The layout stage's key: the model input's axis order, "time_mel" or "mel_time"."""
     layout: str = key(str, "model input axes after the batch: \"time_mel\" (frames, bands) or "
                       "\"mel_time\" (bands, frames); a channel axis is added if the model has "
                       "one", choices=("time_mel", "mel_time"))
@@ -337,6 +358,7 @@ class ScalingConfig:
                           choices=("none", "standardise"), default="none", off="none")
 
     def same(self, other: ScalingConfig) -> bool:
+        """True when per_window, mean and std are equal (``==`` leaves the arrays out)."""
         return (self.per_window == other.per_window and np.array_equal(self.mean, other.mean)
                 and np.array_equal(self.std, other.std))
 
@@ -373,6 +395,7 @@ class FrontendConfig:
         return out
 
     def pad(self) -> int:
+        """Samples of centre padding on each side of a window (0 without it)."""
         return self.centre.pad(self) if self.centre is not None else 0
 
     def frames(self, audio: AudioConfig) -> int:
@@ -481,18 +504,21 @@ def cfloat(v: float) -> str:
 
 
 def c_floats(name: str, values, per_line: int = 8) -> str:
+    """A C ``static const float`` table of `values` (flattened, float32), `per_line` a line."""
     vals = [cfloat(v) for v in np.asarray(values, dtype=np.float32).reshape(-1)]
     body = ",\n".join("    " + ", ".join(vals[i:i + per_line]) for i in range(0, len(vals), per_line))
     return f"static const float {name}[{len(vals)}] = {{\n{body}\n}};"
 
 
 def c_ints(name: str, ctype: str, values, per_line: int = 12) -> str:
+    """A C ``static const`` table of type `ctype` of integer `values`, `per_line` a line."""
     vals = [str(int(v)) for v in values]
     body = ",\n".join("    " + ", ".join(vals[i:i + per_line]) for i in range(0, len(vals), per_line))
     return f"static const {ctype} {name}[{len(vals)}] = {{\n{body}\n}};"
 
 
 def c_define(name: str, value: Any, comment: str = "") -> str:
+    """A ``#define`` line (a bool as 0 or 1, a float as `cfloat`), with `comment` if given."""
     if isinstance(value, bool):
         value = int(value)
     if isinstance(value, float):
@@ -539,6 +565,7 @@ class Stage:
 
     @property
     def active(self) -> bool:
+        """False when the card switches the stage off (it is then skipped); True here."""
         return True
 
     @staticmethod
@@ -576,10 +603,12 @@ class Stage:
 
 
 class PcmStage(Stage):
+    """Quantisation of the input samples to int16 steps (``pcm_bits = 16``)."""
     name, config, part = "pcm", PcmConfig, "samples"
 
     @property
     def active(self) -> bool:
+        """On when pcm_bits = 16."""
         return self.cfg.pcm_bits == 16
 
     @property
@@ -589,76 +618,94 @@ class PcmStage(Stage):
         return -(-a.window_samples // a.hop_samples) * a.hop_samples
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """Samples rounded to int16 steps (x 32768, clipped to int16, / 32768), float32."""
         return quantise_pcm16(x)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same quantisation, returned as float64."""
         return quantise_pcm16(x).astype(np.float64)
 
     def c_lines(self) -> list[str]:
+        """SM_PCM_BITS and SM_HIST_SAMPLES, the stream's history length."""
         return [c_define("SM_PCM_BITS", self.cfg.pcm_bits, "16: float input quantised to int16"),
                 c_define("SM_HIST_SAMPLES", self.history,
                          "the stream's history: the window rounded up to whole hops")]
 
     def c_buffers(self) -> dict[str, int]:
+        """The stream's history ``sm_hist`` (float32) and its int32 fill count ``sm_filled``."""
         return {"sm_hist": 4 * self.history, "sm_filled": 4}
 
 
 class PreemphasisStage(Stage):
+    """Pre-emphasis within each window (off when the coefficient is 0)."""
     name, config, part = "preemphasis", PreemphasisConfig, "samples"
 
     @property
     def active(self) -> bool:
+        """On when preemphasis > 0."""
         return self.cfg.preemphasis > 0
 
     @property
     def left(self) -> int:  # type: ignore[override]
+        """1 when active: a window's first sample has no predecessor inside it."""
         return 1 if self.active else 0
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """Pre-emphasis y[0] = x[0], y[n] = x[n] - coef * x[n-1] within each window, float32."""
         y = np.empty_like(x)
         y[..., :1] = x[..., :1]
         np.subtract(x[..., 1:], np.float32(self.cfg.preemphasis) * x[..., :-1], out=y[..., 1:])
         return y
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same difference, in the input's precision (float64 in the reference)."""
         y = x.copy()
         y[..., 1:] = x[..., 1:] - self.cfg.preemphasis * x[..., :-1]
         return y
 
     def c_lines(self) -> list[str]:
+        """SM_PREEMPHASIS, the coefficient."""
         return [c_define("SM_PREEMPHASIS", float(self.cfg.preemphasis), "y[n] = x[n] - a x[n-1]")]
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """One multiply-subtract per new sample of the hop, when active."""
         return {"pre-emphasis": self.card.audio.hop_samples} if self.active else {}
 
 
 class CentreStage(Stage):
+    """Centre padding: fft_length // 2 samples on each side of a window, zeros or reflected."""
     name, config, part = "centre", CentreConfig, "samples"
 
     @property
     def active(self) -> bool:
+        """On when center = true."""
         return self.cfg.center
 
     @property
     def pad(self) -> int:
+        """Samples padded on each side: fft_length // 2 with center, else 0."""
         return self.cfg.pad(self.fe)
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """Windows padded by `pad` samples at both ends of the last axis (np.pad, pad_mode)."""
         p = self.pad
         return np.pad(x, [(0, 0)] * (x.ndim - 1) + [(p, p)], mode=self.cfg.pad_mode)
 
     reference = run
 
     def stream(self, x: np.ndarray) -> np.ndarray:
+        """The stream unchanged."""
         return x  # the stream is not padded: only the frames at a window's edges see padding
 
     def c_lines(self) -> list[str]:
+        """SM_PAD (0 when off) and SM_PAD_REFLECT."""
         return [c_define("SM_PAD", self.pad if self.active else 0, "samples padded on each side"),
                 c_define("SM_PAD_REFLECT", self.active and self.cfg.pad_mode == "reflect",
                          "1: reflect, 0: zeros")]
 
 
 class FramingStage(Stage):
+    """Frames of a (padded) window, and which of them a stream shares between windows."""
     name, config, part = "framing", FramingConfig, "frames"
 
     def __init__(self, card: ModelCard) -> None:
@@ -682,6 +729,7 @@ class FramingStage(Stage):
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
+        """frame_length values per frame."""
         return cfg.frame_length
 
     def run(self, x: np.ndarray, which: np.ndarray | None = None) -> np.ndarray:
@@ -699,6 +747,7 @@ class FramingStage(Stage):
         return x[..., idx]
 
     def c_lines(self) -> list[str]:
+        """The frame sizes, SM_FRAMES and the shared frames a stream reuses."""
         c = self.cfg
         lo, hi = self.shared
         return [c_define("SM_FRAME_LENGTH", c.frame_length),
@@ -714,6 +763,7 @@ class FramingStage(Stage):
 
 
 class WindowStage(Stage):
+    """Each frame times the Hann or Hamming window, placed in a zero-filled FFT buffer."""
     name, config, part = "window", WindowConfig, "frames"
 
     def __init__(self, card: ModelCard) -> None:
@@ -725,6 +775,7 @@ class WindowStage(Stage):
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
+        """fft_length values per frame (the FFT buffer)."""
         return fe.framing.fft_length
 
     def run(self, x: np.ndarray) -> np.ndarray:
@@ -734,6 +785,7 @@ class WindowStage(Stage):
         return out
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """Frames of `span` samples times the float64 window at `offset` (zeros elsewhere)."""
         f = self.fe.framing
         w = np.zeros(f.span)
         w[f.offset: f.offset + f.frame_length] = window_coefficients(
@@ -742,24 +794,30 @@ class WindowStage(Stage):
         return x * w
 
     def c_lines(self) -> list[str]:
+        """The window table ``sm_window`` (frame_length float32 coefficients)."""
         return [c_floats("sm_window", self.window)]
 
     def c_tables(self) -> dict[str, int]:
+        """``sm_window``: 4 bytes per coefficient."""
         return {"sm_window": 4 * self.window.size}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """frame_length multiplies per new frame."""
         return {"window multiply": new_frames * self.window.size}
 
 
 class SpectrumStage(Stage):
+    """``|rfft|`` or ``|rfft|^2`` of each FFT buffer: fft_length // 2 + 1 bins."""
     name, config, part = "spectrum", SpectrumConfig, "frames"
     band_name = "bins"
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
+        """fft_length // 2 + 1 bins per frame."""
         return fe.framing.fft_length // 2 + 1
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """``re^2 + im^2`` (power 2, no square root) or ``|X|`` of scipy.fft.rfft, float32."""
         spec = scipy.fft.rfft(x, axis=-1, workers=1, overwrite_x=True)
         if self.cfg.power == 2.0:  # |X|^2 without the square root
             mag = np.square(spec.real)
@@ -768,24 +826,29 @@ class SpectrumStage(Stage):
         return np.abs(spec).astype(np.float32)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """``|numpy.fft.rfft(x, n=fft_length)| ** power`` in float64."""
         return np.abs(np.fft.rfft(x, n=self.fe.framing.fft_length, axis=-1)) ** self.cfg.power
 
     def c_lines(self) -> list[str]:
+        """SM_POWER and SM_BINS."""
         return [c_define("SM_POWER", int(self.cfg.power), "1: |X|, 2: |X|^2"),
                 c_define("SM_BINS", self.fe.framing.fft_length // 2 + 1)]
 
     def c_buffers(self) -> dict[str, int]:
+        """FFT twiddles (fft_length / 2 floats each), bit reversal (uint16) and work arrays."""
         n = self.fe.framing.fft_length
         return {"sm_cos": 4 * (n // 2), "sm_sin": 4 * (n // 2), "sm_bitrev": 2 * n,
                 "sm_re": 4 * n, "sm_im": 4 * n}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """Radix-2 butterflies, (n / 2) log2 n, and n // 2 + 1 power values per new frame."""
         n = self.fe.framing.fft_length
         return {"FFT butterflies (radix-2)": new_frames * (n // 2) * int(math.log2(n)),
                 "power spectrum": new_frames * (n // 2 + 1)}
 
 
 class MelStage(Stage):
+    """The triangular mel filterbank (`monitor.dsp.mel_filterbank`) applied to each frame."""
     name, config, part = "mel", MelConfig, "features"
     band_name = "bands"
 
@@ -804,17 +867,21 @@ class MelStage(Stage):
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
+        """mel_bands values per frame."""
         return cfg.mel_bands
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """Spectra ``(..., bins)`` times the float32 filterbank: ``(..., mel_bands)``."""
         # np.matmul on a stack runs one GEMM per window, so a window's numbers never depend
         # on how many windows were computed with it (BLAS kernels differ by matrix size)
         return np.matmul(x, self.mel_t)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same product with the filterbank built in float64."""
         return x @ mel_filterbank(**self._bank_args(), dtype=np.float64).T
 
     def c_lines(self) -> list[str]:
+        """SM_MEL_BANDS and the filterbank in sparse form (see `sparse_bank`)."""
         return [c_define("SM_MEL_BANDS", self.cfg.mel_bands),
                 c_define("SM_MEL_COEFFS", self.packed.size, "weights in the sparse table"),
                 c_ints("sm_mel_first_bin", "int16_t", self.first),
@@ -822,17 +889,21 @@ class MelStage(Stage):
                 c_floats("sm_mel_weights", self.packed)]
 
     def c_tables(self) -> dict[str, int]:
+        """The sparse filterbank: 2 bytes per band for first bin and length, 4 per weight."""
         return {"sm_mel_first_bin": 2 * len(self.first), "sm_mel_length": 2 * len(self.length),
                 "sm_mel_weights": 4 * self.packed.size}
 
     def c_buffers(self) -> dict[str, int]:
+        """``sm_power``: one frame's spectrum, fft_length // 2 + 1 floats."""
         return {"sm_power": 4 * (self.fe.framing.fft_length // 2 + 1)}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """One multiply-add per stored (non-zero) weight per new frame."""
         return {"mel weights": new_frames * int(self.packed.size)}
 
 
 class LogStage(Stage):
+    """The log of each value (offset, floor, ln, log10 or dB), then dB reference and top_db."""
     name, config, part = "log", LogConfig, "features"
 
     def __init__(self, card: ModelCard) -> None:
@@ -841,6 +912,7 @@ class LogStage(Stage):
         self.per_window = self.cfg.db_ref == "max" or self.cfg.top_db > 0
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """float32 log of max(x + log_offset, log_floor); db_ref and top_db over each window."""
         c = self.cfg
         y = np.add(x, np.float32(c.log_offset))
         if c.log_floor > 0:
@@ -860,6 +932,7 @@ class LogStage(Stage):
         return y
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same in float64, the window's maximum taken over its last two axes."""
         c = self.cfg
         y = np.maximum(x + c.log_offset, c.log_floor)
         y = np.log(y) if c.log == "ln" else self.factor * np.log10(y)
@@ -870,6 +943,7 @@ class LogStage(Stage):
         return y
 
     def c_lines(self) -> list[str]:
+        """The log kind, offset, floor, dB factor, reference and top_db, SM_FRAME_FEATURES."""
         c = self.cfg
         width = self._width()
         return [c_define("SM_LOG_KIND", {"ln": 0, "log10": 1, "db": 2}[c.log],
@@ -888,9 +962,11 @@ class LogStage(Stage):
             self.fe.framing.fft_length // 2 + 1
 
     def c_buffers(self) -> dict[str, int]:
+        """``sm_frames``: one window's log values, frames x values per frame floats."""
         return {"sm_frames": 4 * self.fe.frames(self.card.audio) * self._width()}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """One log per new value, plus a pass over the whole window for db_ref or top_db."""
         out = {"logs": new_frames * self._width()}
         if self.per_window:
             out["dB reference (whole window)"] = self.fe.frames(self.card.audio) * self._width()
@@ -898,6 +974,7 @@ class LogStage(Stage):
 
 
 class DctStage(Stage):
+    """DCT-II of each log-mel frame, mfcc rows kept, lifter folded in (`monitor.dsp.dct_matrix`)."""
     name, config, part = "dct", DctConfig, "features"
     band_name = "coefficients"
 
@@ -909,12 +986,15 @@ class DctStage(Stage):
 
     @staticmethod
     def width(cfg: Any, fe: FrontendConfig, width: int) -> int:
+        """mfcc coefficients per frame."""
         return cfg.mfcc
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """Frames ``(..., mel_bands)`` times the float32 DCT matrix: ``(..., mfcc)``."""
         return np.matmul(x, self.matrix_t)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """scipy.fft.dct type 2 ("uniform": unnormalised / sqrt(2 M)), then the lifter."""
         c = self.cfg
         if c.dct_norm == "ortho":
             y = scipy.fft.dct(x, type=2, norm="ortho", axis=-1)
@@ -924,39 +1004,48 @@ class DctStage(Stage):
         return y * lifter_weights(c.mfcc, c.lifter) if c.lifter > 0 else y
 
     def c_lines(self) -> list[str]:
+        """SM_MFCC and the DCT matrix ``sm_dct`` (mfcc x mel_bands, lifter folded in)."""
         return [c_define("SM_MFCC", self.cfg.mfcc, "DCT-II rows kept (lifter folded in)"),
                 c_floats("sm_dct", self.matrix)]
 
     def c_tables(self) -> dict[str, int]:
+        """``sm_dct``: 4 bytes per matrix entry."""
         return {"sm_dct": 4 * self.matrix.size}
 
     def c_buffers(self) -> dict[str, int]:
+        """``sm_row``: one frame's mel_bands floats."""
         return {"sm_row": 4 * self.fe.mel.mel_bands}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """The whole window's DCT per hop: frames x mfcc x mel_bands multiply-adds."""
         return {"DCT multiply-adds (whole window)": self.fe.frames(self.card.audio)
                 * self.matrix.size}
 
 
 class LayoutStage(Stage):
+    """The model input's axis order: ``(frames, bands)`` as computed, or swapped."""
     name, config, part = "layout", LayoutConfig, "output"
 
     @property
     def active(self) -> bool:
+        """On for layout = "mel_time" (time_mel is the computed order)."""
         return self.cfg.layout == "mel_time"
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """The last two axes swapped: ``(..., frames, bands)`` to ``(..., bands, frames)``."""
         return np.swapaxes(x, -1, -2)
 
     reference = run
 
     def c_lines(self) -> list[str]:
+        """SM_LAYOUT_MEL_TIME and SM_CHANNELS, the values per frame in the output."""
         return [c_define("SM_LAYOUT_MEL_TIME", self.cfg.layout == "mel_time",
                          "0: out[frame][band], 1: out[band][frame]"),
                 c_define("SM_CHANNELS", self.fe.bands(), "values per frame in the output")]
 
 
 class ScalingStage(Stage):
+    """The ``[scaling]`` table: optional per-window standardisation, then (x - mean) / std."""
     name, config, part = "scaling", ScalingConfig, "output"
 
     def __init__(self, card: ModelCard) -> None:
@@ -965,6 +1054,7 @@ class ScalingStage(Stage):
         self.inv_std = (1.0 / self.cfg.std).astype(np.float32)
 
     def run(self, x: np.ndarray) -> np.ndarray:
+        """float32: each window standardised if asked, then (x - mean) times 1 / std."""
         if self.cfg.per_window == "standardise":
             axes = tuple(range(1, x.ndim))
             x = (x - x.mean(axis=axes, keepdims=True)) / (
@@ -973,6 +1063,7 @@ class ScalingStage(Stage):
         return np.ascontiguousarray(out, dtype=np.float32)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same in float64, dividing by std."""
         if self.cfg.per_window == "standardise":
             axes = tuple(range(1, x.ndim))
             x = (x - x.mean(axis=axes, keepdims=True)) / (x.std(axis=axes, keepdims=True)
@@ -996,6 +1087,7 @@ class ScalingStage(Stage):
         return 2, full_m, (1.0 / full_s)
 
     def c_lines(self) -> list[str]:
+        """SM_PER_WINDOW, its epsilon, SM_SCALE_MODE and the mean and 1 / std tables."""
         mode, mean, inv_std = self.tables()
         return [c_define("SM_PER_WINDOW", self.cfg.per_window == "standardise",
                          "1: standardise each window first"),
@@ -1004,10 +1096,12 @@ class ScalingStage(Stage):
                 c_floats("sm_scale_mean", mean), c_floats("sm_scale_inv_std", inv_std)]
 
     def c_tables(self) -> dict[str, int]:
+        """``sm_scale_mean`` and ``sm_scale_inv_std``: 4 bytes per value."""
         _, mean, inv_std = self.tables()
         return {"sm_scale_mean": 4 * mean.size, "sm_scale_inv_std": 4 * inv_std.size}
 
     def ops(self, new_frames: int) -> dict[str, int]:
+        """One scaling per value of the window per hop, 3 more per value to standardise it."""
         n = int(np.prod(self.card.feature_shape))
         out = {"scaling (whole window)": n}
         if self.cfg.per_window == "standardise":
