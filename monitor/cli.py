@@ -23,9 +23,12 @@ from monitor.flags import (
     add_model_flags,
     add_session_flags,
     fraction,
+    mic_input,
+    model_plans,
     positive,
     positive_int,
     seconds,
+    session_plan,
     subcommand,
 )
 
@@ -243,74 +246,6 @@ def build_parser() -> argparse.ArgumentParser:
     return ap
 
 
-# --- plans from flags --------------------------------------------------------------------------
-def _per_model(values, n: int, flag: str) -> list:
-    values = values if isinstance(values, list) else [values] if values is not None else []
-    if len(values) > n:
-        raise ScenemonError(f"{flag} is given {len(values)} times for {n} model(s)")
-    return values + [None] * (n - len(values))
-
-
-def model_plans(args, default: str | None = None) -> tuple:
-    from monitor.plan import ModelPlan
-
-    models = args.model if isinstance(args.model, list) else [args.model] if args.model else []
-    if not models and default:
-        models = [default]
-    if len(models) > 2:
-        raise ScenemonError(f"--model is given {len(models)} times; give one model, or two (A, B)")
-    cards = _per_model(getattr(args, "card", None), len(models), "--card")
-    runtimes = _per_model(getattr(args, "runtime", None), len(models), "--runtime")
-    return tuple(ModelPlan(Path(m), Path(c) if c else None, r or "litert",
-                           getattr(args, "trust_model", False))
-                 for m, c, r in zip(models, cards, runtimes))
-
-
-def _capture(args):
-    from monitor.capture import POLICIES, CaptureSettings
-
-    text = args.capture
-    if text is not None and text.strip() == "none":
-        return None
-    given = {"on": args.capture_on, "pre_roll_s": args.pre_roll, "post_roll_s": args.post_roll,
-             "max_s": args.max_snippet, "every_s": args.capture_every,
-             "uncertain_below": args.uncertain_below, "uncertain_margin": args.uncertain_margin}
-    kw = {k: v for k, v in given.items() if v is not None}
-    if text is not None:
-        kw["policies"] = tuple(p.strip() for p in text.split(",") if p.strip())
-    try:
-        return CaptureSettings(**kw)
-    except ValueError as exc:
-        raise ScenemonError(f"capture flags: {exc} (policies: {', '.join(POLICIES)})") from None
-
-
-def session_plan(args, source, *, name: str, default_model: str | None = None,
-                 truth: str | None = None, live_truth: bool = True, prepare=None,
-                 prepare_note: str = "preparing the input …"):
-    from monitor.card import DecisionSettings
-    from monitor.plan import OutputPlan, SessionPlan
-
-    decision = {f: getattr(args, f, None) for f in DecisionSettings.__dataclass_fields__}
-    return SessionPlan(
-        source=source, models=model_plans(args, default_model),
-        output=OutputPlan(Path(args.out) if args.out else None, name, not args.no_audio,
-                          60.0 * args.segment_min),
-        decision={k: v for k, v in decision.items() if v is not None},
-        capture=_capture(args), truth=Path(truth) if truth else None, live_truth=live_truth,
-        prepare=prepare, prepare_note=prepare_note)
-
-
-def _mic(args):
-    from monitor.plan import MicInput
-
-    latency = args.latency
-    try:
-        latency = float(latency)
-    except ValueError:
-        pass
-    return MicInput(args.input, latency, args.blocksize, args.seconds)
-
-
 def _interactive() -> bool:
     return sys.stdin.isatty() and sys.stdout.isatty() and os.environ.get("TERM") != "dumb"
 
@@ -337,7 +272,7 @@ def cmd_replay(args) -> int:
 
 
 def cmd_live(args) -> int:
-    return _run(args, session_plan(args, _mic(args), name="live"),
+    return _run(args, session_plan(args, mic_input(args), name="live"),
                 f"live {args.input or ''}".strip())
 
 
@@ -350,7 +285,7 @@ def cmd_demo(args) -> int:
     default = str(root / "models" / "demo.tflite")
     names = " + ".join(Path(m).name for m in (args.model or [default]))
     if args.mic:
-        return _run(args, session_plan(args, _mic(args), name="demo-mic", default_model=default),
+        return _run(args, session_plan(args, mic_input(args), name="demo-mic", default_model=default),
                     f"demo on the microphone, {names}")
     folder = root / "recordings" / "demo"
     wav, tsv = tour_paths(folder)

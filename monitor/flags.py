@@ -10,8 +10,9 @@ from __future__ import annotations
 import argparse
 import math
 import sys
+from pathlib import Path
 
-from monitor.errors import ExitCode
+from monitor.errors import ExitCode, ScenemonError
 
 EXAMPLES = {
     "replay": """examples:
@@ -318,3 +319,81 @@ def add_capture_flags(p: argparse.ArgumentParser) -> None:
                    help=f"uncertain when the top two are closer than P [{c.uncertain_margin}]")
 
 
+# --- plans from parsed flags --------------------------------------------------------------------------
+def _per_model(values, n: int, flag: str) -> list:
+    """A per-model flag's values, one per model in order (None where not given)."""
+    values = values if isinstance(values, list) else [values] if values is not None else []
+    if len(values) > n:
+        raise ScenemonError(f"{flag} is given {len(values)} times for {n} model(s)")
+    return values + [None] * (n - len(values))
+
+
+def model_plans(args, default: str | None = None) -> tuple:
+    """The `plan.ModelPlan` of each ``--model`` (with its ``--card`` and ``--runtime``, in order).
+
+    Raises
+    ------
+    ScenemonError
+        More than two models, or a per-model flag given more often than ``--model``.
+    """
+    from monitor.plan import ModelPlan
+
+    models = args.model if isinstance(args.model, list) else [args.model] if args.model else []
+    if not models and default:
+        models = [default]
+    if len(models) > 2:
+        raise ScenemonError(f"--model is given {len(models)} times; give one model, or two (A, B)")
+    cards = _per_model(getattr(args, "card", None), len(models), "--card")
+    runtimes = _per_model(getattr(args, "runtime", None), len(models), "--runtime")
+    return tuple(ModelPlan(Path(m), Path(c) if c else None, r or "litert",
+                           getattr(args, "trust_model", False))
+                 for m, c, r in zip(models, cards, runtimes))
+
+
+def capture_settings(args):
+    """`CaptureSettings` from the ``--capture*`` flags (None for ``--capture none``)."""
+    from monitor.capture import POLICIES, CaptureSettings
+
+    text = args.capture
+    if text is not None and text.strip() == "none":
+        return None
+    given = {"on": args.capture_on, "pre_roll_s": args.pre_roll, "post_roll_s": args.post_roll,
+             "max_s": args.max_snippet, "every_s": args.capture_every,
+             "uncertain_below": args.uncertain_below, "uncertain_margin": args.uncertain_margin}
+    kw = {k: v for k, v in given.items() if v is not None}
+    if text is not None:
+        kw["policies"] = tuple(p.strip() for p in text.split(",") if p.strip())
+    try:
+        return CaptureSettings(**kw)
+    except ValueError as exc:
+        raise ScenemonError(f"capture flags: {exc} (policies: {', '.join(POLICIES)})") from None
+
+
+def session_plan(args, source, *, name: str, default_model: str | None = None,
+                 truth: str | None = None, live_truth: bool = True, prepare=None,
+                 prepare_note: str = "preparing the input …"):
+    """The `plan.SessionPlan` of a session command: `source`, the models, output, the decision
+    flags given (the card's values stand for the rest), capture and truth."""
+    from monitor.card import DecisionSettings
+    from monitor.plan import OutputPlan, SessionPlan
+
+    decision = {f: getattr(args, f, None) for f in DecisionSettings.__dataclass_fields__}
+    return SessionPlan(
+        source=source, models=model_plans(args, default_model),
+        output=OutputPlan(Path(args.out) if args.out else None, name, not args.no_audio,
+                          60.0 * args.segment_min),
+        decision={k: v for k, v in decision.items() if v is not None},
+        capture=capture_settings(args), truth=Path(truth) if truth else None, live_truth=live_truth,
+        prepare=prepare, prepare_note=prepare_note)
+
+
+def mic_input(args):
+    """The `plan.MicInput` of the ``--input``/``--latency``/``--blocksize``/``--seconds`` flags."""
+    from monitor.plan import MicInput
+
+    latency = args.latency
+    try:
+        latency = float(latency)
+    except ValueError:
+        pass
+    return MicInput(args.input, latency, args.blocksize, args.seconds)
