@@ -354,7 +354,9 @@ def test_footer_offers_only_the_keys_that_work(long_app, quiet_clip, tmp_path):
                 await step(pilot, stepped_src, 4, 3)
             else:
                 await _until_finished(pilot)
-            await wait_for(pilot, lambda: screen_rows(app)[-1].strip())  # drawn, under load too
+            # the footer as redrawn after the session became ready (the relabel key needs the
+            # session; the first frame, drawn before it, offers only pause, stage and quit)
+            await wait_for(pilot, lambda: "r relabel" in screen_rows(app)[-1])
             footers[name] = screen_rows(app)[-1]
             await pilot.press("q")
             await wait_for(pilot, lambda: app.finished)
