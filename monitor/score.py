@@ -319,7 +319,7 @@ def _read_results(path: Path) -> list[dict]:
 def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 1,
               hops: list[float] | None = None) -> dict:
     """Per-file figures and the overall sums over files (see module docstring)."""
-    from monitor.review.metrics import mcnemar_exact, metrics_of_tally
+    from monitor.review.metrics import metrics_of_tally, paired
     from monitor.tally import Tally, tally_windows
     from monitor.truth import load_truth
 
@@ -335,7 +335,7 @@ def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 
         for it, ws in zip(items, windows_of_item):
             spans = load_truth(it.truth).spans if it.truth else None
             t = tally_windows(ws[m], classes, hop_s=hop, spans=spans)
-            _merge(total, t)
+            total.merge(t)
             per_file.append({"file": it.key, "windows": t.windows,
                              "duration_s": round(t.duration_s, 3), "accuracy": t.accuracy,
                              "switches_per_min": t.switches_per_min,
@@ -349,39 +349,10 @@ def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 
     agg = {"files": len(items), **per_model[0]}
     if n_models > 1:
         agg["b"] = per_model[1]
-        only_a = only_b = same = n = 0
-        for ws in windows_of_item:
-            for wa, wb in zip(ws[0], ws[1]):
-                n += 1
-                same += wa.get("decision") == wb.get("decision")
-                t = wa.get("truth")
-                if t is not None:
-                    ra, rb = wa.get("decision") == t, wb.get("decision") == t
-                    only_a += ra and not rb
-                    only_b += rb and not ra
-        agg["a_vs_b"] = {"windows": n, "decision_agreement": same / n if n else None,
-                         "only_a_right": only_a, "only_b_right": only_b,
-                         "mcnemar_p": mcnemar_exact(only_a, only_b)}
+        # the pairs of every file in one test (each file's windows paired with its own)
+        pairs = [(wa, wb) for ws in windows_of_item for wa, wb in zip(ws[0], ws[1])]
+        agg["a_vs_b"] = paired([a for a, _ in pairs], [b for _, b in pairs])
     return agg
-
-
-def _merge(total, t) -> None:
-    """Add a finished file tally into the overall one (sums; window-weighted figures)."""
-    total.windows += t.windows
-    total.end_t += t.duration_s  # the overall duration: the files' seconds added up
-    total.gap_samples += t.gap_samples
-    total.windows_after_gap += t.windows_after_gap
-    total.changes += t.changes
-    total.confusion += t.confusion
-    total.decided_windows += t.decided_windows
-    total.undecided += t.undecided
-    total.with_truth += t.with_truth
-    total.correct += t.correct
-    total.latencies += t.latencies
-    total.never_reached += t.never_reached
-    total.truth_changes += t.truth_changes
-    if total.hop_s is None:
-        total.hop_s = t.hop_s
 
 
 def aggregate_text(agg: dict) -> str:

@@ -156,6 +156,27 @@ class Tally:
         self._active, self._future = [], deque()
         return self
 
+    def merge(self, other: Tally) -> Tally:
+        """Add a finished tally of another stream (another file) into this one: counts and
+        latencies add up, the duration is the streams' seconds added; each stream's decision
+        changes stay its own (none is counted across the join). Returns self."""
+        self.windows += other.windows
+        self.end_t += other.duration_s
+        self.gap_samples += other.gap_samples
+        self.windows_after_gap += other.windows_after_gap
+        self.changes += other.changes
+        self.confusion += other.confusion
+        self.decided_windows += other.decided_windows
+        self.undecided += other.undecided
+        self.with_truth += other.with_truth
+        self.correct += other.correct
+        self.latencies += other.latencies
+        self.never_reached += other.never_reached
+        self.truth_changes += other.truth_changes
+        if self.hop_s is None:
+            self.hop_s = other.hop_s
+        return self
+
     # --- figures -----------------------------------------------------------------------------
     @property
     def duration_s(self) -> float:

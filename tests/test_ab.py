@@ -94,6 +94,10 @@ def test_mcnemar_exact_against_scipy_and_a_worked_example():
     for b, c in [(31, 6), (0, 5), (7, 1), (20, 20), (3, 12), (100, 140)]:
         ref = scipy_stats.binomtest(b, b + c, 0.5).pvalue
         assert mcnemar_exact(b, c) == pytest.approx(ref, rel=1e-12)
+    # hours of windows: more than 1,023 discordant pairs (2^n overflows a float beyond that)
+    for b, c in [(600, 600), (1500, 1700), (20000, 20500)]:
+        ref = scipy_stats.binomtest(b, b + c, 0.5).pvalue
+        assert mcnemar_exact(b, c) == pytest.approx(ref, rel=1e-9)
     # worked example (from memory: Fagerland, Lydersen and Laake 2013, BMC Medical Research
     # Methodology 13:91, 1 and 7 discordant pairs): exact conditional p = 0.0703,
     # re-derived here as 2 * (C(8,0) + C(8,1)) / 2^8

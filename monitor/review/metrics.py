@@ -121,12 +121,19 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
 
 def mcnemar_exact(b: int, c: int) -> float:
     """Two-sided exact McNemar p-value for `b` and `c` discordant pairs: twice the binomial
-    tail ``P(X <= min(b, c))`` with ``X ~ Bin(b + c, 1/2)``, capped at 1."""
+    tail ``P(X <= min(b, c))`` with ``X ~ Bin(b + c, 1/2)``, capped at 1.
+
+    The terms are summed in log space (``log C(n, i) - n log 2``, from `math.lgamma`), so
+    hours of windows (thousands of discordant pairs) neither overflow nor underflow.
+    """
     n = b + c
     if n == 0:
         return 1.0
     k = min(b, c)
-    tail = sum(math.comb(n, i) for i in range(k + 1)) / 2.0 ** n
+    lg = math.lgamma(n + 1) - n * math.log(2.0)
+    logs = [lg - math.lgamma(i + 1) - math.lgamma(n - i + 1) for i in range(k + 1)]
+    top = max(logs)
+    tail = math.exp(top) * math.fsum(math.exp(x - top) for x in logs)
     return min(1.0, 2.0 * tail)
 
 
