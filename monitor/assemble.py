@@ -323,6 +323,8 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
         capture.close()
         summary["snippets"] = dict(capture.counts)
         summary["snippets_rate_limited"] = capture.limited
+        if capture.lost:
+            summary["snippets_lost"] = capture.lost
     spans = truth.spans if truth else live.spans(end_t=summary["duration_s"]) if live else None
     if spans is not None:
         spans = [s for s in spans if s.onset < summary["duration_s"] + 1e-9]

@@ -83,11 +83,17 @@ class _Run:
 
 
 class AudioHistory:
-    """The last `seconds` of the session's audio at the model rate, on the sample clock."""
+    """The last `seconds` of the session's audio at the model rate, on the sample clock.
+
+    The engine hands audio over before the windows it holds are decided, so a chunk's whole
+    length must fit beside the `seconds` a snippet may reach back: a chunk longer than the room
+    left grows the buffer once (fast replay reads up to the ring's size at a time).
+    """
 
     def __init__(self, sample_rate: int, seconds: float) -> None:
         self.sr = sample_rate
-        self.cap = int(seconds * sample_rate)
+        self.hold = int(seconds * sample_rate)
+        self.cap = self.hold
         self.buf = np.zeros(self.cap, np.float32)
         self.end = 0  # samples seen (gaps as silence)
 
@@ -102,10 +108,19 @@ class AudioHistory:
             Samples lost just before `chunk` (>= 0). The clock advances by them, so cut times
             stay on the session clock.
         """
+        if chunk.size + self.hold > self.cap:
+            self._grow(chunk.size + self.hold)
         if gap:
             self._put(np.zeros(min(gap, self.cap), np.float32), gap)
         if chunk.size:
             self._put(chunk, chunk.size)
+
+    def _grow(self, cap: int) -> None:
+        held = min(self.end, self.cap)
+        old = self.buf[np.arange(self.end - held, self.end) % self.cap]
+        self.cap = cap
+        self.buf = np.zeros(cap, np.float32)
+        self.buf[np.arange(self.end - held, self.end) % cap] = old
 
     def _put(self, x: np.ndarray, advance: int) -> None:
         x = x[-self.cap:]
@@ -165,6 +180,7 @@ class CapturePolicy(ObserverBase):
         self._lock = threading.Lock()
         self.counts = {r: 0 for r in REASONS}
         self.limited = 0
+        self.lost = 0  # ended runs whose audio had already left the history
         self.last_result = None
         self._ever_decided = False
         self._both_decided = False
@@ -297,6 +313,8 @@ class CapturePolicy(ObserverBase):
     def _emit(self, run: _Run, t0: float, t1: float) -> dict | None:
         audio, t0, t1 = self.audio.cut(t0, t1)
         if audio.size == 0:
+            if run.reason != "manual":
+                self.lost += 1
             return None
         probs = np.asarray(run.probs) if run.probs else np.zeros((0, len(self.classes)))
         smoothed = np.asarray(run.smoothed) if run.smoothed else probs

@@ -146,3 +146,36 @@ def test_replay_captures_snippets_with_sidecars(tmp_path, tour):
     r = run_cli("replay", tour[0], "--model", MODELS / "demo.tflite", "--fast", "--out",
                 tmp_path / "n", "--capture", "none")
     assert r.returncode == 0 and not (tmp_path / "n" / "snippets").exists()
+
+
+@pytest.mark.parametrize("models", [("demo.tflite",), ("demo.tflite", "demo-mfcc.tflite")],
+                         ids=["one model", "A/B"])
+def test_snippets_do_not_depend_on_how_much_audio_arrives_at_once(tour, demo_card, models):
+    # fast replay reads up to the ring's length at once, a live stream about a hop: the
+    # policy gets a chunk before its windows, so its history must reach back past the whole
+    # chunk; both ways give the same snippets, sample for sample (the tour's own truth)
+    from monitor.card import card_for_model
+    from monitor.engine import Engine
+    from monitor.novelty import profile_beside
+    from monitor.runners import load_runner
+    from monitor.sources import FileSource
+    from monitor.truth import load_truth
+
+    truth = load_truth(tour[1])
+    cards = [card_for_model(MODELS / m) for m in models]
+    lanes = [(c, load_runner(MODELS / m, c)) for m, c in zip(models, cards)]
+    profiles = [profile_beside(MODELS / m, c) for m, c in zip(models, cards)]
+    runs = {}
+    for batch in (1, 64):  # 1.5 s a read (a live stream's pace) and up to 16 s (fast replay)
+        got = []
+        cap = CapturePolicy(CaptureSettings(), classes=demo_card.classes,
+                            sample_rate=demo_card.sample_rate, sink=got.append,
+                            two_models=len(models) > 1)
+        src = FileSource(tour[0], model_rate=16000, window_samples=16000, realtime=False)
+        Engine(lanes, src, truth=truth.label_for, observers=[cap], profiles=profiles,
+               max_batch=batch).run()
+        cap.close()
+        assert cap.lost == 0
+        runs[batch] = [(s["reason"], s["label"], s["t0"], s["t1"],
+                        hashlib.sha256(s["audio"].tobytes()).hexdigest()) for s in got]
+    assert runs[1] and runs[1] == runs[64]
