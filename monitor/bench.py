@@ -63,12 +63,16 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
 
     from monitor.assemble import project_root
     from monitor.demo.tour import ensure_tour
+    from monitor.sources import load_audio
+    from monitor.windower import windows_of
 
     wav, _ = ensure_tour(project_root() / "recordings" / "demo")
-    x, sr = sf.read(str(wav), dtype="float32")
+    sr = card.sample_rate  # the tour at the card's rate, resampled as replay resamples it
+    x = load_audio([wav], model_rate=sr, window_samples=card.window_samples)
     x = x[: int(seconds * sr)]
-    hop, win = card.hop_samples, card.window_samples
-    n = 1 + (x.size - win) // hop
+    hop = card.hop_samples
+    windows = windows_of(x, card.window_samples, hop)
+    n = len(windows)
     if n < 2:
         raise ScenemonError(f"--seconds {seconds:g} holds fewer than two windows of "
                             f"{card.window_s:g} s; give more")
@@ -78,8 +82,7 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
                                       "decide": []}
     rs = StreamResampler(48000, card.sample_rate)
     block48 = np.random.default_rng(0).standard_normal(hop * 3).astype(np.float32) * 0.1
-    for i in range(n):
-        w = x[i * hop:i * hop + win]
+    for i, w in enumerate(windows):
         a = time.perf_counter()
         rs(block48)
         b = time.perf_counter()
@@ -87,7 +90,7 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
         c = time.perf_counter()
         p = runner.predict(f[None])[0]
         d = time.perf_counter()
-        dec.step(p, (i * hop + win) / card.sample_rate)
+        dec.step(p, (i * hop + card.window_samples) / sr)
         e = time.perf_counter()
         for k, v in zip(stages, (b - a, c - b, d - c, e - d)):
             stages[k].append(v)

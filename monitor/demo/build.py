@@ -26,6 +26,7 @@ from monitor.card import card_from_dict
 from monitor.demo import CLASSES
 from monitor.demo.synth import clip
 from monitor.frontend import FrontEnd
+from monitor.windower import windows_of
 
 CARD = {
     "classes": list(CLASSES),
@@ -46,17 +47,14 @@ HELD_OUT_SEEDS = range(9000, 9016)
 CLIP_S = 3.0
 
 
-def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
-    n = 1 + (x.size - window) // hop
-    return np.stack([x[i * hop:i * hop + window] for i in range(n)])
-
-
 def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
     c = fe.card
     xs, ys = [], []
     for seed in seeds:
         for k, place in enumerate(CLASSES):
-            w = windows_of(clip(place, CLIP_S, seed), c.window_samples, c.hop_samples)
+            # a contiguous copy, as the committed models were built from
+            w = np.ascontiguousarray(windows_of(clip(place, CLIP_S, seed), c.window_samples,
+                                                c.hop_samples))
             xs.append(fe.unscaled(w))
             ys.append(np.full(len(w), k))
     return np.concatenate(xs).astype(np.float32), np.concatenate(ys)
