@@ -173,17 +173,18 @@ def invocation() -> str:
 class SessionHandle:
     """What a front end (the UI) may use of a running session; every method is thread-safe.
 
-    The UI never reads the engine, the writer or the source itself.
+    The UI never reads the engine, the writer, the capture policy or the source itself: it
+    asks the handle (`now_s`, `can_capture`, `snippet_count`, `write_error`).
     """
 
     dir: Path
     models: list[LoadedModel]
     decisions: list[DecisionSettings]
-    capture: CapturePolicy | None
+    _capture: CapturePolicy | None
     live_truth: LiveTruth | None
     source: dict[str, Any]
     _engine: Engine
-    writer: SessionWriter
+    _writer: SessionWriter
 
     @property
     def card(self) -> ModelCard:
@@ -205,9 +206,22 @@ class SessionHandle:
             raise ScenemonError("the truth comes from the truth file in this session")
         self.live_truth.set(label, self.now_s())
 
+    @property
+    def can_capture(self) -> bool:
+        """True when the session cuts snippets (capture is not off)."""
+        return self._capture is not None
+
     def capture_now(self, label: str) -> dict | None:
         """Save the last seconds as a manual snippet labelled `label`."""
-        return None if self.capture is None else self.capture.manual(label)
+        return None if self._capture is None else self._capture.manual(label)
+
+    def snippet_count(self) -> int:
+        """Snippets cut so far (every reason)."""
+        return 0 if self._capture is None else self._capture.total
+
+    def write_error(self) -> str | None:
+        """The session writer's failure in one sentence, or None while it writes."""
+        return self._writer.error_text
 
 
 def describe_session(plan: SessionPlan, models: list[LoadedModel],

@@ -174,11 +174,6 @@ class KerasRunner(_Base):
             out[i] = self._fn(feats[i].reshape(self._one_shape)).numpy()[0]
         return self._finish(out)
 
-    def predict_batch(self, features: np.ndarray) -> np.ndarray:
-        """Many windows in one call (for offline tools; numbers may differ in the last bit)."""
-        x = np.asarray(features, np.float32).reshape((-1, *self._one_shape[1:]))
-        return self._finish(np.asarray(self.model(x, training=False)))
-
 
 def _tflite_interpreter(path: Path, threads: int):
     try:

@@ -485,7 +485,7 @@ class MonitorApp(App):
             k = int(parameters[0]) if parameters else 0
             return running and h.live_truth is not None and k <= len(self.state.classes)
         if action == "capture":
-            return running and h.capture is not None
+            return running and h.can_capture
         if action == "model":
             return self.mode_two
         if action == "relabel":
@@ -531,7 +531,7 @@ class MonitorApp(App):
         The truth is the one last set with a key (live truth) or the truth file's; without one the
         label is asked for first.
         """
-        if self.handle is None or self.finished or self.handle.capture is None:
+        if self.handle is None or self.finished or not self.handle.can_capture:
             return
         label = self.key_truth if self.handle.live_truth is not None else self.state.truth
         if label is not None:

@@ -76,8 +76,8 @@ class UIBridge(ObserverBase):
         Runs on the compute thread and never blocks.
         """
         h = self.handle
-        snippets = h.capture.total if h is not None and h.capture is not None else 0
-        error = h.writer.error_text if h is not None else None
+        snippets = h.snippet_count() if h is not None else 0
+        error = h.write_error() if h is not None else None
         self.app.post_message(Status(SessionStatus(status, snippets, error)))
 
     def drain(self) -> list[WindowResult]:
