@@ -33,7 +33,7 @@ def main() -> int:
     from monitor.capture import CapturePolicy, CaptureSettings
     from monitor.card import load_card
     from monitor.demo.tour import ensure_tour
-    from monitor.engine import Engine
+    from monitor.engine import Engine, ObserverBase
     from monitor.runners import load_runner
     from monitor.session_writer import SessionWriter
     from monitor.sources import FileSource
@@ -58,13 +58,13 @@ def main() -> int:
                             sink=writer.on_snippet)
         marks = []
 
-        class Watch:
+        class Watch(ObserverBase):
             def on_window(self, r):
                 if r.i % 1200 == 0:  # every 10 minutes of audio
                     marks.append((r.t1, rss_mb()))
 
         src = FileSource(long, model_rate=sr, window_samples=card.window_samples)
-        eng = Engine(card, runner, src, observers=[writer, cap, Watch()],
+        eng = Engine([(card, runner)], src, observers=[writer, cap, Watch()],
                      truth=lambda a, b: truth.label_for(a % tour_s, a % tour_s + (b - a)))
         t = time.perf_counter()
         summary = eng.run()

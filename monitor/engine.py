@@ -199,6 +199,9 @@ class _Lane:
     faults: int = 0
 
 
+HOOKS = ("on_audio", "on_window", "on_status")  # the `Observer` protocol's methods
+
+
 def _overrides(cls: type, name: str) -> bool:
     """True when an observer's class has its own `name` hook (not ObserverBase's no-op)."""
     hook = getattr(cls, name, None)
@@ -296,6 +299,11 @@ class Engine:
         src, ring = self.source, self.source.ring
         limit = self.max_batch * self.card.hop_samples + self.card.window_samples
         poll = 0.01 if src.realtime else 0.001
+        for obs in self.observers:  # before anything starts: a half observer is a bug
+            missing = [h for h in HOOKS if not callable(getattr(obs, h, None))]
+            if missing:
+                raise TypeError(f"{type(obs).__name__} is not an engine observer: it lacks "
+                                f"{', '.join(missing)} (subclass engine.ObserverBase)")
         audio_obs = [o for o in self.observers if _overrides(type(o), "on_audio")]
         self._window_obs = [o for o in self.observers if _overrides(type(o), "on_window")]
         self._status_obs = [o for o in self.observers if _overrides(type(o), "on_status")]

@@ -27,6 +27,7 @@ from typing import Any
 import numpy as np
 import soundfile as sf
 
+from monitor.engine import ObserverBase
 from monitor.errors import SessionError
 from monitor.files import SessionLock, atomic_write, dumps, segment_name
 from monitor.native import update_wav_header
@@ -79,7 +80,7 @@ def _same_file(a: Path, b: Path) -> bool:
         return False
 
 
-class SessionWriter:
+class SessionWriter(ObserverBase):
     """Writes one session directory from its own thread (see module docstring).
 
     Parameters

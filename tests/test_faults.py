@@ -158,7 +158,7 @@ def test_slow_disk_never_slows_decisions(tour, demo_card, tmp_path, monkeypatch,
 def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
     # 10 minutes of tour audio at fast pace through the whole chain with capture
     from monitor.capture import CapturePolicy, CaptureSettings
-    from monitor.engine import Engine
+    from monitor.engine import Engine, ObserverBase
     from monitor.runners import load_runner
     from monitor.session_writer import SessionWriter
     from monitor.sources import FileSource
@@ -174,7 +174,7 @@ def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
                         sink=writer.on_snippet)
     rss = []
 
-    class Watch:
+    class Watch(ObserverBase):
         def on_window(self, r):
             if r.i % 120 == 0:
                 rss.append((r.t1, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss))
@@ -247,3 +247,24 @@ def test_an_unclosed_session_is_reported_at_the_next_start(tmp_path):
     r = run_cli("replay", wav, "--model", root / "models" / "demo.tflite", "--fast", cwd=root)
     assert r.returncode == 0, r.stderr
     assert f"{crashed} did not close cleanly" in r.stderr and f"repair {crashed}" in r.stderr
+
+
+def test_an_object_without_the_observer_hooks_is_refused(demo_card, tmp_path):
+    # the engine calls on_audio, on_window and on_status (engine.Observer); an object with
+    # only some of them would be silently half-called: it is refused when the engine is built
+    from monitor.engine import Engine, ObserverBase
+    from monitor.runners import load_runner
+    from monitor.sources import FileSource
+
+    class OnlyWindows:
+        def on_window(self, r):
+            pass
+
+    wav = tmp_path / "s.wav"
+    sf.write(str(wav), np.zeros(32000, np.float32), 16000)
+    lane = (demo_card, load_runner(MODELS / "demo.tflite", demo_card))
+    src = FileSource(wav, model_rate=16000, window_samples=16000)
+    with pytest.raises(TypeError, match="OnlyWindows .*lacks on_audio, on_status"):
+        Engine([lane], src, observers=[OnlyWindows()]).run()
+    src = FileSource(wav, model_rate=16000, window_samples=16000)
+    assert Engine([lane], src, observers=[ObserverBase()]).run()["windows"] == 3

@@ -20,7 +20,7 @@ import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
-from monitor.engine import Engine
+from monitor.engine import Engine, ObserverBase
 from monitor.frontend import mel_band_edges
 from monitor.runners import load_runner
 from monitor.sources import FileSource
@@ -65,7 +65,7 @@ def tones(path, rate=48000, seq=((300, 5), (1000, 5), (3000, 5)), lead=1.0, amp=
     return path
 
 
-class Keep:
+class Keep(ObserverBase):
     def __init__(self):
         self.results = []
 

@@ -135,7 +135,7 @@ def test_thirty_seconds_hop_one_gives_thirty_windows(tmp_path):
 def test_foreign_rate_and_channels_are_resampled(tmp_path, demo_card):
     # a 44.1 kHz stereo file: down-mixed, resampled (soxr HQ); a 1 kHz tone stays in the band
     # nearest 1 kHz and the features match the same tone made at 16 kHz directly
-    from monitor.engine import Engine
+    from monitor.engine import Engine, ObserverBase
     from monitor.frontend import FrontEnd, mel_band_edges
     from monitor.runners import load_runner
     from monitor.sources import FileSource
@@ -145,7 +145,7 @@ def test_foreign_rate_and_channels_are_resampled(tmp_path, demo_card):
     sf.write(str(tmp_path / "st.wav"), np.stack([tone, tone], 1), 44100, subtype="FLOAT")
     feats = []
 
-    class Keep:
+    class Keep(ObserverBase):
         def on_window(self, r):
             feats.append(r.features)
 
