@@ -45,6 +45,7 @@ lines that make it match. Exit 0 match, 1 mismatch, 2 bad input."""
 
 
 def build_parser() -> argparse.ArgumentParser:
+    """The `scenemon` parser: every command, its flags, help and examples."""
     ap = Parser(prog="scenemon",
                  description="Watch a small audio classifier decide on live or recorded sound, "
                              "record the session, and check it against the truth.",
@@ -263,6 +264,7 @@ def _run(args, plan, heading: str) -> int:
 
 # --- commands ----------------------------------------------------------------------------------
 def cmd_replay(args) -> int:
+    """`scenemon replay`: a recording through the chain into a session (UI or printed lines)."""
     from monitor.plan import FileInput
 
     audio = Path(args.audio)
@@ -272,11 +274,13 @@ def cmd_replay(args) -> int:
 
 
 def cmd_live(args) -> int:
+    """`scenemon live`: an input device through the chain into a session."""
     return _run(args, session_plan(args, mic_input(args), name="live"),
                 f"live {args.input or ''}".strip())
 
 
 def cmd_demo(args) -> int:
+    """`scenemon demo`: the demo model(s) on the demo tour (made on first use) or the microphone."""
     from monitor.assemble import project_root
     from monitor.demo import tour_paths
     from monitor.plan import FileInput
@@ -302,6 +306,7 @@ def cmd_demo(args) -> int:
 
 
 def cmd_devices(args) -> int:
+    """`scenemon devices`: the input devices, one line each."""
     from monitor.sources import device_table
 
     sys.stdout.write(device_table())
@@ -309,6 +314,7 @@ def cmd_devices(args) -> int:
 
 
 def cmd_report(args) -> int:
+    """`scenemon report`: a session's account on the terminal, as JSON or as HTML."""
     from monitor.review.report import run_report
 
     return run_report(Path(args.session), html=Path(args.html) if args.html else None,
@@ -316,6 +322,7 @@ def cmd_report(args) -> int:
 
 
 def cmd_tune(args) -> int:
+    """`scenemon tune`: the decision-settings sweep over sessions with truth."""
     from monitor.review.tune import run_tune
 
     return run_tune([Path(p) for p in args.sessions], grid=args.grid,
@@ -324,6 +331,7 @@ def cmd_tune(args) -> int:
 
 
 def cmd_harvest(args) -> int:
+    """`scenemon harvest`: sessions' snippets into a retraining set."""
     from monitor.review.harvest import run_harvest
 
     return run_harvest([Path(p) for p in args.sessions], Path(args.out), include=args.include,
@@ -331,12 +339,14 @@ def cmd_harvest(args) -> int:
 
 
 def cmd_relabel(args) -> int:
+    """`scenemon relabel`: the relabel view on a session (needs a terminal)."""
     from monitor.ui.app import run_relabel
 
     return run_relabel(Path(args.session), interactive=_interactive())
 
 
 def cmd_quantize(args) -> int:
+    """`scenemon quantize`: a full-integer int8 .tflite calibrated on field audio."""
     from monitor.device.quantize import run_quantize
 
     return run_quantize(Path(args.model), card=Path(args.card) if args.card else None,
@@ -345,6 +355,7 @@ def cmd_quantize(args) -> int:
 
 
 def cmd_compare(args) -> int:
+    """`scenemon compare`: two models, or one model in two runtimes, on the same windows."""
     from monitor.device.compare import run_compare
 
     plans = model_plans(args)
@@ -356,6 +367,7 @@ def cmd_compare(args) -> int:
 
 
 def cmd_vectors(args) -> int:
+    """`scenemon vectors`: golden vectors, the C front end and its check program."""
     import dataclasses
 
     from monitor.device.vectors import run_vectors
@@ -367,6 +379,7 @@ def cmd_vectors(args) -> int:
 
 
 def cmd_budget(args) -> int:
+    """`scenemon budget`: RAM, flash, operators and work per window on the target."""
     import dataclasses
 
     from monitor.device.budget import run_budget
@@ -376,12 +389,14 @@ def cmd_budget(args) -> int:
 
 
 def cmd_repair(args) -> int:
+    """`scenemon repair`: make a session that did not close cleanly whole."""
     from monitor.repair import run_repair
 
     return run_repair(Path(args.session))
 
 
 def cmd_score(args) -> int:
+    """`scenemon score`: re-score an archive of recordings and sessions."""
     from monitor.score import run_score_command
 
     return run_score_command(Path(args.archive), model_plans(args), Path(args.out),
@@ -390,6 +405,7 @@ def cmd_score(args) -> int:
 
 
 def cmd_bench(args) -> int:
+    """`scenemon bench`: will this model keep up on this machine?"""
     from monitor.assemble import project_root
     from monitor.bench import run_bench
 
@@ -399,6 +415,7 @@ def cmd_bench(args) -> int:
 
 
 def cmd_profile(args) -> int:
+    """`scenemon profile`: fit the unfamiliar-sound profile beside a model."""
     from monitor.run import run_profile
 
     return run_profile(model_plans(args)[0], [Path(p) for p in args.sources],
@@ -406,6 +423,7 @@ def cmd_profile(args) -> int:
 
 
 def cmd_card(args) -> int:
+    """`scenemon card check`: the card's features of one window against training's."""
     if args.card_command != "check":
         raise ScenemonError("card: give an action: scenemon card check CARD AUDIO FEATURES.npy "
                             "(see scenemon card --help)")
@@ -423,6 +441,19 @@ HANDLERS = {"replay": cmd_replay, "live": cmd_live, "devices": cmd_devices, "dem
 
 
 def main(argv: list[str] | None = None) -> int:
+    """Run `scenemon` with `argv` (default: the process's arguments); return the exit code.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments after the program name.
+
+    Returns
+    -------
+    int
+        0 ok, 1 runtime failure, 2 bad input (`errors.ExitCode`); every error is one sentence
+        on stderr, with a traceback only under ``--debug``.
+    """
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
     ap = build_parser()
     args = ap.parse_args(argv)

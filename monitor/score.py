@@ -227,7 +227,37 @@ def _worker_context():
 def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
               truth_glob: str | None = None, workers: int | None = None,
               cluster: str | None = None, progress: bool = True) -> dict:
-    """Score every input under `archive` (see module docstring); returns the aggregate."""
+    """Score every input under `archive` (see module docstring); returns the aggregate.
+
+    Parameters
+    ----------
+    archive : Path
+        A folder searched recursively for audio files and session directories.
+    models : tuple of ModelPlan, or a model path
+        One model, or two (A, B) scored on the same windows.
+    out : Path
+        The results folder: ``results/*.jsonl`` (one per input and model), ``*.meta.json``
+        and ``aggregate.json``; results already up to date there are not redone.
+    truth_glob : str, optional
+        The truth file beside each audio file, with ``{stem}`` (default ``{stem}.tsv``).
+    workers : int, optional
+        Local worker processes (default: the number of cores).
+    cluster : str, optional
+        A Dask scheduler's address; the inputs are scored there instead.
+    progress : bool
+        Draw a progress bar on stderr (only when it is a terminal).
+
+    Returns
+    -------
+    dict
+        The aggregate as written to ``aggregate.json``: per-file and overall figures (sums
+        and window-weighted means over files), ``b`` and ``a_vs_b`` for two models.
+
+    Raises
+    ------
+    ScenemonError
+        An archive without inputs, a bad card, model, truth or audio file.
+    """
     if isinstance(models, (str, Path)):
         models = (ModelPlan(Path(models)),)
     models = tuple(ModelPlan(Path(m.path).resolve(), Path(m.card).resolve() if m.card else None,
