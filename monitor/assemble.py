@@ -15,7 +15,6 @@ Bad input is found before the session directory exists; if the source still fail
 from __future__ import annotations
 
 import gc
-import os
 import shutil
 import signal
 import sys
@@ -155,16 +154,15 @@ def session_dir(out: OutputPlan) -> Path:
 
 
 def invocation() -> str:
-    """How the user can run scenemon again from here (the bare name only when it is on PATH)."""
-    exe = Path(sys.argv[0]) if sys.argv and sys.argv[0] else None
+    """How the user can run scenemon again from here: the bare name when it is on PATH, else
+    the program's path as it was typed (``.venv/bin/scenemon``, or an absolute path)."""
+    typed = sys.argv[0] if sys.argv and sys.argv[0] else None
+    exe = Path(typed) if typed else None
     found = shutil.which("scenemon")
     if exe is not None and exe.name == "scenemon":
         if found and Path(found).resolve() == exe.resolve():
             return "scenemon"
-        try:
-            return os.path.relpath(exe)
-        except ValueError:
-            return str(exe)
+        return typed
     return "scenemon" if found else f"{Path(sys.executable).name} -m monitor"
 
 

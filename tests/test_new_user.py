@@ -28,6 +28,12 @@ def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
     assert r.returncode == 0, r.stderr
     rel = os.path.relpath(exe, ROOT)
     assert f"{rel} report {tmp_path / 's'}" in r.stderr  # a command that works as printed
+    # run by its absolute path from elsewhere: printed the way it was typed, not as ../../..
+    r = subprocess.run([str(exe), "replay", str(wav), "--model", str(MODELS / "demo.tflite"),
+                        "--fast", "--out", str(tmp_path / "s2")],
+                       cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert f" {exe} report {tmp_path / 's2'}" in r.stderr
 
 
 def test_piping_into_head_ends_quietly_and_closes_the_session(tour, tmp_path):

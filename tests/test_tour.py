@@ -46,7 +46,8 @@ def test_raw_top_flickers_where_the_decision_holds(tour_run):
     decision_changes = sum(a != b for a, b in zip(decisions, decisions[1:]))
     print(f"raw top changes {raw_changes}, decision changes {decision_changes}; "
           f"{flicker} of {len(TOUR_EVENTS)} events flip the raw top class")
-    assert flicker >= 3 and raw_changes > decision_changes
+    # at least half of the tour's short sounds flip the raw top class (the doors are no place's)
+    assert flicker >= len(TOUR_EVENTS) // 2 and raw_changes > decision_changes
 
 
 def test_the_overlap_changes_hands_at_its_middle(tour_run):
