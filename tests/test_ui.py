@@ -488,7 +488,7 @@ def test_stage_font_every_letter_distinct():
     cells = {ch: "".join(FONT[ch]) for ch in chars}
     worst = min((sum(a != b for a, b in zip(cells[p], cells[q])), p, q)
                 for p, q in itertools.combinations(chars, 2))
-    assert worst[0] >= 3, worst  # every pair differs in at least 3 of the 35 cells
+    assert worst[0] >= 3, worst  # every pair differs in at least 3 of its cells
     # and so does what the stage draws, at both scales
     for scale_width in (10 ** 6, 6):
         drawn = {ch: big_text(ch, max_width=scale_width).plain for ch in chars}
