@@ -12,7 +12,13 @@ front end and reports:
 - where the difference sits: which frames and which bands exceed the tolerance;
 - when it does not match: the card changed in one key at a time, then in pairs of keys (the
   keys of `SEARCH`, each over its other allowed values or the usual ones), and the card
-  lines of the change that makes it match, ready to paste.
+  lines of the change that makes it match, ready to paste;
+- a recording at another rate is resampled to the card's (soxr HQ, as replay does) and the
+  report says from which rate; when nothing matches, it names that resampling as a likely
+  cause (training code may have resampled differently).
+
+A features file that is no ``.npy`` of numbers is refused in our own words: numpy's
+exception text would suggest loading it with pickle.
 
 Exit codes: 0 the features match, 1 they do not (with or without a fix found), 2 bad input.
 """
@@ -225,11 +231,26 @@ def card_lines(changes: dict[str, Any]) -> list[str]:
 
 
 def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, start_s: float,
-           scaled: bool) -> str:
+           scaled: bool, native_rate: int | None = None, channels: int = 1) -> str:
+    """The check's report: the shapes, the difference and where it sits, the search's outcome.
+
+    Parameters
+    ----------
+    native_rate : int, optional
+        The recording's own rate in Hz; when it is not the card's, the report says the window
+        was resampled (soxr HQ, as replay does) and, when nothing matches, that a different
+        resampling in the training code is a likely cause.
+    channels : int
+        The recording's channels (more than one: down-mixed to their mean).
+    """
     c = res.card
+    resampled = native_rate is not None and native_rate != c.sample_rate
+    how = f", resampled from {native_rate} Hz with soxr HQ as replay does" if resampled else ""
+    if channels > 1:
+        how += f", down-mixed from {channels} channels (their mean)"
     lines = [f"card         {card_path} ({c.kind}, {c.describe_shape()})",
              f"audio        {audio}, the window at {start_s:.3f} s ({c.window_samples} samples "
-             f"at {c.sample_rate} Hz)",
+             f"at {c.sample_rate} Hz{how})",
              f"features     {features}: {tuple(res.theirs.shape)} {res.dtype}, "
              f"{'scaled' if scaled else 'unscaled'}, in the model's input order"]
     if res.base.max_diff is None:
@@ -262,6 +283,12 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
                          f"(max abs diff {res.closest.max_diff:.3g}). Check the other keys "
                          f"(fmin, fmax, mel_bands, frame_length, frame_step, the scaling) "
                          f"against the training code.")
+        if resampled:
+            lines += ["", f"A likely cause: the recording is at {native_rate} Hz and was "
+                          f"resampled to {c.sample_rate} Hz here with soxr HQ; training code "
+                          f"that resampled differently (another library, quality or filter) "
+                          f"makes other features. Check with a file at {c.sample_rate} Hz "
+                          f"resampled the way training did."]
     return "\n".join(lines) + "\n"
 
 
@@ -293,10 +320,18 @@ def read_features(path: Path) -> np.ndarray:
     if data[:4] == b"PK\x03\x04":
         raise ScenemonError(f"{path}: is an .npz archive; give the one window's features as a "
                             f".npy (numpy.save)")
+    if data[:6] != b"\x93NUMPY":  # the .npy magic (numpy's format.MAGIC_PREFIX)
+        raise ScenemonError(f"{path}: not a .npy array of numbers")
     try:
         a = np.load(io.BytesIO(data), allow_pickle=False)
-    except (ValueError, OSError, EOFError) as exc:
-        raise ScenemonError(f"{path}: not a .npy array of numbers ({exc})") from None
+    except ValueError:
+        # numpy's own text here invites loading with pickle; an object array is not read
+        if _holds_objects(data):
+            raise ScenemonError(f"{path}: holds Python objects, which are not read; save the "
+                                f"features as an array of numbers") from None
+        raise ScenemonError(f"{path}: not a .npy array of numbers") from None
+    except (OSError, EOFError):
+        raise ScenemonError(f"{path}: not a .npy array of numbers") from None
     if not isinstance(a, np.ndarray) or a.dtype.kind not in "fiu" or a.size == 0:
         raise ScenemonError(f"{path}: holds {getattr(a, 'dtype', type(a))} values; it must be "
                             f"a non-empty array of numbers")
@@ -305,16 +340,32 @@ def read_features(path: Path) -> np.ndarray:
     return a
 
 
+def _holds_objects(data: bytes) -> bool:
+    """True when a .npy header declares an object array (dtype "|O"), read without pickle."""
+    from numpy.lib import format as npy_format
+
+    try:
+        f = io.BytesIO(data)
+        version = npy_format.read_magic(f)
+        header = (npy_format.read_array_header_1_0 if version == (1, 0)
+                  else npy_format.read_array_header_2_0)(f)
+    except (ValueError, OSError, EOFError):
+        return False
+    return bool(header[2].hasobject)
+
+
 def run_card_check(card_path: Path, audio: Path, features: Path, *, start_s: float = 0.0,
                    scaled: bool = False) -> int:
     """`scenemon card check` (module docstring); returns the exit code."""
-    from monitor.sources import load_audio
+    from monitor.sources import check_audio_files, load_audio
 
     raw = read_card_table(card_path)
     card = card_from_dict(raw, card_path)
     theirs = read_features(features)
     if not np.isfinite(start_s) or start_s < 0:
         raise ScenemonError(f"--start {start_s} must be a number of seconds >= 0")
+    info, _ = check_audio_files([audio], model_rate=card.sample_rate,
+                                window_samples=card.window_samples)
     x = load_audio([audio], model_rate=card.sample_rate, window_samples=card.window_samples)
     a = int(round(start_s * card.sample_rate))
     if a + card.window_samples > x.size:
@@ -324,7 +375,8 @@ def run_card_check(card_path: Path, audio: Path, features: Path, *, start_s: flo
     window = np.ascontiguousarray(x[a:a + card.window_samples], np.float32)
     res = check(raw, card_path, window, theirs, scaled=scaled)
     sys.stdout.write(report(res, card_path=card_path, audio=audio, features=features,
-                            start_s=start_s, scaled=scaled))
+                            start_s=start_s, scaled=scaled, native_rate=int(info.samplerate),
+                            channels=int(info.channels)))
     return ExitCode.OK if res.matched else ExitCode.FAILURE
 
 

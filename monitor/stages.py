@@ -69,7 +69,9 @@ class Key:
 
     ``default`` is REQUIRED for a key that changes the numbers and has no off state (the card
     must give it); ``off`` is the value that changes nothing, so a key of a stage the kind
-    does not run may carry it (and no other); ``needs`` names a switch of the same stage
+    does not run may carry it (and no other: a key without one is refused there); for a key
+    that is no switch it is the value a card written out at the defaults carries
+    (``dct_norm = "ortho"`` beside ``mfcc = 0``); ``needs`` names a switch of the same stage
     without which the key does nothing (``pad_mode`` needs ``center``).
     """
 
@@ -82,6 +84,11 @@ class Key:
     default: Any = REQUIRED
     off: Any = NO_OFF
     needs: str | None = None
+
+    def is_off(self, value: Any) -> bool:
+        """True when `value` is the key's off value (``false`` is not ``0``, nor ``0`` false)."""
+        return (self.off is not NO_OFF and isinstance(value, bool) == isinstance(self.off, bool)
+                and value == self.off)
 
     def allowed(self) -> str:
         """The allowed values, as the end of "... must be ..."."""
@@ -326,9 +333,10 @@ class DctConfig:
     """The dct stage's keys (kind "mfcc"): coefficients kept, DCT-II normalisation, lifter."""
     mfcc: int = key(int, "kind = \"mfcc\": coefficients kept from the DCT-II of the log-mel",
                     lo=1, hi=MAX_BANDS, off=0)
+    # off: "ortho" is what a card written out at the defaults carries beside kind = "logmel"
     dct_norm: str = key(str, "\"ortho\" (scipy.fft.dct norm=\"ortho\") or \"uniform\" (every "
                         "row times sqrt(2 / mel_bands): TensorFlow, CMSIS-DSP)",
-                        choices=("ortho", "uniform"))
+                        choices=("ortho", "uniform"), off="ortho")
     lifter: float = key(float, "> 0: coefficient n (from 0) times 1 + (lifter/2) "
                         "sin(pi (n+1) / lifter)", lo=0.0, hi=1e4, default=0.0, off=0.0)
 
@@ -436,7 +444,8 @@ def frontend_from_table(table: dict[str, Any], audio: AudioConfig) -> FrontendCo
     """Validate a ``[frontend]`` table (see `Key`); CardProblem names the key and the rule.
 
     Every key of a stage the kind runs is checked and a missing one that changes the numbers
-    is refused; a key of a stage it does not run may only carry its off value; an unknown key
+    is refused; a key of a stage it does not run may only carry its off value (one without an
+    off value is refused there at any value, naming the kind); an unknown key
     is refused with the nearest known one; then each stage checks its combinations.
     """
     if "kind" not in table:
@@ -460,14 +469,14 @@ def frontend_from_table(table: dict[str, Any], audio: AudioConfig) -> FrontendCo
             label = f"frontend.{name}"
             given = name in table
             if st.name not in used:
-                if given and table[name] != k.off:
+                if given and not k.is_off(table[name]):
                     k.check(label, table[name])
-                    if k.off is not NO_OFF:
-                        users = ", ".join(f'"{n}"' for n, s in KINDS.items() if st.name in s)
-                        raise CardProblem(f"{label}={show_value(table[name])} has no effect with "
-                                          f"kind = \"{kind}\" (the {st.name} stage runs in "
-                                          f"kind {users}); remove it or set it to "
-                                          f"{show_value(k.off)}")
+                    users = ", ".join(f'"{n}"' for n, s in KINDS.items() if st.name in s)
+                    fix = "remove it" + (f" or set it to {show_value(k.off)}"
+                                         if k.off is not NO_OFF else "")
+                    raise CardProblem(f"{label}={show_value(table[name])} has no effect with "
+                                      f"kind = \"{kind}\" (the {st.name} stage runs in kind "
+                                      f"{users}); {fix}")
                 continue
             needed = k.needs is None or values.get(k.needs) is True
             if not given:

@@ -250,6 +250,30 @@ def case_card_lifter_without_mfcc(tmp_path):
             'frontend.lifter=22 has no effect with kind = "logmel"')
 
 
+def case_card_mel_bands_on_a_spectrogram(tmp_path):
+    # the demo card's mel keys left in a spectrogram card: its kind runs no mel stage
+    p = card_with(tmp_path, 'kind = "logmel"', 'kind = "spectrogram"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.mel_bands=40 has no effect with kind = "spectrogram" (the mel stage runs '
+            'in kind "logmel", "mfcc"); remove it')
+
+
+def case_card_window_on_a_waveform(tmp_path):
+    p = tmp_path / "bad.toml"
+    p.write_text('classes = ["a", "b"]\n\n[audio]\nsample_rate = 16000\nwindow_s = 1.0\n'
+                 'hop_s = 0.5\n\n[frontend]\nkind = "waveform"\nwindow = "hann"\n')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.window="hann" has no effect with kind = "waveform"')
+
+
+def case_card_dct_norm_uniform_on_logmel(tmp_path):
+    # "ortho" is the off value a card at the defaults may carry; "uniform" is refused
+    p = card_with(tmp_path, "pcm_bits = 16", 'pcm_bits = 16\ndct_norm = "uniform"')
+    return (["replay", _good(tmp_path), "--card", p], "bad.toml",
+            'frontend.dct_norm="uniform" has no effect with kind = "logmel" (the dct stage runs '
+            'in kind "mfcc"); remove it or set it to "ortho"')
+
+
 def case_card_mfcc_over_mel_bands(tmp_path):
     p = card_with(tmp_path, 'kind = "logmel"', 'kind = "mfcc"\nmfcc = 50\ndct_norm = "ortho"')
     return (["replay", _good(tmp_path), "--card", p], "bad.toml",

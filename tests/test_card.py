@@ -58,9 +58,15 @@ def test_a_card_with_only_the_required_keys_equals_the_full_one(demo_card):
     assert c.frontend.framing == demo_card.frontend.framing
 
 
+# the demo card's mel keys removed: a spectrogram card may not carry them
+NO_MEL = {name: None for name in keys_of(STAGES["mel"].config)}
+
+
 @pytest.mark.parametrize("kind", list(KINDS))
 def test_every_required_key_is_named_when_missing(kind):
     base = {"kind": kind, "mfcc": 13, "dct_norm": "ortho"} if kind == "mfcc" else {"kind": kind}
+    if kind == "spectrogram":
+        base.update(NO_MEL)
     raw = card_dict(frontend=base, scaling=None)
     if kind == "waveform":
         raw["frontend"] = {"kind": "waveform"}
@@ -86,6 +92,47 @@ def test_a_card_listing_every_key_at_its_default_loads():
                                       np.zeros((1, 16000), np.float32)))
 
 
+def _every_key_on():
+    """A value for every [frontend] key that is not its off value (an mfcc card with every
+    switch on)."""
+    on = {"kind": "mfcc", "mfcc": 13, "dct_norm": "uniform", "lifter": 22.0, "center": True,
+          "pad_mode": "reflect", "preemphasis": 0.97, "window_in_frame": "centre", "log": "db",
+          "log_offset": 0.0, "log_floor": 1e-10, "db_ref": "max", "top_db": 80.0,
+          "window_symmetric": True}
+    return card_from_dict(card_dict(frontend=on, scaling=None)).frontend.settings()
+
+
+def _base(kind):
+    """The demo card as a card of `kind`, carrying only the keys of the stages it runs."""
+    raw = card_dict(frontend={"kind": kind, **(NO_MEL if kind == "spectrogram" else {})},
+                    scaling=None)
+    if kind == "waveform":
+        raw["frontend"] = {"kind": "waveform"}
+    return raw
+
+
+STRAY = [(kind, stage, name) for kind, used in KINDS.items() for stage in STAGES
+         if stage not in used and stage != "scaling" for name in keys_of(STAGES[stage].config)]
+
+
+@pytest.mark.parametrize("kind,stage,name", STRAY, ids=[f"{k}-{n}" for k, _, n in STRAY])
+def test_a_key_of_a_stage_the_kind_does_not_run_is_refused(kind, stage, name):
+    # DEVELOPERS.md: a card may carry for a stage its kind does not run only the key's off
+    # value; any other value is refused, naming the key and the kind (and a key without an
+    # off value is refused at every value)
+    value = _every_key_on()[name]
+    raw = _base(kind)
+    card_from_dict(raw)  # the base card loads
+    raw["frontend"][name] = value
+    with pytest.raises(CardError, match=rf'frontend\.{name}=.* has no effect with '
+                                        rf'kind = "{kind}" \(the {stage} stage runs in'):
+        card_from_dict(raw)
+    off = keys_of(STAGES[stage].config)[name].off
+    if off is not NO_OFF:
+        raw["frontend"][name] = off
+        assert card_from_dict(raw).kind == kind
+
+
 def test_same_front_end_and_settings_dict(demo_card):
     other = card_from_dict(card_dict(classes=["a", "b", "c", "d"]))
     assert demo_card.same_front_end(other)
@@ -102,7 +149,7 @@ def test_same_front_end_and_settings_dict(demo_card):
     ({"center": True, "pad_mode": "constant"}, (101, 40)),
     ({"window_in_frame": "centre"}, (97, 40)),
     ({"kind": "mfcc", "mfcc": 13, "dct_norm": "ortho"}, (98, 13)),
-    ({"kind": "spectrogram", "layout": "mel_time"}, (257, 98)),
+    ({"kind": "spectrogram", "layout": "mel_time", **NO_MEL}, (257, 98)),
 ])
 def test_feature_shapes(changes, shape):
     # librosa.stft's frame counts: 1 + (16000 + 512 - 512) // 160 = 101 with center=True and

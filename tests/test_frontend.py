@@ -19,6 +19,7 @@ from monitor.frontend import (
     mel_to_hz,
     window_coefficients,
 )
+from monitor.stages import MelConfig, keys_of
 
 librosa = pytest.importorskip("librosa")
 
@@ -139,6 +140,14 @@ def _noise(seed=0, n=16000):
     return x.astype(np.float32)
 
 
+def _half_quiet(seed=0):
+    """`_noise` with its second half 100 dB down (x 1e-5): near-silence, so a window's dB
+    values span more than 100 dB and a top_db of 80 really floors some of them."""
+    x = _noise(seed)
+    x[x.size // 2:] *= np.float32(1e-5)
+    return x
+
+
 @pytest.mark.parametrize("scale", ["htk", "slaney"])
 @pytest.mark.parametrize("norm", ["none", "slaney"])
 @pytest.mark.parametrize("fmin,fmax,bands,nfft", COMBOS[:3])
@@ -248,10 +257,50 @@ def test_hamming_matches_scipy():
 
 
 def test_pcm16_quantises_like_the_device():
-    card = make_card(pcm_bits=16)
-    x = np.full((1, 16000), 0.3, np.float32) + np.float32(1e-7)
-    q = FrontEnd(card).stages[0].run(x)
-    assert np.all(q * 32768 == np.round(q * 32768))
+    # pcm_bits = 16 promises the device's microphone path (the README's card): int16 samples
+    # read as q / 32768, float input rounded to them as monitor/device/frontend.c's
+    # sm_pcm_f32 does: x * 32768 rounded half to even, saturated to [-32768, 32767].
+    # The reference: Python's built-in round(), which rounds halves to the even neighbour
+    # (Python language reference, "round"), on the exact product (a float32 times 2^15 is
+    # exact in float64), clipped to numpy.iinfo(numpy.int16)'s limits.
+    stage = FrontEnd(make_card(pcm_bits=16)).stages[0]
+    halves = np.array([k + 0.5 for k in (-1001, -1000, -3, -2, -1, 0, 1, 2, 3, 1000, 1001,
+                                         32766)]) / 32768
+    edges = [1.0, 32767.4 / 32768, 32767.5 / 32768, 1.5, -1.0, -32768.5 / 32768, -1.7, 0.0]
+    rng = np.random.default_rng(11)
+    x = np.concatenate([halves, edges, rng.uniform(-1, 1, 4000), [0.3 + 1e-7]]).astype(np.float32)
+    lo, hi = int(np.iinfo(np.int16).min), int(np.iinfo(np.int16).max)
+    want = np.array([max(lo, min(hi, round(float(v) * 32768))) for v in x]) / 32768
+    got = stage.run(x[None])[0]
+    assert got.dtype == np.float32
+    np.testing.assert_array_equal(got.astype(np.float64), want)
+    # the rule at the halves: 0.5 -> 0, 1.5 -> 2, 2.5 -> 2, -0.5 -> 0, -1.5 -> -2 (steps)
+    assert [int(v) for v in got[:12] * 32768] == [-1000, -1000, -2, -2, 0, 0, 2, 2, 4, 1000,
+                                                  1002, 32766]
+    # libsndfile (soundfile's PCM_16 write, libsndfile 1.2.2 as measured when this test was
+    # written) rounds toward minus infinity, not to the nearest step: -0.9 gives -29492 there,
+    # -29491 here, so it differs from the device's rule at every product that is not a whole
+    # step, not only at the halves. What it shares with the device, and is checked here: the
+    # step is 1/32768, so every int16 value k written as k / 32768 reads back as k and the
+    # quantisation leaves it unchanged
+    import io
+
+    import soundfile as sf
+
+    k = np.arange(-32768, 32768, 3)
+    steps = (k / 32768).astype(np.float32)
+    buf = io.BytesIO()
+    sf.write(buf, steps, 16000, subtype="PCM_16", format="WAV")
+    buf.seek(0)
+    np.testing.assert_array_equal(sf.read(buf, dtype="int16")[0], k)
+    np.testing.assert_array_equal(stage.run(steps[None])[0] * 32768, k)
+    # and the features of the float input are those of the int16 samples the device's
+    # microphone path delivers (read as q / 32768, no further quantisation)
+    y = (rng.standard_normal(16000) * 0.2).astype(np.float32)
+    q = np.array([max(lo, min(hi, round(float(v) * 32768))) for v in y]) / 32768
+    np.testing.assert_array_equal(FrontEnd(make_card(pcm_bits=16)).batch(y[None]),
+                                  FrontEnd(make_card(pcm_bits=0)).batch(
+                                      q.astype(np.float32)[None]))
 
 
 @pytest.mark.parametrize("n", [2, 5, 33])
@@ -282,18 +331,23 @@ def test_librosa_melspectrogram_power_to_db(center, pad_mode, ref):
     # librosa.feature.melspectrogram (0.10 / 0.11; n_fft 512, win_length 400 < n_fft, so the
     # window sits centred in each 512-sample frame: window_in_frame "centre") + power_to_db
     # with amin 1e-10 (log_floor), ref 1.0 or np.max (db_ref), top_db 80; center=True pads
-    # n_fft // 2 with pad_mode (constant, reflect): 101 frames, else 97 (librosa's counts)
+    # n_fft // 2 with pad_mode (constant, reflect): 101 frames, else 97 (librosa's counts).
+    # A window half near-silence: its dB values span more than 80 dB, so top_db floors some
     fe = {**LIBROSA_DB, "center": center, "window_in_frame": "centre", "db_ref": ref}
     if pad_mode:
         fe["pad_mode"] = pad_mode
-    x = _noise()
+    x = _half_quiet()
     ours = FrontEnd(fe_card(**fe)).unscaled(x[None])[0]
     S = librosa.feature.melspectrogram(y=x.astype(np.float64), sr=16000, n_fft=512,
                                        hop_length=160, win_length=400, window="hann",
                                        center=center, pad_mode=pad_mode or "constant", n_mels=40,
                                        fmin=0.0, fmax=8000.0, htk=False, norm="slaney")
-    want = librosa.power_to_db(S, ref=np.max if ref == "max" else 1.0, amin=1e-10,
-                               top_db=80.0).T
+    db = dict(ref=np.max if ref == "max" else 1.0, amin=1e-10)
+    want = librosa.power_to_db(S, **db, top_db=80.0).T
+    # librosa.power_to_db's top_db floor changes its output here (by tens of dB), so the
+    # comparison below fails if ours did not floor
+    unfloored = librosa.power_to_db(S, **db, top_db=None).T
+    assert np.max(np.abs(want - unfloored)) > 10.0
     assert ours.shape == want.shape == ((101 if center else 97), 40)
     assert np.max(np.abs(ours - want)) <= 1e-4  # dB
 
@@ -322,15 +376,21 @@ def test_librosa_win_length_below_n_fft_without_centring(window_in_frame, frames
 @pytest.mark.parametrize("lifter", [0, 22])
 def test_librosa_mfcc(n_mfcc, lifter):
     # librosa.feature.mfcc 0.11 defaults: power_to_db(ref 1, amin 1e-10, top_db 80) of the
-    # Slaney-normalised mel spectrogram, DCT-II norm "ortho", the lifter 1 + (L/2) sin(pi n / L)
+    # Slaney-normalised mel spectrogram, DCT-II norm "ortho", the lifter 1 + (L/2) sin(pi n / L).
+    # A window half near-silence, so librosa's top_db of 80 floors some log-mel values
     fe = {**LIBROSA_DB, "kind": "mfcc", "mfcc": n_mfcc, "dct_norm": "ortho",
           "lifter": float(lifter), "center": True, "pad_mode": "constant",
           "window_in_frame": "centre"}
-    x = _noise(5)
+    x = _half_quiet(5)
     ours = FrontEnd(fe_card(**fe)).unscaled(x[None])[0]
-    want = librosa.feature.mfcc(y=x.astype(np.float64), sr=16000, n_mfcc=n_mfcc, lifter=lifter,
-                                n_fft=512, hop_length=160, win_length=400, n_mels=40,
-                                fmax=8000.0).T
+    mel = dict(sr=16000, n_fft=512, hop_length=160, win_length=400, n_mels=40, fmax=8000.0)
+    want = librosa.feature.mfcc(y=x.astype(np.float64), n_mfcc=n_mfcc, lifter=lifter, **mel).T
+    # the same with librosa's floor switched off (librosa.feature.mfcc given S =
+    # power_to_db(melspectrogram, top_db=None)) differs: the floor applies in this window
+    S = librosa.feature.melspectrogram(y=x.astype(np.float64), **mel)
+    unfloored = librosa.feature.mfcc(S=librosa.power_to_db(S, top_db=None), n_mfcc=n_mfcc,
+                                     lifter=lifter).T
+    assert np.max(np.abs(want - unfloored)) > 10.0
     assert ours.shape == want.shape == (101, n_mfcc)
     assert np.max(np.abs(ours - want)) <= 2e-4 * max(1.0, np.abs(want).max())
 
@@ -421,20 +481,22 @@ def test_silence_mfcc_uniform_c0():
 
 
 # --- every kind and option: float32 against the float64 reference ---------------------------
+NO_MEL = {name: None for name in keys_of(MelConfig)}  # a spectrogram card carries no mel keys
 OPTIONS = {
     "demo": {},
     "pre-emphasis": {"preemphasis": 0.97},
     "centre constant": {"center": True, "pad_mode": "constant"},
     "centre reflect, window centred": {"center": True, "pad_mode": "reflect",
                                        "window_in_frame": "centre"},
-    "dB, ref max, top_db": {"log": "db", "db_ref": "max", "top_db": 60.0},
+    # top_db 30: the test signal's dB values span about 42-45 dB a window, so 30 floors some
+    "dB, ref max, top_db": {"log": "db", "db_ref": "max", "top_db": 30.0},
     "log10, floor, no offset": {"log": "log10", "log_offset": 0.0, "log_floor": 1e-8},
     "magnitude, hamming symmetric": {"power": 1.0, "window": "hamming",
                                      "window_symmetric": True},
     "mfcc ortho lifter": {"kind": "mfcc", "mfcc": 20, "dct_norm": "ortho", "lifter": 22.0},
     "mfcc uniform mel_time": {"kind": "mfcc", "mfcc": 13, "dct_norm": "uniform",
                               "layout": "mel_time"},
-    "spectrogram": {"kind": "spectrogram"},
+    "spectrogram": {"kind": "spectrogram", **NO_MEL},
     "waveform": {"kind": "waveform"},
 }
 
@@ -464,8 +526,16 @@ def test_float32_against_the_float64_reference(name, per_window):
     assert ours.shape == ref.shape == (3, *card.feature_shape)
     span = float(ref.max() - ref.min())
     assert np.max(np.abs(ours - ref)) <= 1e-4 * span
-    np.testing.assert_allclose(fe.unscaled(w), ref_unscaled,
+    unscaled = fe.unscaled(w)
+    np.testing.assert_allclose(unscaled, ref_unscaled,
                                atol=1e-4 * float(np.ptp(ref_unscaled)))
+    log = card.frontend.log
+    if log is not None and log.top_db > 0:
+        # the floor applies: in every window, both ways, some values sit at max - top_db
+        for got in (unscaled.astype(np.float64), ref_unscaled):
+            floor = got.max(axis=(1, 2), keepdims=True) - log.top_db
+            at_floor = np.isclose(got, floor, rtol=0, atol=1e-3).mean(axis=(1, 2))
+            assert np.all(at_floor > 0.01), at_floor
 
 
 # --- streaming frames: computed once, the same numbers byte for byte ---------------------

@@ -1,5 +1,6 @@
 """File replay through the whole chain: session files, pacing, resampling, demo accuracy."""
 
+import functools
 import json
 import signal
 import subprocess
@@ -68,25 +69,41 @@ def test_tour_decisions_match_truth(tour_session):
     assert summary["accuracy"] == pytest.approx(acc, abs=1e-6)
 
 
-@pytest.mark.parametrize("model,target", [("demo", 1.0), ("demo-mfcc", 0.90)])
-def test_held_out_synthetic_accuracy(model, target):
-    # issue 2: held-out clips (seeds never used in training) score >= 90% window accuracy;
-    # issue 12: the MFCC model reaches the same target (the log-mel one scores every window)
+HELD_OUT_TARGET = 0.90  # the project's target: held-out window accuracy >= 90% (issue 2)
+# every committed artifact of both demo models (the .keras ones load TensorFlow: slow)
+ARTIFACTS = [pytest.param(f"{m}{ext}", marks=[pytest.mark.slow] if ext == ".keras" else [])
+             for m in ("demo", "demo-mfcc") for ext in (".keras", ".tflite", ".int8.tflite")]
+
+
+@functools.cache
+def held_out_windows(model):
+    """The scaled held-out windows of a model's card and their labels."""
     from monitor.card import load_card
     from monitor.demo.build import HELD_OUT_SEEDS, TRAIN_SEEDS, dataset
     from monitor.frontend import FrontEnd
-    from monitor.runners import load_runner
 
     seeds = range(20000, 20012)
     assert not set(seeds) & (set(TRAIN_SEEDS) | set(HELD_OUT_SEEDS))
-    card = load_card(MODELS / f"{model}.toml")
-    fe = FrontEnd(card)
+    fe = FrontEnd(load_card(MODELS / f"{model}.toml"))
     x, y = dataset(seeds, fe)
-    for path in (MODELS / f"{model}.tflite", MODELS / f"{model}.int8.tflite"):
-        runner = load_runner(path, load_card(path.with_suffix(".toml")))
-        acc = np.mean(np.argmax(runner.predict(fe.scale(x)), axis=1) == y)
-        print(f"{path.name}: held-out window accuracy {acc:.4f}")
-        assert acc >= min(target, 0.90 if "int8" in path.name else target)
+    return fe.scale(x), y
+
+
+@pytest.mark.parametrize("artifact", ARTIFACTS)
+def test_held_out_synthetic_accuracy(artifact):
+    # issue 2: held-out clips (seeds never used in training) score >= 90% window accuracy;
+    # issue 12: the MFCC model reaches the same target. One target for every committed
+    # artifact; the measured figure is printed
+    from monitor.card import load_card
+    from monitor.runners import load_runner
+
+    path = MODELS / artifact
+    x, y = held_out_windows(artifact.split(".")[0])
+    runner = load_runner(path, load_card(path.with_suffix(".toml")))
+    acc = float(np.mean(np.argmax(runner.predict(x), axis=1) == y))
+    print(f"{artifact}: held-out window accuracy {acc:.4f} (the project's target "
+          f">= {HELD_OUT_TARGET:.2f})")
+    assert acc >= HELD_OUT_TARGET, f"{artifact}: held-out window accuracy {acc:.4f}"
 
 
 def test_mfcc_demo_model_on_the_tour(tmp_path, tour):
