@@ -161,7 +161,7 @@ def build_parser() -> argparse.ArgumentParser:
              "Write pcm.csv, features.csv, output.csv (int8 tensors too, from the "
              "microcontroller runtime), meta.json, frontend_constants.h, the portable C front "
              "end and check.c with its Makefile into DIR.")
-    add_model_flags(p)
+    add_model_flags(p, runtime="micro")  # cmd_vectors: a .tflite runs in micro unless told
     p.add_argument("audio", metavar="AUDIO", help="the recording to cut windows from")
     p.add_argument("--out", required=True, metavar="DIR", help="folder to write (new or empty)")
     p.add_argument("--count", type=positive_int, metavar="N",
@@ -212,7 +212,7 @@ def build_parser() -> argparse.ArgumentParser:
              "RAM (the interpreter's recorded arena, the front end's buffers), flash (model "
              "and tables), every operator and the ones the microcontroller runtime cannot run, "
              "and the work per window; with --clock-mhz an estimated duty cycle.")
-    add_model_flags(p)
+    add_model_flags(p, runtime=None)  # the microcontroller runtime's budget: no other runtime
     p.add_argument("--clock-mhz", type=positive, metavar="MHZ",
                    help="the target's clock, for a duty-cycle estimate (an assumption of "
                         "cycles per operation, not a measurement)")

@@ -11,6 +11,7 @@ import argparse
 import math
 import sys
 from pathlib import Path
+from typing import Literal
 
 from monitor.errors import ExitCode, ScenemonError
 
@@ -222,7 +223,8 @@ def add_decision_flags(p: argparse.ArgumentParser) -> None:
 
 
 def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: bool = False,
-                     default_help: str = "") -> None:
+                     default_help: str = "",
+                     runtime: Literal["litert", "micro"] | None = "litert") -> None:
     """Add ``--model``, ``--card``, ``--runtime`` and ``--trust-model`` to `p`.
 
     Parameters
@@ -235,6 +237,10 @@ def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: 
         lists, in order (model A, then B).
     default_help : str
         Added to ``--model``'s help: what is used without it.
+    runtime : {"litert", "micro"} or None
+        The runtime the command gives a ``.tflite`` model when ``--runtime`` is left out, as
+        its help says (the command itself applies it); None: the command runs one runtime
+        only and has no ``--runtime``.
 
     Notes
     -----
@@ -249,10 +255,15 @@ def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: 
                         + ("; once per --model, in order" if many else ""))
     p.add_argument("--spec", action="append" if many else "store", dest="card",
                    help=argparse.SUPPRESS)  # the old name of --card, kept for a release
-    p.add_argument("--runtime", action="append" if many else "store",
-                   choices=["litert", "micro"],
-                   help="for a .tflite model: litert (default) or micro, the microcontroller "
-                        "interpreter of tflite-micro" + ("; once per --model" if many else ""))
+    if runtime is not None:
+        micro = "the microcontroller interpreter of tflite-micro"
+        choices = (f"micro (default), {micro} (the firmware's own kernels), or litert, "
+                   f"LiteRT's interpreter" if runtime == "micro"
+                   else f"litert (default) or micro, {micro}")
+        p.add_argument("--runtime", action="append" if many else "store",
+                       choices=["litert", "micro"],
+                       help=f"for a .tflite model: {choices}"
+                            + ("; once per --model" if many else ""))
     p.add_argument("--trust-model", action="store_true",
                    help="allow Keras Lambda layers (their code runs when the model loads; "
                         "never for a file from a stranger)")

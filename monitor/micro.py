@@ -10,19 +10,27 @@ The interpreter allocates every tensor in one arena it is given. It records what
 (its allocation recording), printed by ``print_allocations()`` on file descriptor 2; that
 figure is the smallest arena that works on this machine (pointer sizes differ on a 32-bit
 part). A model with an operator the runtime has no kernel for fails at load, and the log
-names the operator: `MicroRunner` says it in one sentence.
+names the operator: `MicroRunner` raises `UnsupportedOperator`, one sentence that carries
+the operator's name.
 
-Thread: the runner is owned by the engine's compute thread; loading swaps file descriptor 2
-for a moment (to read the interpreter's log), which is why it happens before the session's
-threads start.
+The package has no call that returns that log: it goes to file descriptor 2 with C stdio.
+Pointing this process's fd 2 elsewhere to read it would also take whatever other threads
+write there meanwhile, and the terminal UI draws its screen on fd 2 (textual's Linux driver
+writes to ``sys.__stderr__`` from its own thread) while the model loads on the session
+worker. So a child process loads the model first (`probe`), its fd 2 a pipe read here: it
+finds an arena that works, reads the recorded figure and names what fails. The model is
+then loaded in this process with that arena, which prints nothing, and fd 2 is never
+touched here.
+
+Thread: the runner is owned by the engine's compute thread.
 """
 
 from __future__ import annotations
 
-import contextlib
-import os
 import re
-import tempfile
+import subprocess
+import sys
+from dataclasses import dataclass
 from pathlib import Path
 
 import numpy as np
@@ -51,20 +59,16 @@ def import_micro():
     return runtime
 
 
-@contextlib.contextmanager
-def capture_fd2():
-    """Collect what native code writes on file descriptor 2 while the block runs."""
-    box = {"text": ""}
-    saved = os.dup(2)
-    with tempfile.TemporaryFile() as tmp:
-        os.dup2(tmp.fileno(), 2)
-        try:
-            yield box
-        finally:
-            os.dup2(saved, 2)
-            os.close(saved)
-            tmp.seek(0)
-            box["text"] = tmp.read().decode("utf-8", errors="replace")
+class UnsupportedOperator(ModelError):
+    """The microcontroller runtime has no kernel for one of the model's operators.
+
+    ``operator`` is its name as `list_operators` spells it ("GELU"; "CUSTOM:FlexErf" for a
+    custom operator); the message is the one sentence the command prints.
+    """
+
+    def __init__(self, message: str, operator: str) -> None:
+        super().__init__(message)
+        self.operator = operator
 
 
 def list_operators(data: bytes) -> list[str]:
@@ -98,50 +102,103 @@ def io_counts(data: bytes) -> tuple[int, int]:
     return sg.InputsLength(), sg.OutputsLength()
 
 
-def load_interpreter(path: Path, data: bytes):
-    """A microcontroller interpreter for `data`, with the smallest arena size tried that
-    works (starting generously, growing when the log says it is short)."""
-    rt = import_micro()
+PROBE_TIMEOUT_S = 300.0
+# The child's whole program: load at the arena size given, then print the allocation record.
+# A failure's log is already on its fd 2; the last line says what Python raised.
+_PROBE = """\
+import sys
+from tflite_micro import runtime
+try:
+    interp = runtime.Interpreter.from_bytes(sys.stdin.buffer.read(), arena_size=int(sys.argv[1]))
+except Exception as exc:
+    lines = str(exc).strip().splitlines() or [type(exc).__name__]
+    sys.stderr.write("\\nprobe failed: " + lines[0] + "\\n")
+    sys.exit(3)
+interp.print_allocations()
+"""
+
+
+@dataclass(frozen=True)
+class Probe:
+    """What a child process found loading a model in the microcontroller interpreter."""
+
+    arena_size: int  # an arena size the model loads with
+    recorded_bytes: int  # the interpreter's allocation recording: the arena it used
+
+
+def _run_probe(path: Path, data: bytes, arena: int) -> tuple[int, str]:
+    """The child's exit code and everything it wrote on fd 2 (the interpreter's log)."""
+    if not sys.executable:
+        raise ModelError(f"{path}: no Python executable to load the model in the "
+                         f"microcontroller runtime with")
+    try:
+        r = subprocess.run([sys.executable, "-c", _PROBE, str(arena)], input=bytes(data),
+                           capture_output=True, timeout=PROBE_TIMEOUT_S)
+    except subprocess.TimeoutExpired:
+        raise ModelError(f"{path}: the microcontroller runtime took over {PROBE_TIMEOUT_S:g} s "
+                         f"to load the model") from None
+    except OSError as exc:
+        raise ModelError(f"{path}: cannot start a process to load the model in the "
+                         f"microcontroller runtime ({exc.strerror or exc})") from None
+    return r.returncode, r.stderr.decode("utf-8", errors="replace")
+
+
+def probe(path: Path, data: bytes) -> Probe:
+    """Load `data` in the microcontroller interpreter in a child process (module docstring).
+
+    Starts with a generous arena and grows it while the log says it is short.
+
+    Parameters
+    ----------
+    path : Path
+        The model file, named in messages.
+    data : bytes
+        Its flatbuffer.
+
+    Returns
+    -------
+    Probe
+        An arena size that works and the arena the interpreter recorded using.
+
+    Raises
+    ------
+    UnsupportedOperator
+        The runtime has no kernel for one of the model's operators (builtin or custom).
+    ModelError
+        Any other failure to load (a malformed flatbuffer, a crash of the interpreter).
+    """
     arena = max(MIN_ARENA, 16 * len(data))
     while True:
-        with capture_fd2() as log:
-            try:
-                interp = rt.Interpreter.from_bytes(bytes(data), arena_size=arena)
-                err = None
-            except (RuntimeError, ValueError, TypeError) as exc:
-                interp, err = None, exc
-            except Exception as exc:  # noqa: BLE001 - a malformed flatbuffer (struct.error)
-                interp, err = None, exc
-        if err is None:
-            return interp
-        text = log["text"]
+        code, text = _run_probe(path, data, arena)
+        if code == 0:
+            m = re.search(r"Arena allocation total (\d+) bytes", text)
+            if not m:
+                raise ModelError(f"{path}: the microcontroller runtime did not report its "
+                                 f"arena use")
+            return Probe(arena, int(m.group(1)))
         missing = re.findall(r"Didn't find op for builtin opcode '(\w+)'", text)
         if missing:
-            raise ModelError(f"{path}: the microcontroller runtime has no kernel for the "
-                             f"operator {missing[0]}; replace that layer before it can run on "
-                             f"the board") from None
+            raise UnsupportedOperator(
+                f"{path}: the microcontroller runtime has no kernel for the operator "
+                f"{missing[0]}; replace that layer before it can run on the board", missing[0])
         if "CUSTOM" in text:
             customs = [o for o in list_operators(data) if o.startswith("CUSTOM:")]
-            name = customs[0][7:] if customs else "a custom operator"
-            raise ModelError(f"{path}: the microcontroller runtime cannot run the custom "
-                             f"operator {name} (a TensorFlow op outside the built-in set)") from None
+            name = customs[0] if customs else "CUSTOM"
+            raise UnsupportedOperator(
+                f"{path}: the microcontroller runtime cannot run the custom operator "
+                f"{name[7:] or 'without a name'} (a TensorFlow op outside the built-in set)",
+                name)
         if ("Failed to resize buffer" in text or "Failed to allocate" in text) \
                 and arena < MAX_ARENA:
             arena *= 4
             continue
-        first = str(err).strip().splitlines()[0] if str(err).strip() else type(err).__name__
+        if code < 0:  # killed by a signal: the interpreter crashed on this flatbuffer
+            raise ModelError(f"{path}: cannot be loaded in the microcontroller runtime (the "
+                             f"interpreter crashed on it, signal {-code})")
+        said = re.findall(r"probe failed: (.*)", text)
+        first = said[-1].strip() if said else f"exit code {code}"
         raise ModelError(f"{path}: cannot be loaded in the microcontroller runtime "
-                         f"({first[:160]})") from None
-
-
-def arena_used_bytes(interp) -> int:
-    """The arena bytes the interpreter recorded using (its allocation recording)."""
-    with capture_fd2() as log:
-        interp.print_allocations()
-    m = re.search(r"Arena allocation total (\d+) bytes", log["text"])
-    if not m:
-        raise ModelError("the microcontroller runtime did not report its arena use")
-    return int(m.group(1))
+                         f"({first[:160]})")
 
 
 class MicroRunner:
@@ -157,7 +214,14 @@ class MicroRunner:
         self.path = Path(path)
         self.card = card
         n_in, n_out = io_counts(data)
-        interp = load_interpreter(self.path, data)
+        rt = import_micro()
+        found = probe(self.path, data)  # in a child: this process's fd 2 is left alone
+        try:
+            interp = rt.Interpreter.from_bytes(bytes(data), arena_size=found.arena_size)
+        except Exception as exc:  # noqa: BLE001 - loaded in the child, so not expected here
+            first = (str(exc).strip().splitlines() or [type(exc).__name__])[0]
+            raise ModelError(f"{self.path}: cannot be loaded in the microcontroller runtime "
+                             f"({first[:160]})") from None
         ins = interp.get_input_details(0) if n_in else {}
         outs = interp.get_output_details(0) if n_out else {}
         shape = tuple(int(v) for v in ins.get("shape", ()))[1:]
@@ -175,7 +239,7 @@ class MicroRunner:
         self.out_zero = int(qo["zero_points"][0]) if len(qo["zero_points"]) else 0
         self.model_kind = "tflite-int8" if self.in_dtype == np.int8 else "tflite-float"
         self.runtime = "micro"
-        self.arena_bytes = arena_used_bytes(interp)
+        self.arena_bytes = found.recorded_bytes
         self.operators = list_operators(data)
         _Base.check_outputs(self)
 

@@ -1,4 +1,6 @@
-"""Helpers around native libraries (LiteRT, libsndfile's decoders) that print on fd 2."""
+"""Helpers around native libraries: silencing those that print on fd 2 (LiteRT, libsndfile's
+decoders), and the one call each to a private API of soundfile, sounddevice and LiteRT
+where the public one cannot do the job (each says why)."""
 
 from __future__ import annotations
 
@@ -52,6 +54,17 @@ def reinitialise_portaudio(sd) -> None:
     """
     sd._terminate()
     sd._initialize()
+
+
+def litert_nodes(interp) -> list[dict]:
+    """Every node of a LiteRT interpreter's graph, in execution order: ``op_name``, ``index``,
+    ``inputs`` and ``outputs`` (tensor indices; -1 for an optional input left out).
+
+    LiteRT's public interpreter API lists tensors (``get_tensor_details``), inputs, outputs
+    and signatures, but not the graph's nodes; only its private ``_get_ops_details`` does,
+    so this is the one place that calls it (`budget` counts each layer's work from it).
+    """
+    return list(interp._get_ops_details())
 
 
 DEBUG = False  # --debug: native chatter is shown, not swallowed

@@ -1026,9 +1026,14 @@ class DctStage(Stage):
         return {"sm_row": 4 * self.fe.mel.mel_bands}
 
     def ops(self, new_frames: int) -> dict[str, int]:
-        """The whole window's DCT per hop: frames x mfcc x mel_bands multiply-adds."""
-        return {"DCT multiply-adds (whole window)": self.fe.frames(self.card.audio)
-                * self.matrix.size}
+        """mfcc x mel_bands multiply-adds per frame: of the new frames only when the log is
+        per frame (the C stream keeps each frame's coefficients), else of the whole window
+        (the DCT follows db_ref "max" or top_db, which depend on the whole window)."""
+        log = self.fe.log
+        if log.db_ref == "max" or log.top_db > 0:
+            return {"DCT multiply-adds (whole window)": self.fe.frames(self.card.audio)
+                    * self.matrix.size}
+        return {"DCT multiply-adds": new_frames * self.matrix.size}
 
 
 class LayoutStage(Stage):

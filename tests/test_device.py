@@ -78,7 +78,12 @@ C_CASES = {
     "mfcc 20 uniform, magnitude (CMSIS-DSP style)": {"kind": "mfcc", "mfcc": 20,
                                                      "dct_norm": "uniform", "power": 1.0,
                                                      "frame_length": 512, "pcm_bits": 0},
-    "spectrogram dB, mel_time": {"kind": "spectrogram", "log": "db", "layout": "mel_time"},
+    "mfcc 13 of dB, ref max, top_db 80": {"kind": "mfcc", "mfcc": 13, "dct_norm": "ortho",
+                                         "log": "db", "db_ref": "max", "top_db": 80.0,
+                                         "log_offset": 0.0, "log_floor": 1e-10},
+    "spectrogram dB, mel_time": {"kind": "spectrogram", "log": "db", "layout": "mel_time",
+                                 "mel_bands": None, "fmin": None, "fmax": None,
+                                 "mel_scale": None, "mel_norm": None, "mel_triangles": None},
     "per-window standardisation, full-shape scaling": "per_window",
     "waveform, pre-emphasis, per window": "waveform",
 }
@@ -142,9 +147,12 @@ def test_c_front_end_matches_python_over_the_tour(tmp_path, tour_pcm, name):
 
 
 @pytest.mark.system
-def test_c_stream_equals_c_whole_windows(tmp_path, tour_pcm):
-    # the C stream computes only the new frames; its numbers are the whole-window call's
-    card = c_case("centre reflect, pre-emphasis")
+@pytest.mark.parametrize("name", ["centre reflect, pre-emphasis", "mfcc 13 ortho, lifter 22",
+                                  "mfcc 13 of dB, ref max, top_db 80"])
+def test_c_stream_equals_c_whole_windows(tmp_path, tour_pcm, name):
+    # the C stream computes only the new frames (and, for a per-frame log, their DCT); its
+    # numbers are the whole-window call's
+    card = c_case(name)
     exe = build(card, tmp_path, "s")
     w, h = card.window_samples, card.hop_samples
     x = tour_pcm[: 16000 * 20]
@@ -152,6 +160,75 @@ def test_c_stream_equals_c_whole_windows(tmp_path, tour_pcm):
     a = run(exe, "stream_i16", x[: (n - 1) * h + w], card.feature_shape)
     b = run(exe, "i16", windows_of(x, w, h)[:n], card.feature_shape)
     np.testing.assert_array_equal(a, b)
+
+
+DCT_LINE = "acc += d[m] * sm_row[m];"  # the DCT's multiply-add in frontend.c
+
+
+def dct_multiply_adds(card, tmp_path, pcm, windows):
+    """How often the C stream runs the DCT's multiply-add line over `windows` windows of
+    `pcm`, counted by gcov (GCC's coverage tool: exact line counts of the program run)."""
+    gcov = shutil.which("gcov")
+    if gcov is None:
+        if os.environ.get("SCENEMON_REQUIRE_CC") == "1":
+            pytest.fail("SCENEMON_REQUIRE_CC=1 but gcov (GCC) is missing")
+        pytest.skip("gcov (GCC) not found")
+    d = tmp_path / "cov"
+    d.mkdir()
+    (d / "frontend_constants.h").write_text(header(card))
+    flags = [*CFLAGS, "-O0", "--coverage", f"-I{d}", f"-I{C_SOURCES[0].parent}"]
+    for src, obj in ((C_SOURCES[0], "frontend.o"), (HARNESS, "harness.o")):
+        r = subprocess.run([compiler(), *flags, "-c", str(src), "-o", str(d / obj)],
+                           capture_output=True, text=True)
+        assert r.returncode == 0, r.stderr
+    exe = d / "harness"
+    r = subprocess.run([compiler(), "--coverage", str(d / "frontend.o"), str(d / "harness.o"),
+                        "-o", str(exe), "-lm"], capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    w, h = card.window_samples, card.hop_samples
+    out = run(exe, "stream_i16", pcm[: (windows - 1) * h + w], card.feature_shape)
+    assert len(out) == windows
+    r = subprocess.run([gcov, "-t", "-o", str(d), str(C_SOURCES[0])], capture_output=True,
+                       text=True, cwd=d)
+    assert r.returncode == 0, r.stderr
+    counts = [line.split(":")[0].strip() for line in r.stdout.splitlines()
+              if line.rstrip().endswith(DCT_LINE)]
+    assert len(counts) == 1, counts
+    return int(counts[0]) if counts[0].isdigit() else 0
+
+
+@pytest.mark.system
+@pytest.mark.parametrize("name", ["mfcc 13 ortho, lifter 22",
+                                  "mfcc 13 of dB, ref max, top_db 80"])
+def test_c_stream_computes_the_dct_of_the_new_frames_only(tmp_path, tour_pcm, name):
+    # a log per frame (db_ref "one", no top_db): each hop computes the DCT of the frames it
+    # adds, hop / frame_step of them (no centre padding here), the rest kept from the window
+    # before; after db_ref "max" or top_db the DCT needs the whole window's values, so every
+    # frame's is computed again per hop. Counted by gcov over the real program.
+    card = c_case(name)
+    fe = card.frontend
+    assert not fe.centre.center and card.hop_samples % fe.framing.frame_step == 0
+    frames, per_frame = card.frames_per_window, fe.dct.mfcc * fe.mel.mel_bands
+    windows = 5
+    new = (card.hop_samples // fe.framing.frame_step if fe.log.db_ref != "max"
+           and fe.log.top_db == 0 else frames)
+    expect = per_frame * (frames + (windows - 1) * new)  # the first window: every frame
+    assert dct_multiply_adds(card, tmp_path, tour_pcm, windows) == expect
+
+
+@pytest.mark.system
+@pytest.mark.parametrize("name", ["mfcc 13 ortho, lifter 22",
+                                  "mfcc 13 of dB, ref max, top_db 80"])
+def test_budget_counts_the_dct_the_c_stream_computes(tmp_path, tour_pcm, name):
+    # `budget`'s DCT multiply-adds per hop are what the C stream does per hop (gcov's count
+    # over 5 windows, less the first window's, over the 4 hops after it)
+    from monitor.device.budget import frontend_ops_per_hop
+
+    card = c_case(name)
+    first = card.frames_per_window * card.frontend.dct.mfcc * card.frontend.mel.mel_bands
+    measured = (dct_multiply_adds(card, tmp_path, tour_pcm, 5) - first) / 4
+    counted = [v for k, v in frontend_ops_per_hop(card).items() if k.startswith("DCT")]
+    assert counted == [measured]
 
 
 @pytest.mark.system
@@ -325,3 +402,24 @@ def test_int8_agrees_with_float_on_the_tour(quantized, tour, tour_windows):
     assert r.returncode in (0, 1)
     if r.returncode == 1:
         assert "below --min-agree" in r.stderr
+
+
+def test_runtime_help_says_each_commands_default():
+    # vectors gives a .tflite model the microcontroller runtime unless told (cmd_vectors),
+    # the session commands LiteRT; budget counts the microcontroller runtime only, so it
+    # offers no --runtime and refuses one in one line (exit 2)
+    from conftest import cli
+
+    def runtime_help(command):
+        text = " ".join(cli(command, "--help").stdout.split())
+        return text[text.index("--runtime {litert,micro} for"):]
+
+    assert runtime_help("vectors").startswith("--runtime {litert,micro} for a .tflite model: "
+                                              "micro (default)")
+    for command in ("replay", "compare", "score", "bench", "profile"):
+        assert runtime_help(command).startswith("--runtime {litert,micro} for a .tflite "
+                                                "model: litert (default)"), command
+    assert "--runtime" not in cli("budget", "--help").stdout
+    r = cli("budget", "--model", MODELS / "demo.int8.tflite", "--runtime", "litert")
+    assert r.returncode == 2 and r.stdout == ""
+    assert len(r.stderr.strip().splitlines()) == 1 and "--runtime" in r.stderr

@@ -18,9 +18,11 @@ where it comes from.
 
 from __future__ import annotations
 
+import dataclasses
 import json
 import math
 import sys
+import textwrap
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -30,12 +32,14 @@ import numpy as np
 from monitor.card import ModelCard
 from monitor.errors import ExitCode, ModelError, ScenemonError
 from monitor.plan import ModelPlan
+from monitor.runners import Runner
 
 # Assumptions for the duty-cycle estimate (common practice for Cortex-M class parts with
 # SIMD kernels; not measured here): cycles per int8 MAC, per float MAC, per front-end op.
 CYCLES_PER_INT8_MAC = 1.0
 CYCLES_PER_FLOAT_MAC = 2.0
 CYCLES_PER_FRONTEND_OP = 2.0
+WIDTH = 80  # columns of the printed budget: every line fits a standard terminal
 
 
 @dataclass
@@ -140,7 +144,7 @@ def layers_of(path: Path) -> list[Layer]:
     from ai_edge_litert import schema_py_generated as fb
     from ai_edge_litert.interpreter import Interpreter, OpResolverType
 
-    from monitor.native import quiet_native_stderr
+    from monitor.native import litert_nodes, quiet_native_stderr
 
     with quiet_native_stderr():
         interp = Interpreter(model_path=str(path), experimental_op_resolver_type=
@@ -149,7 +153,7 @@ def layers_of(path: Path) -> list[Layer]:
     model = fb.Model.GetRootAs(Path(path).read_bytes(), 0)
     sg = model.Subgraphs(0)
     out = []
-    for k, op in enumerate(interp._get_ops_details()):
+    for k, op in enumerate(litert_nodes(interp)):
         name = op["op_name"]
         ins = [int(i) for i in op["inputs"] if int(i) >= 0]
         outs = [int(i) for i in op["outputs"]]
@@ -195,83 +199,140 @@ def frontend_ops_per_hop(card: ModelCard) -> dict[str, int]:
     return out
 
 
-def budget(plan: ModelPlan, card: ModelCard) -> Budget:
-    """Measure and count what `plan`'s model costs on the target (see module docstring)."""
+def _check_without_interpreter(path: Path, data: bytes, card: ModelCard) -> bool:
+    """For a model the micro runtime cannot load: refuse it when it does not fit `card` (the
+    runners' rule, from the flatbuffer's tensor shapes); True when its input is int8."""
+    from ai_edge_litert import schema_py_generated as fb
+
+    from monitor.runners import _Base
+
+    sg = fb.Model.GetRootAs(data, 0).Subgraphs(0)
+    n_in, n_out = sg.InputsLength(), sg.OutputsLength()
+    x = sg.Tensors(sg.Inputs(0)) if n_in else None
+    y = sg.Tensors(sg.Outputs(0)) if n_out else None
+    shape = tuple(int(v) for v in x.ShapeAsNumpy())[1:] if x is not None else ()
+    n_outputs = int(y.ShapeAsNumpy()[-1]) if y is not None and y.ShapeLength() else 0
+    _Base.check_io(path, card, shape, n_outputs, n_in, n_out)
+    return x is not None and x.Type() == fb.TensorType.INT8
+
+
+def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) -> Budget:
+    """Measure and count what `plan`'s model costs on the target (see module docstring).
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The ``.tflite`` model (its ``runtime`` aside: the budget is the microcontroller's).
+    card : ModelCard
+        Its card.
+    runner : Runner, optional
+        The model already loaded in the microcontroller runtime (``vectors`` passes its own);
+        otherwise it is loaded here, once, through `assemble.load_model`.
+
+    Raises
+    ------
+    ModelError
+        Not a ``.tflite`` model, or one that does not load for another reason than an
+        operator the runtime lacks (that one is recorded in ``unsupported_ops``).
+    """
+    from monitor.assemble import load_model
     from monitor.device.constants import c_buffers, c_tables
-    from monitor.micro import MicroRunner, import_micro, list_operators
+    from monitor.micro import UnsupportedOperator, list_operators
 
     path = plan.path
     if path.suffix.lower() != ".tflite":
         raise ModelError(f"{path}: budget needs the .tflite model the board will run")
-    from monitor.runners import load_runner
-
-    load_runner(path, card)  # the model must fit its card (LiteRT: shapes and outputs)
+    unsupported, notes = [], []
+    if runner is None or runner.runtime != "micro":
+        try:
+            runner = load_model(dataclasses.replace(plan, runtime="micro"), card).runner
+        except UnsupportedOperator as exc:
+            runner = None
+            unsupported, notes = [exc.operator], [str(exc)]
     data = path.read_bytes()
-    import_micro()
-    ops = list_operators(data)
-    unsupported, arena, notes = [], None, []
-    try:
-        runner = MicroRunner(path, card)
-        arena = runner.arena_bytes
-        int8 = runner.model_kind == "tflite-int8"
-    except ModelError as exc:
-        text = str(exc)
-        if "operator" not in text:
-            raise
-        name = text.split("operator ", 1)[1].split(";")[0].split(" (")[0].strip()
-        unsupported = [name]
-        notes.append(text)
-        int8 = load_runner(path, card).model_kind == "tflite-int8"
+    int8 = runner.model_kind == "tflite-int8" if runner is not None \
+        else _check_without_interpreter(path, data, card)
+    arena = getattr(runner, "arena_bytes", None)
     ram = {f"front end: {k}": v for k, v in c_buffers(card).items()}
     ram["one window of int16 PCM"] = 2 * card.window_samples
     ram["feature tensor (float32)"] = 4 * int(np.prod(card.feature_shape))
     flash = {f"front end: {k}": v for k, v in c_tables(card).items()}
-    return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path), ops,
-                  unsupported, frontend_ops_per_hop(card), card.hop_s, int8, notes)
+    return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path),
+                  list_operators(data), unsupported, frontend_ops_per_hop(card), card.hop_s,
+                  int8, notes)
+
+
+def _row(name: str, value: object, tail: str = "", *, width: int = 30) -> list[str]:
+    """A table row: the name, the figure right-aligned, then where it comes from. A name
+    longer than its column gets a line of its own above the figure (nothing is cut)."""
+    head: list[str] = []
+    if len(name) > width:
+        head, name = [f"  {name}"], ""
+    return head + [f"  {name:<{width}} {value!s:>10}   {tail}".rstrip()]
+
+
+def _wrapped(text: str, first: str, rest: str) -> list[str]:
+    """`text` wrapped to `WIDTH` columns after `first` (then `rest`); names are never split."""
+    return textwrap.wrap(text, WIDTH, initial_indent=first, subsequent_indent=rest,
+                         break_long_words=False, break_on_hyphens=False)
+
+
+def _cycles(n: float) -> str:
+    return f"{n:g} cycle{'' if n == 1 else 's'}"
 
 
 def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
-    """The budget as tables for the terminal.
+    """The budget as tables for the terminal, every line at most `WIDTH` columns.
 
     Each RAM and flash figure with where it comes from, the work per layer and per hop, the
-    operators (and those the runtime cannot run), and the estimate when a clock is given.
+    operators (and those the runtime cannot run), and the estimate when a clock is given,
+    its assumed cycle figures on a line of their own.
     """
     def kb(n: int | None) -> str:
         return "-" if n is None else f"{n / 1024:,.1f} KiB"
 
-    lines = [f"budget of {b.model} (microcontroller runtime)", "",
-             f"  {'RAM':<30} {'bytes':>10}   from"]
+    lines = _wrapped(f"budget of {b.model} (microcontroller runtime)", "", "  ")
+    lines += ["", *_row("RAM", "bytes", "from")]
     arena = "-" if b.arena_bytes is None else str(b.arena_bytes)
-    lines.append(f"  {'interpreter arena':<30} {arena:>10}   the runtime's allocation record")
+    lines += _row("interpreter arena", arena, "the runtime's allocation record")
     for k, v in b.frontend_ram.items():
         name, where = (k[len("front end: "):], "frontend.c") if k.startswith("front end: ") \
             else (k, "the caller")
-        lines.append(f"  {name[:30]:<30} {v:>10}   {where}")
-    lines.append(f"  {'total':<30} {b.ram_bytes:>10}   ({kb(b.ram_bytes)})")
-    lines += ["", f"  {'flash':<30} {'bytes':>10}   from"]
-    lines.append(f"  {'model flatbuffer':<30} {b.model_bytes:>10}   the .tflite file")
+        lines += _row(name, v, where)
+    lines += _row("total", b.ram_bytes, f"({kb(b.ram_bytes)})")
+    lines += ["", *_row("flash", "bytes", "from")]
+    lines += _row("model flatbuffer", b.model_bytes, "the .tflite file")
     for k, v in b.frontend_flash.items():
-        lines.append(f"  {k[len('front end: '):][:30]:<30} {v:>10}   frontend_constants.h")
-    lines.append(f"  {'total':<30} {b.flash_bytes:>10}   ({kb(b.flash_bytes)})")
+        lines += _row(k[len("front end: "):], v, "frontend_constants.h")
+    lines += _row("total", b.flash_bytes, f"({kb(b.flash_bytes)})")
     lines += ["", "work per window                 MACs   other   shapes (in -> out)"]
     for x in b.layers:
+        op = x.op
+        if len(op) > 20:
+            lines.append(f"  {x.index:>2} {op}")
+            op = ""
+        row = f"  {x.index:>2} {op:<20} {x.macs:>10} {x.other_ops:>7}"
         shape = f"{'x'.join(map(str, x.input[1:]))} -> {'x'.join(map(str, x.output[1:]))}"
-        lines.append(f"  {x.index:>2} {x.op[:20]:<20} {x.macs:>10} {x.other_ops:>7}   {shape[:30]}")
-    lines.append(f"  {'model total':<23} {b.macs:>10}")
+        if len(row) + 3 + len(shape) <= WIDTH:
+            lines.append(f"{row}   {shape}".rstrip())
+        else:
+            lines += [row, f"{'':8}{shape}"]
+    lines += _row("model total", b.macs, width=23)
     lines += ["", "front end per hop"]
     for k, v in b.frontend_ops_per_hop.items():
-        lines.append(f"  {k[:30]:<30} {v:>10}")
-    ops = sorted(set(b.ops))
-    lines += ["", f"operators  {', '.join(ops)}"]
+        lines += _row(k, v, width=34)
+    lines += ["", *_wrapped(", ".join(sorted(set(b.ops))), "operators  ", " " * 11)]
     if b.unsupported_ops:
-        lines.append(f"NOT RUNNABLE on the microcontroller runtime: {', '.join(b.unsupported_ops)}")
+        lines += _wrapped(f"NOT RUNNABLE on the microcontroller runtime: "
+                          f"{', '.join(b.unsupported_ops)}", "", "  ")
     else:
         lines.append("           all run in the microcontroller runtime")
     if clock_mhz:
         d = b.duty_cycle(clock_mhz)
-        lines += ["", f"estimate at {clock_mhz:g} MHz (an assumption, not a measurement: "
-                      f"{d['cycles_per_mac_assumed']:g} cycle(s) per MAC, "
-                      f"{d['cycles_per_frontend_op_assumed']:g} per front-end op)",
+        mac = "int8 MAC" if b.int8 else "float MAC"
+        lines += ["", f"estimate at {clock_mhz:g} MHz",
+                  f"  assumed, not measured: {_cycles(d['cycles_per_mac_assumed'])} per {mac}, "
+                  f"{_cycles(d['cycles_per_frontend_op_assumed'])} per front-end operation",
                   f"  {d['model_cycles'] + d['frontend_cycles']:,.0f} cycles per hop of "
                   f"{b.hop_s * 1000:g} ms: about {d['duty_cycle']:.1%} of the core"]
     return "\n".join(lines) + "\n"

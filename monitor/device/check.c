@@ -7,8 +7,9 @@
  * each window it computes the features with sm_features_i16(), reports the largest absolute
  * difference against features.csv and how many int8 input values differ after the input
  * quantisation q = round(x / scale) + zero_point (half to even, saturated), as the model's
- * input tensor has it. Exit 0 when every window is within tolerance: features within
- * SM_CHECK_FEATURE_TOL and int8 inputs within SM_CHECK_INT8_STEPS steps.
+ * input tensor has it. Exit 0 when every window is within tolerance: every feature finite
+ * (here and in features.csv), within SM_CHECK_FEATURE_TOL, and int8 inputs within
+ * SM_CHECK_INT8_STEPS steps.
  *
  * C99; reads files with stdio, so it runs on the host (or a board with semihosting). */
 #include <math.h>
@@ -79,7 +80,7 @@ int main(void) {
 #endif
     int windows = 0, bad = 0;
     float worst = 0.0f;
-    int worst_steps = 0, values_off = 0;
+    int worst_steps = 0, values_off = 0, nonfinite_all = 0;
     sm_frontend_init();
     while (read_ints(fp, pcm, SM_WINDOW_SAMPLES)) {
         if (!read_floats(ff, want, SM_FEATURES)) {
@@ -87,8 +88,15 @@ int main(void) {
             return 2;
         }
         sm_features_i16(pcm, feats);
+        /* a NaN compares false with everything, so it would pass a "d > diff" test: values
+         * that are not finite (ours or the file's) are counted apart and fail the window */
         float diff = 0.0f;
+        int nonfinite = 0;
         for (int i = 0; i < SM_FEATURES; i++) {
+            if (!isfinite(feats[i]) || !isfinite(want[i])) {
+                nonfinite++;
+                continue;
+            }
             float d = fabsf(feats[i] - want[i]);
             if (d > diff) diff = d;
         }
@@ -99,25 +107,32 @@ int main(void) {
             return 2;
         }
         for (int i = 0; i < SM_FEATURES; i++) {
+            if (!isfinite(feats[i])) { /* no int8 value to compare (counted above) */
+                off++;
+                continue;
+            }
             int s = abs(quantise(feats[i]) - want_q[i]);
             if (s) off++;
             if (s > steps) steps = s;
         }
 #endif
-        int ok = diff <= SM_CHECK_FEATURE_TOL && steps <= SM_CHECK_INT8_STEPS;
+        int ok = nonfinite == 0 && diff <= SM_CHECK_FEATURE_TOL && steps <= SM_CHECK_INT8_STEPS;
         if (!ok) bad++;
         if (diff > worst) worst = diff;
         if (steps > worst_steps) worst_steps = steps;
         values_off += off;
-        printf("window %4d  features max abs diff %.3g  int8 inputs %s (%d of %d differ, "
-               "largest %d step%s)%s\n", windows, (double)diff, off ? "differ" : "match", off,
-               SM_FEATURES, steps, steps == 1 ? "" : "s", ok ? "" : "  OUT OF TOLERANCE");
+        nonfinite_all += nonfinite;
+        printf("window %4d  features max abs diff %.3g", windows, (double)diff);
+        if (nonfinite) printf(", %d not finite", nonfinite);
+        printf("  int8 inputs %s (%d of %d differ, largest %d step%s)%s\n",
+               off ? "differ" : "match", off, SM_FEATURES, steps, steps == 1 ? "" : "s",
+               ok ? "" : "  OUT OF TOLERANCE");
         windows++;
     }
-    printf("%d windows: features max abs diff %.3g (tolerance %.3g); int8 input values that "
-           "differ: %d, by at most %d step%s (tolerance %d); %s\n", windows, (double)worst,
-           (double)SM_CHECK_FEATURE_TOL, values_off, worst_steps, worst_steps == 1 ? "" : "s",
-           SM_CHECK_INT8_STEPS, bad ? "FAILED" : "passed");
+    printf("%d windows: features max abs diff %.3g (tolerance %.3g), not finite: %d; int8 "
+           "input values that differ: %d, by at most %d step%s (tolerance %d); %s\n", windows,
+           (double)worst, (double)SM_CHECK_FEATURE_TOL, nonfinite_all, values_off, worst_steps,
+           worst_steps == 1 ? "" : "s", SM_CHECK_INT8_STEPS, bad ? "FAILED" : "passed");
     if (windows != SM_CHECK_WINDOWS) {
         fprintf(stderr, "check: read %d windows, expected %d\n", windows, SM_CHECK_WINDOWS);
         return 1;

@@ -1,9 +1,10 @@
 /* scenemon portable front end; see frontend.h.
  *
  * One block per stage, in the order the samples go through them (pcm, pre-emphasis, centre
- * padding, framing and window, spectrum, mel, log, then per window: dB reference and top_db,
- * DCT, layout, scaling). frontend_constants.h switches each on or off (SM_HAS_*) and holds
- * its sizes and tables. C99, no allocation, libm only for logf / log10f / sqrtf / cosf. */
+ * padding, framing and window, spectrum, mel, log, DCT when the log is per frame, then per
+ * window: dB reference and top_db, the DCT after them, layout, scaling). frontend_constants.h
+ * switches each on or off (SM_HAS_*) and holds its sizes and tables. C99, no allocation,
+ * libm only for logf / log10f / sqrtf / cosf. */
 #include <math.h>
 #include <stdint.h>
 
@@ -140,7 +141,30 @@ static float sm_log(float v) {
 #endif
 }
 
-/* frame t of the window x: window, FFT, |X|^power, mel, log -> sm_frames row t */
+#if SM_HAS_DCT
+/* --- stage: DCT (DCT-II rows, the lifter folded in) ------------------------------------
+ * With nothing per window before it (db_ref "one", no top_db) it is per frame: each frame's
+ * coefficients replace its log values in sm_frames (the first SM_MFCC of the row), so a
+ * stream computes them for the new frames only. Otherwise it runs per window in sm_finish,
+ * after the dB reference and floor. */
+#define SM_DCT_PER_FRAME (!SM_DB_REF_MAX && !SM_HAS_TOP_DB)
+SM_CHECK(dct_table, sizeof(sm_dct) == sizeof(float) * SM_MFCC * SM_MEL_BANDS
+                    && SM_CHANNELS == SM_MFCC && SM_FRAME_FEATURES == SM_MEL_BANDS
+                    && SM_MFCC <= SM_MEL_BANDS);
+static float sm_row[SM_MEL_BANDS]; /* one frame's log values, the DCT's input */
+
+/* coefficient c of the frame in sm_row */
+static float sm_dct_coefficient(int c) {
+    const float *d = sm_dct + c * SM_MEL_BANDS;
+    float acc = 0.0f;
+    for (int m = 0; m < SM_MEL_BANDS; m++)
+        acc += d[m] * sm_row[m];
+    return acc;
+}
+#endif
+
+/* frame t of the window x: window, FFT, |X|^power, mel, log (and the DCT when it is per
+ * frame) -> sm_frames row t */
 static void sm_frame(const float *x, int t) {
     const int base = t * SM_FRAME_STEP + SM_FRAME_OFFSET; /* padded-window sample */
     float *row = sm_frames + t * SM_FRAME_FEATURES;
@@ -172,6 +196,10 @@ static void sm_frame(const float *x, int t) {
         row[m] = sm_log(acc);
     }
 #endif
+#if SM_HAS_DCT && SM_DCT_PER_FRAME
+    for (int m = 0; m < SM_MEL_BANDS; m++) sm_row[m] = row[m];
+    for (int k = 0; k < SM_MFCC; k++) row[k] = sm_dct_coefficient(k);
+#endif
 }
 
 static void sm_frames_all(const float *x) {
@@ -198,7 +226,7 @@ void sm_frontend_init(void) {
     sm_filled = 0;
 }
 
-#if SM_HAS_FRAMING
+#if SM_HAS_FRAMING && !(SM_HAS_DCT && SM_DCT_PER_FRAME)
 /* the dB reference, then the top_db floor relative to the window's maximum */
 static float sm_db(float v, float ref, float low) {
     v -= ref;
@@ -211,18 +239,14 @@ static float sm_db(float v, float ref, float low) {
 }
 #endif
 
-#if SM_HAS_DCT
-/* --- stage: DCT (DCT-II rows, the lifter folded in), per window after the dB floor ----- */
-SM_CHECK(dct_table, sizeof(sm_dct) == sizeof(float) * SM_MFCC * SM_MEL_BANDS
-                    && SM_CHANNELS == SM_MFCC && SM_FRAME_FEATURES == SM_MEL_BANDS);
-static float sm_row[SM_MEL_BANDS];
-#endif
-
 /* --- per window: dB reference and top_db (log), DCT, layout, per-window standardisation,
  * scaling. Reads sm_frames (or the samples x), writes SM_FEATURES values to out. ---------- */
 static void sm_finish(const float *x, float *out) {
 #if SM_HAS_FRAMING
     (void)x;
+#if SM_HAS_DCT && SM_DCT_PER_FRAME
+    /* the rows hold each frame's coefficients already (see the DCT stage) */
+#else
 #if SM_DB_REF_MAX || SM_HAS_TOP_DB
     float peak = sm_frames[0];
     for (int i = 1; i < SM_FRAMES * SM_FRAME_FEATURES; i++)
@@ -238,16 +262,17 @@ static void sm_finish(const float *x, float *out) {
 #else
     const float low = 0.0f;
 #endif
+#endif
     for (int t = 0; t < SM_FRAMES; t++) {
         const float *row = sm_frames + t * SM_FRAME_FEATURES;
-#if SM_HAS_DCT
+#if SM_HAS_DCT && !SM_DCT_PER_FRAME
         for (int m = 0; m < SM_MEL_BANDS; m++) sm_row[m] = sm_db(row[m], ref, low);
 #endif
         for (int c = 0; c < SM_CHANNELS; c++) {
-#if SM_HAS_DCT
-            const float *d = sm_dct + c * SM_MEL_BANDS;
-            float acc = 0.0f;
-            for (int m = 0; m < SM_MEL_BANDS; m++) acc += d[m] * sm_row[m];
+#if SM_HAS_DCT && SM_DCT_PER_FRAME
+            float acc = row[c];
+#elif SM_HAS_DCT
+            float acc = sm_dct_coefficient(c);
 #else
             float acc = sm_db(row[c], ref, low);
 #endif

@@ -13,7 +13,8 @@
  *     sm_features_i16(pcm, feats);             // SM_WINDOW_SAMPLES int16 samples
  *
  * A stream, one hop at a time (only the frames the hop adds are computed; the others are
- * kept from the window before):
+ * kept from the window before, for MFCC with a log per frame (db_ref "one", no top_db)
+ * their DCT coefficients too):
  *     if (sm_push_hop(hop, feats)) { ... }     // SM_HOP_SAMPLES int16 samples; 1 when feats
  *                                              // holds the next window (window k starts at
  *                                              // sample k * SM_HOP_SAMPLES, as scenemon cuts)

@@ -170,7 +170,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
         try:
             from monitor.device.budget import budget
 
-            b = budget(loaded.plan, card)
+            b = budget(loaded.plan, card, runner=runner)  # the micro runner is reused
             meta["budget"] = {k: v for k, v in b.to_dict().items() if k != "layers"}
         except ScenemonError as exc:
             meta["budget"] = {"error": str(exc)}
