@@ -26,6 +26,42 @@ def quiet_native_stderr():
         os.close(saved)
 
 
+@contextlib.contextmanager
+def screen_owns_the_terminal():
+    """While a full-screen UI runs, it draws on its own copy of the terminal and fd 2 points
+    at /dev/null, so native libraries' chatter, and the fd-2 redirects made around loading a
+    model or opening a file on other threads, never touch or swallow the screen.
+
+    textual's Linux driver draws on ``sys.__stderr__`` (read when the app and its driver are
+    made): for the duration it is a file on a duplicate of fd 2. With ``--debug`` nothing
+    changes (the chatter is then wanted, screen or not).
+    """
+    import sys
+
+    old = sys.__stderr__
+    if DEBUG or old is None:
+        yield
+        return
+    try:
+        old.flush()
+        saved = os.dup(2)
+    except (OSError, ValueError):
+        yield
+        return
+    screen = os.fdopen(os.dup(2), "w", encoding=old.encoding, errors=old.errors)
+    try:
+        with open(os.devnull, "wb") as null:
+            os.dup2(null.fileno(), 2)
+        sys.__stderr__ = screen
+        yield
+    finally:
+        sys.__stderr__ = old
+        with contextlib.suppress(OSError, ValueError):
+            screen.close()
+        os.dup2(saved, 2)
+        os.close(saved)
+
+
 # libsndfile's SFC_UPDATE_HEADER_NOW command: rewrite a WAV header to match the data so far.
 # soundfile has no public call for it (its flush() only fsyncs and leaves the header stale),
 # so this reaches into soundfile's cffi handle; it is the one place that does.

@@ -268,3 +268,19 @@ def test_an_object_without_the_observer_hooks_is_refused(demo_card, tmp_path):
         Engine([lane], src, observers=[OnlyWindows()]).run()
     src = FileSource(wav, model_rate=16000, window_samples=16000)
     assert Engine([lane], src, observers=[ObserverBase()]).run()["windows"] == 3
+
+
+def test_under_the_ui_native_chatter_misses_the_screen_and_the_screen_misses_nothing():
+    # real file descriptors in a child process: inside screen_owns_the_terminal, what a native
+    # library writes on fd 2 goes nowhere, and what the UI draws on sys.__stderr__ arrives,
+    # also while another thread has fd 2 pointed at /dev/null (quiet_native_stderr, as
+    # around a model load); after it, fd 2 is the terminal again
+    code = ("import os, sys, threading\n"
+            "from monitor.native import quiet_native_stderr, screen_owns_the_terminal\n"
+            "with screen_owns_the_terminal():\n"
+            "    os.write(2, b'native chatter\\n')\n"
+            "    with quiet_native_stderr():\n"
+            "        sys.__stderr__.write('drawn\\n'); sys.__stderr__.flush()\n"
+            "os.write(2, b'after\\n')\n")
+    r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
+    assert r.returncode == 0 and r.stderr == "drawn\nafter\n", r.stderr

@@ -37,6 +37,7 @@ from textual.worker import Worker, WorkerState
 
 from monitor import palette as P
 from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence, summary_failure
+from monitor.native import screen_owns_the_terminal
 from monitor.tally import SILENT_BELOW_DBFS, Tally
 from monitor.ui import draw as D
 from monitor.ui.bridge import NewWindows, SessionStatus, Status, UIBridge
@@ -748,8 +749,9 @@ def run_ui(plan, *, heading: str) -> int:
     from monitor.run import finish
 
     timed = isinstance(plan.source, MicInput) and plan.source.seconds is not None
-    app = MonitorApp(session_starter(plan), heading=heading, exit_when_done=timed)
-    code = app.run()
+    with screen_owns_the_terminal():
+        app = MonitorApp(session_starter(plan), heading=heading, exit_when_done=timed)
+        code = app.run()
     if app.error is not None:
         sys.stderr.write(f"scenemon: {one_sentence(app.error)}\n")
         return exit_code_for(app.error)
@@ -768,5 +770,6 @@ def run_relabel(session: Path, *, interactive: bool) -> int:
     if not interactive:
         raise ScenemonError(f"{s.dir}: relabel is an interactive view and needs a terminal "
                             f"(stdin and stdout are not one)")
-    RelabelApp(s.dir, s.classes).run()
+    with screen_owns_the_terminal():
+        RelabelApp(s.dir, s.classes).run()
     return ExitCode.OK
