@@ -167,6 +167,66 @@ def positive_int(text: str) -> int:
     return v
 
 
+MIN_SEGMENT_MIN, MAX_SEGMENT_MIN = 0.1, 1440.0  # an audio file per 6 s at least, a day at most
+MAX_LATENCY_S = 1.0  # PortAudio's suggested latency: "high" is about 0.1 s on most hosts
+MAX_BLOCKSIZE = 1 << 16  # frames per callback: 1.4 s at 48 kHz
+
+
+def segment_minutes(text: str) -> float:
+    """``--segment-min``: minutes per audio file, from 0.1 (6 s) to 1440 (a day).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not a finite number, or outside the bounds (a tiny value would write one file per
+        few samples).
+    """
+    v = number(text)
+    if not MIN_SEGMENT_MIN <= v <= MAX_SEGMENT_MIN:
+        raise argparse.ArgumentTypeError(f"{text} is not a number of minutes from "
+                                         f"{MIN_SEGMENT_MIN:g} to {MAX_SEGMENT_MIN:g}")
+    return v
+
+
+def latency(text: str) -> str | float:
+    """``--latency``: "high", "low", or a number of seconds above 0 and at most 1.
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Another word, a number that is not finite, or one outside (0, 1].
+    """
+    if text in ("high", "low"):
+        return text
+    try:
+        v = number(text)
+    except argparse.ArgumentTypeError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not high, low or a number of seconds") \
+            from None
+    if not 0.0 < v <= MAX_LATENCY_S:
+        raise argparse.ArgumentTypeError(f"{text} is not a number of seconds above 0 and at "
+                                         f"most {MAX_LATENCY_S:g}")
+    return v
+
+
+def blocksize(text: str) -> int:
+    """``--blocksize``: frames per callback, 0 (PortAudio's choice) to 65536.
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        Not an integer, or outside the bounds.
+    """
+    try:
+        v = int(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not an integer") from None
+    if not 0 <= v <= MAX_BLOCKSIZE:
+        raise argparse.ArgumentTypeError(f"{text} is not a number of frames from 0 to "
+                                         f"{MAX_BLOCKSIZE}")
+    return v
+
+
 def subcommand(sub, name: str, help_: str, description: str, epilog: str | None = None):
     """Add the command `name` to the sub-parsers `sub`, with its examples as the epilog.
 
@@ -278,10 +338,12 @@ def add_live_flags(p: argparse.ArgumentParser) -> None:
                         "system default")
     g.add_argument("--seconds", type=positive, metavar="SECONDS",
                    help="stop after this many seconds of audio (also with the terminal UI)")
-    g.add_argument("--latency", default="high", metavar="LATENCY",
-                   help="PortAudio latency: high (robust, default), low, or seconds")
-    g.add_argument("--blocksize", type=int, default=None, metavar="FRAMES",
-                   help="frames per callback (default: about 50 ms; 0: let PortAudio choose)")
+    g.add_argument("--latency", type=latency, default="high", metavar="LATENCY",
+                   help=f"PortAudio latency: high (robust, default), low, or seconds (at most "
+                        f"{MAX_LATENCY_S:g})")
+    g.add_argument("--blocksize", type=blocksize, default=None, metavar="FRAMES",
+                   help=f"frames per callback, up to {MAX_BLOCKSIZE} (default: about 50 ms; "
+                        f"0: let PortAudio choose)")
 
 
 def add_session_flags(p: argparse.ArgumentParser) -> None:
@@ -291,9 +353,10 @@ def add_session_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--out", metavar="DIR",
                    help="session directory (default: recordings/<date>-<time>-<name>)")
     p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
-    p.add_argument("--segment-min", type=positive, default=DEFAULT_SEGMENT_S / 60.0,
+    p.add_argument("--segment-min", type=segment_minutes, default=DEFAULT_SEGMENT_S / 60.0,
                    metavar="MINUTES",
-                   help=f"start a new audio file every MINUTES (default {DEFAULT_SEGMENT_S / 60:g})")
+                   help=f"start a new audio file every MINUTES, from {MIN_SEGMENT_MIN:g} to "
+                        f"{MAX_SEGMENT_MIN:g} (default {DEFAULT_SEGMENT_S / 60:g})")
     p.add_argument("--headless", action="store_true",
                    help="no screen: one JSON object per window on stdout (default: the "
                         "terminal UI when there is a terminal)")
@@ -377,7 +440,16 @@ def capture_settings(args):
     try:
         return CaptureSettings(**kw)
     except ValueError as exc:
-        raise ScenemonError(f"capture flags: {exc} (policies: {', '.join(POLICIES)})") from None
+        text = str(exc)
+        for field, flag in CAPTURE_FLAGS.items():  # name the flag the user typed
+            text = text.replace(f"{field}=", f"{flag} ")
+        raise ScenemonError(f"capture flags: {text} (policies: {', '.join(POLICIES)})") from None
+
+
+CAPTURE_FLAGS = {"pre_roll_s": "--pre-roll", "post_roll_s": "--post-roll",
+                 "max_s": "--max-snippet", "every_s": "--capture-every",
+                 "uncertain_below": "--uncertain-below", "uncertain_margin": "--uncertain-margin",
+                 "manual_s": "manual_s"}
 
 
 def session_plan(args, source, *, name: str, default_model: str | None = None,
@@ -402,9 +474,4 @@ def mic_input(args):
     """The `plan.MicInput` of the ``--input``/``--latency``/``--blocksize``/``--seconds`` flags."""
     from monitor.plan import MicInput
 
-    latency = args.latency
-    try:
-        latency = float(latency)
-    except ValueError:
-        pass
-    return MicInput(args.input, latency, args.blocksize, args.seconds)
+    return MicInput(args.input, args.latency, args.blocksize, args.seconds)

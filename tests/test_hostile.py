@@ -365,14 +365,28 @@ def test_an_interrupted_harvest_resumes(session, tmp_path):
 @pytest.mark.parametrize("flags,name", [
     (["--segment-min", "0"], "--segment-min"), (["--segment-min", "-1"], "--segment-min"),
     (["--segment-min", "nan"], "--segment-min"), (["--min-hold", "inf"], "--min-hold"),
-    (["--pre-roll", "1e6"], "pre_roll_s"), (["--pre-roll", "nan"], "--pre-roll"),
-    (["--max-snippet", "inf"], "--max-snippet")])
+    (["--pre-roll", "1e6"], "--pre-roll 1000000"), (["--pre-roll", "nan"], "--pre-roll"),
+    (["--max-snippet", "inf"], "--max-snippet"), (["--segment-min", "1e-9"], "--segment-min"),
+    (["--segment-min", "1e9"], "--segment-min")])
 def test_runaway_and_non_finite_flags(tmp_path, flags, name):
     wav = write_wav(tmp_path / "n.wav", np.zeros(32000))
     r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--out",
             tmp_path / "s", *flags)
     assert r.returncode == 2 and len(one_line(r)) == 1 and name in r.stderr, r.stderr
     assert "Traceback" not in r.stderr and not (tmp_path / "s").exists()
+
+
+@pytest.mark.parametrize("flags,name", [
+    (["--latency", "nan"], "--latency"), (["--latency", "-5"], "--latency"),
+    (["--latency", "1e9"], "--latency"), (["--latency", "fast"], "--latency"),
+    (["--blocksize", "1000000000"], "--blocksize"), (["--blocksize", "-1"], "--blocksize")])
+def test_device_flags_are_bounded_before_a_device_opens(tmp_path, flags, name):
+    # a NaN latency reached the session file (exit 1, a session left behind); a huge one or
+    # a huge block hung past --seconds: refused while parsing, before anything opens
+    r = cli("live", "--model", MODELS / "demo.tflite", "--seconds", "1", "--headless",
+            "--out", tmp_path / "s", *flags)
+    assert r.returncode == 2 and len(one_line(r)) == 1 and name in r.stderr, r.stderr
+    assert not (tmp_path / "s").exists()
 
 
 @pytest.mark.parametrize("line,problem", [
