@@ -13,6 +13,7 @@ import fcntl
 import json
 import os
 import stat
+from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
@@ -105,6 +106,49 @@ def is_regular_file(path: Path) -> bool:
         return stat.S_ISREG(os.lstat(path).st_mode)
     except OSError:
         return False
+
+
+SESSION_FILES = ("session.json", "windows.jsonl", "windows.b.jsonl", "summary.json",
+                 "audio.wav", "truth.tsv")
+
+
+def check_output(out: Path, what: str, ours: Callable[[Path], bool]) -> None:
+    """Refuse to write the file `out` over anything but an earlier `what` of ours.
+
+    Parameters
+    ----------
+    out : Path
+        The file a command is about to write (atomically).
+    what : str
+        What it is, for the message ("a report", "a profile").
+    ours : callable
+        ``ours(out) -> bool`` for an existing regular file: True when scenemon wrote it as
+        `what` (a mark at its start, the members of its archive, ...).
+
+    Raises
+    ------
+    ScenemonError
+        `out` is a link or not a regular file, lies among a session's own files (its audio,
+        windows, truth), or exists and is not ours.
+    """
+    from monitor.errors import ScenemonError
+
+    if out.is_symlink() or (out.exists() and not out.is_file()):
+        raise ScenemonError(f"{out}: exists and is not a regular file; choose another name")
+    if (out.parent / "session.json").is_file() and (out.name in SESSION_FILES
+                                                     or out.suffix.lower() in (".wav", ".jsonl")):
+        raise ScenemonError(f"{out}: is one of a session's own files; choose another name")
+    if out.exists() and not ours(out):
+        raise ScenemonError(f"{out}: exists and is not {what} scenemon wrote; choose another "
+                            f"name")
+
+
+def starts_with(mark: str) -> Callable[[Path], bool]:
+    """An `ours` test for `check_output`: the file's first 256 bytes hold `mark`."""
+    def test(path: Path) -> bool:
+        with open(path, "rb") as f:
+            return mark.encode() in f.read(256)
+    return test
 
 
 # --- audio segments ------------------------------------------------------------------------

@@ -241,6 +241,18 @@ def save_profile(prof: Profile, path: Path) -> None:
     atomic_write(Path(path), buf.getvalue())
 
 
+def is_profile_file(path: Path) -> bool:
+    """True when `path` is a profile `save_profile` wrote (a zip of its arrays), so that
+    ``profile --out`` may write over it and over nothing else."""
+    import zipfile
+
+    try:
+        with zipfile.ZipFile(path) as z:
+            return {"version.npy", "means.npy", "threshold.npy"} <= set(z.namelist())
+    except (OSError, zipfile.BadZipFile):
+        return False
+
+
 def load_profile(path: Path, card: ModelCard) -> Profile:
     """Read a profile (no pickle) and check it against the card."""
     try:

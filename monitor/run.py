@@ -51,10 +51,19 @@ def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
     threshold in blocks of 20 within each recording, never across recordings.
     """
     from monitor.assemble import file_windows, load_model
+    from monitor.files import check_output
     from monitor.frontend import FrontEnd
-    from monitor.novelty import block_groups, fit_profile, profile_path_for, save_profile
+    from monitor.novelty import (
+        block_groups,
+        fit_profile,
+        is_profile_file,
+        profile_path_for,
+        save_profile,
+    )
     from monitor.session_reader import is_session, load_session
 
+    target = out or profile_path_for(model.path)
+    check_output(target, "a profile", is_profile_file)  # before the work, not after
     loaded = load_model(model)
     card = loaded.card
     fe = FrontEnd(card)
@@ -77,7 +86,6 @@ def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
         groups.append(k * 10 ** 7 + block_groups(len(f)))
     prof = fit_profile(np.concatenate(feats), card, labels=np.concatenate(labels),
                        groups=np.concatenate(groups), quantile=quantile)
-    target = out or profile_path_for(model.path)
     save_profile(prof, target)
     for n in notes:
         sys.stderr.write(f"scenemon: note: {n}\n")

@@ -224,6 +224,35 @@ def _worker_context():
     return mp.get_context("spawn")
 
 
+def _is_aggregate(path: Path) -> bool:
+    try:
+        agg = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return False
+    return isinstance(agg, dict) and {"files", "per_file", "mode"} <= set(agg)
+
+
+def check_results_folder(out: Path) -> None:
+    """Refuse a results folder that is a file, or whose ``aggregate.json`` or ``results`` is
+    not an earlier score's (a rerun resumes in a folder of ours and writes over nothing
+    else).
+
+    Raises
+    ------
+    ScenemonError
+        With one sentence naming the path.
+    """
+    from monitor.files import check_output
+
+    if out.is_symlink() or (out.exists() and not out.is_dir()):
+        raise ScenemonError(f"{out}: exists and is not a folder; give a folder for the results")
+    res = out / "results"
+    if res.is_symlink() or (res.exists() and not res.is_dir()):
+        raise ScenemonError(f"{res}: exists and is not a folder of results; choose another "
+                            f"--out")
+    check_output(out / "aggregate.json", "an aggregate", _is_aggregate)
+
+
 def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
               truth_glob: str | None = None, workers: int | None = None,
               cluster: str | None = None, progress: bool = True) -> dict:
@@ -266,6 +295,7 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
     items = discover(archive, truth_glob)
     if not items:
         raise ScenemonError(f"{archive}: holds no audio files or sessions")
+    check_results_folder(out)
     out.mkdir(parents=True, exist_ok=True)
     todo, skipped = [], 0
     n = workers or os.cpu_count() or 1

@@ -29,7 +29,7 @@ import soundfile as sf
 
 from monitor.engine import ObserverBase
 from monitor.errors import SessionError
-from monitor.files import SessionLock, atomic_write, dumps, segment_name
+from monitor.files import SESSION_FILES, SessionLock, atomic_write, dumps, segment_name
 from monitor.native import update_wav_header
 from monitor.samples import to_pcm16
 from monitor.snippets import write_snippet
@@ -37,8 +37,6 @@ from monitor.truth import Span, format_truth
 
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
-SESSION_FILES = ("session.json", "windows.jsonl", "windows.b.jsonl", "summary.json",
-                 "audio.wav", "truth.tsv")
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
 

@@ -215,6 +215,45 @@ def test_report_writes_over_no_session_file_and_no_foreign_file(session, tmp_pat
     assert r.returncode == 0, r.stderr
 
 
+def test_profile_writes_over_no_session_file_and_no_foreign_file(session, tmp_path):
+    d = copy_of(session, tmp_path)
+    audio = (d / "audio.wav").read_bytes()
+    r = cli("profile", "--model", MODELS / "demo.tflite", d, "--out", d / "audio.wav")
+    assert r.returncode == 2 and "session's own files" in r.stderr, r.stderr
+    assert (d / "audio.wav").read_bytes() == audio
+    notes = tmp_path / "notes.txt"
+    notes.write_text("my notes")
+    r = cli("profile", "--model", MODELS / "demo.tflite", d, "--out", notes)
+    assert r.returncode == 2 and "not a profile scenemon wrote" in r.stderr, r.stderr
+    assert notes.read_text() == "my notes"
+    for _ in range(2):  # a new file, then an earlier profile of ours: written (again)
+        r = cli("profile", "--model", MODELS / "demo.tflite", d, "--out", tmp_path / "p.npz")
+        assert r.returncode == 0, r.stderr
+
+
+def test_score_writes_into_no_file_and_over_no_foreign_aggregate(tour, tmp_path):
+    archive = tmp_path / "a"
+    archive.mkdir()
+    shutil.copy(tour[0], archive / "t.wav")
+    as_file = tmp_path / "f.txt"
+    as_file.write_text("mine")
+    r = cli("score", archive, "--model", MODELS / "demo.tflite", "--out", as_file,
+            "--workers", "1")
+    assert r.returncode == 2 and "is not a folder" in r.stderr and len(one_line(r)) == 1
+    assert as_file.read_text() == "mine"
+    theirs = tmp_path / "o"
+    theirs.mkdir()
+    (theirs / "aggregate.json").write_text('{"my": "figures"}')
+    r = cli("score", archive, "--model", MODELS / "demo.tflite", "--out", theirs,
+            "--workers", "1")
+    assert r.returncode == 2 and "not an aggregate scenemon wrote" in r.stderr, r.stderr
+    assert (theirs / "aggregate.json").read_text() == '{"my": "figures"}'
+    for _ in range(2):  # a new folder, then the same one again (resumed)
+        r = cli("score", archive, "--model", MODELS / "demo.tflite", "--out", tmp_path / "s",
+                "--workers", "1")
+        assert r.returncode == 0, r.stderr
+
+
 # --- nothing lost -------------------------------------------------------------------------
 def test_a_non_finite_model_output_is_recorded_and_reported(tmp_path, tour, monkeypatch):
     # fault injection: the real LiteRT runner, whose output is replaced by NaN every 7th call
