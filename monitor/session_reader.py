@@ -65,8 +65,9 @@ class Session:
         return [self.windows] + ([self.windows_b] if self.windows_b is not None else [])
 
 
-def _check_record(rec: Any, where: str, n: int) -> str | None:
-    """Why `rec` is not a window record (None when it is one)."""
+def _check_record(rec: Any, where: str, n: int, width: int | None = None) -> str | None:
+    """Why `rec` is not a window record (None when it is one); `width`: the values each
+    probability list must hold (the classes), when known."""
     if not isinstance(rec, dict):
         return f"is a JSON {type(rec).__name__}, not a window record"
     for key in ("t0", "t1"):
@@ -88,11 +89,21 @@ def _check_record(rec: Any, where: str, n: int) -> str | None:
         if not isinstance(v, list) or not all(isinstance(p, _NUM) and not isinstance(p, bool)
                                               for p in v):
             return f"has {key}={str(v)[:40]}, not a list of numbers"
+        if width is not None and len(v) != width:
+            return f"has {len(v)} {key} values for {width} classes"
+    for key in ("level_dbfs", "clipped", "gap", "novelty", "ms"):
+        v = rec.get(key)
+        if v is not None and (isinstance(v, bool) or not isinstance(v, _NUM)
+                              or not math.isfinite(v)):
+            return f"has {key}={str(v)[:40]!s}, not a finite number or null"
     return None
 
 
-def read_windows(path: Path) -> tuple[list[dict[str, Any]], int]:
+def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str, Any]], int]:
     """The window records of one ``windows*.jsonl`` file, and how many torn lines were skipped.
+
+    Every probability list holds `classes` values when given, else as many as the first
+    record's.
 
     Raises
     ------
@@ -113,9 +124,11 @@ def read_windows(path: Path) -> tuple[list[dict[str, Any]], int]:
             except json.JSONDecodeError:
                 skipped += 1
                 continue
-            why = _check_record(rec, str(path), n)
+            why = _check_record(rec, str(path), n, classes)
             if why:
                 raise SessionError(f"{path}: line {n} {why}")
+            if classes is None and isinstance(rec.get("probs"), list):
+                classes = len(rec["probs"])
             windows.append(rec)
     return windows, skipped
 
@@ -148,7 +161,7 @@ def load_session(path: str | Path) -> Session:
     if classes is not None and not (isinstance(classes, list)
                                     and all(isinstance(c, str) for c in classes)):
         raise SessionError(f"{sj}: classes={str(classes)[:40]} is not a list of names")
-    windows, skipped = read_windows(d / "windows.jsonl")
+    windows, skipped = read_windows(d / "windows.jsonl", len(classes) if classes else None)
     windows_b = None
     if (d / "windows.b.jsonl").exists():
         windows_b, skipped_b = read_windows(d / "windows.b.jsonl")

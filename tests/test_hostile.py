@@ -432,7 +432,12 @@ def test_device_flags_are_bounded_before_a_device_opens(tmp_path, flags, name):
     ('{"i": 0, "t0": 0.0, "probs": [1, 0]}', "line 2 has no t1"),
     ('[1, 2, 3]', "line 2 is a JSON list"),
     ('{"i": 0, "t0": "zero", "t1": 1.0}', "line 2 has t0='zero'"),
-    ('{"i": 0, "t0": 0.0, "t1": 1.0, "decision": 3}', "line 2 has decision=3")])
+    ('{"i": 0, "t0": 0.0, "t1": 1.0, "decision": 3}', "line 2 has decision=3"),
+    ('{"i": 0, "t0": 0.0, "t1": 1.0, "probs": [1, 2]}', "line 2 has 2 probs values for 4 "
+                                                        "classes"),
+    ('{"i": 0, "t0": 0.0, "t1": 1.0, "level_dbfs": "loud"}', "line 2 has level_dbfs=loud"),
+    ('{"i": 0, "t0": 0.0, "t1": 1.0, "gap": "x"}', "line 2 has gap=x"),
+    ('{"i": 0, "t0": 0.0, "t1": 1.0, "clipped": NaN}', "line 2 has clipped=nan")])
 @pytest.mark.parametrize("command", ["report", "tune", "harvest"])
 def test_malformed_window_lines_are_named(session, tmp_path, line, problem, command):
     d = copy_of(session, tmp_path)
