@@ -170,7 +170,7 @@ def load_session(path: str | Path) -> Session:
     tp = d / "truth.tsv"
     if tp.exists():
         try:
-            text = tp.read_text(encoding="utf-8")
+            text = tp.read_text(encoding="utf-8-sig")
         except UnicodeDecodeError:
             raise TruthError(f"{tp}: truth file is not UTF-8 text") from None
         truth = parse_truth(text, where=str(tp))

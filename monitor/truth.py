@@ -99,7 +99,7 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
     Parameters
     ----------
     path : str or Path
-        The file, UTF-8 text.
+        The file, UTF-8 text (with or without a byte-order mark).
     classes : tuple of str, optional
         When given, every label must be one of them.
 
@@ -109,10 +109,12 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
         The file is missing, not UTF-8 text, or not valid truth lines.
     """
     path = Path(path)
-    if not path.is_file():
+    if not path.exists():
         raise TruthError(f"{path}: truth file not found")
+    if not path.is_file():  # a FIFO or a device would block or never end
+        raise TruthError(f"{path}: not a regular file")
     try:
-        text = path.read_text(encoding="utf-8")
+        text = path.read_text(encoding="utf-8-sig")  # a byte-order mark is read as none
     except UnicodeDecodeError:
         raise TruthError(f"{path}: truth file is not UTF-8 text") from None
     return parse_truth(text, where=str(path), classes=classes)

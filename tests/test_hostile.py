@@ -118,6 +118,24 @@ def test_truth_times_must_be_finite_and_in_order(tmp_path, line, why):
     assert not (tmp_path / "s").exists()
 
 
+def test_a_truth_file_with_a_byte_order_mark_is_read_and_a_fifo_is_named(tmp_path, tour):
+    # spreadsheet programs save UTF-8 with a byte-order mark: read as without one (the card
+    # reader does the same); a FIFO is not a regular file, not "not found"
+    wav = write_wav(tmp_path / "n.wav", sf.read(str(tour[0]), dtype="float32")[0][: 16000 * 6])
+    t = tmp_path / "bom.tsv"
+    t.write_bytes(b"\xef\xbb\xbf0.000\t6.000\tquiet_room\n")
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--truth", t, "--fast", "--out",
+            tmp_path / "s")
+    assert r.returncode == 0, r.stderr
+    assert (tmp_path / "s" / "truth.tsv").read_text() == "0.000\t6.000\tquiet_room\n"
+    fifo = tmp_path / "fifo.tsv"
+    os.mkfifo(fifo)
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--truth", fifo, "--fast",
+            "--out", tmp_path / "s2")
+    assert r.returncode == 2 and "fifo.tsv: not a regular file" in r.stderr, r.stderr
+    assert not (tmp_path / "s2").exists()
+
+
 def test_replay_never_overwrites_a_truth_file_in_out(tmp_path, tour):
     out = tmp_path / "d"
     out.mkdir()
