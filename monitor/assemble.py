@@ -15,6 +15,7 @@ Bad input is found before the session directory exists; if the source still fail
 from __future__ import annotations
 
 import gc
+import os
 import shutil
 import signal
 import sys
@@ -163,7 +164,15 @@ def invocation() -> str:
         if found and Path(found).resolve() == exe.resolve():
             return "scenemon"
         return typed
-    return "scenemon" if found else f"{Path(sys.executable).name} -m monitor"
+    if found:
+        return "scenemon"
+    # `python -m monitor`: this interpreter, by its bare name only when that name finds it
+    py = Path(sys.executable)
+    on_path = shutil.which(py.name)
+    if on_path and Path(on_path).resolve() == py.resolve():
+        return f"{py.name} -m monitor"
+    rel = os.path.relpath(py)
+    return f"{rel if not rel.startswith('..') else py} -m monitor"
 
 
 # --- one session -----------------------------------------------------------------------------

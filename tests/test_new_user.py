@@ -34,6 +34,14 @@ def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
                        cwd=tmp_path, env=env, capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
     assert f" {exe} report {tmp_path / 's2'}" in r.stderr
+    # as python -m monitor with the venv's interpreter (not on PATH): that interpreter, as a
+    # path that works from here, not a bare "python" that would be another one
+    py = os.path.relpath(sys.executable, ROOT)
+    r = subprocess.run([py, "-m", "monitor", "replay", str(wav), "--model",
+                        str(MODELS / "demo.tflite"), "--fast", "--out", str(tmp_path / "s3")],
+                       cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
+    assert r.returncode == 0, r.stderr
+    assert f" {py} -m monitor report {tmp_path / 's3'}" in r.stderr, r.stderr
 
 
 def test_piping_into_head_ends_quietly_and_closes_the_session(tour, tmp_path):
