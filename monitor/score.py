@@ -430,7 +430,8 @@ def aggregate_text(agg: dict) -> str:
                                 f"{o.get('duration_s', 0) / 60:.1f} min"
                                 if acc is not None else "no truth")
 
-    lines = [f"{agg['files']} files: {agg['processed']} scored, {agg['skipped_up_to_date']} "
+    files = f"{agg['files']} file{'s' if agg['files'] != 1 else ''}"
+    lines = [f"{files}: {agg['processed']} scored, {agg['skipped_up_to_date']} "
              f"up to date; {agg['audio_h_processed']:.3f} h of audio in {agg['wall_s']:.1f} s "
              f"({agg['mode']})", overall_line("overall" if "b" not in agg else "A", agg)]
     if "b" in agg:

@@ -105,7 +105,7 @@ def test_plain_sentences_in_tune_report_and_score(session_with_truth, tmp_path):
     write_wav(arch / "n.wav", np.zeros(16000 * 3))
     r = cli("score", arch, "--model", MODELS / "demo.tflite", "--out", tmp_path / "o",
             "--workers", "1")
-    assert "(1 local worker)" in r.stdout
+    assert "(1 local worker)" in r.stdout and r.stdout.startswith("1 file: ")
 
 
 @pytest.fixture(scope="module")
