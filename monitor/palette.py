@@ -12,6 +12,12 @@ has its own letter, so nothing depends on colour alone.
 The heat ramp (log-mel picture, confusion matrix) is our own: from the ground through deep
 teal and moss to a pale straw, its relative luminance rising at every step, so it reads in
 order in colour and in grey.
+
+A class colour means that class and nothing else. Everything else (text, rules, the title,
+the footer's keys, the level meter, warnings, the marks for a difference or an unfamiliar
+sound) takes one of `UI_COLOURS`: near-neutral greys, and `ALERT`, a rose red of our own that
+stays apart from every class colour for normal vision and under simulated deuteranopia and
+protanopia (tests/test_palette.py).
 """
 
 from __future__ import annotations
@@ -21,7 +27,7 @@ PANEL = "#1c222a"  # a panel on the ground
 LINE = "#2f3843"  # rules, grid lines, borders
 TEXT = "#e4e8ee"
 MUTED = "#8c96a4"
-ALERT = "#ff6f61"  # a difference, clipping: also said in words, never colour alone
+ALERT = "#f8506c"  # a difference, clipping: also said in words, never colour alone
 
 CLASS_COLOURS = ("#56B4E9", "#E69F00", "#009E73", "#CC79A7", "#F0E442", "#D55E00", "#B9E0A5")
 CLASS_COLOUR_NAMES = ("sky blue", "orange", "bluish green", "reddish purple", "yellow",
@@ -33,6 +39,11 @@ HEAT = ("#15191f", "#1b2a35", "#1f3d4a", "#23525b", "#2c6866", "#3f7f6a", "#5e96
         "#86ac66", "#b4c26a", "#e0d77f", "#f7ecb5")
 
 UNKNOWN_COLOUR = "#7d8591"  # undecided, unknown, a label outside the classes
+
+# every colour that is not a class colour, by name: what the UI's theme, its panels and the
+# HTML report may use for anything that is not a class (the heat ramp aside)
+UI_COLOURS = {"GROUND": GROUND, "PANEL": PANEL, "LINE": LINE, "TEXT": TEXT, "MUTED": MUTED,
+              "ALERT": ALERT, "UNKNOWN_COLOUR": UNKNOWN_COLOUR}
 
 
 def class_colour(classes, label) -> str:

@@ -69,6 +69,16 @@ class SnippetFile:
         return float(v) if isinstance(v, (int, float)) else 0.0
 
     @property
+    def predicted_b(self) -> str | None:
+        """Model B's prediction of a ``models_disagree`` snippet (its sidecar's
+        ``model_b.predicted``, as text); None for any other snippet (only those hold it)."""
+        b = self.meta.get("model_b")
+        if self.reason != "models_disagree" or not isinstance(b, dict) \
+                or b.get("predicted") is None:
+            return None
+        return str(b["predicted"])
+
+    @property
     def dropped(self) -> bool:
         """True only when the sidecar's ``dropped`` is JSON true (harvest then leaves it out)."""
         return self.meta.get("dropped") is True

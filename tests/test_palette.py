@@ -146,3 +146,86 @@ def test_heat_ramp_is_ordered_in_lightness():
         assert np.all(steps > 4.0), steps
         assert steps.max() / steps.min() < 2.0, steps
     assert P.HEAT[0] == P.GROUND  # the ramp starts at the ground: zero draws nothing
+
+
+# --- colours that are not a class's ----------------------------------------------------------
+NEUTRAL_CHROMA = 10.0  # CIELAB C* below this reads as a grey (common practice, from memory)
+
+
+def chroma(hex_colour):
+    _, a, b = lab(linear_srgb(hex_colour))
+    return math.hypot(a, b)
+
+
+def is_class_colour(colour):
+    return colour.lower() in {c.lower() for c in P.CLASS_COLOURS}
+
+
+@pytest.mark.parametrize("name", list(P.UI_COLOURS))
+def test_every_other_colour_is_a_grey_or_apart_from_every_class(name):
+    # a colour that means something else than a class must not be taken for one: a near-
+    # neutral grey (a class colour a dichromat sees as grey, reddish purple under
+    # deuteranopia, is told from it by the class letter), or a hue that keeps the class
+    # pairs' distance from every class colour in all three visions
+    c = P.UI_COLOURS[name]
+    assert not is_class_colour(c)
+    if chroma(c) < NEUTRAL_CHROMA:
+        return
+    for vision in ("normal", *MACHADO_2009):
+        m = np.eye(3) if vision == "normal" else MACHADO_2009[vision]
+        floor = DE00_MIN_NORMAL if vision == "normal" else DE00_MIN
+        for other in (*P.CLASS_COLOURS, *(g for g in P.UI_COLOURS.values()
+                                          if chroma(g) < NEUTRAL_CHROMA and g != P.GROUND
+                                          and wcag_contrast(g, P.GROUND) >= 3.0)):
+            d = ciede2000(lab(m @ linear_srgb(c)), lab(m @ linear_srgb(other)))
+            assert d >= floor, (name, other, vision, d)
+
+
+def test_text_colours_read_on_the_ground():
+    # WCAG 2.x: 4.5:1 for text (TEXT, MUTED, ALERT words), 3:1 for marks (UNKNOWN's swatch)
+    for c in (P.TEXT, P.MUTED, P.ALERT):
+        assert wcag_contrast(c, P.GROUND) >= 4.5 and wcag_contrast(c, P.PANEL) >= 4.5, c
+    assert wcag_contrast(P.UNKNOWN_COLOUR, P.GROUND) >= 3.0
+    assert wcag_contrast(P.GROUND, P.ALERT) >= 4.5  # ground-coloured words on ALERT
+    assert wcag_contrast(P.GROUND, P.TEXT) >= 4.5  # the title and SILENT, reversed
+    assert wcag_contrast(P.TEXT, P.LINE) >= 4.5  # the relabel table's cursor row
+
+
+def _rich_colours(text):
+    from rich.style import Style
+
+    out = []
+    for style in [text.style, *(span.style for span in text.spans)]:
+        style = Style.parse(style) if isinstance(style, str) else style
+        for col in (style.color, style.bgcolor):
+            if col is not None and col.triplet is not None:
+                out.append(col.triplet.hex)
+    return out
+
+
+def test_no_class_colour_means_anything_else():
+    """The same colour for a class everywhere, and for nothing else: the UI's theme, the
+    level meter in each of its states, the HTML report's style sheet, and no code of the UI
+    or the report picks a class colour but through `palette.class_colour`."""
+    from pathlib import Path
+
+    from monitor.review.report import CSS
+    from monitor.ui import draw as D
+    from monitor.ui.app import THEME
+
+    allowed = {c.lower() for c in P.UI_COLOURS.values()}
+    theme = [getattr(THEME, k) for k in ("primary", "secondary", "accent", "warning", "error",
+                                         "success", "foreground", "background", "surface",
+                                         "panel", "boost")]
+    theme += [v for v in THEME.variables.values() if str(v).startswith("#")]
+    assert theme and all(str(c).lower() in allowed for c in theme), theme
+    for level, clipped, quiet in ((-30.0, 0.0, 0.0), (-6.0, 0.0, 0.0), (-1.0, 0.0, 0.0),
+                                  (-0.1, 0.01, 0.0), (-90.0, 0.0, 5.0)):
+        drawn = _rich_colours(D.level_text(level, clipped, quiet, 30))
+        assert drawn and all(c.lower() in allowed for c in drawn), (level, drawn)
+    assert not any(c.lower() in CSS.lower() for c in P.CLASS_COLOURS)
+    root = Path(D.__file__).resolve().parent.parent
+    for path in [*sorted((root / "ui").rglob("*.py")), root / "review" / "report.py"]:
+        code = path.read_text()
+        assert "CLASS_COLOURS" not in code, path
+        assert not any(c.lower() in code.lower() for c in P.CLASS_COLOURS), path

@@ -10,6 +10,7 @@ known sample time and no test waits for real time to pass.
 import asyncio
 import hashlib
 import json
+import re
 import shutil
 import subprocess
 import threading
@@ -19,7 +20,7 @@ from pathlib import Path
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, ROOT, run_cli
+from conftest import MODELS, ROOT, cli, run_cli
 from monitor.plan import FileInput, ModelPlan, OutputPlan, SessionPlan
 from monitor.sources import FileSource
 from monitor.ui.app import MonitorApp, RelabelApp, session_starter
@@ -369,6 +370,56 @@ def test_footer_offers_only_the_keys_that_work(long_app, quiet_clip, tmp_path):
     assert "c capture" in footers["keys"] and "A/B" not in footers["keys"]
 
 
+@pytest.mark.parametrize("standalone", [False, True], ids=["live", "standalone"])
+def test_relabel_footer_holds_only_its_own_keys(quiet_clip, tmp_path, standalone):
+    """At 80 x 24 the relabel view's footer lists its own keys and its back key, whole, and
+    none of the live view's; those keys do nothing there (a digit sets no live truth)."""
+    from monitor.ui.screens import RelabelScreen
+
+    src, out = stepped(quiet_clip), tmp_path / "s"
+    app = make_app(src, out)
+    seen = {}
+
+    async def live(pilot):
+        await step(pilot, src, 6, 5)
+        await wait_for(pilot, lambda: "r relabel" in screen_rows(app)[-1])
+        await pilot.press("2")  # the truth: voices
+        await step(pilot, src, 1, 6)
+        await pilot.press("c")  # a snippet to list
+        await step(pilot, src, 1, 7)
+        await pilot.press("r")
+        await wait_for(pilot, lambda: isinstance(app.screen, RelabelScreen))
+        await pilot.pause(0.3)
+        seen["footer"] = screen_rows(app)[-1]
+        for key in ("p", "s", "m", "c", "1"):  # the live view's keys
+            await pilot.press(key)
+        await pilot.pause(0.2)
+        seen["after"] = (type(app.screen).__name__, app.paused, app.key_truth)
+        await pilot.press("escape")
+        await pilot.pause(0.2)
+        seen["back"] = screen_rows(app)[-1]
+
+    run_app(app, live)
+    if standalone:
+        classes = json.loads((out / "session.json").read_text())["classes"]
+        solo = RelabelApp(out, classes)
+
+        async def alone():
+            async with solo.run_test(size=(80, 24)) as pilot:
+                await pilot.pause(0.3)
+                seen["footer"] = screen_rows(solo)[-1]
+                await pilot.press("escape")
+
+        asyncio.run(alone())
+    footer = seen["footer"]
+    assert re.findall(r"(\S+) (\S+)", footer) == [
+        ("space", "play"), ("k", "keep"), ("d", "drop"), ("l", "label…"), ("esc", "back")]
+    assert len(footer.rstrip()) <= 80
+    if not standalone:
+        assert seen["after"] == ("RelabelScreen", False, "voices")
+        assert "r relabel" in seen["back"] and "p pause" in seen["back"]
+
+
 # --- two models, unfamiliar sounds ----------------------------------------------------------
 def lagging_copy(tmp_path, confirm=8):
     """The int8 demo model with its card beside it, its decision confirming later (so that
@@ -600,6 +651,143 @@ def test_relabel_view_plays_on_enter_and_space(snippet_session, key):
 
     asyncio.run(drive())
     assert len(screens[0].played) == 1 and screens[0].played[0].suffix == ".wav"
+
+
+@pytest.fixture(scope="module")
+def ab_snippet_session(tour, tmp_path_factory):
+    """The tour's first 60 s under the demo model (A) and a copy of it deciding on every raw
+    window (B: no smoothing, no confirmation): the two disagree after scene changes."""
+    d = tmp_path_factory.mktemp("rlab")
+    audio = clip_of(tour, d, 0.0, 60.0)
+    truth = clip_truth(tour, d, 0.0, 60.0)
+    shutil.copy(MODELS / "demo.tflite", d / "jumpy.tflite")
+    card = (MODELS / "demo.toml").read_text()
+    jumpy = card.replace('smoothing = "mean"', 'smoothing = "none"').replace("confirm = 2",
+                                                                           "confirm = 1")
+    assert jumpy != card
+    (d / "jumpy.toml").write_text(jumpy)
+    r = cli("replay", audio, "--model", MODELS / "demo.tflite", "--model", d / "jumpy.tflite",
+            "--truth", truth, "--fast", "--headless", "--out", d / "s")
+    assert r.returncode == 0, r.stderr
+    return d / "s"
+
+
+def test_relabel_view_shows_both_predictions_where_the_models_disagree(ab_snippet_session):
+    from textual.widgets import DataTable
+
+    from monitor.snippets import iter_snippets
+
+    snips = iter_snippets(ab_snippet_session)
+    md = [sn for sn in snips if sn.reason == "models_disagree"]
+    assert md and len(md) < len(snips)
+    classes = json.loads((ab_snippet_session / "session.json").read_text())["classes"]
+    app = RelabelApp(ab_snippet_session, classes)
+    seen = {}
+
+    async def drive():
+        async with app.run_test(size=(80, 24)) as pilot:
+            await pilot.pause(0.3)
+            table = app.screen.query_one(DataTable)
+            seen["cells"] = {sn.sidecar: [c.plain if hasattr(c, "plain") else str(c)
+                                          for c in table.get_row(str(sn.sidecar))]
+                             for sn in snips}
+            seen["rows"] = screen_rows(app)
+            await pilot.press("escape")
+
+    asyncio.run(drive())
+    for sn in snips:
+        said = seen["cells"][sn.sidecar][3]  # the "predicted" column
+        if sn.reason == "models_disagree":
+            a, b = sn.meta["predicted"], sn.meta["model_b"]["predicted"]
+            assert said == f"A {a[:10]}\nB {b[:10]}"
+        else:
+            assert said == sn.meta["predicted"][:12]
+    # on screen: B's line right under A's, in the same column
+    first = md[0]
+    rows = seen["rows"]
+    k = next(i for i, r in enumerate(rows) if f"A {first.meta['predicted'][:10]}" in r
+             and f"{first.t0:7.1f} s" in r)
+    col = rows[k].index(f"A {first.meta['predicted'][:10]}")
+    assert rows[k + 1][col:].startswith(f"B {first.meta['model_b']['predicted'][:10]}")
+
+
+def read_count(text):
+    """A short count back as a number, its letter read as a decimal point times the unit
+    (IEC 60062's letter code for resistor values, from memory): "1k2" -> 1200, "12k" ->
+    12000, "M12" -> 120000, "999" -> 999."""
+    m = re.fullmatch(r"(\d*)([kMG]?)(\d*)", text)
+    assert m and (m[1] or m[3]) and (m[2] or not m[3]), text
+    value = float(f"{m[1] or 0}.{m[3] or 0}")
+    return round(value * {"": 1, "k": 1e3, "M": 1e6, "G": 1e9}[m[2]])
+
+
+@pytest.mark.parametrize("n", [0, 7, 999, 1000, 1049, 1050, 7200, 9949, 9950, 12_345, 99_499,
+                               99_500, 149_999, 150_000, 949_999, 950_000, 1_234_567,
+                               99_499_999, 99_500_000, 3_210_000_000])
+def test_short_counts_fit_three_cells_and_read_back(n):
+    from monitor.ui.draw import count3, count4
+
+    assert len(count3(n)) <= 3 and len(count4(n)) <= 4
+    back = read_count(count3(n))
+    # two significant digits at most: within 5% (and exact below 1000)
+    assert back == n if n < 1000 else abs(back - n) <= 0.05 * n, (n, count3(n), back)
+
+
+@pytest.mark.parametrize("case", ["thousands", "hundreds_of_thousands"])
+@pytest.mark.parametrize("size", SIZES, ids=[f"{w}x{h}" for w, h in SIZES])
+def test_session_panel_keeps_its_columns_for_hours_of_windows(case, size):
+    """A session of hours: confusion cells of 1,000+ and 100,000+ windows, 10+ and 100+
+    snippets. At every size the time and counts are whole, every cell keeps its column
+    under its key (a space between cells) and says its count, and no line is cut."""
+
+    from monitor.tally import Tally
+    from monitor.ui import draw as D
+    from monitor.ui.app import layout_for
+
+    classes = ("quiet_room", "voices", "traffic", "machinery")
+    keys = D.class_keys(classes)
+    # (truth, decision) -> windows; None: undecided
+    counts = ({(0, 0): 7_200, (0, 1): 1_049, (1, 1): 9_950, (2, 2): 999, (2, None): 12,
+               (3, 3): 1_500} if case == "thousands" else
+              {(0, 0): 120_000, (0, 3): 7_200, (1, 1): 99_600, (2, 2): 150_000,
+               (3, 3): 1_049, (3, None): 3})
+    snippets = 12 if case == "thousands" else 123
+    tally = Tally(classes, hop_s=0.5)
+    t = 0.0
+    for (ti, di), n in counts.items():
+        for _ in range(n):
+            tally.add(t, t + 1.0, None if di is None else classes[di], classes[ti])
+            t += 0.5
+    t_s = t + 0.5
+    assert t_s > 2 * 3600  # hours of windows
+    w, h = size
+    lay = layout_for(w, h, len(classes), False)
+    width, height = lay.session_w - 4, lay.row2 - 2
+    text = D.session_text(t_s=t_s, windows=tally.windows, snippets=snippets, tally=tally,
+                          classes=classes, keys=keys, width=width, height=height,
+                          truth_mode="file", unfamiliar=snippets * 10)
+    lines = [line.plain for line in text.split("\n")]
+    assert len(lines) <= height and all(len(line) <= width for line in lines)
+    assert lines[0] == f"time {D.clock(t_s):>8}  win {tally.windows:>7,}"
+    assert lines[1].startswith(f"snip {snippets:>8,}  acc ")
+    head = next(i for i, line in enumerate(lines) if line.startswith("truth↓"))
+    header, rows = lines[head + 1], lines[head + 2:head + 2 + len(classes)]
+    cols = [keys[c] for c in classes] + ["?"]
+    cell = (len(header) - 3) // len(cols)
+    assert header == "   " + "".join(f"{k:>{cell - 1}} " for k in cols)
+    for ti, (c, row) in enumerate(zip(classes, rows)):
+        assert row.startswith(f" {keys[c]} ") and len(row) == len(header), (row, header)
+        for j in range(len(cols)):
+            slot = row[3 + j * cell:3 + (j + 1) * cell]
+            assert slot.endswith(" ") and slot[-2] != " ", (row, j)  # right-aligned, spaced
+            shown = slot.strip()
+            want = counts.get((ti, None if j == len(classes) else j), 0)
+            if want == 0:
+                assert shown == "·"
+            else:
+                back = read_count(shown)
+                assert back == want if want < 1000 else abs(back - want) <= 0.05 * want, \
+                    (shown, want)
 
 
 def test_feature_picture_axis_and_no_colour_form(demo_card):

@@ -1,8 +1,10 @@
 """`scenemon harvest`: snippets of many sessions gathered into one retraining set.
 
 ``DIR/<label>/<file>.wav`` plus ``DIR/manifest.csv`` (path, label, reason, session, t0,
-duration, predicted, confidence, model sha256, audio sha256). The sidecar is the truth about
-a snippet: a relabel (the sidecar's ``label``) wins, a dropped snippet is left out.
+duration, predicted, predicted_b, confidence, model sha256, audio sha256; ``predicted_b`` is
+model B's prediction of a ``models_disagree`` snippet, empty for the others). The sidecar is
+the truth about a snippet: a relabel (the sidecar's ``label``) wins, a dropped snippet is
+left out.
 Duplicates (same audio sha256) appear once. Re-running adds only what is new; existing files
 are never rewritten or deleted. A target folder holding anything else than an earlier
 harvest is refused; paths given that are not sessions are skipped and counted.
@@ -36,8 +38,10 @@ from monitor.snippets import REASONS, iter_snippets, safe_label, verified_audio
 
 MARKER = ".scenemon-harvest"
 LOCK = ".lock"
-FIELDS = ["path", "label", "reason", "session", "t0", "duration", "predicted", "confidence",
-          "model_sha256", "audio_sha256"]
+FIELDS = ["path", "label", "reason", "session", "t0", "duration", "predicted", "predicted_b",
+          "confidence", "model_sha256", "audio_sha256"]
+# a manifest written before predicted_b existed is still ours: its rows get the column empty
+_REQUIRED = [f for f in FIELDS if f != "predicted_b"]
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
@@ -76,7 +80,7 @@ def _read_manifest(out: Path) -> list[dict]:
     except (OSError, UnicodeDecodeError) as exc:
         raise ScenemonError(f"{p}: cannot be read as the set's manifest ({exc})") from None
     rows = list(csv.DictReader(io.StringIO(text)))
-    if rows and not set(FIELDS) <= set(rows[0]):
+    if rows and not set(_REQUIRED) <= set(rows[0]):
         raise ScenemonError(f"{p}: not a manifest written by scenemon harvest")
     return rows
 
@@ -172,8 +176,8 @@ def _harvest_locked(loaded, out: Path, include, drop_unknown, progress,
             "path": f"{folder}/{name}", "label": label, "reason": sn.reason,
             "session": m.get("session") or s.dir.name, "t0": m.get("t0"),
             "duration": m.get("duration_s"), "predicted": m.get("predicted"),
-            "confidence": m.get("confidence"), "model_sha256": m.get("model_sha256"),
-            "audio_sha256": digest})
+            "predicted_b": sn.predicted_b, "confidence": m.get("confidence"),
+            "model_sha256": m.get("model_sha256"), "audio_sha256": digest})
         res.added[label] = res.added.get(label, 0) + 1
         res.total[label] = res.total.get(label, 0) + 1
     buf = io.StringIO()

@@ -17,12 +17,14 @@ import html
 import io
 import json
 import sys
+from collections.abc import Callable
 from pathlib import Path
 
 import numpy as np
 
 from monitor import palette as P
 from monitor.errors import ExitCode, ScenemonError
+from monitor.files import check_output, starts_with
 from monitor.review.metrics import UNDECIDED, Metrics, paired, window_metrics
 from monitor.session_reader import Session, load_session
 from monitor.snippets import count_unreadable, iter_snippets, verified_audio
@@ -52,6 +54,19 @@ def _switch_line(m: Metrics) -> str:
     raw = "" if m.raw_changes is None else f"; the raw top class changes {m.raw_changes} times"
     return (f"{_plural(m.changes, 'decision change')}{rate}{raw}; the truth changes "
             f"{m.truth_changes} times")
+
+
+def latency_words(m: Metrics) -> str:
+    """The latency line's words: median and worst after a truth change, and whether every
+    change was reached."""
+    if not m.truth_changes:
+        return "no truth change in this session"
+    if not m.latencies:
+        return f"the decision never reached the new truth ({_plural(m.truth_changes, 'change')})"
+    reached = ("reached after every truth change" if not m.never_reached else
+               f"not reached after {m.never_reached} of {_plural(m.truth_changes, 'truth change')}")
+    return (f"after a truth change: median {m.latency_median:.2f} s, worst "
+            f"{m.latency_worst:.2f} s; {reached}")
 
 
 def text_report(s: Session, ms: list[Metrics]) -> str:
@@ -100,35 +115,38 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
         who = "" if len(ms) == 1 else f"{'AB'[k]}: "
         lines.append(f"switches  {who}{_switch_line(mm)}")
     lines.append("decided   " + ", ".join(f"{c} {t:.1f} s" for c, t in m.decided_s.items()))
-    if m.unfamiliar is not None:
-        u = m.unfamiliar
-        per = ", ".join(f"{c} {v:.1%}" for c, v in u["share_per_truth_class"].items())
-        lines.append(f"unfamiliar {u['share']:.1%} of windows ({u['windows']})"
-                     + (f"; by truth: {per}" if per else ""))
+    for k, mm in enumerate(ms):
+        if mm.unfamiliar is not None:  # each model's own profile, its own share
+            who = "" if len(ms) == 1 else f"{'AB'[k]}: "
+            u = mm.unfamiliar
+            per = ", ".join(f"{c} {v:.1%}" for c, v in u["share_per_truth_class"].items())
+            lines.append(f"unfamiliar {who}{u['share']:.1%} of windows ({u['windows']})"
+                         + (f"; by truth: {per}" if per else ""))
     if m.with_truth:
         for k, mm in enumerate(ms):
             who = "" if len(ms) == 1 else f"{'AB'[k]}: "
             lines.append(f"accuracy  {who}{mm.accuracy:.1%} of {mm.with_truth} windows with truth "
                          f"(undecided counts as wrong); balanced {mm.balanced_accuracy:.1%}")
-            lines.append(f"latency   {who}after a truth change: median "
-                         f"{_fmt(mm.latency_median, '.2f')} s, worst "
-                         f"{_fmt(mm.latency_worst, '.2f')} s, never reached {mm.never_reached}")
+            lines.append(f"latency   {who}{latency_words(mm)}")
         if len(ms) > 1:
             pr = paired(s.windows, s.windows_b or [])
             lines.append(f"A vs B    decisions agree on {pr['decision_agreement']:.1%} of "
                          f"{pr['windows']} windows; {pr['sentence']}")
         w = max(12, *(len(c) for c in m.classes))
         lines.append("")
-        head = "".join(f" {'AB'[k]} prec {'AB'[k]} rec  {'AB'[k]} F1" for k in range(len(ms))) \
-            if len(ms) > 1 else f" {'precision':>9} {'recall':>7} {'F1':>6}"
-        lines.append(f"  {'class':<{w}}{head} {'windows':>8}")
+        # (heading, width, value of a class): headings and values formatted with one width
+        cols: list[tuple[str, int, Callable[[str], object]]] = []
+        for k, mm in enumerate(ms):
+            who = "" if len(ms) == 1 else f"{'AB'[k]} "
+            for key, word, short in (("precision", "precision", "prec"),
+                                     ("recall", "recall", "rec"), ("f1", "F1", "F1")):
+                head = word if len(ms) == 1 else f"{who}{short}"
+                cols.append((head, max(6, len(head)),
+                             lambda c, mm=mm, key=key: _fmt(mm.per_class[c][key])))
+        cols.append(("windows", 8, lambda c: m.per_class[c]["support"]))
+        lines.append(f"  {'class':<{w}}" + "".join(f" {h:>{cw}}" for h, cw, _ in cols))
         for c in m.classes:
-            row = "".join(f" {_fmt(mm.per_class[c]['precision']):>6} "
-                          f"{_fmt(mm.per_class[c]['recall']):>6} {_fmt(mm.per_class[c]['f1']):>6}"
-                          for mm in ms) if len(ms) > 1 else \
-                (f" {_fmt(m.per_class[c]['precision']):>9} {_fmt(m.per_class[c]['recall']):>7} "
-                 f"{_fmt(m.per_class[c]['f1']):>6}")
-            lines.append(f"  {c:<{w}}{row} {m.per_class[c]['support']:>8}")
+            lines.append(f"  {c:<{w}}" + "".join(f" {v(c):>{cw}}" for _, cw, v in cols))
         cols = m.classes + [UNDECIDED]
         cw = max(8, *(len(c) for c in cols)) + 1
         for k, mm in enumerate(ms):
@@ -193,7 +211,17 @@ def _runs(windows: list[dict], key: str, hop: float) -> list[tuple[float, float,
 
 
 def timeline_svg(s: Session, m: Metrics) -> str:
-    """Smoothed probabilities of model A, then one band per model's decisions, then truth."""
+    """The timeline figure (`timeline_figure`) as SVG."""
+    fig = timeline_figure(s, m)
+    out = _svg(fig)
+    _plt().close(fig)
+    return out
+
+
+def timeline_figure(s: Session, m: Metrics):
+    """Smoothed probabilities of model A with its unfamiliar sounds marked (ALERT
+    triangles), then one band per model's decisions, then truth, then with two models a row
+    marking where they differ (light grey); a matplotlib figure."""
     plt = _plt()
     classes = m.classes
     ws = s.model_windows()
@@ -228,8 +256,8 @@ def timeline_svg(s: Session, m: Metrics) -> str:
         differ = [{"t1": a["t1"], "differ": a.get("decision") != b.get("decision")}
                   for a, b in zip(ws[0], ws[1])]
         for start, end, v in _runs(differ, "differ", hop):
-            if v:
-                ax.axvspan(start, end, color=P.ALERT, lw=0)
+            if v:  # light grey: red is the unfamiliar mark's, a class colour a class's
+                ax.axvspan(start, end, color=P.TEXT, lw=0)
         ax.set_yticks([])
         ax.set_ylabel("A ≠ B", rotation=0, ha="right", va="center")
     for ax, windows, key, title in rows:
@@ -240,13 +268,12 @@ def timeline_svg(s: Session, m: Metrics) -> str:
         ax.set_ylabel(title, rotation=0, ha="right", va="center")
     axes[-1].set_xlabel("session time (s)")
     fig.subplots_adjust(hspace=0.15)
-    out = _svg(fig)
-    plt.close(fig)
-    return out
+    return fig
 
 
-def level_svg(s: Session, m: Metrics) -> str:
-    """Input level in dBFS per window, silent and clipping stretches shaded."""
+def level_figure(s: Session, m: Metrics):
+    """Input level in dBFS per window, silent and clipping stretches shaded, the silence
+    threshold dotted (the axis always reaches below it); a matplotlib figure."""
     plt = _plt()
     from monitor.tally import SILENT_BELOW_DBFS
 
@@ -259,11 +286,19 @@ def level_svg(s: Session, m: Metrics) -> str:
         ax.axvspan(a, z, color=P.ALERT, alpha=0.45, lw=0)
     ax.plot(t, lv, color=P.TEXT, lw=0.9)  # not a class colour: the level belongs to no class
     ax.axhline(SILENT_BELOW_DBFS, color=P.MUTED, lw=0.7, ls=":")
-    ax.set_ylim(max(-165.0, float(np.nanmin(lv)) - 5 if lv.size else -100), 3)
+    finite = lv[np.isfinite(lv)]
+    low = min(float(finite.min()), SILENT_BELOW_DBFS) if finite.size else SILENT_BELOW_DBFS
+    ax.set_ylim(max(-165.0, low - 5), 3)  # -160: the windows' floor (digital silence)
     ax.set_ylabel("dBFS")
     ax.set_xlabel("session time (s)")
+    return fig
+
+
+def level_svg(s: Session, m: Metrics) -> str:
+    """The input level figure (`level_figure`) as SVG."""
+    fig = level_figure(s, m)
     out = _svg(fig)
-    plt.close(fig)
+    _plt().close(fig)
     return out
 
 
@@ -306,12 +341,15 @@ body {{ font-family: system-ui, sans-serif; margin: 2em auto; max-width: 74em; p
 .kpis .kpi {{ background: {P.PANEL}; border: 1px solid {P.LINE}; border-radius: 4px;
              padding: 0.5em 0.8em; margin: 0; }}
 .confusions {{ display: flex; flex-wrap: wrap; gap: 2em; }}
-.state-new {{ color: {P.MUTED}; }} .state-kept, .state-relabeled {{ color: {P.CLASS_COLOURS[2]}; }}
+.state-new {{ color: {P.MUTED}; }}
+.state-kept, .state-relabeled {{ color: {P.TEXT}; font-weight: bold; }}
 .state-dropped {{ color: {P.MUTED}; }}
 h1 {{ font-size: 1.4em; margin-bottom: 0.2em; }} h2 {{ font-size: 1.1em; margin-top: 1.8em; }}
-.meta, .legend {{ color: {P.MUTED}; font-size: 0.88em; }} .note {{ color: {P.CLASS_COLOURS[4]}; }}
+.meta, .legend {{ color: {P.MUTED}; font-size: 0.88em; }}
+.note {{ color: {P.TEXT}; border-left: 3px solid {P.ALERT}; padding-left: 0.6em; }}
 table {{ border-collapse: collapse; font-size: 0.9em; }}
-td, th {{ padding: 0.25em 0.8em; border-bottom: 1px solid {P.LINE}; text-align: right; }}
+td, th {{ padding: 0.25em 0.8em; border-bottom: 1px solid {P.LINE}; text-align: right;
+         white-space: nowrap; }}
 td:first-child, th:first-child {{ text-align: left; }}
 .figure svg {{ max-width: 100%; height: auto; }}
 .kpi {{ display: inline-block; margin-right: 2.2em; }} .kpi b {{ font-size: 1.3em; display: block; }}
@@ -369,15 +407,24 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
                  f"({e(str(src.get('native_rate')))} Hz) &middot; model {models}</p>")
     for n in s.notes:
         parts.append(f"<p class='note'>{e(n)}</p>")
-    kpis = [("windows", f"{m.windows}"), ("duration", f"{m.duration_s:.1f} s"),
-            ("decision changes", f"{m.changes}"), ("raw top-class changes", f"{m.raw_changes}")]
+    kpis = [("windows", f"{m.windows}"), ("duration", f"{m.duration_s:.1f} s")]
+    for k, mm in enumerate(ms):
+        who = "" if len(ms) == 1 else f" ({'AB'[k]})"
+        kpis += [(f"decision changes{who}", f"{mm.changes}"),
+                 (f"raw top-class changes{who}", f"{mm.raw_changes}")]
     if m.with_truth:
         for k, mm in enumerate(ms):
             who = "" if len(ms) == 1 else f" ({'AB'[k]})"
             kpis += [(f"window accuracy{who}", f"{mm.accuracy:.1%}"),
                      (f"balanced accuracy{who}", f"{mm.balanced_accuracy:.1%}")]
-        kpis.append(("latency median / worst", f"{_fmt(m.latency_median, '.2f')} / "
-                                               f"{_fmt(m.latency_worst, '.2f')} s"))
+        for k, mm in enumerate(ms):
+            who = "" if len(ms) == 1 else f" ({'AB'[k]})"
+            kpis.append((f"latency median / worst{who}", f"{_fmt(mm.latency_median, '.2f')} / "
+                                                        f"{_fmt(mm.latency_worst, '.2f')} s"))
+    for k, mm in enumerate(ms):
+        if mm.unfamiliar is not None:  # each model's own profile, its own share
+            who = "" if len(ms) == 1 else f" ({'AB'[k]})"
+            kpis.append((f"unfamiliar windows{who}", f"{mm.unfamiliar['share']:.1%}"))
     summ = s.summary or {}
     over = summ.get("overruns")
     kpis.append(("overruns", str(over) if isinstance(over, int) else "-"))
@@ -389,12 +436,12 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
                      f"{e(pr['sentence'])}.</p>")
     swatches = " ".join(f"<span><span class='sw' style='background:{P.class_colour(m.classes, c)}'>"
                         f"</span>{e(c)}</span>" for c in m.classes)
+    differ = "; the last row marks in light grey where A and B decide differently"
     parts.append("<h2>Timeline</h2><p class='legend'>Top: each class's smoothed probability"
                  f"{' (model A)' if len(ms) > 1 else ''} with the enter threshold dashed"
-                 f"{'; red marks: unfamiliar sounds' if m.unfamiliar else ''}. Below: the "
+                 f"{'; red triangles: unfamiliar sounds' if m.unfamiliar else ''}. Below: the "
                  f"decision of each model and the truth, one colour per class ({swatches}); "
-                 f"blank where undecided or unknown"
-                 f"{'; the last row marks in red where A and B decide differently' if len(ms) > 1 else ''}"
+                 f"blank where undecided or unknown{differ if len(ms) > 1 else ''}"
                  f".</p><div class='figure' id='timeline'>"
                  + timeline_svg(s, m) + "</div>")
     lv = m.levels
@@ -429,11 +476,16 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
     snips = iter_snippets(s.dir)
     parts.append(f"<h2>Snippets ({len(snips)})</h2>")
     skipped = count_unreadable(s.dir)
+    two = len(s.models) > 1 or any(sn.predicted_b is not None for sn in snips)
     if snips:
-        parts.append("<p class='legend'>Captured sounds: label (what it truly is), what the "
-                     "model said, why it was kept, and its review state: new (not reviewed yet), "
+        said = ("what model A said, what model B said (where the two disagreed: "
+                "models_disagree)" if two else "what the model said")
+        heads = "<th>predicted A</th><th>predicted B</th>" if two else "<th>predicted</th>"
+        parts.append("<p class='legend'>Captured sounds: label (what it truly is), "
+                     f"{said}, why it was kept, and its review state: new (not reviewed yet), "
                      "kept, dropped (struck through; harvest leaves it out) or relabeled (the "
-                     "label it had before in brackets).</p><table><tr><th>label</th><th>predicted</th><th>reason</th>"
+                     "label it had before in brackets).</p><table><tr><th>label</th>"
+                     f"{heads}<th>reason</th>"
                      "<th>from</th><th>length</th><th>confidence</th><th>state</th><th>listen"
                      "</th></tr>")
         for k, sn in enumerate(snips):
@@ -452,9 +504,13 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
                 relabel = f" (was {e(str(mt.get('relabeled_from')))})"
             dur = mt.get("duration_s")
             word = review_word(sn.state)
+            said = f"<td>{swatch(str(mt.get('predicted')))}{e(str(mt.get('predicted')))}</td>"
+            if two:
+                b = sn.predicted_b
+                said += f"<td>{swatch(b) + e(b) if b is not None else ''}</td>"
             parts.append(
                 f"<tr class='{'dropped' if sn.dropped else ''}'><td>{swatch(sn.label)}{e(sn.label)}"
-                f"{relabel}</td><td>{swatch(str(mt.get('predicted')))}{e(str(mt.get('predicted')))}</td><td>{e(sn.reason)}</td>"
+                f"{relabel}</td>{said}<td>{e(sn.reason)}</td>"
                 f"<td>{_fmt(mt.get('t0') if isinstance(mt.get('t0'), (int, float)) else None, '.1f')} s</td>"
                 f"<td>{_fmt(dur if isinstance(dur, (int, float)) else None, '.1f')} s</td>"
                 f"<td>{_fmt(mt.get('confidence') if isinstance(mt.get('confidence'), (int, float)) else None, '.2f')}</td>"
@@ -470,30 +526,6 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
     return "\n".join(parts)
 
 
-def check_output(out: Path, mark: str, what: str) -> None:
-    """Refuse to write `out` over a file that is not an earlier output of ours.
-
-    Raises
-    ------
-    ScenemonError
-        `out` exists and is not a regular file starting with `mark`, or lies among a
-        session's own files.
-    """
-    from monitor.session_writer import SESSION_FILES
-
-    if out.is_symlink() or (out.exists() and not out.is_file()):
-        raise ScenemonError(f"{out}: exists and is not a regular file; choose another name")
-    if (out.parent / "session.json").is_file() and (out.name in SESSION_FILES
-                                                     or out.suffix.lower() in (".wav", ".jsonl")):
-        raise ScenemonError(f"{out}: is one of a session's own files; choose another name")
-    if out.exists():
-        with open(out, "rb") as f:
-            head = f.read(256)
-        if mark.encode() not in head:
-            raise ScenemonError(f"{out}: exists and is not {what} scenemon wrote; choose "
-                                f"another name")
-
-
 def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     """Write the HTML report to `out`, atomically; returns `out`.
 
@@ -504,7 +536,7 @@ def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     """
     from monitor.files import atomic_write
 
-    check_output(out, REPORT_MARK, "a report")
+    check_output(out, "a report", starts_with(REPORT_MARK))
     out.parent.mkdir(parents=True, exist_ok=True)
     atomic_write(out, html_report(s, ms).encode("utf-8"))
     return out
@@ -516,7 +548,7 @@ def run_report(session: Path, *, html: Path | None = None, as_json: bool = False
     if not s.windows:
         raise ScenemonError(f"{session}: the session holds no windows")
     if html is not None:
-        check_output(html, REPORT_MARK, "a report")
+        check_output(html, "a report", starts_with(REPORT_MARK))
     ms = model_metrics(s)
     if as_json:
         out = ms[0].to_dict()

@@ -45,14 +45,21 @@ from monitor.ui.screens import AskLabel, RelabelScreen, StageScreen
 
 MIN_W, MIN_H = 80, 24
 KEEP_HOPS = 1000  # strip history: wider than any terminal
+# the live view's own actions (its key bindings): none of them works over the relabel view
+LIVE_ACTIONS = frozenset({"truth", "capture", "model", "pause", "stage", "relabel",
+                          "quit_session"})
 
-THEME = Theme(  # the framework's widgets (footer, tables) in our palette
-    name="scenemon", primary=P.CLASS_COLOURS[0], secondary=P.CLASS_COLOURS[2],
-    accent=P.CLASS_COLOURS[1], warning=P.CLASS_COLOURS[4], error=P.ALERT,
-    success=P.CLASS_COLOURS[2], foreground=P.TEXT, background=P.GROUND, surface=P.PANEL,
+# The framework's widgets (footer, tables) in our palette: greys and ALERT only, never a class
+# colour (a class colour means that class, and the relabel table's rows hold class-coloured
+# labels); the table's cursor row is light text on the rule grey
+THEME = Theme(
+    name="scenemon", primary=P.MUTED, secondary=P.MUTED, accent=P.TEXT, warning=P.ALERT,
+    error=P.ALERT, success=P.TEXT, foreground=P.TEXT, background=P.GROUND, surface=P.PANEL,
     panel=P.PANEL, boost=P.LINE, dark=True,
-    variables={"line": P.LINE, "muted": P.MUTED, "footer-key-foreground": P.CLASS_COLOURS[1],
-               "footer-background": P.PANEL, "footer-description-foreground": P.TEXT})
+    variables={"line": P.LINE, "muted": P.MUTED, "footer-key-foreground": P.TEXT,
+               "footer-background": P.PANEL, "footer-description-foreground": P.MUTED,
+               "block-cursor-background": P.LINE, "block-cursor-foreground": P.TEXT,
+               "block-hover-background": P.PANEL})
 
 
 @dataclass(frozen=True)
@@ -479,7 +486,14 @@ class MonitorApp(App):
 
     # --- keys ------------------------------------------------------------------------------------
     def check_action(self, action: str, parameters: tuple[object, ...]) -> bool | None:
-        """Only the keys that work now are offered (and shown in the footer)."""
+        """Only the keys that work now are offered (and shown in the footer).
+
+        Over the relabel view (and its label question) none of the live view's keys works:
+        the view's own keys and its back key are all its footer shows, and a digit meant for
+        the table never sets the live truth.
+        """
+        if action in LIVE_ACTIONS and any(isinstance(s, RelabelScreen) for s in self.screen_stack):
+            return False
         h = self.handle
         running = h is not None and not self.finished
         if action == "truth":
@@ -602,12 +616,12 @@ class MonitorApp(App):
         if self.paused:
             right = "DISPLAY PAUSED (p resumes)"
         left = Text(no_wrap=True, overflow="crop")
-        left.append(" scenemon ", style=f"bold {P.GROUND} on {P.CLASS_COLOURS[0]}")
+        left.append(" scenemon ", style=f"bold {P.GROUND} on {P.TEXT}")
         left.append(" " + D.fit(self.heading, max(10, w - len(right) - 16)), style=P.TEXT)
         pad = max(1, w - left.cell_len - len(right) - 1)
         left.append(" " * pad)
-        style = f"bold reverse {P.CLASS_COLOURS[4]}" if self.paused else \
-            f"bold {P.CLASS_COLOURS[1]}" if now < self.notice_until else P.MUTED
+        style = f"bold reverse {P.TEXT}" if self.paused else \
+            f"bold {P.TEXT}" if now < self.notice_until else P.MUTED
         left.append(D.fit(right, max(0, w - left.cell_len - 1)), style=style)
         return left
 

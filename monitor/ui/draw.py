@@ -44,12 +44,37 @@ def held(t_s: float) -> str:
 
 
 def count4(n: int) -> str:
-    """A count in at most 4 characters: 9999, 12k, 999k, 1.2M."""
+    """A count in at most 4 characters: 9999, 12k, 999k, 1.2M, 12M, 999M, 1.2G, ..."""
     if n < 10000:
         return str(n)
-    if n < 999500:
-        return f"{n / 1000:.0f}k"
-    return f"{n / 1e6:.1f}M" if n < 9.95e6 else f"{n / 1e6:.0f}M"
+    for unit, scale in (("k", 1e3), ("M", 1e6), ("G", 1e9), ("T", 1e12)):
+        v = n / scale
+        if v < 9.95 and unit != "k":
+            return f"{v:.1f}{unit}"
+        if v < 999.5:
+            return f"{v:.0f}{unit}"
+    return "1P+"
+
+
+def count3(n: int) -> str:
+    """A count in at most 3 characters, two digits kept: 999, 1k2, 12k, M12, 1M2, 12M, G12, ...
+
+    The unit letter stands where the decimal point would (the letter code of resistor
+    values, IEC 60062, from memory): 1k2 is 1.2 thousand, M12 is 0.12 million (120,000).
+    """
+    if n < 1000:
+        return str(n)
+    units = "kMGTP"
+    for k, unit in enumerate(units[:-1]):
+        v = n / 1000.0 ** (k + 1)
+        if v < 9.95:
+            whole, tenth = divmod(int(v * 10 + 0.5), 10)
+            return f"{whole}{unit}{tenth}"
+        if v < 99.5:
+            return f"{int(v + 0.5)}{unit}"
+        if v < 995:
+            return f"{units[k + 1]}{int(v / 10 + 0.5):02d}"
+    return "1P+"
 
 
 def pct(x: float | None) -> str:
@@ -485,11 +510,12 @@ def level_text(level_dbfs: float, clipped: float, quiet_s: float, width: int) ->
         t.append(fit(" CLIPPING ", room).ljust(room), style=f"bold reverse {P.ALERT}")
         return t
     if quiet_s >= 3.0:
-        t.append(fit(" SILENT: muted? ", room).ljust(room), style=f"bold reverse {P.CLASS_COLOURS[4]}")
+        t.append(fit(" SILENT: muted? ", room).ljust(room), style=f"bold reverse {P.TEXT}")
         return t
     frac = (max(-60.0, min(0.0, level_dbfs)) + 60.0) / 60.0
-    style = P.ALERT if level_dbfs > -3 else P.CLASS_COLOURS[4] if level_dbfs > -12 \
-        else P.CLASS_COLOURS[2]
+    # greys rising in lightness as the level nears full scale, ALERT in the last 3 dB: no
+    # class colour, which would say a class
+    style = P.ALERT if level_dbfs > -3 else P.TEXT if level_dbfs > -12 else P.MUTED
     t.append("▕", style=P.LINE)
     t.append_text(bar(frac, room - 2, style=style))
     t.append("▏", style=P.LINE)
@@ -499,13 +525,18 @@ def level_text(level_dbfs: float, clipped: float, quiet_s: float, width: int) ->
 # --- session and health -------------------------------------------------------------------------
 def confusion_text(classes, keys, cm, width: int, *, color: bool = True) -> Text | None:
     """Counts, rows truth and columns decision (the last: undecided), each cell shaded by
-    its share of the row on the heat ramp; None when it does not fit in `width`."""
+    its share of the row on the heat ramp; None when it does not fit in `width`.
+
+    A cell is 5 or 4 characters wide with its space; its count is written in what is left
+    (`count4` or `count3`), so hours of windows never break a column.
+    """
     cols = [keys[c] for c in classes] + ["?"]
     cell = 5
     if 3 + cell * len(cols) > width:
         cell = 4
         if 3 + cell * len(cols) > width:
             return None
+    count = count4 if cell == 5 else count3
     t = Text(no_wrap=True, overflow="crop")
     t.append("   " + "".join(f"{k:>{cell - 1}} " for k in cols), style=P.MUTED)
     for i, c in enumerate(classes):
@@ -515,7 +546,7 @@ def confusion_text(classes, keys, cm, width: int, *, color: bool = True) -> Text
         t.append(f" {keys[c]} ", style=f"bold {colour(classes, c)}")
         for v in row[:len(cols)]:
             share = v / total
-            txt = f"{count4(v) if v else '·':>{cell - 1}} "
+            txt = f"{count(v) if v else '·':>{cell - 1}} "
             if color and v:
                 k = P.heat_index(share)
                 fg = P.GROUND if k >= 6 else P.TEXT
@@ -531,8 +562,13 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
     """The session panel: time, windows, snippets, accuracy and the confusion table, then
     what fits of latency and switch rate. At most `height` lines of at most `width`."""
     acc = pct(tally.accuracy) if tally.with_truth else "     -"
-    lines: list[Text] = [Text(f"time {clock(t_s):>8}  win {windows:>7,}"),
-                         Text(f"snip {snippets:>8,}  acc {acc:>7}")]
+    # 26 cells (the panel's inner width at every size): up to 99:59:59 and 999,999 windows
+    # in full, beyond that in short form
+    tm = clock(t_s) if t_s < 100 * 3600 else f"{int(t_s // 3600)} h"
+    win = f"{windows:,}" if windows < 10 ** 6 else count4(windows)
+    snip = f"{snippets:,}" if snippets < 10 ** 6 else count4(snippets)
+    lines: list[Text] = [Text(f"time {tm:>8}  win {win:>7}"),
+                         Text(f"snip {snip:>8}  acc {acc:>7}")]
     extra: list[Text] = []
     if not tally.with_truth:
         hint = {"keys": f"no truth yet: keys 1-{min(len(classes), 9)}",
@@ -556,7 +592,8 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
         if tally.switches_per_min is not None:
             extra.append(Text(f"switches    {tally.switches_per_min:>5.1f}/min", style=P.MUTED))
     if unfamiliar is not None:
-        extra.insert(0, Text(f"{UNFAMILIAR} unfamiliar  {unfamiliar:>7,}", style=P.MUTED))
+        unf = f"{unfamiliar:,}" if unfamiliar < 10 ** 6 else count4(unfamiliar)
+        extra.insert(0, Text(f"{UNFAMILIAR} unfamiliar  {unf:>7}", style=P.MUTED))
     lines.extend(extra)
     t = Text(no_wrap=True, overflow="crop")
     for k, line in enumerate(lines[:height]):

@@ -1,5 +1,9 @@
 """The relabel view: a session's snippets, played, kept, dropped or given another label.
 
+A snippet the two models of an A/B session disagreed on (``models_disagree``) shows both
+predictions, A's above B's, in a row two lines high. Only the view's own keys work here (and
+the footer shows no other): over a live session, none of the live view's keys.
+
 Every change goes through `monitor.snippets` (keep, drop, relabel), which rewrites only that
 snippet's sidecar, atomically; the audio is never touched. Playback runs on its own short
 "playback" thread and reports back with `call_from_thread` (it may block: it is not the
@@ -88,22 +92,28 @@ class RelabelScreen(Screen):
             conf = m.get("confidence")
             dur = m.get("duration_s")
             word = state_word(sn)
+            b = sn.predicted_b
+            if b is None:
+                said = self._label(str(m.get("predicted")))
+            else:  # both models' predictions, A above B
+                said = Text("A ", style=P.MUTED) + self._label(str(m.get("predicted")), 10)
+                said += Text("\nB ", style=P.MUTED) + self._label(b, 10)
             table.add_row(
                 Text(f"{sn.t0:7.1f} s", justify="right"),
                 Text(f"{dur:4.1f}" if isinstance(dur, (int, float)) else "-", justify="right"),
-                self._label(sn.label), self._label(str(m.get("predicted"))),
+                self._label(sn.label), said,
                 REASONS.get(sn.reason, sn.reason[:10]),
                 f"{conf:.2f}" if isinstance(conf, (int, float)) else "-",
                 Text(word, style=P.MUTED if word == "dropped" else
-                     f"bold {P.CLASS_COLOURS[2]}" if word in ("kept", "relabeled") else ""),
-                key=str(sn.sidecar))
+                     f"bold {P.TEXT}" if word in ("kept", "relabeled") else ""),
+                key=str(sn.sidecar), height=1 if b is None else 2)
         if self.items:
             table.move_cursor(row=min(row, len(self.items) - 1))
         self.status(f"{len(self.items)} snippet(s) · enter or space plays · state: new, kept, "
                     f"dropped, relabeled")
 
-    def _label(self, label: str) -> Text:
-        return Text(label[:12], style=P.class_colour(self.class_names, label))
+    def _label(self, label: str, width: int = 12) -> Text:
+        return Text(label[:width], style=P.class_colour(self.class_names, label))
 
     def status(self, text: str) -> None:
         """Show `text` on the status line (kept in `last_status`)."""
