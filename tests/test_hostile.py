@@ -311,6 +311,27 @@ def test_a_non_finite_model_output_is_recorded_and_reported(tmp_path, tour, monk
         assert w.getnframes() == x.size
     summary = json.loads((out / "summary.json").read_text())
     assert summary["model_faults"] == len(bad)
+    # shown wherever the session is read back: report on the terminal, as JSON and as HTML
+    r = cli("report", out)
+    assert f"faults    {len(bad)} windows with a model output that is not finite" in r.stdout
+    r = cli("report", out, "--json")
+    assert json.loads(r.stdout)["model_faults"] == len(bad)
+    r = cli("report", out, "--html", tmp_path / "r.html")
+    assert r.returncode == 0 and "windows with a non-finite model output" in \
+        (tmp_path / "r.html").read_text()
+
+
+def test_the_health_panel_shows_model_faults_and_a_stopped_disk():
+    # the UI's health panel at 80 x 24 has 7 rows: the alarms take the rate's and the
+    # latency's rows, and nothing is cut
+    from monitor.ui.draw import health_text
+
+    t = health_text(source="file tour.wav", rate=16000, ms=0.3, latency_ms=20.0, cpu=0.05,
+                    overruns=0, gaps=0, write_error=True, width=18, model_faults=12, height=7)
+    lines = t.plain.split("\n")
+    assert len(lines) <= 7 and all(len(x) <= 18 for x in lines)
+    assert "MODEL FAULTS 12" in lines and "DISK STOPPED" in lines
+    assert any(x.startswith("compute") for x in lines) and any(x.startswith("CPU") for x in lines)
 
 
 def test_repair_brings_the_header_up_to_every_frame_on_disk(session, tmp_path):

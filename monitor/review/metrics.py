@@ -43,6 +43,7 @@ class Metrics:
     raw_changes: int | None = None  # changes of the raw top class (before smoothing)
     levels: dict[str, Any] = field(default_factory=dict)
     unfamiliar: dict[str, Any] | None = None
+    model_faults: int = 0  # windows whose model output was not finite (flag "fault")
 
     @property
     def latency_median(self) -> float | None:
@@ -73,7 +74,7 @@ class Metrics:
             "decided_s": self.decided_s, "truth_changes": self.truth_changes,
             "latency_s_median": self.latency_median, "latency_s_worst": self.latency_worst,
             "latency_never_reached": self.never_reached, "levels": self.levels,
-            "unfamiliar": self.unfamiliar,
+            "unfamiliar": self.unfamiliar, "model_faults": self.model_faults,
         }
 
 
@@ -107,6 +108,7 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
     tops = [w.get("top") for w in windows]
     m.raw_changes = sum(1 for a, b in zip(tops, tops[1:]) if a != b)
     m.levels = level_tally(windows).summary()
+    m.model_faults = sum(1 for w in windows if w.get("fault"))
     if any("novelty" in w for w in windows):
         flagged = [w for w in windows if w.get("unfamiliar")]
         per = {}

@@ -44,8 +44,8 @@ def _fmt(v, spec=".3f", none="-"):
     return none if v is None else format(v, spec)
 
 
-def _plural(n: int, word: str) -> str:
-    return f"{n} {word}" + ("" if n == 1 else "s")
+def _plural(n: int, word: str, plural: str | None = None) -> str:
+    return f"{n} {word if n == 1 else plural or word + 's'}"
 
 
 def _switch_line(m: Metrics) -> str:
@@ -106,11 +106,17 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
     if lv.get("silent_stretches"):
         a, z = lv["silent_stretches"][0]
         lines.append(f"level     silent (below -70 dBFS) for {lv['silent_s']:.1f} s in "
-                     f"{len(lv['silent_stretches'])} stretch(es), the first {a:.1f}-{z:.1f} s: "
-                     f"a muted or disconnected input?")
+                     f"{_plural(len(lv['silent_stretches']), 'stretch', 'stretches')}, the "
+                     f"first {a:.1f}-{z:.1f} s: a muted or disconnected input?")
     if lv.get("clipping_stretches"):
         lines.append(f"level     clipping in {lv['clipped_windows']} windows, the first at "
                      f"{lv['clipping_stretches'][0][0]:.1f} s")
+    for k, mm in enumerate(ms):
+        if mm.model_faults:
+            who = "" if len(ms) == 1 else f"{'AB'[k]}: "
+            lines.append(f"faults    {who}{_plural(mm.model_faults, 'window')} with a model "
+                         f"output that is not finite (NaN or infinite): recorded with null "
+                         f"probabilities, the decision held")
     for k, mm in enumerate(ms):
         who = "" if len(ms) == 1 else f"{'AB'[k]}: "
         lines.append(f"switches  {who}{_switch_line(mm)}")
@@ -425,6 +431,10 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
         if mm.unfamiliar is not None:  # each model's own profile, its own share
             who = "" if len(ms) == 1 else f" ({'AB'[k]})"
             kpis.append((f"unfamiliar windows{who}", f"{mm.unfamiliar['share']:.1%}"))
+    for k, mm in enumerate(ms):
+        if mm.model_faults:
+            who = "" if len(ms) == 1 else f" ({'AB'[k]})"
+            kpis.append((f"windows with a non-finite model output{who}", f"{mm.model_faults}"))
     summ = s.summary or {}
     over = summ.get("overruns")
     kpis.append(("overruns", str(over) if isinstance(over, int) else "-"))

@@ -702,7 +702,8 @@ class MonitorApp(App):
             cpu=self.cpu_meter(), overruns=eng.overruns if eng else 0,
             gaps=eng.gap_windows if eng else 0,
             write_error=bool(status is not None and status.write_error),
-            width=self.layout.health_w - 4, show_timings=self.show_timings)
+            width=self.layout.health_w - 4, show_timings=self.show_timings,
+            model_faults=eng.model_faults if eng else 0, height=self.layout.row2 - 2)
 
     def _session(self) -> Text:
         st = self.state

@@ -606,8 +606,11 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
 
 def health_text(*, source: str, rate, ms: float | None, latency_ms: float | None,
                 cpu: float | None, overruns: int, gaps: int, write_error: bool,
-                width: int, show_timings: bool = True) -> Text:
-    """The health panel: source, native rate, compute and latency, CPU, losses."""
+                width: int, show_timings: bool = True, model_faults: int = 0,
+                height: int = 7) -> Text:
+    """The health panel: source, native rate, compute and latency, CPU, losses; then the
+    alarms (windows whose model output was not finite, a disk that stopped), for which the
+    rate and then the latency rows make room when the panel has `height` rows only."""
     t = Text(no_wrap=True, overflow="crop")
 
     def num(v, spec, unit):
@@ -617,14 +620,19 @@ def health_text(*, source: str, rate, ms: float | None, latency_ms: float | None
             ("compute", num(ms, ".2f", " ms")), ("latency", num(latency_ms, ".1f", " ms")),
             ("CPU", num(None if cpu is None else cpu * 100, ".1f", " %")),
             ("overruns", f"{overruns:,}"), ("gaps", f"{gaps:,}")]
+    alarms = ([f"MODEL FAULTS {model_faults:,}"] if model_faults else []) \
+        + (["DISK STOPPED"] if write_error else [])
+    for name in ("rate", "latency"):
+        if len(rows) + len(alarms) > height:
+            rows = [r for r in rows if r[0] != name]
     for k, (name, value) in enumerate(rows):
         if k:
             t.append("\n")
         style = f"bold reverse {P.ALERT}" if name in ("overruns", "gaps") and value != "0" else ""
         t.append(f"{name:<{width - len(value)}}{value}"[:width], style=style)
-    if write_error:
+    for line in alarms:
         t.append("\n")
-        t.append(fit("DISK: writing stopped", width), style=f"bold reverse {P.ALERT}")
+        t.append(fit(line, width), style=f"bold reverse {P.ALERT}")
     return t
 
 
