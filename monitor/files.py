@@ -108,6 +108,16 @@ def is_regular_file(path: Path) -> bool:
         return False
 
 
+def terminal_safe(text: str) -> str:
+    """`text` from files someone else may have written, fit for a terminal: line breaks and
+    tabs kept, every other unprintable character (an escape sequence's ESC, a carriage
+    return) written as ``\\xNN`` so a label cannot move the cursor or recolour the screen."""
+    if text.isprintable():
+        return text
+    return "".join(c if c.isprintable() or c in "\n\t" else
+                   (f"\\x{ord(c):02x}" if ord(c) < 256 else f"\\u{ord(c):04x}") for c in text)
+
+
 SESSION_FILES = ("session.json", "windows.jsonl", "windows.b.jsonl", "summary.json",
                  "audio.wav", "truth.tsv")
 

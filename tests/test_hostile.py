@@ -272,6 +272,26 @@ def test_score_writes_into_no_file_and_over_no_foreign_aggregate(tour, tmp_path)
         assert r.returncode == 0, r.stderr
 
 
+def test_labels_from_a_session_cannot_drive_the_terminal(session, tmp_path):
+    # a sidecar's label carrying an escape sequence (clear the screen, recolour it) is
+    # printed as text by harvest and report: the ESC character never reaches the terminal
+    d = copy_of(session, tmp_path)
+    side = next((d / "snippets").glob("*/*.json"))
+    meta = json.loads(side.read_text())
+    meta["label"] = "\x1b[2J\x1b[31mred"
+    side.write_text(json.dumps(meta))
+    lines = (d / "windows.jsonl").read_text().splitlines()
+    w = json.loads(lines[3])
+    w["truth"] = "\x1b]0;title\x07voices"
+    lines[3] = json.dumps(w)
+    (d / "windows.jsonl").write_text("\n".join(lines) + "\n")
+    r = cli("harvest", d, "--out", tmp_path / "set")
+    assert r.returncode == 0 and "\x1b" not in r.stdout + r.stderr
+    assert "\\x1b[2J\\x1b[31mred" in r.stdout
+    r = cli("report", d)
+    assert r.returncode == 0 and "\x1b" not in r.stdout + r.stderr and "\x07" not in r.stdout
+
+
 # --- nothing lost -------------------------------------------------------------------------
 def test_a_non_finite_model_output_is_recorded_and_reported(tmp_path, tour, monkeypatch):
     # fault injection: the real LiteRT runner, whose output is replaced by NaN every 7th call

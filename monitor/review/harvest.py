@@ -32,7 +32,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 
 from monitor.errors import ExitCode, ScenemonError
-from monitor.files import atomic_write, read_regular_bytes
+from monitor.files import atomic_write, read_regular_bytes, terminal_safe
 from monitor.session_reader import is_session, load_session
 from monitor.snippets import REASONS, iter_snippets, safe_label, verified_audio
 
@@ -226,7 +226,7 @@ def run_harvest(sessions: list[Path], out: Path, *, include: str | None,
     res = harvest(sessions, out, include=reasons, drop_unknown=drop_unknown,
                   progress=progress_bar())
     for n in res.notes:
-        sys.stderr.write(f"scenemon: note: {n}\n")
+        sys.stderr.write(terminal_safe(f"scenemon: note: {n}\n"))
     extra = []
     if res.not_sessions:
         extra.append(f"{res.not_sessions} path(s) that are not sessions skipped")
@@ -237,5 +237,6 @@ def run_harvest(sessions: list[Path], out: Path, *, include: str | None,
                      f"{res.unknown_skipped} unknown left out, {res.excluded} of other reasons"
                      + "".join(f"; {x}" for x in extra) + "\n")
     for label in sorted(res.total):
-        sys.stdout.write(f"  {label:<24} {res.total[label]:>5}  (+{res.added.get(label, 0)})\n")
+        sys.stdout.write(terminal_safe(f"  {label:<24} {res.total[label]:>5}  "
+                                       f"(+{res.added.get(label, 0)})\n"))
     return ExitCode.OK

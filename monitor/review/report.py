@@ -24,7 +24,7 @@ import numpy as np
 
 from monitor import palette as P
 from monitor.errors import ExitCode, ScenemonError
-from monitor.files import check_output, starts_with
+from monitor.files import check_output, starts_with, terminal_safe
 from monitor.review.metrics import UNDECIDED, Metrics, paired, window_metrics
 from monitor.session_reader import Session, load_session
 from monitor.snippets import count_unreadable, iter_snippets, verified_audio
@@ -567,7 +567,7 @@ def run_report(session: Path, *, html: Path | None = None, as_json: bool = False
             out["a_vs_b"] = paired(s.windows, s.windows_b or [])
         sys.stdout.write(json.dumps(out, indent=2) + "\n")
     else:
-        sys.stdout.write(text_report(s, ms))
+        sys.stdout.write(terminal_safe(text_report(s, ms)))
     if html is not None:
         sys.stderr.write(f"wrote {write_html(s, ms, html)}\n")
     return ExitCode.OK

@@ -22,6 +22,7 @@ import numpy as np
 from monitor.card import DecisionSettings
 from monitor.decide import decide_sequence
 from monitor.errors import ExitCode, ScenemonError
+from monitor.files import terminal_safe
 from monitor.session_reader import Session, load_session
 from monitor.tally import tally_windows
 
@@ -261,7 +262,7 @@ def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None =
         if model and s.windows_b is None:
             raise ScenemonError(f"{s.dir}: not an A/B session (no windows.b.jsonl)")
         for n in s.notes:
-            sys.stderr.write(f"scenemon: warning: {s.dir}: {n}\n")
+            sys.stderr.write(terminal_safe(f"scenemon: warning: {s.dir}: {n}\n"))
     if len({tuple(s.classes) for s in sessions}) > 1:
         raise ScenemonError(f"{sessions[1].dir}: its classes differ from {sessions[0].dir}'s")
     t = time.perf_counter()
