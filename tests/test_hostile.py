@@ -184,6 +184,13 @@ def test_harvest_copies_no_link_fifo_or_mismatched_audio(session, tmp_path):
     assert len(copied) == n - 3
     for p in copied:
         assert not p.is_symlink() and secret.encode() not in p.read_bytes()
+    # a sidecar that is itself a link is not read, and is counted as skipped too
+    e = copy_of(session, tmp_path, "e")
+    side = sorted((e / "snippets").glob("*/*.json"))[0]
+    side.unlink()
+    side.symlink_to(sorted((e / "snippets").glob("*/*.json"))[-1])
+    r = cli("harvest", e, "--out", tmp_path / "set2")
+    assert r.returncode == 0 and "1 unreadable or linked sidecar(s) skipped" in r.stdout
 
 
 def test_report_embeds_no_link_fifo_or_mismatched_audio(session, tmp_path):

@@ -34,7 +34,7 @@ from pathlib import Path
 from monitor.errors import ExitCode, ScenemonError
 from monitor.files import atomic_write, read_regular_bytes, terminal_safe
 from monitor.session_reader import is_session, load_session
-from monitor.snippets import REASONS, iter_snippets, safe_label, verified_audio
+from monitor.snippets import REASONS, count_unreadable, iter_snippets, safe_label, verified_audio
 
 MARKER = ".scenemon-harvest"
 LOCK = ".lock"
@@ -66,6 +66,7 @@ class HarvestResult:
     unknown_skipped: int = 0
     excluded: int = 0
     broken: int = 0
+    unreadable: int = 0  # sidecars that are links, not regular files, too large or not JSON
     not_sessions: int = 0
     adopted: int = 0
     notes: list[str] = field(default_factory=list)
@@ -134,6 +135,7 @@ def _harvest_locked(loaded, out: Path, include, drop_unknown, progress,
     for r in rows:
         res.total[r["label"]] = res.total.get(r["label"], 0) + 1
     candidates = [(s, sn) for s in loaded for sn in iter_snippets(s.dir)]
+    res.unreadable = sum(count_unreadable(s.dir) for s in loaded)
     new_rows = []
     for k, (s, sn) in enumerate(candidates):
         if progress:
@@ -232,6 +234,8 @@ def run_harvest(sessions: list[Path], out: Path, *, include: str | None,
         extra.append(f"{res.not_sessions} path(s) that are not sessions skipped")
     if res.broken:
         extra.append(f"{res.broken} snippet(s) with untrusted or broken audio skipped")
+    if res.unreadable:
+        extra.append(f"{res.unreadable} unreadable or linked sidecar(s) skipped")
     sys.stdout.write(f"harvest {out}: {sum(res.added.values())} new snippet(s); "
                      f"{res.duplicates} duplicate(s), {res.dropped} dropped, "
                      f"{res.unknown_skipped} unknown left out, {res.excluded} of other reasons"
