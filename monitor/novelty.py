@@ -59,9 +59,19 @@ def summarise(features: np.ndarray, *, time_axis: int) -> np.ndarray:
     """
     f = np.asarray(features, dtype=np.float64)
     if time_axis < 0:
-        return np.stack([f.mean(axis=-1), f.std(axis=-1)], axis=-1)
-    axis = f.ndim - 2 + time_axis
-    return np.concatenate([f.mean(axis=axis), f.std(axis=axis)], axis=-1)
+        f = f[..., None]  # one band of samples
+        axis = f.ndim - 2
+    else:
+        axis = f.ndim - 2 + time_axis
+    # one pass: the mean and the mean square (population std, as numpy.std), summed along
+    # the frames by einsum without a squared copy; float64 keeps the difference exact enough
+    n = f.shape[axis]
+    letters = "abcd"[:f.ndim]
+    kept = letters.replace(letters[axis], "")
+    mean = f.sum(axis=axis) / n
+    square = np.einsum(f"{letters},{letters}->{kept}", f, f) / n
+    std = np.sqrt(np.maximum(square - mean * mean, 0.0))
+    return np.concatenate([mean, std], axis=-1)
 
 
 def ledoit_wolf(x: np.ndarray) -> tuple[np.ndarray, float]:
@@ -115,14 +125,12 @@ class Profile:
     def distances(self, summaries: np.ndarray) -> np.ndarray:
         """Mahalanobis distance of each summary (rows) to each class: ``(n, k)``."""
         x = np.atleast_2d(summaries)
-        out = np.empty((x.shape[0], self.means.shape[0]))
-        for c, (m, p) in enumerate(zip(self.means, self._precisions)):
-            d = x - m
-            # einsum, not a matrix product: a window's distance must not depend on how many
-            # windows came with it (BLAS kernels differ for one row and for many); in two
-            # steps, three times faster than the one three-operand einsum
-            out[:, c] = (np.einsum("ij,jk->ik", d, p) * d).sum(axis=1)
-        return np.sqrt(np.maximum(out, 0.0))
+        d = x[:, None, :] - self.means[None]  # (n, classes, 2 x bands)
+        # a stack of one-row products, one per window and class: a window's distance does
+        # not depend on how many windows came with it (a single many-row matrix product
+        # could go through other BLAS kernels), and one call serves the whole batch
+        q = np.matmul(d[:, :, None, :], self._precisions)[:, :, 0, :]
+        return np.sqrt(np.maximum((q * d).sum(axis=-1), 0.0))
 
     def distance(self, summaries: np.ndarray) -> np.ndarray:
         """Novelty of each summary: the distance to the nearest class."""
