@@ -61,8 +61,17 @@ def _json_default(o: Any) -> Any:
     raise TypeError(f"not JSON serialisable: {type(o).__name__}")
 
 
+_ENCODER = json.JSONEncoder(default=_json_default, allow_nan=False)  # one, for every line
+
+
 def dumps(obj: Any, **kw: Any) -> str:
-    """JSON text; numpy values and paths converted; NaN and infinity refused (not JSON)."""
+    """JSON text; numpy values and paths converted; NaN and infinity refused (not JSON).
+
+    Without options one shared encoder does it (a window line per hop: json.dumps with
+    options would build an encoder per call); the text is json.dumps's own.
+    """
+    if not kw:
+        return _ENCODER.encode(obj)
     return json.dumps(obj, default=_json_default, allow_nan=False, **kw)
 
 

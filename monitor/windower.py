@@ -18,7 +18,7 @@ class Window:
     """One window: its first sample on the session clock, its samples and the gap before it."""
 
     start: int  # first sample, from session start
-    samples: np.ndarray  # (window,) float32
+    samples: np.ndarray  # (window,) float32, read-only: a view of the stream's samples
     gap: int  # samples lost since the previous window
 
 
@@ -53,7 +53,11 @@ class Windower:
         return self._buf_start + self._buf.shape[0]
 
     def push(self, chunk: np.ndarray, gap: int = 0) -> list[Window]:
-        """Add the next samples (after `gap` lost ones); return the windows now complete."""
+        """Add the next samples (after `gap` lost ones); return the windows now complete.
+
+        The windows' samples are views of the pushed chunks (no copy): a chunk must not be
+        changed after it is pushed (the engine pushes the fresh arrays the ring hands out).
+        """
         if gap:
             resume = self.end + gap
             self._pending_gap += gap
@@ -67,7 +71,9 @@ class Windower:
         while self.next_start + self.window <= self.end:
             if self.next_start >= self._buf_start:
                 a = self.next_start - self._buf_start
-                out.append(Window(self.next_start, self._buf[a:a + self.window].copy(),
+                # a view, not a copy: the buffer is only ever replaced, never written into
+                # (the ring hands out fresh arrays), so the samples stay as they were
+                out.append(Window(self.next_start, self._buf[a:a + self.window],
                                   self._pending_gap))
                 self._pending_gap = 0
             self.next_start += self.hop
