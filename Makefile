@@ -25,7 +25,7 @@ test-fast: $(STAMP)       ## the tests that need neither much time nor system pa
 	$(BIN)/python -m pytest -q -ra -m "not slow and not system"
 
 lint: $(STAMP)
-	$(BIN)/ruff check monitor tests benchmarks
+	$(BIN)/ruff check monitor tests benchmarks docs
 
 bench: $(STAMP)           ## speed figures for the README: against the floor, then per stage
 	$(BIN)/python benchmarks/bench_floor.py

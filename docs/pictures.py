@@ -6,7 +6,7 @@ and held at one moment of the tour for the live and stage views; then, at the en
 tour, the relabel view of the session's snippets and its HTML report, photographed by
 headless Chromium. A second run puts the int8 model beside the float one (A/B).
 
-Run: .venv/bin/python docs/pictures.py   (writes docs/*.svg and docs/report.png; about 30 s)
+Run: .venv/bin/python docs/pictures.py   (writes docs/*.svg and docs/report.png; about a minute)
 """
 
 from __future__ import annotations
@@ -25,30 +25,54 @@ sys.path.insert(0, str(ROOT))
 
 from monitor.demo.tour import ensure_tour  # noqa: E402
 from monitor.plan import ModelPlan, OutputPlan, SessionPlan  # noqa: E402
-from monitor.sources import FileSource  # noqa: E402
+from monitor.sources import FileSource, read_resampled  # noqa: E402
 from monitor.ui.app import MonitorApp, RelabelApp, session_starter  # noqa: E402
 
 DOCS = ROOT / "docs"
-HOLD_S = 170.0  # just after the tour walks from voices into traffic
+HOLD_S = 176.0  # just after the tour walks from voices into traffic (at 173 s)
+PACED_S = 12.0  # the last seconds before the hold at real-time pace: the health panel's
+                # compute, latency and CPU figures are those of live monitoring
 
 
 class HeldSource(FileSource):
-    """The file source, fast, holding still once `hold_s` of audio has gone in until
-    `go` is set (only its pacing differs from a replay)."""
+    """The file source: fast up to `hold_s` - `paced_s`, then at real-time pace, holding
+    still once `hold_s` of audio has gone in until `go` is set, then fast again (only its
+    pacing differs from a replay; the engine treats it as a real-time source)."""
 
-    def __init__(self, *a, hold_s: float, **kw):
-        super().__init__(*a, realtime=False, block_s=0.5, **kw)
+    def __init__(self, *a, hold_s: float, paced_s: float = PACED_S, **kw):
+        super().__init__(*a, realtime=True, block_s=0.5, **kw)
         self.hold_samples = int(hold_s * 16000)
+        self.pace_from = int((hold_s - paced_s) * 16000)
         self.fed = 0
         self.go = threading.Event()
 
-    def _put(self, y):
-        if self.fed >= self.hold_samples:
-            while not self.go.wait(0.05):
+    def _run(self):
+        try:
+            t_paced = None
+            for _, y in read_resampled(
+                    self.paths, self.model_rate, block=self.block, native_rate=self.native_rate):
                 if self._stop.is_set():
                     return
-        self.fed += len(y)
-        super()._put(y)
+                paced = self.pace_from <= self.fed < self.hold_samples
+                if paced:  # due when its first sample would have arrived live
+                    if t_paced is None:
+                        t_paced = time.monotonic() - (self.fed - self.pace_from) / 16000
+                    delay = t_paced + (self.fed - self.pace_from) / 16000 - time.monotonic()
+                    if delay > 0:
+                        time.sleep(delay)
+                elif self.fed >= self.hold_samples:
+                    while not self.go.wait(0.05):
+                        if self._stop.is_set():
+                            return
+                if not paced:  # fast: wait for room, nothing is dropped
+                    while self.ring.free() < y.shape[0] and not self._stop.is_set():
+                        time.sleep(0.002)
+                self.fed += len(y)
+                self.ring.write(y)
+        except BaseException as exc:
+            self.error = exc
+        finally:
+            self.finished.set()
 
 
 async def wait_until(pilot, cond, timeout=60.0):
@@ -60,9 +84,10 @@ async def wait_until(pilot, cond, timeout=60.0):
 
 
 def run(models, out: Path, shots: dict, size=(100, 30), stage=True) -> None:
-    wav, tsv = ensure_tour(ROOT / "recordings" / "demo")
+    # paths relative to the checkout, as a user types them: no machine's folders in a picture
+    wav, tsv = ensure_tour(Path("recordings") / "demo")
     src = HeldSource(wav, model_rate=16000, window_samples=16000, hold_s=HOLD_S)
-    plan = SessionPlan(source=src, models=tuple(ModelPlan(ROOT / m) for m in models),
+    plan = SessionPlan(source=src, models=tuple(ModelPlan(Path(m)) for m in models),
                        output=OutputPlan(out, "demo"), truth=tsv)
     names = " vs ".join(Path(m).name for m in models)
     app = MonitorApp(session_starter(plan), heading=f"demo tour, {names}")
@@ -122,12 +147,15 @@ def report_png(session: Path, png: Path, work: Path) -> None:
 
 
 def main() -> int:
+    import os
+
+    os.chdir(ROOT)
     with tempfile.TemporaryDirectory() as td:
         work = Path(td)
-        one = work / "one"
+        one = work / "demo-tour"
         run(["models/demo.tflite"], one, {"live": DOCS / "live-view.svg",
                                           "stage": DOCS / "stage-view.svg"})
-        run(["models/demo.tflite", "models/demo.int8.tflite"], work / "ab",
+        run(["models/demo.tflite", "models/demo.int8.tflite"], work / "demo-tour-ab",
             {"live": DOCS / "live-view-ab.svg"}, size=(80, 24), stage=False)
         relabel(one, DOCS / "relabel-view.svg")
         report_png(one, DOCS / "report.png", work)
