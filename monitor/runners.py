@@ -57,6 +57,15 @@ class Runner(Protocol):
         ...
 
 
+class TensorRunner(Runner, Protocol):
+    """A runner of a ``.tflite`` model (LiteRT or the microcontroller interpreter): it also
+    gives one window's raw input and output tensors (int8 for an int8 model)."""
+
+    def raw(self, feature: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The quantised input and the raw output tensor of one window, flat."""
+        ...
+
+
 def softmax(z: np.ndarray) -> np.ndarray:
     """Softmax over the last axis, as float32.
 

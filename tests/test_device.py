@@ -32,15 +32,22 @@ def compiler():
     pytest.skip("no C compiler found")
 
 
+_BUILT: dict[str, object] = {}  # one build per header text in a test run
+
+
 def build(card, tmp_path, name, text=None):
+    text = text if text is not None else header(card)
+    if text in _BUILT and _BUILT[text].exists():
+        return _BUILT[text]
     d = tmp_path / name
     d.mkdir()
-    (d / "frontend_constants.h").write_text(text if text is not None else header(card))
+    (d / "frontend_constants.h").write_text(text)
     exe = d / "harness"
     cmd = [compiler(), *CFLAGS, "-O2", f"-I{d}", f"-I{C_SOURCES[0].parent}", str(C_SOURCES[0]),
            str(HARNESS), "-o", str(exe), "-lm"]
     r = subprocess.run(cmd, capture_output=True, text=True)
     assert r.returncode == 0, r.stderr
+    _BUILT[text] = exe
     return exe
 
 

@@ -36,8 +36,8 @@ def compare(a, b, sources: list[Path]) -> dict:
                                 f"see the same windows")
     fa = FrontEnd(card_a)
     fb = fa if card_a.same_front_end(card_b) else FrontEnd(card_b)
-    raw = (a.runner.model_kind == b.runner.model_kind == "tflite-int8"
-           and hasattr(a.runner, "raw") and hasattr(b.runner, "raw"))
+    # two int8 .tflite runners (LiteRT or micro: `runners.TensorRunner`): their int8 tensors
+    raw = a.runner.model_kind == b.runner.model_kind == "tflite-int8"
     pa, pb, t1 = [], [], []
     fe_err = fe_err_scaled = 0.0
     identical = steps = 0
