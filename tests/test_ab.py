@@ -154,6 +154,7 @@ def test_tune_works_on_model_b(sessions):
     assert r.returncode == 2 and "not an A/B session" in r.stderr
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_score_with_two_models(tour, jumpy_b, tmp_path):
     arch = tmp_path / "arch"
     arch.mkdir()

@@ -64,6 +64,7 @@ def tour_features(tour):
     return card, FrontEnd(card).batch(w)
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_micro_against_litert_on_the_whole_tour(tour_features):
     # the microcontroller interpreter's reference kernels against LiteRT's default delegate
     # on every tour window: top-1 and (after smoothing) decisions agree on >= 99%
@@ -85,6 +86,7 @@ def test_micro_against_litert_on_the_whole_tour(tour_features):
     assert np.mean([a == b for a, b in zip(dm, dl)]) >= 0.99
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_replay_with_the_micro_runtime_records_it(tour, tmp_path, tour_windows):
     out = tmp_path / "s"
     r = run_cli("replay", tour[0], "--model", INT8, "--runtime", "micro", "--truth", tour[1],
@@ -116,6 +118,7 @@ def golden(tour, tmp_path_factory):
     return out
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_golden_outputs_rerun_through_the_micro_interpreter(golden):
     # the firmware must reproduce these exactly: re-run through tflite_micro's interpreter
     # directly (not through scenemon's runner), every int8 output is identical
@@ -133,6 +136,7 @@ def test_golden_outputs_rerun_through_the_micro_interpreter(golden):
         np.testing.assert_array_equal(interp.get_output(0).reshape(-1), expect)
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 def test_golden_windows_cover_every_predicted_class_in_time_order(golden, tour):
     meta = json.loads((golden / "meta.json").read_text())
     card = load_card(MODELS / "demo.int8.toml")

@@ -370,6 +370,7 @@ def test_footer_offers_only_the_keys_that_work(long_app, quiet_clip, tmp_path):
     assert "c capture" in footers["keys"] and "A/B" not in footers["keys"]
 
 
+@pytest.mark.slow  # seconds of work: in the full suite, not the quick tier
 @pytest.mark.parametrize("standalone", [False, True], ids=["live", "standalone"])
 def test_relabel_footer_holds_only_its_own_keys(quiet_clip, tmp_path, standalone):
     """At 80 x 24 the relabel view's footer lists its own keys and its back key, whole, and
