@@ -93,7 +93,7 @@ class AudioHistory:
     def __init__(self, sample_rate: int, seconds: float) -> None:
         self.sr = sample_rate
         self.hold = int(seconds * sample_rate)
-        self.cap = self.hold
+        self.cap = self.hold + sample_rate  # a second of room for a live stream's chunks
         self.buf = np.zeros(self.cap, np.float32)
         self.end = 0  # samples seen (gaps as silence)
 
@@ -109,7 +109,7 @@ class AudioHistory:
             stay on the session clock.
         """
         if chunk.size + self.hold > self.cap:
-            self._grow(chunk.size + self.hold)
+            self._grow(2 * chunk.size + self.hold)  # with room: few growths, not one a chunk
         if gap:
             self._put(np.zeros(min(gap, self.cap), np.float32), gap)
         if chunk.size:
