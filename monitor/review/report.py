@@ -51,9 +51,10 @@ def _plural(n: int, word: str, plural: str | None = None) -> str:
 def _switch_line(m: Metrics) -> str:
     rate = f" ({m.switches_per_min:.2f} per minute)" if m.duration_s >= 60 and \
         m.switches_per_min is not None else ""
-    raw = "" if m.raw_changes is None else f"; the raw top class changes {m.raw_changes} times"
+    raw = "" if m.raw_changes is None else \
+        f"; the raw top class changes {_plural(m.raw_changes, 'time')}"
     return (f"{_plural(m.changes, 'decision change')}{rate}{raw}; the truth changes "
-            f"{m.truth_changes} times")
+            f"{_plural(m.truth_changes, 'time')}")
 
 
 def latency_words(m: Metrics) -> str:
