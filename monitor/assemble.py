@@ -169,7 +169,9 @@ def invocation() -> str:
     # `python -m monitor`: this interpreter, by its bare name only when that name finds it
     py = Path(sys.executable)
     on_path = shutil.which(py.name)
-    if on_path and Path(on_path).resolve() == py.resolve():
+    # the paths themselves, links not followed: a venv's python is a link to the base
+    # interpreter, which may also be the one on PATH, without the venv's packages
+    if on_path and os.path.abspath(on_path) == os.path.abspath(py):
         return f"{py.name} -m monitor"
     rel = os.path.relpath(py)
     return f"{rel if not rel.startswith('..') else py} -m monitor"

@@ -96,6 +96,7 @@ class AudioHistory:
         self.cap = self.hold + sample_rate  # a second of room for a live stream's chunks
         self.buf = np.zeros(self.cap, np.float32)
         self.end = 0  # samples seen (gaps as silence)
+        self.held_from = 0  # the oldest sample still held (a growth keeps no older ones)
 
     def add(self, chunk: np.ndarray, gap: int) -> None:
         """Append the next chunk, after `gap` lost samples that are held as silence.
@@ -121,6 +122,7 @@ class AudioHistory:
         self.cap = cap
         self.buf = np.zeros(cap, np.float32)
         self.buf[np.arange(self.end - held, self.end) % cap] = old
+        self.held_from = self.end - held
 
     def _put(self, x: np.ndarray, advance: int) -> None:
         x = x[-self.cap:]
@@ -133,7 +135,7 @@ class AudioHistory:
 
     def cut(self, t0: float, t1: float) -> tuple[np.ndarray, float, float]:
         """Audio between t0 and t1 (clamped to what is still held); with the times used."""
-        a = max(int(round(t0 * self.sr)), self.end - self.cap, 0)
+        a = max(int(round(t0 * self.sr)), self.end - self.cap, self.held_from, 0)
         b = min(int(round(t1 * self.sr)), self.end)
         if b <= a:
             return np.zeros(0, np.float32), a / self.sr, a / self.sr

@@ -14,6 +14,7 @@ from pathlib import Path
 
 from monitor import __version__
 from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence
+from monitor.files import terminal_safe
 from monitor.flags import (
     EXAMPLES,
     Parser,
@@ -474,7 +475,7 @@ def main(argv: list[str] | None = None) -> int:
             if debug and not isinstance(exc, KeyboardInterrupt):
                 raise
             if not isinstance(exc, KeyboardInterrupt):
-                sys.stderr.write(f"scenemon: {one_sentence(exc)}\n")
+                sys.stderr.write(terminal_safe(f"scenemon: {one_sentence(exc)}\n"))
             return exit_code_for(exc)
 
 

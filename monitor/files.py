@@ -165,8 +165,11 @@ def check_output(out: Path, what: str, ours: Callable[[Path], bool]) -> None:
 def starts_with(mark: str) -> Callable[[Path], bool]:
     """An `ours` test for `check_output`: the file's first 256 bytes hold `mark`."""
     def test(path: Path) -> bool:
-        with open(path, "rb") as f:
-            return mark.encode() in f.read(256)
+        try:
+            with open(path, "rb") as f:
+                return mark.encode() in f.read(256)
+        except OSError:  # unreadable: not known to be ours, so not written over
+            return False
     return test
 
 

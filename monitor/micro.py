@@ -132,7 +132,9 @@ def _run_probe(path: Path, data: bytes, arena: int) -> tuple[int, str]:
         raise ModelError(f"{path}: no Python executable to load the model in the "
                          f"microcontroller runtime with")
     try:
-        r = subprocess.run([sys.executable, "-c", _PROBE, str(arena)], input=bytes(data),
+        # -I: the child does not put the current folder first on its path (a file named
+        # like the interpreter's package there must not run), nor read PYTHON* variables
+        r = subprocess.run([sys.executable, "-I", "-c", _PROBE, str(arena)], input=bytes(data),
                            capture_output=True, timeout=PROBE_TIMEOUT_S)
     except subprocess.TimeoutExpired:
         raise ModelError(f"{path}: the microcontroller runtime took over {PROBE_TIMEOUT_S:g} s "

@@ -11,7 +11,11 @@ import os
 @contextlib.contextmanager
 def quiet_native_stderr():
     """Silence C/C++ chatter written straight to file descriptor 2 (a LiteRT delegate banner,
-    an MP3 decoder's complaints): scenemon says what went wrong in one sentence itself."""
+    an MP3 decoder's complaints): scenemon says what went wrong in one sentence itself.
+    Under ``--debug`` (`DEBUG`) nothing is silenced."""
+    if DEBUG:
+        yield
+        return
     try:
         saved = os.dup(2)
     except OSError:
@@ -49,13 +53,16 @@ def screen_owns_the_terminal():
         yield
         return
     screen = os.fdopen(os.dup(2), "w", encoding=old.encoding, errors=old.errors)
+    python_stderr = sys.stderr
     try:
         with open(os.devnull, "wb") as null:
             os.dup2(null.fileno(), 2)
-        sys.__stderr__ = screen
+        # Python's own error output (textual prints a crash's traceback there once the
+        # screen is restored) goes to the terminal too: only native writes on fd 2 are lost
+        sys.__stderr__ = sys.stderr = screen
         yield
     finally:
-        sys.__stderr__ = old
+        sys.__stderr__, sys.stderr = old, python_stderr
         with contextlib.suppress(OSError, ValueError):
             screen.close()
         os.dup2(saved, 2)

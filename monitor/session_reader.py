@@ -133,6 +133,16 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
     return windows, skipped
 
 
+def _classes_of_b(meta: dict) -> int | None:
+    """How many classes model B has (``models[1].classes`` in session.json), if said."""
+    models = meta.get("models")
+    if isinstance(models, list) and len(models) > 1 and isinstance(models[1], dict):
+        classes = models[1].get("classes")
+        if isinstance(classes, list) and classes:
+            return len(classes)
+    return None
+
+
 def load_session(path: str | Path) -> Session:
     """Read a session directory (see module docstring).
 
@@ -164,7 +174,7 @@ def load_session(path: str | Path) -> Session:
     windows, skipped = read_windows(d / "windows.jsonl", len(classes) if classes else None)
     windows_b = None
     if (d / "windows.b.jsonl").exists():
-        windows_b, skipped_b = read_windows(d / "windows.b.jsonl")
+        windows_b, skipped_b = read_windows(d / "windows.b.jsonl", _classes_of_b(meta))
         skipped += skipped_b
     truth = None
     tp = d / "truth.tsv"

@@ -67,6 +67,7 @@ class Windower:
                 self.next_start = -(-resume // self.hop) * self.hop
         if chunk.size:
             self._buf = np.concatenate((self._buf, chunk)) if self._buf.size else chunk
+            self._buf.setflags(write=False)  # the windows are views of it: read-only
         out = []
         while self.next_start + self.window <= self.end:
             if self.next_start >= self._buf_start:

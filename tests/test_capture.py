@@ -179,3 +179,17 @@ def test_snippets_do_not_depend_on_how_much_audio_arrives_at_once(tour, demo_car
         runs[batch] = [(s["reason"], s["label"], s["t0"], s["t1"],
                         hashlib.sha256(s["audio"].tobytes()).hexdigest()) for s in got]
     assert runs[1] and runs[1] == runs[64]
+
+
+def test_a_grown_history_cuts_only_audio_it_held():
+    # after a long chunk grows the history, the stretch before what it held is not handed
+    # out as silence: a cut starts at the oldest sample still held
+    h = AudioHistory(10, 3.0)  # 10 Hz, 3 s held
+    for k in range(10):
+        h.add(np.full(10, k + 1, np.float32), 0)  # 10 s of audio, one second at a time
+    h.add(np.full(60, 99, np.float32), 0)  # a 6 s chunk: more than the room left
+    audio, t0, t1 = h.cut(0.0, 16.0)
+    assert t1 == 16.0 and t0 == 16.0 - len(audio) / 10
+    assert np.all(audio != 0)  # nothing invented
+    assert t0 >= 10.0 - 4.0  # what it held before the chunk: its 3 s and its second of room
+

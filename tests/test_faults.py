@@ -284,3 +284,11 @@ def test_under_the_ui_native_chatter_misses_the_screen_and_the_screen_misses_not
             "os.write(2, b'after\\n')\n")
     r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
     assert r.returncode == 0 and r.stderr == "drawn\nafter\n", r.stderr
+    # Python's own error output (a UI crash's traceback, printed once the screen is
+    # restored) still reaches the terminal
+    code = ("import sys\n"
+            "from monitor.native import screen_owns_the_terminal\n"
+            "with screen_owns_the_terminal():\n"
+            "    print('traceback here', file=sys.stderr, flush=True)\n")
+    r = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
+    assert r.stderr == "traceback here\n", r.stderr

@@ -297,6 +297,32 @@ def test_labels_from_a_session_cannot_drive_the_terminal(session, tmp_path):
     assert "\\x1b[2J\\x1b[31mred" in r.stdout
     r = cli("report", d)
     assert r.returncode == 0 and "\x1b" not in r.stdout + r.stderr and "\x07" not in r.stdout
+    # and through the one sentence of an error naming a bad value
+    w["gap"] = "\x1b[2J\x1b[31mRED"
+    lines[3] = json.dumps(w)
+    (d / "windows.jsonl").write_text("\n".join(lines) + "\n")
+    r = cli("report", d)
+    assert r.returncode == 2 and "\x1b" not in r.stderr and "\\x1b[2J" in r.stderr, r.stderr
+
+
+def test_model_b_lines_hold_one_value_per_class(tmp_path, tour):
+    # windows.b.jsonl is checked against model B's classes (session.json's models) as
+    # windows.jsonl is against A's: tune --model-b refused the cut lists instead of tuning
+    x = sf.read(str(tour[0]), dtype="float32")[0][: 16000 * 20]
+    wav = write_wav(tmp_path / "c.wav", x)
+    d = tmp_path / "ab"
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--model",
+            MODELS / "demo-mfcc.tflite", "--fast", "--out", d, "--capture", "none")
+    assert r.returncode == 0, r.stderr
+    lines = (d / "windows.b.jsonl").read_text().splitlines()
+    recs = [json.loads(x) for x in lines]
+    for w in recs:
+        w["probs"], w["smoothed"] = w["probs"][:3], w["smoothed"][:3]
+    (d / "windows.b.jsonl").write_text("".join(json.dumps(w) + "\n" for w in recs))
+    for command in ("report", "tune"):
+        r = cli(command, d)
+        assert r.returncode == 2 and "windows.b.jsonl: line 1 has 3 probs values for 4 " \
+            "classes" in r.stderr, r.stderr
 
 
 # --- nothing lost -------------------------------------------------------------------------
@@ -359,6 +385,9 @@ def test_the_health_panel_shows_model_faults_and_a_stopped_disk():
     assert len(lines) <= 7 and all(len(x) <= 18 for x in lines)
     assert "MODEL FAULTS 12" in lines and "DISK STOPPED" in lines
     assert any(x.startswith("compute") for x in lines) and any(x.startswith("CPU") for x in lines)
+    t = health_text(source="file tour.wav", rate=16000, ms=0.3, latency_ms=20.0, cpu=0.05,
+                    overruns=0, gaps=0, write_error=False, width=18, model_faults=123_456)
+    assert "MODEL FAULTS 123k" in t.plain.split("\n")  # hours of faults still fit
 
 
 def test_repair_brings_the_header_up_to_every_frame_on_disk(session, tmp_path):

@@ -15,6 +15,7 @@ import shutil
 import subprocess
 import sys
 import tempfile
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -284,6 +285,16 @@ print(runner.arena_bytes)
     assert r.returncode == 0, r.stderr
     assert r.stderr.splitlines() == ["screen update"]
     assert int(r.stdout) > 0  # the allocation record was read all the same
+
+
+def test_the_loading_child_runs_no_file_of_the_current_folder(tmp_path):
+    # the child that loads a model is started with -I: a file in the folder the command runs
+    # in, named like the interpreter's package, is not imported in its place
+    (tmp_path / "tflite_micro.py").write_text("raise SystemExit(5)\n")
+    exe = Path(sys.executable).parent / "scenemon"  # the installed command, as a user runs it
+    r = subprocess.run([str(exe), "budget", "--model", str(INT8)], cwd=tmp_path,
+                       capture_output=True, text=True, timeout=300)
+    assert r.returncode == 0, r.stderr
 
 
 def _tflite_of(build, tmp_path, name):

@@ -36,10 +36,16 @@ def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
     assert f" {exe} report {tmp_path / 's2'}" in r.stderr
     # as python -m monitor with the venv's interpreter (not on PATH): that interpreter, as a
     # path that works from here, not a bare "python" that would be another one
+    # (a bare python on PATH that is the venv's base interpreter, as after `python3 -m venv`:
+    # the same file once links are followed, but without the venv's packages)
     py = os.path.relpath(sys.executable, ROOT)
+    base = tmp_path / "bin"
+    base.mkdir()
+    (base / Path(sys.executable).name).symlink_to(Path(sys.executable).resolve())
+    env3 = {**env, "PATH": f"{base}:{env['PATH']}"}
     r = subprocess.run([py, "-m", "monitor", "replay", str(wav), "--model",
                         str(MODELS / "demo.tflite"), "--fast", "--out", str(tmp_path / "s3")],
-                       cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
+                       cwd=ROOT, env=env3, capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
     assert f" {py} -m monitor report {tmp_path / 's3'}" in r.stderr, r.stderr
 

@@ -770,6 +770,8 @@ def run_ui(plan, *, heading: str) -> int:
     if app.error is not None:
         sys.stderr.write(f"scenemon: {one_sentence(app.error)}\n")
         return exit_code_for(app.error)
+    if app.return_code:  # the UI itself failed (textual has printed what went wrong)
+        return ExitCode.FAILURE
     if app.summary is not None:
         return finish(app.summary)
     return code if isinstance(code, int) else ExitCode.OK

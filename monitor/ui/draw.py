@@ -620,7 +620,7 @@ def health_text(*, source: str, rate, ms: float | None, latency_ms: float | None
             ("compute", num(ms, ".2f", " ms")), ("latency", num(latency_ms, ".1f", " ms")),
             ("CPU", num(None if cpu is None else cpu * 100, ".1f", " %")),
             ("overruns", f"{overruns:,}"), ("gaps", f"{gaps:,}")]
-    alarms = ([f"MODEL FAULTS {model_faults:,}"] if model_faults else []) \
+    alarms = ([f"MODEL FAULTS {count4(model_faults)}"] if model_faults else []) \
         + (["DISK STOPPED"] if write_error else [])
     for name in ("rate", "latency"):
         if len(rows) + len(alarms) > height:
