@@ -103,3 +103,22 @@ def write_wav(path, x, sr=16000, subtype="PCM_16"):
 def sine(freq, seconds, sr=16000, amp=0.5):
     t = np.arange(int(seconds * sr)) / sr
     return (amp * np.sin(2 * np.pi * freq * t)).astype(np.float32)
+
+
+def jumpy_copy(folder, model="demo", *, profile=False):
+    """A copy of a demo model (`model`: "demo" or "demo.int8") as ``folder/jumpy.tflite`` with
+    a card of its own that decides on every raw window (no smoothing, no confirmation), so
+    that its decisions differ from the original's at times; with `profile` its novelty
+    profile beside it too. Returns the model's path."""
+    import shutil
+
+    folder = Path(folder)
+    shutil.copy(MODELS / f"{model}.tflite", folder / "jumpy.tflite")
+    if profile:
+        shutil.copy(MODELS / f"{model}.profile.npz", folder / "jumpy.profile.npz")
+    card = (MODELS / f"{model}.toml").read_text()
+    jumpy = card.replace('smoothing = "mean"', 'smoothing = "none"').replace("confirm = 2",
+                                                                           "confirm = 1")
+    assert jumpy != card
+    (folder / "jumpy.toml").write_text(jumpy)
+    return folder / "jumpy.tflite"

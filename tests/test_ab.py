@@ -10,7 +10,7 @@ import shutil
 import numpy as np
 import pytest
 
-from conftest import MODELS, cli, run_cli
+from conftest import MODELS, cli, jumpy_copy, run_cli
 
 scipy_stats = pytest.importorskip("scipy.stats")
 
@@ -23,13 +23,7 @@ def records(path):
 def jumpy_b(tmp_path_factory):
     """Model B: the demo model with a card of its own that decides on every raw window
     (no smoothing, no confirmation), so that its decisions differ from A's at times."""
-    d = tmp_path_factory.mktemp("b")
-    shutil.copy(MODELS / "demo.tflite", d / "jumpy.tflite")
-    card = (MODELS / "demo.toml").read_text()
-    card = card.replace('smoothing = "mean"', 'smoothing = "none"').replace("confirm = 2",
-                                                                           "confirm = 1")
-    (d / "jumpy.toml").write_text(card)
-    return d / "jumpy.tflite"
+    return jumpy_copy(tmp_path_factory.mktemp("b"))
 
 
 @pytest.fixture(scope="module")

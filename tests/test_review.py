@@ -8,7 +8,7 @@ import subprocess
 import numpy as np
 import pytest
 
-from conftest import MODELS, cli
+from conftest import MODELS, cli, jumpy_copy
 from monitor.card import DecisionSettings, load_card
 from monitor.decide import decide_sequence
 from monitor.review.metrics import window_metrics
@@ -279,14 +279,7 @@ def ab_session(tour, tmp_path_factory):
     smoothing, no confirmation) with a copy of the int8 profile, so that the two disagree at
     times (models_disagree snippets) and each has an unfamiliar share of its own."""
     d = tmp_path_factory.mktemp("abrev")
-    b = d / "jumpy.tflite"
-    shutil.copy(MODELS / "demo.int8.tflite", b)
-    shutil.copy(MODELS / "demo.int8.profile.npz", d / "jumpy.profile.npz")
-    card = (MODELS / "demo.int8.toml").read_text()
-    jumpy = card.replace('smoothing = "mean"', 'smoothing = "none"').replace("confirm = 2",
-                                                                           "confirm = 1")
-    assert jumpy != card
-    (d / "jumpy.toml").write_text(jumpy)
+    b = jumpy_copy(d, "demo.int8", profile=True)
     out = d / "s"
     r = cli("replay", tour[0], "--model", MODELS / "demo.tflite", "--model", b, "--truth",
             tour[1], "--fast", "--headless", "--out", out)

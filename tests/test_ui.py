@@ -20,7 +20,7 @@ from pathlib import Path
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, ROOT, cli, run_cli
+from conftest import MODELS, ROOT, cli, jumpy_copy, run_cli
 from monitor.plan import FileInput, ModelPlan, OutputPlan, SessionPlan
 from monitor.sources import FileSource
 from monitor.ui.app import MonitorApp, RelabelApp, session_starter
@@ -661,12 +661,7 @@ def ab_snippet_session(tour, tmp_path_factory):
     d = tmp_path_factory.mktemp("rlab")
     audio = clip_of(tour, d, 0.0, 60.0)
     truth = clip_truth(tour, d, 0.0, 60.0)
-    shutil.copy(MODELS / "demo.tflite", d / "jumpy.tflite")
-    card = (MODELS / "demo.toml").read_text()
-    jumpy = card.replace('smoothing = "mean"', 'smoothing = "none"').replace("confirm = 2",
-                                                                           "confirm = 1")
-    assert jumpy != card
-    (d / "jumpy.toml").write_text(jumpy)
+    jumpy_copy(d)
     r = cli("replay", audio, "--model", MODELS / "demo.tflite", "--model", d / "jumpy.tflite",
             "--truth", truth, "--fast", "--headless", "--out", d / "s")
     assert r.returncode == 0, r.stderr
