@@ -33,11 +33,11 @@ import soundfile as sf
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
-from monitor.card import load_card  # noqa: E402
+from monitor.base.native import keep_freed_memory  # noqa: E402
 from monitor.demo.tour import ensure_tour  # noqa: E402
-from monitor.frontend import mel_filterbank, window_coefficients  # noqa: E402
-from monitor.native import keep_freed_memory  # noqa: E402
-from monitor.samples import quantise_pcm16  # noqa: E402
+from monitor.features.card import load_card  # noqa: E402
+from monitor.features.frontend import mel_filterbank, window_coefficients  # noqa: E402
+from monitor.sound.samples import quantise_pcm16  # noqa: E402
 
 MODEL = ROOT / "models" / "demo.tflite"
 REPEAT = 3

@@ -34,10 +34,10 @@ def main() -> int:
     import librosa
     import soundfile as sf
 
-    from monitor.card import load_card
     from monitor.demo.tour import ensure_tour
-    from monitor.frontend import FrontEnd
-    from monitor.runners import load_runner
+    from monitor.features.card import load_card
+    from monitor.features.frontend import FrontEnd
+    from monitor.inference.registry import load_runner
 
     wav, _ = ensure_tour(ROOT / "recordings" / "demo")
     x, sr = sf.read(str(wav), dtype="float32")

@@ -8,8 +8,8 @@ from pathlib import Path
 
 sys.path.insert(0, str(Path(__file__).resolve().parent.parent))
 
-from monitor.bench import run_bench  # noqa: E402
-from monitor.plan import ModelPlan  # noqa: E402
+from monitor.assembly.plan import ModelPlan  # noqa: E402
+from monitor.cli.bench import run_bench  # noqa: E402
 
 if __name__ == "__main__":
     models = sys.argv[1:] or ["models/demo.tflite", "models/demo.int8.tflite", "models/demo.keras"]

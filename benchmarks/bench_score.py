@@ -21,7 +21,7 @@ def main() -> int:
     ap.add_argument("--model", default=str(ROOT / "models" / "demo.tflite"))
     args = ap.parse_args()
     from monitor.demo.tour import ensure_tour
-    from monitor.score import run_score
+    from monitor.review.score import run_score
 
     wav, tsv = ensure_tour(ROOT / "recordings" / "demo")
     with tempfile.TemporaryDirectory() as td:

@@ -30,14 +30,14 @@ def main() -> int:
     ap = argparse.ArgumentParser()
     ap.add_argument("--hours", type=float, default=2.0)
     args = ap.parse_args()
-    from monitor.capture import CapturePolicy, CaptureSettings
-    from monitor.card import load_card
+    from monitor.assembly.engine import Engine, ObserverBase
     from monitor.demo.tour import ensure_tour
-    from monitor.engine import Engine, ObserverBase
-    from monitor.runners import load_runner
-    from monitor.session_writer import SessionWriter
-    from monitor.sources import FileSource
-    from monitor.truth import load_truth
+    from monitor.features.card import load_card
+    from monitor.inference.registry import load_runner
+    from monitor.session.capture import CapturePolicy, CaptureSettings
+    from monitor.session.truth import load_truth
+    from monitor.session.writer import SessionWriter
+    from monitor.sound.sources import FileSource
 
     wav, tsv = ensure_tour(ROOT / "recordings" / "demo")
     card = load_card(ROOT / "models" / "demo.toml")

@@ -23,9 +23,9 @@ from pathlib import Path
 ROOT = Path(__file__).resolve().parent.parent
 sys.path.insert(0, str(ROOT))
 
+from monitor.assembly.plan import ModelPlan, OutputPlan, SessionPlan  # noqa: E402
 from monitor.demo.tour import ensure_tour  # noqa: E402
-from monitor.plan import ModelPlan, OutputPlan, SessionPlan  # noqa: E402
-from monitor.sources import FileSource, read_resampled  # noqa: E402
+from monitor.sound.sources import FileSource, read_resampled  # noqa: E402
 from monitor.ui.app import MonitorApp, RelabelApp, session_starter  # noqa: E402
 
 DOCS = ROOT / "docs"

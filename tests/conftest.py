@@ -1,4 +1,5 @@
 import os
+import shutil
 import subprocess
 import sys
 from dataclasses import dataclass
@@ -30,7 +31,7 @@ def tour_windows(tour, demo_card):
 
 @pytest.fixture(scope="session")
 def demo_card():
-    from monitor.card import load_card
+    from monitor.features.card import load_card
 
     return load_card(MODELS / "demo.toml")
 
@@ -76,7 +77,7 @@ def run_cli(*args, timeout=300, env=None, cwd=None):
 def card_dict(*, frontend=None, audio=None, scaling="demo", classes=None, **top):
     """A complete card as parsed TOML: the demo card's tables with the given [frontend] and
     [audio] keys changed (a value of None removes the key); `scaling` None drops the table."""
-    from monitor.card import read_card_table
+    from monitor.features.card import read_card_table
 
     raw = read_card_table(MODELS / "demo.toml")
     for table, changes in (("frontend", frontend), ("audio", audio)):
@@ -122,3 +123,13 @@ def jumpy_copy(folder, model="demo", *, profile=False):
     assert jumpy != card
     (folder / "jumpy.toml").write_text(jumpy)
     return folder / "jumpy.tflite"
+
+
+def compiler():
+    """The C compiler on PATH; the test fails under SCENEMON_REQUIRE_CC=1 without one, else skips."""
+    for cc in ("gcc", "cc", "clang"):
+        if shutil.which(cc):
+            return shutil.which(cc)
+    if os.environ.get("SCENEMON_REQUIRE_CC") == "1":
+        pytest.fail("SCENEMON_REQUIRE_CC=1 but no C compiler (gcc, cc) found")
+    pytest.skip("no C compiler found")

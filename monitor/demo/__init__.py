@@ -2,6 +2,8 @@
 
 `synth` makes seeded procedural audio of each place, `tour` a seeded walk through them with
 its truth, and `build` trains the small demo model deterministically.
+
+May import: the flow below (base to assembly); not the other tools (review, device, ui).
 """
 
 CLASSES = ("quiet_room", "voices", "traffic", "machinery")

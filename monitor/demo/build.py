@@ -22,11 +22,11 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import card_from_dict
 from monitor.demo import CLASSES
 from monitor.demo.synth import clip
-from monitor.frontend import FrontEnd
-from monitor.windower import windows_of
+from monitor.features.card import card_from_dict
+from monitor.features.frontend import FrontEnd
+from monitor.sound.windower import windows_of
 
 CARD = {
     "classes": list(CLASSES),

@@ -15,12 +15,12 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import ModelCard, load_card
 from monitor.demo import CLASSES
 from monitor.demo.synth import clip
-from monitor.frontend import FrontEnd
-from monitor.novelty import fit_profile, profile_path_for, save_profile
-from monitor.windower import windows_of
+from monitor.features.card import ModelCard, load_card
+from monitor.features.frontend import FrontEnd
+from monitor.inference.novelty import fit_profile, profile_path_for, save_profile
+from monitor.sound.windower import windows_of
 
 WALKS = 10
 WALK_SEED0 = 10
@@ -31,7 +31,7 @@ def profile_material(card: ModelCard, *, walks: int = WALKS):
     """(features, labels, groups) of the demo profile's windows for `card`."""
     from monitor.demo.build import TRAIN_SEEDS
     from monitor.demo.tour import TOUR, tour_audio
-    from monitor.truth import TruthTrack
+    from monitor.session.truth import TruthTrack
 
     fe = FrontEnd(card)
     w_len, hop = card.window_samples, card.hop_samples

@@ -22,7 +22,7 @@ import numpy as np
 import soundfile as sf
 
 from monitor.demo.synth import EVENTS, SR, alarm, clip
-from monitor.truth import Span, format_truth
+from monitor.session.truth import Span, format_truth
 
 TOUR_SEED = 20261201
 TOUR_VERSION = 2  # part of the file names' content check: an older tour is rebuilt

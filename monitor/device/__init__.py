@@ -1,7 +1,10 @@
 """Device parity: int8 quantisation (`quantize`), two models or two runtimes on the same
 windows (`compare`), golden vectors with a firmware-side check (`vectors`), what a model
 costs on the target (`budget`), and the portable C front end (`frontend.c`, `frontend.h`)
-with its generated constants header (`constants`)."""
+with its generated constants header (`constants`).
+
+May import: the flow below (base to assembly); not the other tools (review, demo, ui).
+"""
 
 from pathlib import Path
 

@@ -29,10 +29,10 @@ from typing import Any
 
 import numpy as np
 
-from monitor.card import ModelCard
-from monitor.errors import ExitCode, ModelError, ScenemonError
-from monitor.plan import ModelPlan
-from monitor.runners import Runner
+from monitor.assembly.plan import ModelPlan
+from monitor.base.errors import ExitCode, ModelError, ScenemonError
+from monitor.features.card import ModelCard
+from monitor.inference.base import Runner, RunnerBase
 
 # Assumptions for the duty-cycle estimate (common practice for Cortex-M class parts with
 # SIMD kernels; not measured here): cycles per int8 MAC, per float MAC, per front-end op.
@@ -144,7 +144,7 @@ def layers_of(path: Path) -> list[Layer]:
     from ai_edge_litert import schema_py_generated as fb
     from ai_edge_litert.interpreter import Interpreter, OpResolverType
 
-    from monitor.native import litert_nodes, quiet_native_stderr
+    from monitor.base.native import litert_nodes, quiet_native_stderr
 
     with quiet_native_stderr():
         interp = Interpreter(model_path=str(path), experimental_op_resolver_type=
@@ -184,9 +184,8 @@ def layers_of(path: Path) -> list[Layer]:
 def frontend_ops_per_hop(card: ModelCard) -> dict[str, int]:
     """Operations the front end does for each new hop of audio, stage by stage (frames shared
     across windows computed once, as the streaming C call does)."""
-    from monitor.stages import build_stages
 
-    stages = build_stages(card)
+    stages = card.stages()
     framing = next((s for s in stages if s.name == "framing"), None)
     new = 0
     if framing is not None:
@@ -204,15 +203,13 @@ def _check_without_interpreter(path: Path, data: bytes, card: ModelCard) -> bool
     runners' rule, from the flatbuffer's tensor shapes); True when its input is int8."""
     from ai_edge_litert import schema_py_generated as fb
 
-    from monitor.runners import _Base
-
     sg = fb.Model.GetRootAs(data, 0).Subgraphs(0)
     n_in, n_out = sg.InputsLength(), sg.OutputsLength()
     x = sg.Tensors(sg.Inputs(0)) if n_in else None
     y = sg.Tensors(sg.Outputs(0)) if n_out else None
     shape = tuple(int(v) for v in x.ShapeAsNumpy())[1:] if x is not None else ()
     n_outputs = int(y.ShapeAsNumpy()[-1]) if y is not None and y.ShapeLength() else 0
-    _Base.check_io(path, card, shape, n_outputs, n_in, n_out)
+    RunnerBase.check_io(path, card, shape, n_outputs, n_in, n_out)
     return x is not None and x.Type() == fb.TensorType.INT8
 
 
@@ -235,9 +232,9 @@ def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) ->
         Not a ``.tflite`` model, or one that does not load for another reason than an
         operator the runtime lacks (that one is recorded in ``unsupported_ops``).
     """
-    from monitor.assemble import load_model
+    from monitor.assembly.assemble import load_model
     from monitor.device.constants import c_buffers, c_tables
-    from monitor.micro import UnsupportedOperator, list_operators
+    from monitor.inference.micro import UnsupportedOperator, list_operators
 
     path = plan.path
     if path.suffix.lower() != ".tflite":
@@ -340,7 +337,7 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
 
 def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> int:
     """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime."""
-    from monitor.assemble import card_of
+    from monitor.assembly.assemble import card_of
 
     card = card_of(plan)
     if clock_mhz is not None and not clock_mhz > 0:

@@ -17,16 +17,16 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import ModelCard
-from monitor.decide import decide_sequence
-from monitor.errors import ExitCode, ScenemonError
-from monitor.plan import ModelPlan
+from monitor.assembly.plan import ModelPlan
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.decisions.decide import decide_sequence
+from monitor.features.card import ModelCard
 
 
 def compare(a, b, sources: list[Path]) -> dict:
     """Compare two `assemble.LoadedModel`s on the windows of `sources` (module docstring)."""
-    from monitor.assemble import file_windows
-    from monitor.frontend import FrontEnd, reference_features
+    from monitor.assembly.assemble import file_windows
+    from monitor.features.frontend import FrontEnd, reference_features
 
     card_a, card_b = a.card, b.card
     for key in ("sample_rate", "window_samples", "hop_samples"):
@@ -132,7 +132,7 @@ def compare_text(res: dict) -> str:
 def run_compare(plans: tuple[ModelPlan, ...], sources: list[Path], *,
                 min_agree: float | None, as_json: bool) -> int:
     """`scenemon compare`; exit 1 when the top-1 agreement is below `min_agree`."""
-    from monitor.assemble import load_model
+    from monitor.assembly.assemble import load_model
 
     a, b = (load_model(p) for p in plans)
     res = compare(a, b, sources)

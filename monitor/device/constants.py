@@ -1,7 +1,7 @@
 """`frontend_constants.h`: everything the C front end needs for one model card.
 
 Our own format, plain C99, one block per stage of the card's kind, each written by the stage
-itself (`monitor.stages`: `Stage.c_lines`): every size and switch as a ``#define``
+itself (`monitor.features.stages`: `Stage.c_lines`): every size and switch as a ``#define``
 (``SM_*``; ``SM_HAS_<STAGE>`` is 1 for each stage that runs), the window coefficients, the
 mel filterbank as a sparse table (per band the first FFT bin and the number of weights, then
 all weights packed in one array, as embedded DSP libraries store it), the DCT matrix (the
@@ -19,15 +19,22 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import ModelCard
-from monitor.stages import KINDS, STAGES, build_stages, c_define, cfloat, show_value, sparse_bank
+from monitor.features.card import ModelCard
+from monitor.features.stages import (
+    KINDS,
+    STAGES,
+    c_define,
+    cfloat,
+    show_value,
+    sparse_bank,
+)
 
 __all__ = ["header", "c_buffers", "c_tables", "cfloat", "sparse_bank", "scaling_tables"]
 
 
 def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
     """The text of ``frontend_constants.h`` for `card`."""
-    stages = build_stages(card)
+    stages = card.stages()
     running = {s.name for s in stages if s.active}
     names = ", ".join('"' + c.replace("\\", "\\\\").replace('"', '\\"') + '"'
                       for c in card.classes)
@@ -62,7 +69,7 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
 def c_buffers(card: ModelCard) -> dict[str, int]:
     """Bytes of every static buffer `frontend.c` keeps for this card (its RAM), by name."""
     out: dict[str, int] = {}
-    for s in build_stages(card):
+    for s in card.stages():
         out.update(s.c_buffers())
     return out
 
@@ -71,11 +78,11 @@ def c_tables(card: ModelCard) -> dict[str, int]:
     """Bytes of every constant table in `frontend_constants.h` for this card (its flash),
     by name (the class names aside: the firmware's labels, not the front end's)."""
     out: dict[str, int] = {}
-    for s in build_stages(card):
+    for s in card.stages():
         out.update(s.c_tables())
     return out
 
 
 def scaling_tables(card: ModelCard) -> tuple[int, np.ndarray, np.ndarray]:
     """(mode, mean, 1 / std) as the C code stores the scaling (see module docstring)."""
-    return build_stages(card)[-1].tables()  # type: ignore[attr-defined]
+    return card.stages()[-1].tables()  # type: ignore[attr-defined]

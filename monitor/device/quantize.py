@@ -14,8 +14,8 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import ModelCard
-from monitor.errors import ExitCode, ModelError, ScenemonError
+from monitor.base.errors import ExitCode, ModelError, ScenemonError
+from monitor.features.card import ModelCard
 
 CARD_MARK = "quantised by scenemon quantize"
 
@@ -24,8 +24,8 @@ def calibration_features(card: ModelCard, sources: list[Path], *, count: int = 3
                          seed: int = 0) -> np.ndarray:
     """About `count` windows spread evenly over all recordings (seeded jitter), as model
     input ``(n, *card.feature_shape)``."""
-    from monitor.assemble import file_windows
-    from monitor.frontend import FrontEnd
+    from monitor.assembly.assemble import file_windows
+    from monitor.features.frontend import FrontEnd
 
     fe = FrontEnd(card)
     per = max(1, count // len(sources))
@@ -57,9 +57,9 @@ def _check_target(out: Path) -> None:
 def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
              trust_model: bool = False, debug: bool = False) -> dict:
     """Convert the Keras `model` to a full-integer `.tflite` at `out`, its card beside it."""
-    from monitor.files import atomic_write
-    from monitor.native import quiet_native_stderr, silence_absl
-    from monitor.runners import KerasRunner
+    from monitor.base.files import atomic_write
+    from monitor.base.native import quiet_native_stderr, silence_absl
+    from monitor.inference.runners import KerasRunner
 
     if Path(model).suffix.lower() not in (".keras", ".h5"):
         raise ModelError(f"{model}: quantize needs the Keras model (.keras or .h5)")
@@ -101,12 +101,12 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
 def run_quantize(model: Path, *, card: Path | None, calibrate: list[Path], out: Path,
                  windows: int, seed: int, trust_model: bool) -> int:
     """`scenemon quantize`."""
-    from monitor.card import card_for_model
+    from monitor.features.card import card_for_model
 
     c = card_for_model(model, card)
     _check_target(out)
     feats = calibration_features(c, calibrate, count=windows, seed=seed)
-    from monitor import native
+    from monitor.base import native
 
     res = quantize(model, c, feats, out, trust_model=trust_model, debug=native.DEBUG)
     sys.stdout.write(f"wrote {res['model']} ({res['bytes']} bytes) and {res['card']} from "

@@ -21,9 +21,9 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.card import ModelCard
-from monitor.errors import ExitCode, ScenemonError
-from monitor.plan import ModelPlan
+from monitor.assembly.plan import ModelPlan
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.features.card import ModelCard
 
 CHECK_SOURCES = (Path(__file__).with_name("check.c"), Path(__file__).with_name("check.mk"))
 FEATURE_TOL_OF_RANGE = 1e-3  # C against Python: 1e-3 of the features' range (common practice)
@@ -111,12 +111,12 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
 def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
                   seed: int = 0) -> dict:
     """Write the golden vectors folder (see module docstring); returns meta.json's content."""
-    from monitor.assemble import file_windows
+    from monitor.assembly.assemble import file_windows
+    from monitor.base.files import atomic_write, dumps
     from monitor.device import C_SOURCES
     from monitor.device.constants import header
-    from monitor.files import atomic_write, dumps
-    from monitor.frontend import FrontEnd
-    from monitor.samples import from_pcm16, to_pcm16
+    from monitor.features.frontend import FrontEnd
+    from monitor.sound.samples import from_pcm16, to_pcm16
 
     card, runner = loaded.card, loaded.runner
     _check_target(out)
@@ -181,7 +181,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
 def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
                 seed: int = 0) -> int:
     """`scenemon vectors`."""
-    from monitor.assemble import load_model
+    from monitor.assembly.assemble import load_model
 
     meta = write_vectors(load_model(plan), audio, out, count=count, seed=seed)
     classes = sorted(set(meta["predicted"]))

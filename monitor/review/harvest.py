@@ -31,10 +31,16 @@ import sys
 from dataclasses import dataclass, field
 from pathlib import Path
 
-from monitor.errors import ExitCode, ScenemonError
-from monitor.files import atomic_write, read_regular_bytes, terminal_safe
-from monitor.session_reader import is_session, load_session
-from monitor.snippets import REASONS, count_unreadable, iter_snippets, safe_label, verified_audio
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.base.files import atomic_write, read_regular_bytes, terminal_safe
+from monitor.session.reader import is_session, load_session
+from monitor.session.snippets import (
+    REASONS,
+    count_unreadable,
+    iter_snippets,
+    safe_label,
+    verified_audio,
+)
 
 MARKER = ".scenemon-harvest"
 LOCK = ".lock"

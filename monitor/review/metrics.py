@@ -1,6 +1,6 @@
 """Metrics of a window stream against its truth, for `report`, `score` and `tune`.
 
-The counting is `monitor.tally.Tally`'s (the engine and the UI use the same one); this
+The counting is `monitor.decisions.tally.Tally`'s (the engine and the UI use the same one); this
 module turns a finished tally into the `Metrics` record the reports print. Window accuracy
 and class-wise accuracy follow Mesaros, Heittola and Virtanen 2016 (see `tally`); the
 confusion matrix has truth in rows (scikit-learn's convention) and undecided as its last
@@ -16,7 +16,14 @@ import math
 from dataclasses import dataclass, field
 from typing import Any
 
-from monitor.tally import UNDECIDED, Tally, level_tally, tally_windows
+from monitor.decisions.tally import (
+    UNDECIDED,
+    Tally,
+    latency_median,
+    latency_worst,
+    level_tally,
+    tally_windows,
+)
 
 __all__ = ["UNDECIDED", "Metrics", "window_metrics", "metrics_of_tally", "paired",
            "mcnemar_exact"]
@@ -45,17 +52,10 @@ class Metrics:
     unfamiliar: dict[str, Any] | None = None
     model_faults: int = 0  # windows whose model output was not finite (flag "fault")
 
-    @property
-    def latency_median(self) -> float | None:
-        """Median decision latency after a truth change, in seconds; None when none was reached."""
-        import numpy as np
-
-        return float(np.median(self.latencies)) if self.latencies else None
-
-    @property
-    def latency_worst(self) -> float | None:
-        """Longest decision latency after a truth change, in seconds; None when none was reached."""
-        return float(max(self.latencies)) if self.latencies else None
+    latency_median = property(lambda self: latency_median(self.latencies),
+                              doc="Median decision latency after a truth change (s), or None.")
+    latency_worst = property(lambda self: latency_worst(self.latencies),
+                             doc="Longest decision latency after a truth change (s), or None.")
 
     def to_dict(self) -> dict[str, Any]:
         """The figures as JSON-ready data (``report --json`` and the score aggregate).

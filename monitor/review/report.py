@@ -22,12 +22,12 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor import palette as P
-from monitor.errors import ExitCode, ScenemonError
-from monitor.files import check_output, starts_with, terminal_safe
+from monitor.base import palette as P
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.base.files import check_output, starts_with, terminal_safe
 from monitor.review.metrics import UNDECIDED, Metrics, paired, window_metrics
-from monitor.session_reader import Session, load_session
-from monitor.snippets import count_unreadable, iter_snippets, verified_audio
+from monitor.session.reader import Session, load_session
+from monitor.session.snippets import count_unreadable, iter_snippets, verified_audio
 
 MAX_EMBEDDED_SNIPPETS = 200
 REPORT_MARK = "<!-- scenemon report -->"
@@ -88,12 +88,12 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
     lines = [f"session {s.dir}"]
     lines += [f"  note: {n}" for n in s.notes]
     summ = s.summary or {}
-    src = s.meta.get("source", {}) if isinstance(s.meta.get("source"), dict) else {}
+    src = s.source
     models = s.models
     names = " vs ".join(f"{'AB'[i]} {x.get('path')} ({x.get('runtime') or x.get('kind')})"
                         for i, x in enumerate(models)) if len(models) > 1 else \
         (f"model {models[0].get('path')}" if models else "model -")
-    lines.append(f"source    {src.get('kind')} {src.get('file') or src.get('device') or ''} "
+    lines.append(f"source    {src.get('origin')} {src.get('file') or src.get('device') or ''} "
                  f"({src.get('native_rate')} Hz)  {names}")
     losses = []
     for key, word in (("overruns", "overrun"), ("dropped_samples", "sample")):
@@ -282,7 +282,7 @@ def level_figure(s: Session, m: Metrics):
     """Input level in dBFS per window, silent and clipping stretches shaded, the silence
     threshold dotted (the axis always reaches below it); a matplotlib figure."""
     plt = _plt()
-    from monitor.tally import SILENT_BELOW_DBFS
+    from monitor.decisions.tally import SILENT_BELOW_DBFS
 
     t = np.array([w["t1"] for w in s.windows])
     lv = np.array([w.get("level_dbfs", np.nan) for w in s.windows], dtype=float)
@@ -405,12 +405,12 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
              "<html lang='en'><head><meta charset='utf-8'>",
              f"<title>scenemon session {e(s.dir.name)}</title><style>{CSS}</style></head><body>",
              f"<h1>Session {e(s.dir.name)}</h1>"]
-    src = s.meta.get("source", {}) if isinstance(s.meta.get("source"), dict) else {}
+    src = s.source
     models = ", ".join(f"{'AB'[i] + ' ' if len(s.models) > 1 else ''}{e(str(x.get('path')))} "
                        f"({e(str(x.get('kind')))}, {e(str(x.get('runtime', '-')))}, sha256 "
                        f"{e(str(x.get('sha256', ''))[:12])})" for i, x in enumerate(s.models))
     parts.append(f"<p class='meta'>{e(str(s.meta.get('started_at', '')))} &middot; source "
-                 f"{e(str(src.get('kind')))} {e(str(src.get('file') or src.get('device') or ''))} "
+                 f"{e(str(src.get('origin')))} {e(str(src.get('file') or src.get('device') or ''))} "
                  f"({e(str(src.get('native_rate')))} Hz) &middot; model {models}</p>")
     for n in s.notes:
         parts.append(f"<p class='note'>{e(n)}</p>")
@@ -545,7 +545,7 @@ def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     ScenemonError
         `out` exists and is not an earlier report, or is one of a session's own files.
     """
-    from monitor.files import atomic_write
+    from monitor.base.files import atomic_write
 
     check_output(out, "a report", starts_with(REPORT_MARK))
     out.parent.mkdir(parents=True, exist_ok=True)

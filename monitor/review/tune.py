@@ -19,12 +19,12 @@ from typing import Any
 
 import numpy as np
 
-from monitor.card import DecisionSettings
-from monitor.decide import decide_sequence
-from monitor.errors import ExitCode, ScenemonError
-from monitor.files import terminal_safe
-from monitor.session_reader import Session, load_session
-from monitor.tally import tally_windows
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.base.files import terminal_safe
+from monitor.decisions.decide import decide_sequence
+from monitor.decisions.tally import tally_windows
+from monitor.features.card import DecisionSettings
+from monitor.session.reader import Session, load_session
 
 DEFAULT_GRID = {
     "smoothing": ["none", "mean", "ema", "median"],
@@ -211,8 +211,8 @@ def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
 
 def apply_to_card(card_path: Path, settings: DecisionSettings) -> None:
     """Write `settings` into the card's [decision] table; every other line stays as it was."""
-    from monitor.card import load_card
-    from monitor.files import atomic_write
+    from monitor.base.files import atomic_write
+    from monitor.features.card import load_card
 
     load_card(card_path)  # refuse to edit a card that is not valid to begin with
     lines = card_path.read_text(encoding="utf-8").splitlines()

@@ -35,10 +35,16 @@ from textual.theme import Theme
 from textual.widgets import Footer, Static
 from textual.worker import Worker, WorkerState
 
-from monitor import palette as P
-from monitor.errors import ExitCode, ScenemonError, exit_code_for, one_sentence, summary_failure
-from monitor.native import screen_owns_the_terminal
-from monitor.tally import SILENT_BELOW_DBFS, Tally
+from monitor.base import palette as P
+from monitor.base.errors import (
+    ExitCode,
+    ScenemonError,
+    exit_code_for,
+    one_sentence,
+    summary_failure,
+)
+from monitor.base.native import screen_owns_the_terminal
+from monitor.decisions.tally import SILENT_BELOW_DBFS, Tally
 from monitor.ui import draw as D
 from monitor.ui.bridge import NewWindows, SessionStatus, Status, UIBridge
 from monitor.ui.screens import AskLabel, RelabelScreen, StageScreen
@@ -697,7 +703,7 @@ class MonitorApp(App):
         eng = status.engine if status else None
         name = src.get("device") or Path(str(src.get("file", ""))).name
         return D.health_text(
-            source=f"{src.get('kind', '')} {name}", rate=src.get("native_rate", "-"),
+            source=f"{src.get('origin', '')} {name}", rate=src.get("native_rate", "-"),
             ms=eng.ms if eng else None, latency_ms=eng.latency_ms if eng else None,
             cpu=self.cpu_meter(), overruns=eng.overruns if eng else 0,
             gaps=eng.gap_windows if eng else 0,
@@ -745,7 +751,7 @@ class RelabelApp(App):
 def session_starter(plan) -> Callable[[SessionHooks], dict]:
     """The function the UI's session worker runs: `assemble.run_session` with the UI's
     observer, stop event and ready callback."""
-    from monitor.assemble import run_session
+    from monitor.assembly.assemble import run_session
 
     plan = dataclasses.replace(plan, keep_features=True, live_truth=True)
 
@@ -760,8 +766,8 @@ def run_ui(plan, *, heading: str) -> int:
     """The terminal UI around one session; returns the exit code."""
     import sys
 
-    from monitor.plan import MicInput
-    from monitor.run import finish
+    from monitor.assembly.plan import MicInput
+    from monitor.assembly.run import finish
 
     timed = isinstance(plan.source, MicInput) and plan.source.seconds is not None
     with screen_owns_the_terminal():
@@ -779,7 +785,7 @@ def run_ui(plan, *, heading: str) -> int:
 
 def run_relabel(session: Path, *, interactive: bool) -> int:
     """`scenemon relabel SESSION`: the relabel view; it needs a terminal."""
-    from monitor.session_reader import load_session
+    from monitor.session.reader import load_session
 
     s = load_session(session)
     if not (s.dir / "snippets").is_dir():

@@ -14,7 +14,7 @@ from dataclasses import dataclass
 
 from textual.message import Message
 
-from monitor.engine import EngineStatus, ObserverBase, WindowResult
+from monitor.decisions.contract import EngineStatus, ObserverBase, WindowResult
 
 
 class NewWindows(Message):

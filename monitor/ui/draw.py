@@ -2,7 +2,7 @@
 
 Pure and cheap: they run on the UI thread at every redraw, so they build no widgets, read no
 files and touch no session object; the app hands them plain values. Every class is told
-apart by its letter as well as its colour (`monitor.palette`), and every picture has a form
+apart by its letter as well as its colour (`monitor.base.palette`), and every picture has a form
 without colour (glyph density), so the screens read the same under NO_COLOR. Every function
 that takes a ``width`` returns lines no longer than it: panels never wrap.
 """
@@ -17,7 +17,7 @@ import numpy as np
 from rich.style import Style
 from rich.text import Text
 
-from monitor import palette as P
+from monitor.base import palette as P
 
 SHADES = " .:-=+*#%@"  # intensity by glyph density, for NO_COLOR
 EIGHTHS = " ▏▎▍▌▋▊▉"
@@ -99,7 +99,7 @@ def class_keys(classes) -> dict[str, str]:
 
 
 def colour(classes, c) -> str:
-    """The class colour (`monitor.palette`, the same as the HTML report's)."""
+    """The class colour (`monitor.base.palette`, the same as the HTML report's)."""
     return P.class_colour(classes, c)
 
 
@@ -345,7 +345,7 @@ def picture_spec(card) -> PictureSpec:
 
     A log-mel or linear spectrogram card with a fixed scaling is drawn in dB (the scaling
     undone, the card's log turned into 10 log10 of power), its frequency axis from the
-    card's band centres (`monitor.dsp.mel_band_edges`) or FFT bins. Anything else
+    card's band centres (`monitor.features.dsp.mel_band_edges`) or FFT bins. Anything else
     (MFCC, per-window standardisation) is drawn as the model's scaled input in standard
     deviations, without a frequency axis.
     """
@@ -357,7 +357,7 @@ def picture_spec(card) -> PictureSpec:
     time_axis = card.time_axis
     centres: tuple[float, ...] | None = None
     if kind == "logmel" and fe.mel is not None:
-        from monitor.dsp import mel_band_edges
+        from monitor.features.dsp import mel_band_edges
 
         edges = mel_band_edges(mel_bands=fe.mel.mel_bands, fmin=fe.mel.fmin, fmax=fe.mel.fmax,
                                scale=fe.mel.mel_scale)
@@ -434,7 +434,7 @@ def heat_text(features, spec: PictureSpec, rows: int, cols: int, *, color: bool 
     wide: low bands at the bottom, time to the right, a kHz label on every other line.
 
     In colour each cell is two pixels (the upper half block's foreground and its
-    background), steps of `monitor.palette.HEAT`; without colour one pixel per cell, by
+    background), steps of `monitor.base.palette.HEAT`; without colour one pixel per cell, by
     glyph density (`SHADES`).
     """
     t = Text(no_wrap=True, overflow="crop")

@@ -4,7 +4,7 @@ A snippet the two models of an A/B session disagreed on (``models_disagree``) sh
 predictions, A's above B's, in a row two lines high. Only the view's own keys work here (and
 the footer shows no other): over a live session, none of the live view's keys.
 
-Every change goes through `monitor.snippets` (keep, drop, relabel), which rewrites only that
+Every change goes through `monitor.session.snippets` (keep, drop, relabel), which rewrites only that
 snippet's sidecar, atomically; the audio is never touched. Playback runs on its own short
 "playback" thread and reports back with `call_from_thread` (it may block: it is not the
 compute thread).
@@ -21,8 +21,8 @@ from textual.binding import Binding
 from textual.screen import Screen
 from textual.widgets import DataTable, Footer, Static
 
-from monitor import palette as P
-from monitor import snippets as S
+from monitor.base import palette as P
+from monitor.session import snippets as S
 from monitor.ui.screens.ask import AskLabel
 
 # (heading, width): 76 cells with the table's padding, so the state column shows at 80
@@ -179,7 +179,7 @@ class RelabelScreen(Screen):
 
             import soundfile as sf
 
-            from monitor.sources import import_sounddevice
+            from monitor.sound.sources import import_sounddevice
 
             data, why = S.verified_audio(snip, self.session_dir)
             if data is None:

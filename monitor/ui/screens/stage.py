@@ -14,7 +14,7 @@ from textual.containers import Vertical
 from textual.screen import Screen
 from textual.widgets import Footer, Static
 
-from monitor import palette as P
+from monitor.base import palette as P
 from monitor.ui import draw as D
 
 SHOW = ("A", "B", "both")

@@ -1,0 +1,75 @@
+"""What a command asks for, as plain frozen data: the plan `assemble` turns into a session.
+
+A command (or a test, or the UI) builds a `SessionPlan` from its flags once; nothing here
+loads, opens or checks a file. `assemble.run_session(plan)` does all of that, in one place.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from monitor.session.capture import CaptureSettings
+
+DEFAULT_SEGMENT_S = 3600.0
+
+
+@dataclass(frozen=True)
+class ModelPlan:
+    """One model: its file, its card (None: the card beside it) and the runtime."""
+
+    path: Path
+    card: Path | None = None
+    runtime: str = "litert"  # "litert" | "micro" for .tflite; Keras always runs in TensorFlow
+    trust: bool = False  # allow Keras Lambda layers (their code runs on loading)
+
+
+@dataclass(frozen=True)
+class FileInput:
+    """A recording replayed through the chain."""
+
+    path: Path
+    realtime: bool = True  # paced as a microphone; False: as fast as the CPU allows
+    allow_upsample: bool = False
+
+
+@dataclass(frozen=True)
+class MicInput:
+    """An input device (PortAudio)."""
+
+    device: str | None = None  # an index or part of a name; None: the preferred default
+    latency: str | float = "high"
+    blocksize: int | None = None  # None: about 50 ms; 0: PortAudio's choice
+    seconds: float | None = None  # stop after this much audio
+
+
+@dataclass(frozen=True)
+class OutputPlan:
+    """Where and what the session writes."""
+
+    dir: Path | None = None  # None: recordings/<date>-<time>-<name>
+    name: str = "session"
+    audio: bool = True
+    segment_s: float = DEFAULT_SEGMENT_S
+
+
+@dataclass(frozen=True)
+class SessionPlan:
+    """Everything one session needs (see module docstring).
+
+    ``decision`` holds only the decision settings given on the command line (the rest come
+    from each card's ``[decision]`` table); ``capture`` None turns capture off.
+    """
+
+    source: FileInput | MicInput | Any  # or a built `engine.Source` (tests, embedding programs)
+    models: tuple[ModelPlan, ...]
+    output: OutputPlan = field(default_factory=OutputPlan)
+    decision: dict[str, Any] = field(default_factory=dict)
+    capture: CaptureSettings | None = field(default_factory=CaptureSettings)
+    truth: Path | None = None
+    live_truth: bool = False  # the truth comes from key presses (the terminal UI)
+    keep_features: bool = False  # each window's features travel to the observers
+    prepare: Callable[[], None] | None = field(default=None, compare=False)
+    prepare_note: str = "preparing the input …"  # shown while `prepare` runs

@@ -1,0 +1,167 @@
+"""The observer contract: what the engine publishes and what it reads from.
+
+`WindowResult` (one window's outcome, frozen), `EngineStatus` (the snapshot after each
+batch), the `Observer` protocol with its no-op base `ObserverBase`, and the `Source`
+protocol of a producer that owns the ring the engine reads. The engine
+(``monitor.assembly.engine``) uses these; the observers (session writer, capture, printing
+observers, the UI bridge) and the sources implement them without importing the engine.
+"""
+
+from __future__ import annotations
+
+import threading
+from dataclasses import dataclass, field
+from typing import Any, Protocol
+
+import numpy as np
+
+from monitor.base.files import dumps
+from monitor.sound.ringbuffer import RingBuffer
+
+HOOKS = ("on_audio", "on_window", "on_status")  # the `Observer` protocol's methods
+
+
+@dataclass(frozen=True, slots=True)
+class WindowResult:
+    """One window's outcome for one model; immutable once published to observers.
+
+    ``probs`` and ``smoothed`` are None when the model gave a non-finite output (``fault``
+    says so); the decision then stays what it was.
+    """
+
+    i: int
+    start: int
+    t0: float
+    t1: float
+    probs: np.ndarray | None
+    smoothed: np.ndarray | None
+    top: str | None
+    decision: str | None
+    truth: str | None
+    level_dbfs: float
+    clipped: float
+    gap: int
+    ms: float
+    latency_ms: float | None = None
+    features: np.ndarray | None = None
+    novelty: float | None = None
+    unfamiliar: bool | None = None
+    fault: str | None = None
+    model: int = 0  # 0: model A, 1: model B
+    others: tuple[WindowResult, ...] = ()  # model B's result of the same window
+    _record: dict | None = field(default=None, repr=False, compare=False)
+    _line: str | None = field(default=None, repr=False, compare=False)
+
+    def record(self) -> dict[str, Any]:
+        """The `windows.jsonl` fields (the README's session directory); made once, shared by every reader (the
+        writer and a printer need the same dict; nobody changes it)."""
+        if self._record is None:
+            object.__setattr__(self, "_record", self._make_record())
+        return self._record
+
+    def json_line(self) -> str:
+        """`record()` as one JSON line with its newline (made once)."""
+        if self._line is None:
+            object.__setattr__(self, "_line", dumps(self.record()) + "\n")
+        return self._line
+
+    def _make_record(self) -> dict[str, Any]:
+        rec = {
+            "i": self.i, "t0": round(self.t0, 6), "t1": round(self.t1, 6),
+            "probs": None if self.probs is None else [round(v, 6) for v in self.probs.tolist()],
+            "smoothed": None if self.smoothed is None
+            else [round(v, 6) for v in self.smoothed.tolist()],
+            "top": self.top, "decision": self.decision, "truth": self.truth,
+            "level_dbfs": round(self.level_dbfs, 2), "clipped": round(self.clipped, 6),
+            "gap": self.gap, "ms": round(self.ms, 4),
+        }
+        if self.latency_ms is not None:
+            rec["latency_ms"] = round(self.latency_ms, 2)
+        if self.novelty is not None:
+            rec["novelty"] = round(self.novelty, 4)
+            rec["unfamiliar"] = bool(self.unfamiliar)
+        if self.fault is not None:
+            rec["fault"] = self.fault
+        return rec
+
+
+@dataclass(frozen=True, slots=True)
+class EngineStatus:
+    """What the engine publishes after each batch of windows (one snapshot, never a view
+    into its internals)."""
+
+    now_s: float  # the newest sample on the session clock, gaps included
+    windows: int
+    overruns: int
+    dropped_samples: int
+    gap_windows: int
+    ms: float | None
+    latency_ms: float | None
+    model_faults: int
+
+
+class Observer(Protocol):
+    """What the engine calls, on its own thread; no method may block."""
+
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Every chunk read from the ring, after `gap` lost samples, before it is windowed.
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
+
+    def on_window(self, result: WindowResult) -> None:
+        """One published result per window (model A's; model B's in ``result.others``).
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
+
+    def on_status(self, status: EngineStatus) -> None:
+        """One `EngineStatus` snapshot after each batch of windows.
+
+        Runs on the engine's compute thread and must not block.
+        """
+        ...
+
+
+class ObserverBase:
+    """An `Observer` whose hooks do nothing; subclasses override what they need."""
+
+    def on_audio(self, chunk: np.ndarray, gap: int) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
+        return None
+
+    def on_window(self, result: WindowResult) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
+        return None
+
+    def on_status(self, status: EngineStatus) -> None:
+        """Do nothing; the engine does not even call a hook a subclass leaves as it is."""
+        return None
+
+
+class Source(Protocol):
+    """A producer that owns the ring the engine reads (file or microphone)."""
+
+    ring: RingBuffer
+    realtime: bool
+    finished: threading.Event
+    error: BaseException | None  # an unexpected failure of the producer thread
+    failure: str | None  # a runtime failure the session survives (a lost device)
+
+    def start(self) -> None:
+        """Start producing into `ring` on the source's own thread; `Engine.run` calls it once."""
+        ...
+
+    def stop(self) -> None:
+        """Stop producing and join the producer; `Engine.run` calls it once, also after an error."""
+        ...
+
+    def describe(self) -> dict:
+        """session.json's ``source`` entry (kind, file or device, native rate, channels, pace)."""
+        ...
+
+    def stats(self) -> dict:
+        """The source's own figures, merged into summary.json at the end (may be empty)."""
+        ...

@@ -1,0 +1,114 @@
+"""`Stage`: one step of the front end, built once from the audio, front-end and scaling configs."""
+
+from __future__ import annotations
+
+from typing import Any, ClassVar, Literal, Protocol
+
+import numpy as np
+
+from monitor.features.stages.keys import AudioConfig
+
+Kind = Literal["waveform", "spectrogram", "logmel", "mfcc"]
+Part = Literal["samples", "frames", "features", "output"]
+
+
+class FrontendLike(Protocol):
+    """What a stage reads of the ``[frontend]`` table (`registry.FrontendConfig` is one).
+
+    Declared here, below the stage modules, so that a stage names the front end's type
+    without importing the registry that imports it. Each stage config is the stage's own
+    config class, or None when the kind does not run it.
+    """
+
+    kind: str
+    pcm: Any
+    preemphasis: Any
+    centre: Any
+    framing: Any
+    window: Any
+    spectrum: Any
+    mel: Any
+    log: Any
+    dct: Any
+    layout: Any
+
+    def pad(self) -> int:
+        """Samples of centre padding on each side of a window."""
+        ...
+
+    def frames(self, audio: AudioConfig) -> int:
+        """Frames per window."""
+        ...
+
+    def bands(self) -> int:
+        """Values per frame of the features."""
+        ...
+
+    def shape(self, audio: AudioConfig) -> tuple[int, ...]:
+        """One window's model input, without batch or channel axis."""
+        ...
+
+
+class ScalingLike(Protocol):
+    """What a stage reads of the ``[scaling]`` table (`scaling.ScalingConfig` is one)."""
+
+    mean: np.ndarray
+    std: np.ndarray
+    per_window: str
+
+
+class Stage:
+    """One step of the front end, built once per card (matrices and windows here).
+
+    Subclasses set `name` (their field of `FrontendConfig`), `config` (their config class),
+    `part`, and override what they do. `active` is False for a switch that is off: the
+    stage is then left out of the computation (and its C flag is 0).
+    """
+
+    name: ClassVar[str]
+    config: ClassVar[type | None]
+    part: ClassVar[Part]
+    left: ClassVar[int] = 0  # samples at a window's start that differ from the stream's
+    band_name: ClassVar[str | None] = None  # what its output values per frame are called
+
+    def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:
+        self.audio, self.fe, self.scaling = audio, fe, scaling
+        self.cfg = getattr(fe, self.name)
+
+    @property
+    def active(self) -> bool:
+        """False when the card switches the stage off (it is then skipped); True here."""
+        return True
+
+    @staticmethod
+    def width(cfg: Any, fe: FrontendLike, width: int) -> int:
+        """Values per frame after this stage, given `width` before it."""
+        return width
+
+    def run(self, x: np.ndarray) -> np.ndarray:
+        """The float32 computation."""
+        return x
+
+    def reference(self, x: np.ndarray) -> np.ndarray:
+        """The same in float64, built independently where it can be."""
+        return x
+
+    def stream(self, x: np.ndarray) -> np.ndarray:
+        """A "samples" stage applied to a stream of consecutive windows (1-D)."""
+        return self.run(x[None])[0]
+
+    def c_lines(self) -> list[str]:
+        """``#define``s and constant tables for ``frontend_constants.h``."""
+        return []
+
+    def c_tables(self) -> dict[str, int]:
+        """Bytes of each constant table it writes (flash)."""
+        return {}
+
+    def c_buffers(self) -> dict[str, int]:
+        """Bytes of each static array ``frontend.c`` keeps for it (RAM)."""
+        return {}
+
+    def ops(self, new_frames: int) -> dict[str, int]:
+        """Operations per hop when `new_frames` frames are new (the streaming C call)."""
+        return {}

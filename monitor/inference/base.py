@@ -1,0 +1,107 @@
+"""The runner contract: the `Runner` protocol and what every runner shares.
+
+`Runner` is what the engine and the tools need of a loaded model; `RunnerBase` checks a
+model's inputs and outputs against its card, keeps the batch-1 input shape and the file's
+sha256, turns the output into probabilities and warns once when a "probabilities" model
+does not give them. `softmax` and `file_sha256` are here so that every runner (LiteRT,
+Keras, the microcontroller interpreter) takes them from one place. The registry that picks
+a runner for a file is ``monitor.inference.registry``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import warnings
+from pathlib import Path
+from typing import Protocol
+
+import numpy as np
+
+from monitor.base.errors import ModelError
+from monitor.features.card import ModelCard
+
+
+def file_sha256(path: str | Path) -> str:
+    """Hex sha256 of a file, read in 1 MiB blocks (the model and audio fingerprints)."""
+    h = hashlib.sha256()
+    with open(path, "rb") as f:
+        for block in iter(lambda: f.read(1 << 20), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+class Runner(Protocol):
+    """What the engine and the tools need of a loaded model."""
+
+    model_kind: str  # "keras" | "tflite-float" | "tflite-int8" (session.json's model kind)
+    runtime: str  # "tensorflow" | "litert" | "micro"
+    path: Path
+    sha256: str
+    input_shape: tuple[int, ...]
+    n_outputs: int
+
+    def predict(self, features: np.ndarray) -> np.ndarray:
+        """Probabilities, shape ``(n, n_outputs)`` float32, for features ``(n, *card.feature_shape)``."""
+        ...
+
+
+class TensorRunner(Runner, Protocol):
+    """A runner of a ``.tflite`` model (LiteRT or the microcontroller interpreter): it also
+    gives one window's raw input and output tensors (int8 for an int8 model)."""
+
+    def raw(self, feature: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The quantised input and the raw output tensor of one window, flat."""
+        ...
+
+
+def softmax(z: np.ndarray) -> np.ndarray:
+    """Softmax over the last axis, as float32.
+
+    The row maximum is subtracted first, so large logits do not overflow.
+    """
+    z = z - np.max(z, axis=-1, keepdims=True)
+    e = np.exp(z)
+    return (e / np.sum(e, axis=-1, keepdims=True)).astype(np.float32)
+
+
+class RunnerBase:
+    """What the runners share: the model checked against its card, the batch-1 input shape,
+    the file's sha256, the output turned into probabilities and the warm-up check."""
+
+
+    @staticmethod
+    def check_io(path: Path, card: ModelCard, input_shape: tuple, n_outputs: int,
+                 n_inputs: int, n_out_tensors: int) -> bool:
+        """Refuse a model whose inputs and outputs do not fit the card (see
+        `ModelCard.check_model`); True when it wants a trailing channel axis."""
+        if n_inputs != 1 or n_out_tensors != 1:
+            raise ModelError(f"{path}: model has {n_inputs} inputs and {n_out_tensors} "
+                             f"outputs; scenemon needs exactly one of each")
+        return card.check_model(tuple(None if s in (None, -1) else int(s) for s in input_shape),
+                                int(n_outputs), path)
+
+    def __init__(self, path: Path, card: ModelCard, input_shape: tuple, n_outputs: int,
+                 n_inputs: int, n_out_tensors: int) -> None:
+        self.path = path
+        self.card = card
+        self.check_io(path, card, input_shape, n_outputs, n_inputs, n_out_tensors)
+        self.input_shape = tuple(int(s) if s is not None else -1 for s in input_shape)
+        self.n_outputs = int(n_outputs)
+        self._one_shape = (1, *card.feature_shape,
+                           *([1] if len(self.input_shape) > len(card.feature_shape) else []))
+        self.sha256 = file_sha256(path)
+
+    def _finish(self, out: np.ndarray) -> np.ndarray:
+        if self.card.output == "logits":
+            return softmax(out)
+        return out.astype(np.float32)
+
+    def check_outputs(self) -> None:
+        """Warm up once and warn when a 'probabilities' model does not output probabilities."""
+        out = self.predict(np.zeros((1, *self.card.feature_shape), np.float32))
+        if self.card.output == "probabilities":
+            s = float(out.sum())
+            if not np.all(np.isfinite(out)) or out.min() < -1e-3 or abs(s - 1.0) > 0.02:
+                warnings.warn(f"{self.path}: outputs do not look like probabilities "
+                              f"(sum {s:.3f}); set output = \"logits\" in the card if the model "
+                              f"ends without a softmax", stacklevel=2)

@@ -1,0 +1,469 @@
+"""`scenemon score ARCHIVE`: re-score a folder of recordings with one model, or two (A/B).
+
+Every input (an audio file, or a session directory standing for all its audio segments and
+its truth) is one task. A task runs the very chain of `scenemon replay --fast`
+(`assemble.replay_file`) and writes one results file per model with the `windows.jsonl`
+fields, so `report` and `tune` read it like a session. Files are processed whole: the
+smoothing and hysteresis state runs through the whole file and starts afresh in the next
+one, and results are the same bytes as a replay of the file (all fields but the per-window
+timing `ms`, which is left null so results do not depend on where they ran).
+
+Results names are the input's path below ARCHIVE with ``%`` written ``%25`` and each path
+separator ``%2F``: unique and reversible (`results_name`, `key_of_results`).
+
+The aggregate adds the files up: windows, seconds, decision changes and confusion counts
+are sums over files; accuracy is correct windows over windows with truth (window-weighted);
+the switch rate is the changes over the minutes of all files; latencies are every file's.
+
+Tasks run on local worker processes (`--workers N`: this process is the first of them, the
+others are forked where that is safe) or on a Dask distributed scheduler
+(`--cluster tcp://host:8786`); either way the results are the same bytes. A result whose
+audio, truth, models and cards are unchanged is skipped, so an interrupted run resumes.
+"""
+
+from __future__ import annotations
+
+import fnmatch
+import hashlib
+import json
+import os
+import sys
+import time
+from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from monitor.assembly.plan import ModelPlan
+from monitor.base.errors import ExitCode, ScenemonError
+from monitor.base.files import atomic_write, audio_segments, dumps
+
+AUDIO_EXT = {".wav", ".flac", ".ogg", ".aiff", ".aif"}
+RESULTS_VERSION = 2
+
+
+@dataclass(frozen=True)
+class Item:
+    """One input of the archive: its key, its audio file(s) and its truth file, if any."""
+
+    key: str  # the input's path below the archive ("/"-separated)
+    audio: tuple[str, ...]  # one file, or a session's audio segments in order
+    truth: str | None
+
+
+def results_name(key: str) -> str:
+    """A unique, reversible file name for an input key (``%`` -> ``%25``, ``/`` -> ``%2F``)."""
+    return key.replace("%", "%25").replace("/", "%2F")
+
+
+def key_of_results(name: str) -> str:
+    """The input key of a results file name without its extension; the inverse of `results_name`."""
+    return name.replace("%2F", "/").replace("%25", "%")
+
+
+def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
+    """Audio files (recursively) and session directories under `archive`."""
+    archive = Path(archive)
+    if not archive.is_dir():
+        raise ScenemonError(f"{archive}: not a folder of recordings")
+    items, sessions = [], set()
+    for sj in sorted(archive.rglob("session.json")):
+        d = sj.parent
+        sessions.add(d)
+        segs = audio_segments(d)
+        if not segs:
+            continue
+        truth = d / "truth.tsv"
+        items.append(Item(d.relative_to(archive).as_posix(), tuple(str(s) for s in segs),
+                          str(truth) if truth.is_file() else None))
+    for p in sorted(archive.rglob("*")):
+        if p.suffix.lower() not in AUDIO_EXT or not p.is_file():
+            continue
+        if any(s in p.parents for s in sessions):
+            continue
+        truth = None
+        if truth_glob:
+            hits = sorted(t for t in p.parent.glob("*") if fnmatch.fnmatch(
+                t.name, truth_glob.replace("{stem}", p.stem)))
+            truth = str(hits[0]) if hits else None
+        elif p.with_suffix(".tsv").is_file():
+            truth = str(p.with_suffix(".tsv"))
+        items.append(Item(p.relative_to(archive).as_posix(), (str(p),), truth))
+    return items
+
+
+def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
+    """Where one input's results live under `out`.
+
+    Returns
+    -------
+    results : Path
+        ``results/<name>.jsonl`` for model A (`model` 0), ``results/<name>.b.jsonl`` for B.
+    meta : Path
+        ``results/<name>.meta.json``, shared by both models.
+    """
+    name = results_name(item.key)
+    tag = "" if model == 0 else ".b"
+    return out / "results" / f"{name}{tag}.jsonl", out / "results" / f"{name}.meta.json"
+
+
+def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
+    """What makes a stored result current (compared by `up_to_date`).
+
+    The results version, the sha256 of each audio file and of the truth file, and `models`
+    (path, model and card sha256, and runtime of each).
+    """
+    from monitor.inference.base import file_sha256
+
+    return {"version": RESULTS_VERSION, "audio_sha256": [file_sha256(a) for a in item.audio],
+            "truth_sha256": file_sha256(item.truth) if item.truth else None,
+            "models": models}
+
+
+def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
+    """True when each model's results file exists and the meta file holds `fp` unchanged.
+
+    Such an input is skipped, so an interrupted run resumes where it stopped.
+
+    Parameters
+    ----------
+    out : Path
+        The output folder.
+    item : Item
+    fp : dict
+        The input's `fingerprint` now.
+    n_models : int
+        1, or 2 for an A/B run.
+    """
+    paths = [result_paths(out, item, m)[0] for m in range(n_models)]
+    meta = result_paths(out, item)[1]
+    if not (all(p.is_file() for p in paths) and meta.is_file()):
+        return False
+    try:
+        old = json.loads(meta.read_text())
+    except ValueError:
+        return False
+    return all(old.get(k) == v for k, v in fp.items())
+
+
+_LOADED: dict = {}
+
+
+def score_task(item: Item, models: tuple[ModelPlan, ...], out: str, fp: dict) -> dict:
+    """One input through the chain (runs in a worker process); writes its results."""
+    from monitor.assembly.assemble import load_model, replay_file
+    from monitor.assembly.observers import Collector
+    from monitor.session.truth import load_truth
+
+    key = models
+    if key not in _LOADED:  # each worker loads the models once
+        _LOADED[key] = [load_model(m) for m in models]
+    loaded = _LOADED[key]
+    card = loaded[0].card
+    truth = load_truth(item.truth, classes=card.classes) if item.truth else None
+    collect = Collector(timings=False)
+    t = time.perf_counter()
+    summary = replay_file(loaded, list(item.audio), truth=truth, observers=[collect])
+    seconds = time.perf_counter() - t
+    streams = [collect.records] + collect.others
+    for m, records in enumerate(streams):
+        jl, _ = result_paths(Path(out), item, m)
+        jl.parent.mkdir(parents=True, exist_ok=True)
+        atomic_write(jl, "".join(dumps(r) + "\n" for r in records).encode())
+    _, meta = result_paths(Path(out), item)
+    atomic_write(meta, dumps({**fp, "key": item.key, "audio": list(item.audio),
+                              "truth": item.truth, "windows": summary["windows"],
+                              "duration_s": summary["duration_s"]},
+                             indent=2, sort_keys=True).encode())
+    return {"key": item.key, "duration_s": summary["duration_s"], "seconds": seconds,
+            "pid": os.getpid()}
+
+
+def _progress(done: int, total: int, audio_s: float, t0: float, stream=sys.stderr) -> None:
+    rate = audio_s / 3600.0 / max(1e-9, (time.monotonic() - t0) / 60.0)
+    width = 24
+    n = int(width * done / max(1, total))
+    stream.write(f"\r  [{'#' * n}{'.' * (width - n)}] {done}/{total} files, "
+                 f"{audio_s / 3600.0:.2f} h of audio, {rate:.2f} h/min ")
+    if done == total:
+        stream.write("\n")
+    stream.flush()
+
+
+def _describe_models(models: tuple[ModelPlan, ...]) -> tuple[list, list[dict]]:
+    from monitor.assembly.assemble import card_of
+    from monitor.features.card import card_beside
+    from monitor.inference.base import file_sha256
+
+    cards, described = [], []
+    for m in models:
+        card = card_of(m)  # bad card: exit 2 before any work
+        cards.append(card)
+        text = Path(m.card or card_beside(m.path)).read_bytes()
+        described.append({"path": str(m.path), "sha256": file_sha256(m.path),
+                          "card_sha256": hashlib.sha256(text).hexdigest(),
+                          "runtime": m.runtime})
+    return cards, described
+
+
+def _worker_context():
+    """How local workers start: forked from this process where that is safe (Linux, no
+    other Python thread, TensorFlow not loaded: a worker then starts in milliseconds, with
+    numpy and LiteRT already imported), else spawned afresh (about 0.4 s each here)."""
+    import multiprocessing as mp
+    import threading
+    import warnings
+
+    if ("fork" in mp.get_all_start_methods() and sys.platform.startswith("linux")
+            and threading.active_count() == 1 and "tensorflow" not in sys.modules):
+        # Python 3.12 warns about fork whenever native threads exist (numpy's BLAS keeps
+        # idle ones; it re-creates them in the child itself)
+        warnings.filterwarnings("ignore", message=r".*use of fork\(\) may lead to deadlocks",
+                                category=DeprecationWarning)
+        return mp.get_context("fork")
+    return mp.get_context("spawn")
+
+
+def _is_aggregate(path: Path) -> bool:
+    try:
+        agg = json.loads(path.read_text(encoding="utf-8"))
+    except (OSError, UnicodeDecodeError, ValueError):
+        return False
+    return isinstance(agg, dict) and {"files", "per_file", "mode"} <= set(agg)
+
+
+def check_results_folder(out: Path) -> None:
+    """Refuse a results folder that is a file, or whose ``aggregate.json`` or ``results`` is
+    not an earlier score's (a rerun resumes in a folder of ours and writes over nothing
+    else).
+
+    Raises
+    ------
+    ScenemonError
+        With one sentence naming the path.
+    """
+    from monitor.base.files import check_output
+
+    if out.is_symlink() or (out.exists() and not out.is_dir()):
+        raise ScenemonError(f"{out}: exists and is not a folder; give a folder for the results")
+    res = out / "results"
+    if res.is_symlink() or (res.exists() and not res.is_dir()):
+        raise ScenemonError(f"{res}: exists and is not a folder of results; choose another "
+                            f"--out")
+    check_output(out / "aggregate.json", "an aggregate", _is_aggregate)
+
+
+def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
+              truth_glob: str | None = None, workers: int | None = None,
+              cluster: str | None = None, progress: bool = True) -> dict:
+    """Score every input under `archive` (see module docstring); returns the aggregate.
+
+    Parameters
+    ----------
+    archive : Path
+        A folder searched recursively for audio files and session directories.
+    models : tuple of ModelPlan, or a model path
+        One model, or two (A, B) scored on the same windows.
+    out : Path
+        The results folder: ``results/*.jsonl`` (one per input and model), ``*.meta.json``
+        and ``aggregate.json``; results already up to date there are not redone.
+    truth_glob : str, optional
+        The truth file beside each audio file, with ``{stem}`` (default ``{stem}.tsv``).
+    workers : int, optional
+        Local worker processes (default: the number of cores).
+    cluster : str, optional
+        A Dask scheduler's address; the inputs are scored there instead.
+    progress : bool
+        Draw a progress bar on stderr (only when it is a terminal).
+
+    Returns
+    -------
+    dict
+        The aggregate as written to ``aggregate.json``: per-file and overall figures (sums
+        and window-weighted means over files), ``b`` and ``a_vs_b`` for two models.
+
+    Raises
+    ------
+    ScenemonError
+        An archive without inputs, a bad card, model, truth or audio file.
+    """
+    if isinstance(models, (str, Path)):
+        models = (ModelPlan(Path(models)),)
+    models = tuple(ModelPlan(Path(m.path).resolve(), Path(m.card).resolve() if m.card else None,
+                             m.runtime, m.trust) for m in models)
+    cards, described = _describe_models(models)
+    items = discover(archive, truth_glob)
+    if not items:
+        raise ScenemonError(f"{archive}: holds no audio files or sessions")
+    check_results_folder(out)
+    out.mkdir(parents=True, exist_ok=True)
+    todo, skipped = [], 0
+    n = workers or os.cpu_count() or 1
+    # the audio hashed on n threads (hashlib lets go of the GIL): a tenth of a second an
+    # hour of audio, before any worker starts; the threads are gone before a fork
+    with ThreadPoolExecutor(max_workers=n) as hashers:
+        fps = dict(zip([it.key for it in items],
+                       hashers.map(lambda it: fingerprint(it, described), items)))
+    for it in items:
+        fp = fps[it.key]
+        if up_to_date(out, it, fp, len(models)):
+            skipped += 1
+        else:
+            todo.append(it)
+    t0 = time.monotonic()
+    state = {"done": skipped, "audio_s": 0.0}
+    if progress:
+        _progress(skipped, len(items), 0.0, t0)
+
+    def took(r: dict) -> None:  # one input's result, as it completes
+        state["done"] += 1
+        state["audio_s"] += r["duration_s"]
+        if progress:
+            _progress(state["done"], len(items), state["audio_s"], t0)
+
+    target = str(out.resolve())
+    if todo and cluster:
+        from distributed import Client
+        from distributed import as_completed as dask_completed
+
+        with Client(cluster, timeout="20s") as client:
+            for f in dask_completed([
+                    client.submit(score_task, it, models, target, fps[it.key],
+                                  key=f"score-{k}-{it.key}", pure=False, retries=2)
+                    for k, it in enumerate(todo)]):
+                took(f.result())
+    elif todo and min(n, len(todo)) == 1:  # one worker: this process, no other to start
+        for it in todo:
+            took(score_task(it, models, target, fps[it.key]))
+    elif todo:
+        # this process is one of the n workers (its imports, model and heap are warm): the
+        # other n - 1 take inputs from the front, it takes from the back those no worker has
+        # started (a future that can still be cancelled is one no worker will run)
+        with ProcessPoolExecutor(max_workers=min(n, len(todo)) - 1,
+                                 mp_context=_worker_context()) as pool:
+            futures = [(it, pool.submit(score_task, it, models, target, fps[it.key]))
+                       for it in todo]
+            reported: set[int] = set()
+
+            def report_done() -> None:
+                for k, (_, f) in enumerate(futures):
+                    if k not in reported and f.done() and not f.cancelled():
+                        reported.add(k)
+                        took(f.result())
+
+            for it, f in reversed(futures):
+                if not f.cancel():
+                    break
+                took(score_task(it, models, target, fps[it.key]))
+                report_done()
+            for f in as_completed([f for _, f in futures if not f.cancelled()]):
+                f.result()
+            report_done()
+    audio_s = state["audio_s"]
+    wall = time.monotonic() - t0
+    agg = aggregate(out, items, list(cards[0].classes), len(models),
+                    [c.hop_s for c in cards])
+    mode = "Dask cluster" if cluster else f"{n} local worker{'s' if n != 1 else ''}"
+    agg.update({"processed": len(todo), "skipped_up_to_date": skipped,
+                "wall_s": round(wall, 3), "audio_h_processed": round(audio_s / 3600.0, 4),
+                "audio_h_per_min": round(audio_s / 3600.0 / (wall / 60.0), 3) if wall > 0 else None,
+                "mode": mode})
+    atomic_write(out / "aggregate.json", dumps(agg, indent=2).encode())
+    return agg
+
+
+def _read_results(path: Path) -> list[dict]:
+    return [json.loads(x) for x in path.read_text().splitlines() if x.strip()]
+
+
+def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 1,
+              hops: list[float] | None = None) -> dict:
+    """Per-file figures and the overall sums over files (see module docstring)."""
+    from monitor.decisions.tally import Tally, tally_windows
+    from monitor.review.metrics import metrics_of_tally, paired
+    from monitor.session.truth import load_truth
+
+    per_model: list[dict[str, Any]] = []
+    windows_of_item: list[list[list[dict]]] = []
+    for it in items:
+        windows_of_item.append([_read_results(result_paths(out, it, m)[0])
+                                for m in range(n_models)])
+    for m in range(n_models):
+        hop = (hops or [None] * n_models)[m]
+        total = Tally(classes, hop_s=hop).finish()
+        per_file = []
+        for it, ws in zip(items, windows_of_item):
+            spans = load_truth(it.truth).spans if it.truth else None
+            t = tally_windows(ws[m], classes, hop_s=hop, spans=spans)
+            total.merge(t)
+            per_file.append({"file": it.key, "windows": t.windows,
+                             "duration_s": round(t.duration_s, 3), "accuracy": t.accuracy,
+                             "switches_per_min": t.switches_per_min,
+                             "latency_s_median": t.latency_median})
+        overall = metrics_of_tally(total).to_dict() if total.windows else None
+        scored = [f for f in per_file if f["accuracy"] is not None]
+        worst = sorted(scored, key=lambda f: f["accuracy"])[:10]
+        per_model.append({"per_file": per_file, "overall": overall,
+                          "worst_files": [{"file": f["file"], "accuracy": f["accuracy"]}
+                                          for f in worst]})
+    agg = {"files": len(items), **per_model[0]}
+    if n_models > 1:
+        agg["b"] = per_model[1]
+        # the pairs of every file in one test (each file's windows paired with its own)
+        pairs = [(wa, wb) for ws in windows_of_item for wa, wb in zip(ws[0], ws[1])]
+        agg["a_vs_b"] = paired([a for a, _ in pairs], [b for _, b in pairs])
+    return agg
+
+
+def aggregate_text(agg: dict) -> str:
+    """The aggregate as a few lines for the terminal.
+
+    What was scored and how fast, each model's overall figures, A against B with McNemar's
+    exact test in an A/B run, and model A's worst files.
+    """
+    def overall_line(name: str, part: dict) -> str:
+        o = part["overall"] or {}
+        acc = o.get("accuracy")
+        return f"{name:<9} " + (f"accuracy {acc:.1%} of {o.get('windows_with_truth')} windows "
+                                f"with truth, balanced {o.get('balanced_accuracy'):.1%}; "
+                                f"{o.get('decision_changes')} decision changes in "
+                                f"{o.get('duration_s', 0) / 60:.1f} min"
+                                if acc is not None else "no truth")
+
+    files = f"{agg['files']} file{'s' if agg['files'] != 1 else ''}"
+    lines = [f"{files}: {agg['processed']} scored, {agg['skipped_up_to_date']} "
+             f"up to date; {agg['audio_h_processed']:.3f} h of audio in {agg['wall_s']:.1f} s "
+             f"({agg['mode']})", overall_line("overall" if "b" not in agg else "A", agg)]
+    if "b" in agg:
+        lines.append(overall_line("B", agg["b"]))
+        ab = agg["a_vs_b"]
+        lines.append(f"A vs B    decisions agree on {ab['decision_agreement']:.1%}; B right where "
+                     f"A is wrong on {ab['only_b_right']} windows, A where B is wrong on "
+                     f"{ab['only_a_right']}; McNemar exact p = {ab['mcnemar_p']:.2g} "
+                     f"(optimistic: neighbouring windows are not independent)")
+    if agg["worst_files"]:
+        lines.append("worst files:")
+        lines += [f"  {f['accuracy']:7.1%}  {f['file']}" for f in agg["worst_files"]]
+    return "\n".join(lines) + "\n"
+
+
+def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *,
+                      truth_glob: str | None, workers: int | None, cluster: str | None) -> int:
+    """`scenemon score`: score the archive and print the aggregate; returns the exit code.
+
+    The progress bar is drawn only when stderr is a terminal.
+
+    Raises
+    ------
+    ScenemonError
+        No ``--model`` given, or bad input found by `run_score`.
+    """
+    if not models:
+        raise ScenemonError("score: give --model")
+    agg = run_score(archive, models, out, truth_glob=truth_glob, workers=workers,
+                    cluster=cluster, progress=sys.stderr.isatty())
+    sys.stdout.write(aggregate_text(agg))
+    return ExitCode.OK
+
+
+__all__ = ["discover", "run_score", "aggregate", "results_name", "key_of_results", "Item"]

@@ -1,0 +1,8 @@
+"""What a session is on disk: its files, their one owner each, and what fills them.
+
+Owns: `truth` (truth files and the live truth), `snippets` (snippet files and sidecars),
+`capture` (when a snippet is taken), `writer` (every file of a session, on its own
+thread), `reader` (`load_session`) and `repair` (``scenemon repair``).
+May import: ``monitor.base``, ``monitor.sound``, ``monitor.features``,
+``monitor.inference``, ``monitor.decisions``.
+"""

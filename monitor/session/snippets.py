@@ -1,0 +1,256 @@
+"""Captured snippets: the one owner of ``SESSION/snippets/<label>/<name>.wav`` + ``.json``.
+
+A snippet is a short WAV (16-bit PCM at the model rate) and its sidecar. The sidecar is the
+truth about the snippet: what the sound truly is (``label``, or "unknown"), what the model
+said, why it was kept (``reason``), the model and audio sha256, and the review state the
+relabel view sets (``reviewed``, ``dropped``, ``relabeled_from``). Writing, reading,
+relabeling, dropping and checking all happen here; the session writer, the relabel view,
+report, harvest and repair use these functions and parse nothing themselves.
+
+Snippet audio from a session received from someone else is not trusted: `verified_audio`
+reads it only when it is a regular file inside the session (opened without following a
+symbolic link), a real WAV, and matches its sidecar (sha256, sample rate, length).
+"""
+
+from __future__ import annotations
+
+import hashlib
+import io
+import json
+import re
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+
+from monitor.base.files import atomic_write, dumps, read_regular_bytes
+from monitor.sound.samples import to_pcm16
+
+REASONS = ("disagreement", "uncertain", "manual", "models_disagree", "unfamiliar")
+_SAFE = re.compile(r"[^A-Za-z0-9_-]+")
+MAX_LABEL = 64
+_MAX_SIDECAR_BYTES = 1 << 20
+
+
+def safe_label(label: str | None) -> str:
+    """A label as a folder name: letters, digits, ``_`` and ``-`` only, no leading dot or
+    dash, at most 64 characters; anything else becomes ``_`` ("unknown" when empty)."""
+    text = _SAFE.sub("_", str(label or "")).strip("_-.")[:MAX_LABEL]
+    return text or "unknown"
+
+
+@dataclass(frozen=True)
+class SnippetFile:
+    """One snippet on disk: its sidecar path and the sidecar's fields."""
+
+    sidecar: Path
+    meta: dict[str, Any]
+
+    @property
+    def wav(self) -> Path:
+        """The audio file beside the sidecar (same stem, ``.wav``)."""
+        return self.sidecar.with_suffix(".wav")
+
+    @property
+    def label(self) -> str:
+        """What the sound truly is: the sidecar's ``label`` (after a relabel), else "unknown"."""
+        return str(self.meta.get("label") or "unknown")
+
+    @property
+    def reason(self) -> str:
+        """Why it was kept (one of `REASONS`), as text ("None" when the sidecar names no reason)."""
+        return str(self.meta.get("reason"))
+
+    @property
+    def t0(self) -> float:
+        """Where the snippet starts, in session seconds (0.0 when the sidecar holds no number)."""
+        v = self.meta.get("t0")
+        return float(v) if isinstance(v, (int, float)) else 0.0
+
+    @property
+    def predicted_b(self) -> str | None:
+        """Model B's prediction of a ``models_disagree`` snippet (its sidecar's
+        ``model_b.predicted``, as text); None for any other snippet (only those hold it)."""
+        b = self.meta.get("model_b")
+        if self.reason != "models_disagree" or not isinstance(b, dict) \
+                or b.get("predicted") is None:
+            return None
+        return str(b["predicted"])
+
+    @property
+    def dropped(self) -> bool:
+        """True only when the sidecar's ``dropped`` is JSON true (harvest then leaves it out)."""
+        return self.meta.get("dropped") is True
+
+    @property
+    def state(self) -> str:
+        """"dropped", "kept", "relabeled", "kept, relabeled" or "" (not reviewed)."""
+        parts = []
+        if self.dropped:
+            parts.append("dropped")
+        elif self.meta.get("reviewed"):
+            parts.append("kept")
+        if self.meta.get("relabeled_from") is not None:
+            parts.append("relabeled")
+        return ", ".join(parts)
+
+
+def encode_wav(audio: np.ndarray, sample_rate: int) -> bytes:
+    """A float32 snippet as 16-bit PCM WAV bytes."""
+    import soundfile as sf
+
+    buf = io.BytesIO()
+    sf.write(buf, to_pcm16(audio), int(sample_rate), subtype="PCM_16", format="WAV")
+    return buf.getvalue()
+
+
+def write_snippet(session_dir: Path, snippet: dict[str, Any], *, session_id: str,
+                  model_sha256: str | None, sample_rate: int) -> Path:
+    """Write one captured snippet (audio first, then the sidecar, each atomically).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+    snippet : dict
+        From the capture policy: ``audio`` (float32 at the model rate), ``reason``,
+        ``label``, ``predicted``, ``t0``, ``t1``, probabilities and anything else to keep.
+    session_id, model_sha256 : str
+        Written into the sidecar.
+    sample_rate : int
+        Hz of ``audio``.
+
+    Returns
+    -------
+    Path
+        The sidecar written (its presence commits the snippet).
+    """
+    label_dir = Path(session_dir) / "snippets" / safe_label(snippet["label"])
+    label_dir.mkdir(parents=True, exist_ok=True)
+    stem = f"s{int(round(snippet['t0'] * 1000)):09d}-{snippet['reason']}"
+    name, k = stem, 1
+    while (label_dir / f"{name}.json").exists() or (label_dir / f"{name}.wav").exists():
+        k += 1
+        name = f"{stem}-{k}"
+    data = encode_wav(snippet["audio"], sample_rate)
+    side = {key: v for key, v in snippet.items() if key != "audio"}
+    side.update({
+        "session": session_id, "file": f"{name}.wav", "sample_rate": int(sample_rate),
+        "duration_s": round(len(snippet["audio"]) / sample_rate, 4),
+        "model_sha256": model_sha256, "audio_sha256": hashlib.sha256(data).hexdigest(),
+    })
+    atomic_write(label_dir / f"{name}.wav", data)  # audio first: the sidecar is the commit
+    atomic_write(label_dir / f"{name}.json", dumps(side, indent=2).encode())
+    return label_dir / f"{name}.json"
+
+
+def iter_snippets(session_dir: Path) -> list[SnippetFile]:
+    """Every readable sidecar of a session, in time order (unreadable ones are left out).
+
+    A sidecar that is not a regular file, is larger than 1 MB or is not a JSON object is
+    skipped; `count_unreadable` says how many.
+    """
+    out = []
+    root = Path(session_dir) / "snippets"
+    if not root.is_dir() or root.is_symlink():
+        return out
+    for side in sorted(root.glob("*/*.json")):
+        meta = _read_sidecar(side, session_dir)
+        if meta is not None:
+            out.append(SnippetFile(side, meta))
+    return sorted(out, key=lambda s: (s.t0, s.label, s.sidecar.name))
+
+
+def count_unreadable(session_dir: Path) -> int:
+    """Sidecars `iter_snippets` leaves out."""
+    root = Path(session_dir) / "snippets"
+    if not root.is_dir() or root.is_symlink():
+        return 0
+    return sum(1 for side in root.glob("*/*.json") if _read_sidecar(side, session_dir) is None)
+
+
+def _read_sidecar(side: Path, session_dir: Path) -> dict | None:
+    try:
+        data = read_regular_bytes(side, inside=Path(session_dir) / "snippets")
+        if len(data) > _MAX_SIDECAR_BYTES:
+            return None
+        meta = json.loads(data.decode("utf-8"))
+    except (OSError, ValueError, UnicodeDecodeError):
+        return None
+    return meta if isinstance(meta, dict) else None
+
+
+def verified_audio(snip: SnippetFile, session_dir: Path) -> tuple[bytes | None, str | None]:
+    """The snippet's WAV bytes when they can be trusted, else ``(None, why)``.
+
+    Trusted means: a regular file inside the session's ``snippets/`` folder, opened without
+    following a link; a WAV that libsndfile reads; its sha256, sample rate and length match
+    the sidecar.
+    """
+    import soundfile as sf
+
+    try:
+        data = read_regular_bytes(snip.wav, inside=Path(session_dir) / "snippets")
+    except OSError as exc:
+        return None, f"{snip.wav}: {exc.strerror or exc}; skipped"
+    digest = hashlib.sha256(data).hexdigest()
+    if snip.meta.get("audio_sha256") != digest:
+        return None, f"{snip.wav}: audio does not match its sidecar's sha256; skipped"
+    try:
+        info = sf.info(io.BytesIO(data))
+    except (sf.LibsndfileError, RuntimeError, TypeError):
+        return None, f"{snip.wav}: not a readable WAV; skipped"
+    if info.format != "WAV":
+        return None, f"{snip.wav}: not a WAV file; skipped"
+    rate = snip.meta.get("sample_rate")
+    if isinstance(rate, int) and info.samplerate != rate:
+        return None, f"{snip.wav}: sample rate {info.samplerate} Hz, its sidecar says {rate}; skipped"
+    dur = snip.meta.get("duration_s")
+    if isinstance(dur, (int, float)) and abs(info.frames / info.samplerate - dur) > 0.01:
+        return None, f"{snip.wav}: {info.frames / info.samplerate:.3f} s long, its sidecar says {dur}; skipped"
+    return data, None
+
+
+def _rewrite(snip: SnippetFile, session_dir: Path, **changes: Any) -> SnippetFile:
+    fresh = _read_sidecar(snip.sidecar, session_dir)  # never write a stale copy
+    if fresh is None:
+        raise OSError(f"{snip.sidecar}: cannot be read back")
+    fresh.update(changes)
+    atomic_write(snip.sidecar, dumps(fresh, indent=2).encode("utf-8"))
+    return SnippetFile(snip.sidecar, fresh)
+
+
+def keep(snip: SnippetFile, session_dir: Path) -> SnippetFile:
+    """Mark the snippet reviewed and kept (only its sidecar changes)."""
+    return _rewrite(snip, session_dir, reviewed=True, dropped=False)
+
+
+def drop(snip: SnippetFile, session_dir: Path) -> SnippetFile:
+    """Mark the snippet dropped: harvest leaves it out (only its sidecar changes)."""
+    return _rewrite(snip, session_dir, reviewed=True, dropped=True)
+
+
+def relabel(snip: SnippetFile, session_dir: Path, label: str,
+            classes: list[str]) -> SnippetFile:
+    """Give the snippet another label, remembering the first one in ``relabeled_from``."""
+    fresh = _read_sidecar(snip.sidecar, session_dir) or snip.meta
+    if label == fresh.get("label"):
+        return SnippetFile(snip.sidecar, fresh)
+    changes: dict[str, Any] = {"label": label, "reviewed": True, "in_classes": label in classes}
+    if fresh.get("relabeled_from") is None:
+        changes["relabeled_from"] = fresh.get("label")
+    return _rewrite(snip, session_dir, **changes)
+
+
+def verify_all(session_dir: Path) -> list[str]:
+    """Problems with the session's snippets (empty when every one is whole and trusted)."""
+    problems = []
+    for snip in iter_snippets(session_dir):
+        _, why = verified_audio(snip, session_dir)
+        if why:
+            problems.append(why)
+    n = count_unreadable(session_dir)
+    if n:
+        problems.append(f"{n} unreadable snippet sidecar(s)")
+    return problems

@@ -1,0 +1,139 @@
+"""Re-scoring an archive: local processes and a real Dask LocalCluster give the same bytes,
+a killed worker's task is done elsewhere, and an interrupted run resumes."""
+
+import json
+import os
+import signal
+import subprocess
+import sys
+import threading
+import time
+
+import numpy as np
+import pytest
+import soundfile as sf
+
+from conftest import MODELS, ROOT, run_cli
+from monitor.review.score import discover, run_score
+
+distributed = pytest.importorskip("distributed")
+
+
+@pytest.fixture(scope="module")
+def archive(tour, tmp_path_factory):
+    """Eight recordings (pieces of the tour, some with truth) and one session."""
+    d = tmp_path_factory.mktemp("archive")
+    x, sr = sf.read(str(tour[0]), dtype="int16")
+    truth = tour[1].read_text()
+    for k in range(8):
+        sub = d / ("site-a" if k < 4 else "site-b")
+        sub.mkdir(exist_ok=True)
+        piece = np.roll(x, -k * 7 * sr)[: (120 + 10 * k) * sr] if k % 2 else x
+        sf.write(str(sub / f"walk{k}.wav"), piece, sr, subtype="PCM_16")
+        if k % 2 == 0:
+            (sub / f"walk{k}.tsv").write_text(truth)
+    r = run_cli("replay", d / "site-a" / "walk0.wav", "--model", MODELS / "demo.tflite",
+                "--truth", tour[1], "--fast", "--out", d / "sessions" / "s1", "--capture", "none")
+    assert r.returncode == 0, r.stderr
+    return d
+
+
+def results(out):
+    return {p.name: p.read_bytes() for p in sorted((out / "results").glob("*"))}
+
+
+@pytest.fixture(scope="module")
+def local_run(archive, tmp_path_factory):
+    out = tmp_path_factory.mktemp("local")
+    agg = run_score(archive, str(MODELS / "demo.tflite"), out, workers=2, progress=False)
+    return out, agg
+
+
+def test_discovery(archive):
+    items = discover(archive)
+    assert len(items) == 9
+    sess = [i for i in items if i.key == "sessions/s1"]
+    assert sess and sess[0].truth.endswith("truth.tsv")
+    assert sum(1 for i in items if i.truth) == 5
+
+
+def test_local_results_match_replay_and_aggregate(local_run, archive, tmp_path):
+    out, agg = local_run
+    assert agg["processed"] == 9 and agg["files"] == 9
+    r = run_cli("replay", archive / "site-a" / "walk0.wav", "--model", MODELS / "demo.tflite",
+                "--truth", archive / "site-a" / "walk0.tsv", "--fast", "--out", tmp_path / "r",
+                "--capture", "none")
+    assert r.returncode == 0
+    replay = (tmp_path / "r" / "windows.jsonl").read_bytes()
+    scored = [json.loads(x) for x in (out / "results" / "site-a%2Fwalk0.wav.jsonl").read_text()
+              .splitlines()]
+    replayed = [json.loads(x) for x in replay.decode().splitlines()]
+    assert [{**w, "ms": None} for w in replayed] == scored  # timing aside, the same records
+    assert agg["overall"]["accuracy"] > 0.9 and len(agg["worst_files"]) == 5
+    # report and tune read a results file like a session's windows
+    from monitor.review.metrics import window_metrics
+    from monitor.session.reader import read_windows
+
+    wins, skipped = read_windows(out / "results" / "site-a%2Fwalk0.wav.jsonl")
+    assert skipped == 0
+    assert window_metrics(wins, ["quiet_room", "voices", "traffic", "machinery"]).windows == len(wins)
+
+
+@pytest.mark.slow
+def test_cluster_gives_the_same_bytes(local_run, archive, tmp_path):
+    out_local, _ = local_run
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        agg = run_score(archive, str(MODELS / "demo.tflite"), tmp_path / "c",
+                        cluster=cluster.scheduler_address, progress=False)
+    assert agg["processed"] == 9
+    assert results(tmp_path / "c") == results(out_local)
+
+
+@pytest.mark.slow
+def test_killed_worker_task_is_done_elsewhere(local_run, archive, tmp_path):
+    out_local, _ = local_run
+    out = tmp_path / "k"
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  host="127.0.0.1", dashboard_address=None) as cluster:
+        with distributed.Client(cluster.scheduler_address) as client:
+            pids = list(client.run(os.getpid).values())
+        box = {}
+        t = threading.Thread(target=lambda: box.setdefault("agg", run_score(
+            archive, str(MODELS / "demo.tflite"), out, cluster=cluster.scheduler_address,
+            progress=False)))
+        t.start()
+        deadline = time.time() + 60
+        while time.time() < deadline and not list((out / "results").glob("*.jsonl")):
+            time.sleep(0.01)
+        os.kill(pids[0], signal.SIGKILL)  # a worker dies mid-run
+        t.join(timeout=180)
+    assert "agg" in box and box["agg"]["processed"] == 9
+    assert results(out) == results(out_local)
+
+
+@pytest.mark.slow
+def test_interrupted_run_resumes(local_run, archive, tmp_path):
+    out_local, _ = local_run
+    out = tmp_path / "r"
+    p = subprocess.Popen([sys.executable, "-m", "monitor", "score", str(archive), "--model",
+                          str(MODELS / "demo.tflite"), "--out", str(out), "--workers", "1"],
+                         cwd=ROOT, stdout=subprocess.PIPE, stderr=subprocess.PIPE,
+                         start_new_session=True)
+    deadline = time.time() + 120
+    while time.time() < deadline and len(list((out / "results").glob("*.meta.json"))) < 3:
+        time.sleep(0.01)
+    os.killpg(p.pid, signal.SIGKILL)
+    p.wait()
+    done_before = {q.name for q in (out / "results").glob("*.meta.json")}
+    assert 3 <= len(done_before) < 9
+    mtimes = {q.name: q.stat().st_mtime_ns for q in (out / "results").glob("*.meta.json")}
+    r = run_cli("score", archive, "--model", MODELS / "demo.tflite", "--out", out,
+                "--workers", "1")
+    assert r.returncode == 0, r.stderr
+    agg = json.loads((out / "aggregate.json").read_text())
+    assert agg["skipped_up_to_date"] == len(done_before)
+    assert agg["processed"] == 9 - len(done_before)
+    for name, m in mtimes.items():  # what was done is not done again
+        assert (out / "results" / name).stat().st_mtime_ns == m
+    assert results(out) == results(out_local)
