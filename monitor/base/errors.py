@@ -6,7 +6,12 @@ the command line can print it as one sentence and exit with code 2.
 
 from __future__ import annotations
 
+import errno
 from enum import IntEnum
+
+# an output the user named cannot be written: a sentence and exit code 2, as for a bad path
+OUTPUT_ERRNOS = frozenset({errno.EROFS, errno.EACCES, errno.EPERM, errno.ENOSPC, errno.EDQUOT,
+                           errno.ENAMETOOLONG, errno.ENOTDIR, errno.EISDIR, errno.ELOOP})
 
 
 class ExitCode(IntEnum):
@@ -61,11 +66,15 @@ def exit_code_for(exc: BaseException | None) -> ExitCode:
     Returns
     -------
     ExitCode
-        BAD_INPUT for a `ScenemonError`, INTERRUPTED for Ctrl-C, FAILURE for anything else.
+        BAD_INPUT for a `ScenemonError` and for a file that cannot be written there (a
+        read-only or full file system, no permission, a name too long), INTERRUPTED for
+        Ctrl-C, FAILURE for anything else.
     """
     if exc is None:
         return ExitCode.OK
     if isinstance(exc, ScenemonError):
+        return ExitCode.BAD_INPUT
+    if isinstance(exc, OSError) and exc.errno in OUTPUT_ERRNOS:
         return ExitCode.BAD_INPUT
     if isinstance(exc, KeyboardInterrupt):
         return ExitCode.INTERRUPTED
@@ -76,6 +85,9 @@ def one_sentence(exc: BaseException) -> str:
     """The line the command line prints for `exc` (after ``scenemon: ``)."""
     if isinstance(exc, ScenemonError):
         return str(exc)
+    if isinstance(exc, OSError) and exc.errno in OUTPUT_ERRNOS:
+        where = exc.filename if exc.filename is not None else "an output file"
+        return f"{where}: cannot be written ({exc.strerror or exc})"
     return f"{type(exc).__name__}: {exc} (run with --debug for details)"
 
 

@@ -34,11 +34,18 @@ def atomic_write(path: Path, data: bytes) -> None:
     """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp")
-    with open(tmp, "wb") as f:
-        f.write(data)
-        f.flush()
-        os.fsync(f.fileno())
-    os.replace(tmp, path)
+    try:
+        with open(tmp, "wb") as f:
+            f.write(data)
+            f.flush()
+            os.fsync(f.fileno())
+        os.replace(tmp, path)
+    except BaseException as exc:  # a full disk, a kill: no half-written temporary file is left
+        with contextlib.suppress(OSError):
+            tmp.unlink()
+        if isinstance(exc, OSError) and exc.filename is None:  # say which file it was
+            raise OSError(exc.errno, exc.strerror, str(path)) from exc
+        raise
     fsync_dir(path.parent)
 
 
