@@ -261,28 +261,103 @@ def is_profile_file(path: Path) -> bool:
         return False
 
 
+MAX_CONDITION = 1e12  # a covariance worse conditioned than this cannot be inverted usefully
+MIN_VARIANCE = 1e-12  # below it the windows a profile was made from did not vary
+MAX_MEAN = 1e12  # scaled features' summaries far beyond this are not features
+
+
+def _scalar(z: Any, name: str, path: Path, kind: type) -> Any:
+    """One scalar of a profile file, as `kind`; ScenemonError naming the array otherwise."""
+    a = np.asarray(z[name])
+    if a.shape != () or a.dtype.kind not in "fiu" or not np.isfinite(a):
+        raise ScenemonError(f"{path}: {name} must be one finite number, not an array of "
+                            f"shape {a.shape} ({a.dtype})")
+    return kind(a)
+
+
 def load_profile(path: Path, card: ModelCard) -> Profile:
-    """Read a profile (no pickle) and check it against the card."""
+    """Read a profile (no pickle) and check it against the card.
+
+    Every array's shape and type is checked before it is used, and each covariance must be
+    positive definite and invertible in float64 (condition number at most 1e12, as a
+    Ledoit-Wolf shrunk estimate always is): a profile made by ``scenemon profile`` passes,
+    a damaged or hand-made one is refused with the reason.
+
+    Parameters
+    ----------
+    path : Path
+        The ``.profile.npz`` file.
+    card : ModelCard
+        The card of the model the profile belongs to.
+
+    Returns
+    -------
+    Profile
+        The profile, ready to measure windows.
+
+    Raises
+    ------
+    ScenemonError
+        The file cannot be read as a profile, an array has the wrong shape or type, a value
+        is not finite, or a covariance cannot be inverted.
+    """
     try:
         with np.load(path, allow_pickle=False) as z:
-            means = np.asarray(z["means"], np.float64)
-            covs = np.asarray(z["covariances"], np.float64)
-            threshold, quantile = float(z["threshold"]), float(z["quantile"])
-            axis, windows = int(z["time_axis"]), int(z["windows"])
-            shrink = np.asarray(z["shrinkage"], np.float64) if "shrinkage" in z else None
-    except (OSError, KeyError, ValueError) as exc:
+            arrays = {k: z[k] for k in z.files}
+    except (OSError, ValueError, EOFError) as exc:
         raise ScenemonError(f"{path}: not a readable novelty profile ({exc})") from None
+    missing = [k for k in ("means", "covariances", "threshold", "quantile", "time_axis",
+                           "windows") if k not in arrays]
+    if missing:
+        raise ScenemonError(f"{path}: not a novelty profile (no {', '.join(missing)})")
+    threshold = _scalar(arrays, "threshold", path, float)
+    quantile = _scalar(arrays, "quantile", path, float)
+    axis = _scalar(arrays, "time_axis", path, float)
+    windows = _scalar(arrays, "windows", path, float)
+    if axis != time_axis_of(card):
+        raise ScenemonError(f"{path}: was made for features with their frames on axis "
+                            f"{axis:g}, but the card {card.name} puts them on axis "
+                            f"{time_axis_of(card)}; make it again with scenemon profile")
+    if not (threshold > 0 and 0 < quantile <= 1 and windows >= 0):
+        raise ScenemonError(f"{path}: threshold {threshold:g}, quantile {quantile:g} and "
+                            f"windows {windows:g} are not a profile's (threshold > 0, "
+                            f"quantile in (0, 1])")
     d = 2 * card.bands
-    if means.ndim != 2 or means.shape[1] != d or covs.shape != (means.shape[0], d, d):
-        raise ScenemonError(f"{path}: holds {means.shape[-1]} numbers per window but the card "
-                            f"{card.name} gives {d}; make it again with scenemon profile")
-    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs)) and np.isfinite(threshold)):
+    means, covs = arrays["means"], arrays["covariances"]
+    if means.dtype.kind not in "fiu" or covs.dtype.kind not in "fiu":
+        raise ScenemonError(f"{path}: means and covariances must be arrays of numbers")
+    if means.ndim != 2 or means.shape[1] != d or means.shape[0] < 1:
+        raise ScenemonError(f"{path}: means has shape {means.shape}, but the card "
+                            f"{card.name} gives {d} numbers per window (classes, {d}); make "
+                            f"it again with scenemon profile")
+    if covs.shape != (means.shape[0], d, d):
+        raise ScenemonError(f"{path}: covariances has shape {covs.shape}, not "
+                            f"{(means.shape[0], d, d)} for means of shape {means.shape}")
+    means, covs = means.astype(np.float64), covs.astype(np.float64)
+    if not (np.all(np.isfinite(means)) and np.all(np.isfinite(covs))):
         raise ScenemonError(f"{path}: holds non-finite values")
-    try:
-        return Profile(means, covs, threshold, quantile, axis, windows, card.decision.confirm,
-                       Path(path), shrink)
-    except np.linalg.LinAlgError:
-        raise ScenemonError(f"{path}: a covariance cannot be inverted") from None
+    if np.abs(means).max() > MAX_MEAN:
+        raise ScenemonError(f"{path}: its means reach {np.abs(means).max():.3g}, far beyond "
+                            f"any scaled feature; make it again with scenemon profile")
+    shrink = arrays.get("shrinkage")
+    if shrink is not None:
+        if shrink.dtype.kind not in "fiu" or shrink.shape != (means.shape[0],):
+            raise ScenemonError(f"{path}: shrinkage has shape {shrink.shape}, not "
+                                f"({means.shape[0]},)")
+        shrink = shrink.astype(np.float64)
+    for k, c in enumerate(covs):
+        if not np.allclose(c, c.T, rtol=1e-6, atol=1e-12 * max(1.0, float(np.abs(c).max()))):
+            raise ScenemonError(f"{path}: covariance {k} is not symmetric")
+        ev = np.linalg.eigvalsh(c)
+        if not (ev[0] >= MIN_VARIANCE and ev[-1] / ev[0] <= MAX_CONDITION):
+            raise ScenemonError(f"{path}: covariance {k} cannot be inverted (its smallest "
+                                f"eigenvalue is {ev[0]:.3g}: it must be at least "
+                                f"{MIN_VARIANCE:g} and the condition number at most "
+                                f"{MAX_CONDITION:g}); "
+                                f"make the profile again with scenemon profile, which "
+                                f"regularises it")
+    return Profile(means, covs, threshold, quantile, int(axis), int(windows),
+                   card.decision.confirm, Path(path), shrink)
 
 
 def profile_beside(model_path: str | Path, card: ModelCard) -> Profile | None:
