@@ -14,6 +14,7 @@ rides along in ``result.others``.
 
 from __future__ import annotations
 
+import math
 import threading
 import time
 from collections import deque
@@ -42,6 +43,7 @@ from monitor.sound.windower import Window, Windower
 
 STAT_KEEP = 20000  # per-window timings kept for percentiles (memory stays flat)
 MODEL_FAULT = "non-finite model output"
+NOVELTY_FAULT = "non-finite novelty"
 
 
 @dataclass
@@ -56,6 +58,7 @@ class _Lane:
     tally: Tally
     profile: Any = None  # a novelty profile (monitor.inference.novelty), or None
     faults: int = 0
+    novelty_faults: int = 0  # windows whose novelty was not finite (novelty null, flagged)
 
 
 
@@ -215,6 +218,9 @@ class Engine:
             summary["model_fault"] = (f"{faults} window(s) had a non-finite model output (NaN "
                                       f"or infinity); they are recorded with null "
                                       f"probabilities and the flag \"fault\"")
+        novelty_faults = sum(ln.novelty_faults for ln in self.lanes)
+        if novelty_faults:
+            summary["novelty_faults"] = novelty_faults
         if len(self.lanes) > 1:
             summary["b"] = lane_summary(self.lanes[1])
         return summary
@@ -295,6 +301,10 @@ class Engine:
                 novelty: float | None) -> WindowResult:
         classes = lane.card.classes
         unfamiliar = None
+        fault = None
+        if novelty is not None and not math.isfinite(novelty):  # flagged, never left out
+            lane.novelty_faults += 1
+            novelty, fault = None, NOVELTY_FAULT
         if novelty is not None:
             unfamiliar = lane.profile.count(novelty)
         if top is None:  # a non-finite output: a model fault
@@ -316,7 +326,7 @@ class Engine:
             top=classes[top], decision=decision, truth=truth,
             level_dbfs=level, clipped=clipped, gap=w.gap, ms=ms, latency_ms=latency,
             features=f if self.keep_features else None, novelty=novelty,
-            unfamiliar=unfamiliar, model=m)
+            unfamiliar=unfamiliar, fault=fault, model=m)
 
 
 def _with_others(res: WindowResult, others: tuple[WindowResult, ...]) -> WindowResult:

@@ -130,6 +130,10 @@ def summary_text(summary: dict) -> str:
         lines.append(f"warning   the input was silent (below -70 dBFS) for "
                      f"{summary.get('silent_s', 0):.1f} s in {stretches}, the first "
                      f"{a:.1f}-{z:.1f} s: a muted or disconnected input?")
+    if summary.get("novelty_faults"):
+        lines.append(f"warning   {_plural(summary['novelty_faults'], 'window')} had a novelty "
+                     f"that is not finite (recorded as null, flagged \"fault\"): is the "
+                     f"profile made for this card?")
     clipping = summary.get("clipping_stretches") or []
     if clipping:
         lines.append(f"warning   the input clipped in {summary.get('clipped_windows', 0)} "

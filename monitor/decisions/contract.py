@@ -9,6 +9,7 @@ observers, the UI bridge) and the sources implement them without importing the e
 
 from __future__ import annotations
 
+import math
 import threading
 from dataclasses import dataclass, field
 from typing import Any, Protocol
@@ -19,6 +20,18 @@ from monitor.base.files import dumps
 from monitor.sound.ringbuffer import RingBuffer
 
 HOOKS = ("on_audio", "on_window", "on_status")  # the `Observer` protocol's methods
+NON_FINITE = "non-finite figure"  # the fault of a line whose figure JSON cannot carry
+
+
+def _finite_only(value: Any) -> Any:
+    """`value` with every float that is not finite replaced by None (JSON's null)."""
+    if isinstance(value, float):
+        return value if math.isfinite(value) else None
+    if isinstance(value, dict):
+        return {k: _finite_only(v) for k, v in value.items()}
+    if isinstance(value, (list, tuple)):
+        return [_finite_only(v) for v in value]
+    return value
 
 
 @dataclass(frozen=True, slots=True)
@@ -62,7 +75,13 @@ class WindowResult:
     def json_line(self) -> str:
         """`record()` as one JSON line with its newline (made once)."""
         if self._line is None:
-            object.__setattr__(self, "_line", dumps(self.record()) + "\n")
+            try:
+                line = dumps(self.record())
+            except ValueError:  # NaN or infinity: written as null and flagged, never left out
+                rec = _finite_only(self.record())
+                rec.setdefault("fault", NON_FINITE)
+                line = dumps(rec)
+            object.__setattr__(self, "_line", line + "\n")
         return self._line
 
     def _make_record(self) -> dict[str, Any]:

@@ -51,6 +51,7 @@ class Metrics:
     levels: dict[str, Any] = field(default_factory=dict)
     unfamiliar: dict[str, Any] | None = None
     model_faults: int = 0  # windows whose model output was not finite (flag "fault")
+    figure_faults: int = 0  # windows with another non-finite figure (novelty): null, flagged
 
     latency_median = property(lambda self: latency_median(self.latencies),
                               doc="Median decision latency after a truth change (s), or None.")
@@ -75,6 +76,7 @@ class Metrics:
             "latency_s_median": self.latency_median, "latency_s_worst": self.latency_worst,
             "latency_never_reached": self.never_reached, "levels": self.levels,
             "unfamiliar": self.unfamiliar, "model_faults": self.model_faults,
+            "figure_faults": self.figure_faults,
         }
 
 
@@ -108,7 +110,9 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
     tops = [w.get("top") for w in windows]
     m.raw_changes = sum(1 for a, b in zip(tops, tops[1:]) if a != b)
     m.levels = level_tally(windows).summary()
-    m.model_faults = sum(1 for w in windows if w.get("fault"))
+    # a model fault leaves the probabilities null; other faults (a non-finite novelty) do not
+    m.model_faults = sum(1 for w in windows if w.get("fault") and w.get("probs") is None)
+    m.figure_faults = sum(1 for w in windows if w.get("fault") and w.get("probs") is not None)
     if any("novelty" in w for w in windows):
         flagged = [w for w in windows if w.get("unfamiliar")]
         per = {}

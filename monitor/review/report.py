@@ -118,6 +118,10 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
             lines.append(f"faults    {who}{_plural(mm.model_faults, 'window')} with a model "
                          f"output that is not finite (NaN or infinite): recorded with null "
                          f"probabilities, the decision held")
+        if mm.figure_faults:
+            who = "" if len(ms) == 1 else f"{'AB'[k]}: "
+            lines.append(f"faults    {who}{_plural(mm.figure_faults, 'window')} with another "
+                         f"figure that is not finite (a novelty): recorded as null, flagged")
     for k, mm in enumerate(ms):
         who = "" if len(ms) == 1 else f"{'AB'[k]}: "
         lines.append(f"switches  {who}{_switch_line(mm)}")

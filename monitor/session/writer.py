@@ -42,7 +42,18 @@ WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
 
 
 def line_of(result: Any) -> str:
-    """The windows.jsonl line of a result (the writer's serialisation, on its thread)."""
+    """The windows.jsonl line of a result (the writer's serialisation, on its thread).
+
+    Parameters
+    ----------
+    result : WindowResult
+        One model's result of one window.
+
+    Returns
+    -------
+    str
+        One JSON line with its newline (`WindowResult.json_line`).
+    """
     return result.json_line()
 
 
