@@ -157,14 +157,21 @@ def session_dir(out: OutputPlan) -> Path:
 
 def invocation() -> str:
     """How the user can run scenemon again from here: the bare name when it is on PATH, else
-    the program's path as it was typed (``.venv/bin/scenemon``, or an absolute path)."""
+    the program's path as it was typed (``.venv/bin/scenemon``, or an absolute path), with
+    ``..`` parts folded into a normalised absolute path (a venv outside the checkout).
+
+    Returns
+    -------
+    str
+        The command a person can type, without its arguments.
+    """
     typed = sys.argv[0] if sys.argv and sys.argv[0] else None
     exe = Path(typed) if typed else None
     found = shutil.which("scenemon")
     if exe is not None and exe.name == "scenemon":
         if found and Path(found).resolve() == exe.resolve():
             return "scenemon"
-        return typed
+        return typed if ".." not in exe.parts else os.path.normpath(os.path.abspath(typed))
     if found:
         return "scenemon"
     # `python -m monitor`: this interpreter, by its bare name only when that name finds it
@@ -175,7 +182,7 @@ def invocation() -> str:
     if on_path and os.path.abspath(on_path) == os.path.abspath(py):
         return f"{py.name} -m monitor"
     rel = os.path.relpath(py)
-    return f"{rel if not rel.startswith('..') else py} -m monitor"
+    return f"{rel if not rel.startswith('..') else os.path.normpath(py)} -m monitor"
 
 
 # --- one session -----------------------------------------------------------------------------

@@ -27,6 +27,8 @@ def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
                        cwd=ROOT, env=env, capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
     rel = os.path.relpath(exe, ROOT)
+    if rel.startswith(".."):  # a venv outside the checkout: shown normalised, no ".." parts
+        rel = os.path.normpath(exe)
     assert f"{rel} report {tmp_path / 's'}" in r.stderr  # a command that works as printed
     # run by its absolute path from elsewhere: printed the way it was typed, not as ../../..
     r = subprocess.run([str(exe), "replay", str(wav), "--model", str(MODELS / "demo.tflite"),
@@ -47,7 +49,8 @@ def test_the_summary_says_how_to_run_scenemon_again(tmp_path):
                         str(MODELS / "demo.tflite"), "--fast", "--out", str(tmp_path / "s3")],
                        cwd=ROOT, env=env3, capture_output=True, text=True, timeout=120)
     assert r.returncode == 0, r.stderr
-    assert f" {py} -m monitor report {tmp_path / 's3'}" in r.stderr, r.stderr
+    shown = py if not py.startswith("..") else os.path.normpath(sys.executable)
+    assert f" {shown} -m monitor report {tmp_path / 's3'}" in r.stderr, r.stderr
 
 
 def test_piping_into_head_ends_quietly_and_closes_the_session(tour, tmp_path):
