@@ -29,6 +29,13 @@ class LogConfig:
         """CardProblem when log_offset and log_floor are both 0, or top_db or db_ref "max"
         is given without log = "db".
         """
+        tiny = float(np.finfo(np.float32).tiny)  # IEEE 754 binary32's smallest normal
+        for name in ("log_offset", "log_floor"):
+            v = getattr(self, name)
+            if 0 < v < tiny:
+                raise CardProblem(f"frontend.{name}={v!r} is below the smallest float32 value "
+                                  f"({tiny:.4g}): the front end computes in float32, where it "
+                                  f"is 0 and silence gives log(0); give {tiny:.2g} or more")
         if self.log_offset == 0 and self.log_floor == 0:
             raise CardProblem("frontend.log_offset=0.0 needs a log_floor > 0 (silence would "
                               "give log(0)); give log_offset > 0 or log_floor > 0")
