@@ -15,7 +15,6 @@ import itertools
 import re
 from dataclasses import dataclass
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 
@@ -210,42 +209,56 @@ def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
 
 
 def apply_to_card(card_path: Path, settings: DecisionSettings) -> None:
-    """Write `settings` into the card's [decision] table; every other line stays as it was."""
+    """Write `settings` into the card's [decision] table; everything else stays as it was.
+
+    The card is edited with tomlkit, a style-preserving TOML library: the tuned keys get
+    their new values, and every other byte (comments, order, spacing, quoted and dotted
+    keys, inline tables, a header written ``[ decision ]``, CRLF line endings) is kept.
+
+    Parameters
+    ----------
+    card_path : Path
+        The model card to edit in place (atomically).
+    settings : DecisionSettings
+        The decision settings to write.
+
+    Raises
+    ------
+    CardError
+        The card is not valid before the edit, or [decision] is not a table.
+    """
+    import tomlkit
+    from tomlkit.exceptions import TOMLKitError
+
+    from monitor.base.errors import CardError
     from monitor.base.files import atomic_write
     from monitor.features.card import load_card
 
     load_card(card_path)  # refuse to edit a card that is not valid to begin with
-    lines = card_path.read_text(encoding="utf-8").splitlines()
-    values = {k: _toml(v) for k, v in settings.to_dict().items()}
-    start = next((i for i, x in enumerate(lines) if x.strip().split("#")[0].strip() == "[decision]"),
-                 None)
-    if start is None:
-        lines += ["", "[decision]"] + [f"{k} = {v}" for k, v in values.items()]
+    raw = card_path.read_bytes().decode("utf-8")
+    try:
+        doc = tomlkit.parse(raw)
+    except TOMLKitError as exc:
+        raise CardError(f"{card_path}: cannot be edited as TOML ({exc})") from None
+    values = settings.to_dict()
+    table = doc.get("decision")
+    if table is None:
+        table = tomlkit.table()
+        for k, v in values.items():
+            table[k] = v
+        doc["decision"] = table
+    elif not isinstance(table, dict):
+        raise CardError(f"{card_path}: decision is not a table")
     else:
-        end = next((i for i in range(start + 1, len(lines))
-                    if lines[i].strip().startswith("[")), len(lines))
-        done = set()
-        for i in range(start + 1, end):
-            m = re.match(r"^(\s*)([A-Za-z_]+)(\s*=\s*)([^#]*?)(\s*#.*)?$", lines[i])
-            if m and m.group(2) in values:
-                lines[i] = f"{m.group(1)}{m.group(2)}{m.group(3)}{values[m.group(2)]}" \
-                           f"{m.group(5) or ''}"
-                done.add(m.group(2))
-        missing = [f"{k} = {v}" for k, v in values.items() if k not in done]
-        while end > start + 1 and not lines[end - 1].strip():
-            end -= 1
-        lines[end:end] = missing
-    text = "\n".join(lines) + "\n"
+        for k, v in values.items():
+            if k in table and table[k] == v and type(table[k].unwrap()) is type(v):
+                continue  # unchanged: its spelling stays too
+            table[k] = v
+    text = tomlkit.dumps(doc)
+    if "\r\n" in raw:  # what tomlkit adds follows the card's own line endings
+        text = text.replace("\r\n", "\n").replace("\n", "\r\n")
     atomic_write(card_path, text.encode("utf-8"))
     load_card(card_path)
-
-
-def _toml(v: Any) -> str:
-    if isinstance(v, str):
-        return f'"{v}"'
-    if isinstance(v, float):
-        return repr(v)
-    return str(v)
 
 
 def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None = None,
