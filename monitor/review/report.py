@@ -36,8 +36,8 @@ REPORT_MARK = "<!-- scenemon report -->"
 def model_metrics(s: Session) -> list[Metrics]:
     """Metrics of each model of the session (A first)."""
     spans = s.truth.spans if s.truth else None
-    return [window_metrics(w, s.classes, hop_s=s.hop_s, truth_spans=spans)
-            for w in s.model_windows()]
+    return [window_metrics(w, s.classes_of(k), hop_s=s.hop_s, truth_spans=spans)
+            for k, w in enumerate(s.model_windows())]
 
 
 def _fmt(v, spec=".3f", none="-"):

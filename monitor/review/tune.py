@@ -116,8 +116,9 @@ def evaluate(sessions: list[Session], settings: DecisionSettings, model: int = 0
         probs = np.array([x["probs"] for x in w], dtype=np.float64)
         t1 = np.array([x["t1"] for x in w])
         _, dec = decide_sequence(probs, t1, settings)
-        labels = [None if d is None else s.classes[d] for d in dec]
-        t = tally_windows(w, s.classes, hop_s=s.hop_s,
+        classes = s.classes_of(model)
+        labels = [None if d is None else classes[d] for d in dec]
+        t = tally_windows(w, classes, hop_s=s.hop_s,
                           spans=s.truth.spans if s.truth else None, decisions=labels)
         correct += t.correct
         scored += t.with_truth
@@ -276,7 +277,7 @@ def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None =
             raise ScenemonError(f"{s.dir}: not an A/B session (no windows.b.jsonl)")
         for n in s.notes:
             sys.stderr.write(terminal_safe(f"scenemon: warning: {s.dir}: {n}\n"))
-    if len({tuple(s.classes) for s in sessions}) > 1:
+    if len({tuple(s.classes_of(model)) for s in sessions}) > 1:
         raise ScenemonError(f"{sessions[1].dir}: its classes differ from {sessions[0].dir}'s")
     t = time.perf_counter()
     rows = sweep(sessions, parse_grid(grid), model)

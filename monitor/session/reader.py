@@ -74,6 +74,29 @@ class Session:
         one = self.meta.get("model")
         return [one] if isinstance(one, dict) else []
 
+    def classes_of(self, model: int) -> list[str]:
+        """The classes of model `model` (0: A, 1: B) in its output order.
+
+        Model B's come from its own entry in session.json (``models[1].classes``): its card
+        may name other classes, or the same in another order, than model A's.
+
+        Parameters
+        ----------
+        model : int
+            0 for model A, 1 for model B.
+
+        Returns
+        -------
+        list of str
+            The class names; model A's when the session does not say B's.
+        """
+        if model:
+            entry = self.models[model] if len(self.models) > model else {}
+            classes = entry.get("classes")
+            if isinstance(classes, list) and classes and all(isinstance(c, str) for c in classes):
+                return list(classes)
+        return self.classes
+
     def model_windows(self) -> list[list[dict[str, Any]]]:
         """The window records of each model, A first."""
         return [self.windows] + ([self.windows_b] if self.windows_b is not None else [])
