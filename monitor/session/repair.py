@@ -19,12 +19,12 @@ from pathlib import Path
 
 import numpy as np
 
-from monitor.base.errors import ExitCode, SessionError
+from monitor.base.errors import ExitCode, ScenemonError, SessionError
 from monitor.base.files import atomic_write, audio_segments, dumps, session_is_live
 from monitor.decisions.tally import tally_windows
-from monitor.session.reader import load_session
+from monitor.session.reader import Session, load_session
 from monitor.session.snippets import iter_snippets, verify_all
-from monitor.session.truth import Span, format_truth
+from monitor.session.truth import Span, format_truth, load_truth
 
 
 def drop_torn_line(path: Path) -> int:
@@ -106,6 +106,33 @@ def fix_wav(path: Path) -> int | None:
     return disk_frames
 
 
+def given_truth(s: Session, end_s: float) -> list[Span] | None:
+    """The spans of the truth file a session was given (session.json's ``truth_file``), as
+    a clean close writes them: the spans that start before the session's end.
+
+    Parameters
+    ----------
+    s : Session
+        The session being repaired.
+    end_s : float
+        Seconds of audio the session holds.
+
+    Returns
+    -------
+    list of Span or None
+        None when the session was given no truth file, or it can no longer be read (moved,
+        changed into something that is not truth): the windows' own truth is used then.
+    """
+    name = s.meta.get("truth_file")
+    if not isinstance(name, str) or not name:
+        return None
+    try:
+        track = load_truth(name, classes=tuple(s.classes) or None)
+    except (ScenemonError, OSError, ValueError):
+        return None
+    return [x for x in track.spans if x.onset < end_s + 1e-9]
+
+
 def truth_from_windows(windows: list[dict]) -> list[Span]:
     """Truth spans rebuilt from the windows' own truth labels, for a session without truth.tsv.
 
@@ -164,10 +191,18 @@ def repair(path: str | Path) -> dict:
             actions.append(f"rewrote the {wav.name} header ({n} frames)")
     s = load_session(d)
     if not (d / "truth.tsv").exists():
-        spans = truth_from_windows(s.windows)
+        rate = s.meta.get("sample_rate")
+        end = frames / rate if frames and isinstance(rate, int) and rate > 0 else (
+            s.windows[-1]["t1"] if s.windows else 0.0)
+        spans = given_truth(s, end)
+        if spans is not None:
+            where = f"the truth file the session was given ({s.meta.get('truth_file')})"
+        else:
+            spans = truth_from_windows(s.windows)
+            where = "the windows"
         if spans:
             atomic_write(d / "truth.tsv", format_truth(spans).encode())
-            actions.append(f"rebuilt truth.tsv from the windows ({len(spans)} spans)")
+            actions.append(f"rebuilt truth.tsv from {where} ({len(spans)} spans)")
     t = tally_windows(s.windows, s.classes, hop_s=s.hop_s) if s.windows else None
     summary = {
         "recovered": True, "clean": False, "windows": len(s.windows),
