@@ -3,10 +3,14 @@
 ``DIR/<label>/<file>.wav`` plus ``DIR/manifest.csv`` (path, label, reason, session, t0,
 duration, predicted, predicted_b, confidence, model sha256, audio sha256; ``predicted_b`` is
 model B's prediction of a ``models_disagree`` snippet, empty for the others). The sidecar is
-the truth about a snippet: a relabel (the sidecar's ``label``) wins, a dropped snippet is
-left out.
-Duplicates (same audio sha256) appear once. Re-running adds only what is new; existing files
-are never rewritten or deleted. A target folder holding anything else than an earlier
+the truth about a snippet, and its newest review decision wins: a relabel (the sidecar's
+``label``) puts it under that label, a dropped snippet is left out. Harvesting a session
+again applies what was decided since: a snippet relabelled after the first harvest is moved
+to its new label, one dropped since is taken out of the set. The manifest's ``decision``
+column says which decision each row carries ("captured": not reviewed, "kept",
+"relabelled").
+Duplicates (same audio sha256) appear once. Re-running adds only what is new; a file's
+bytes are never rewritten, and nothing is written through a link inside the set. A target folder holding anything else than an earlier
 harvest is refused; paths given that are not sessions are skipped and counted.
 
 Snippet audio is copied only after `snippets.verified_audio` accepts it (a regular WAV inside
@@ -36,18 +40,19 @@ from monitor.base.files import atomic_write, read_regular_bytes, terminal_safe
 from monitor.session.reader import is_session, load_session
 from monitor.session.snippets import (
     REASONS,
-    count_unreadable,
     iter_snippets,
     safe_label,
+    unreadable_sidecars,
     verified_audio,
 )
 
 MARKER = ".scenemon-harvest"
 LOCK = ".lock"
 FIELDS = ["path", "label", "reason", "session", "t0", "duration", "predicted", "predicted_b",
-          "confidence", "model_sha256", "audio_sha256"]
-# a manifest written before predicted_b existed is still ours: its rows get the column empty
-_REQUIRED = [f for f in FIELDS if f != "predicted_b"]
+          "confidence", "model_sha256", "audio_sha256", "decision"]
+# a manifest written before predicted_b or decision existed is still ours: its rows get
+# the columns empty (decision: until the snippet is harvested again)
+_REQUIRED = [f for f in FIELDS if f not in ("predicted_b", "decision")]
 _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
@@ -75,6 +80,9 @@ class HarvestResult:
     unreadable: int = 0  # sidecars that are links, not regular files, too large or not JSON
     not_sessions: int = 0
     adopted: int = 0
+    moved: int = 0  # relabelled since the last harvest: moved to their new label
+    retired: int = 0  # dropped since the last harvest: taken out of the set
+    unreadable_names: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
 
 
@@ -133,61 +141,134 @@ def harvest(sessions: list[Path], out: Path, *, include: tuple[str, ...],
     return res
 
 
+def decision_of(sn) -> str:
+    """The review decision a snippet carries: "captured" (not reviewed yet), "kept" or
+    "relabelled" ("dropped" snippets leave the set).
+
+    Parameters
+    ----------
+    sn : SnippetFile
+        The snippet, as its sidecar says now.
+
+    Returns
+    -------
+    str
+        The manifest's ``decision`` cell.
+    """
+    if sn.dropped:
+        return "dropped"
+    before = sn.meta.get("relabeled_from")
+    if before is not None and before != sn.meta.get("label"):
+        return "relabelled"
+    return "kept" if sn.meta.get("reviewed") is True else "captured"
+
+
+def _inside(out: Path, rel: str) -> Path:
+    """`out / rel` when it is a regular file inside the set reached without a link."""
+    target = out / rel
+    folder = target.parent
+    if folder.parent != out or folder.is_symlink() or target.is_symlink():
+        raise ScenemonError(f"{target}: is a link or lies outside {out}; a harvest never "
+                            f"writes through links")
+    return target
+
+
+def _label_folder(out: Path, label: str) -> Path:
+    folder = out / safe_label(label)
+    if folder.is_symlink() or (folder.exists() and not folder.is_dir()):
+        raise ScenemonError(f"{folder}: is a link or not a folder; a harvest never writes "
+                            f"through links")
+    folder.mkdir(exist_ok=True)
+    return folder
+
+
 def _harvest_locked(loaded, out: Path, include, drop_unknown, progress,
                     res: HarvestResult) -> None:
     rows = _read_manifest(out)
+    by_sha = {r["audio_sha256"]: r for r in rows}
     listed = {r["path"] for r in rows}
-    seen = {r["audio_sha256"] for r in rows}
-    for r in rows:
-        res.total[r["label"]] = res.total.get(r["label"], 0) + 1
     candidates = [(s, sn) for s in loaded for sn in iter_snippets(s.dir)]
-    res.unreadable = sum(count_unreadable(s.dir) for s in loaded)
+    for s in loaded:
+        bad = unreadable_sidecars(s.dir)
+        res.unreadable += len(bad)
+        res.unreadable_names += [str(p.relative_to(s.dir)) for p in bad]
     new_rows = []
+    seen: set[str] = set()
     for k, (s, sn) in enumerate(candidates):
         if progress:
             progress(k + 1, len(candidates))
         m = sn.meta
+        label = sn.label
+        leave = (sn.dropped or sn.reason not in include
+                 or (drop_unknown and label == "unknown"))
+        data, why = verified_audio(sn, s.dir)
+        if data is None:
+            if not leave:
+                res.broken += 1
+                res.notes.append(why)
+            continue
+        digest = hashlib.sha256(data).hexdigest()
+        old = by_sha.get(digest)
+        if old is not None and old.get("session") == csv_cell(m.get("session") or s.dir.name):
+            if sn.dropped:  # the newest decision wins: a snippet dropped since leaves the set
+                target = _inside(out, old["path"])
+                target.unlink(missing_ok=True)
+                rows.remove(old)
+                del by_sha[digest]
+                res.retired += 1
+                continue
+            decision = decision_of(sn)
+            if old.get("label") != csv_cell(label):  # relabelled since: moved to its label
+                src = _inside(out, old["path"])
+                dst = _label_folder(out, label) / src.name
+                if dst.exists() or dst.is_symlink():
+                    dst = dst.with_name(f"{dst.stem}-{digest[:8]}.wav")
+                os.replace(src, dst)
+                old["path"] = f"{dst.parent.name}/{dst.name}"
+                old["label"] = csv_cell(label)
+                res.moved += 1
+            old["decision"] = decision
+            seen.add(digest)
+            continue
         if sn.dropped:
             res.dropped += 1
             continue
         if sn.reason not in include:
             res.excluded += 1
             continue
-        label = sn.label
         if drop_unknown and label == "unknown":
             res.unknown_skipped += 1
             continue
-        data, why = verified_audio(sn, s.dir)
-        if data is None:
-            res.broken += 1
-            res.notes.append(why)
-            continue
-        digest = hashlib.sha256(data).hexdigest()
-        if digest in seen:
+        if digest in by_sha or digest in seen:
             res.duplicates += 1
             continue
         seen.add(digest)
-        folder = safe_label(label)
+        folder = _label_folder(out, label)
         name = f"{safe_label(str(m.get('session') or s.dir.name))}-{sn.wav.stem}.wav"
-        target = out / folder / name
-        (out / folder).mkdir(exist_ok=True)
-        if target.exists() or target.is_symlink():
-            if _sha(target) == digest and f"{folder}/{name}" not in listed:
+        target = folder / name
+        if target.is_symlink():
+            raise ScenemonError(f"{target}: is a link; a harvest never writes through links")
+        if target.exists():
+            if _sha(target) == digest and f"{folder.name}/{name}" not in listed:
                 res.adopted += 1  # copied by an interrupted run: enter it in the manifest
             else:  # never overwrite: same name, other audio
                 name = f"{target.stem}-{digest[:8]}.wav"
-                target = out / folder / name
+                target = folder / name
                 atomic_write(target, data)
         else:
             atomic_write(target, data)
         new_rows.append({
-            "path": f"{folder}/{name}", "label": label, "reason": sn.reason,
+            "path": f"{folder.name}/{name}", "label": label, "reason": sn.reason,
             "session": m.get("session") or s.dir.name, "t0": m.get("t0"),
             "duration": m.get("duration_s"), "predicted": m.get("predicted"),
             "predicted_b": sn.predicted_b, "confidence": m.get("confidence"),
-            "model_sha256": m.get("model_sha256"), "audio_sha256": digest})
+            "model_sha256": m.get("model_sha256"), "audio_sha256": digest,
+            "decision": decision_of(sn)})
         res.added[label] = res.added.get(label, 0) + 1
-        res.total[label] = res.total.get(label, 0) + 1
+    res.total = {}
+    for r in rows + new_rows:
+        lab = r["label"] if r in rows else csv_cell(r["label"])
+        res.total[lab] = res.total.get(lab, 0) + 1
     buf = io.StringIO()
     w = csv.DictWriter(buf, fieldnames=FIELDS, lineterminator="\n")
     w.writeheader()
@@ -240,12 +321,17 @@ def run_harvest(sessions: list[Path], out: Path, *, include: str | None,
         extra.append(f"{res.not_sessions} path(s) that are not sessions skipped")
     if res.broken:
         extra.append(f"{res.broken} snippet(s) with untrusted or broken audio skipped")
+    if res.moved:
+        extra.append(f"{res.moved} relabelled since and moved to their label")
+    if res.retired:
+        extra.append(f"{res.retired} dropped since and taken out")
     if res.unreadable:
-        extra.append(f"{res.unreadable} unreadable or linked sidecar(s) skipped")
-    sys.stdout.write(f"harvest {out}: {sum(res.added.values())} new snippet(s); "
+        names = ", ".join(res.unreadable_names[:5]) + (", ..." if res.unreadable > 5 else "")
+        extra.append(f"{res.unreadable} unreadable or linked sidecar(s) skipped ({names})")
+    sys.stdout.write(terminal_safe(f"harvest {out}: {sum(res.added.values())} new snippet(s); "
                      f"{res.duplicates} duplicate(s), {res.dropped} dropped, "
                      f"{res.unknown_skipped} unknown left out, {res.excluded} of other reasons"
-                     + "".join(f"; {x}" for x in extra) + "\n")
+                     + "".join(f"; {x}" for x in extra) + "\n"))
     for label in sorted(res.total):
         sys.stdout.write(terminal_safe(f"  {label:<24} {res.total[label]:>5}  "
                                        f"(+{res.added.get(label, 0)})\n"))

@@ -17,6 +17,7 @@ from __future__ import annotations
 import hashlib
 import io
 import json
+import math
 import re
 from dataclasses import dataclass
 from pathlib import Path
@@ -162,12 +163,78 @@ def iter_snippets(session_dir: Path) -> list[SnippetFile]:
     return sorted(out, key=lambda s: (s.t0, s.label, s.sidecar.name))
 
 
-def count_unreadable(session_dir: Path) -> int:
-    """Sidecars `iter_snippets` leaves out."""
+def unreadable_sidecars(session_dir: Path) -> list[Path]:
+    """The sidecars `iter_snippets` leaves out, by path.
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    list of Path
+        Sidecars that are links, not regular files, too large, not a JSON object, or hold a
+        field of the wrong type (`sidecar_problem`).
+    """
     root = Path(session_dir) / "snippets"
     if not root.is_dir() or root.is_symlink():
-        return 0
-    return sum(1 for side in root.glob("*/*.json") if _read_sidecar(side, session_dir) is None)
+        return []
+    return [side for side in sorted(root.glob("*/*.json"))
+            if _read_sidecar(side, session_dir) is None]
+
+
+def count_unreadable(session_dir: Path) -> int:
+    """Sidecars `iter_snippets` leaves out (`unreadable_sidecars`, counted).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    int
+        How many there are.
+    """
+    return len(unreadable_sidecars(session_dir))
+
+
+# the fields a reader relies on, and the JSON types each may have (None: may be null)
+_FIELDS: dict[str, tuple[type, ...]] = {
+    "label": (str, type(None)), "predicted": (str, type(None)), "reason": (str,),
+    "t0": (int, float), "t1": (int, float), "duration_s": (int, float, type(None)),
+    "dropped": (bool,), "reviewed": (bool,), "relabeled_from": (str, type(None)),
+    "audio_sha256": (str,), "session": (str, type(None)), "sample_rate": (int,),
+    "confidence": (int, float, type(None)), "model_b": (dict, type(None)),
+}
+
+
+def sidecar_problem(meta: dict[str, Any]) -> str | None:
+    """What is wrong with a sidecar's fields, or None when a reader can trust their types.
+
+    Parameters
+    ----------
+    meta : dict
+        The sidecar, as read.
+
+    Returns
+    -------
+    str or None
+        The first field whose JSON type is not the sidecar format's, or whose number is not
+        finite.
+    """
+    for name, types in _FIELDS.items():
+        if name not in meta:
+            continue
+        v = meta[name]
+        if isinstance(v, bool) and bool not in types:
+            return f"{name} is {v!r}"
+        if not isinstance(v, types):
+            return f"{name} is a {type(v).__name__}"
+        if isinstance(v, float) and not math.isfinite(v):
+            return f"{name} is not finite"
+    return None
 
 
 def _read_sidecar(side: Path, session_dir: Path) -> dict | None:
@@ -176,9 +243,11 @@ def _read_sidecar(side: Path, session_dir: Path) -> dict | None:
         if len(data) > _MAX_SIDECAR_BYTES:
             return None
         meta = json.loads(data.decode("utf-8"))
-    except (OSError, ValueError, UnicodeDecodeError):
+    except (OSError, ValueError, UnicodeDecodeError, RecursionError):
         return None
-    return meta if isinstance(meta, dict) else None
+    if not isinstance(meta, dict) or sidecar_problem(meta) is not None:
+        return None
+    return meta
 
 
 def verified_audio(snip: SnippetFile, session_dir: Path) -> tuple[bytes | None, str | None]:

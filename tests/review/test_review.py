@@ -257,7 +257,7 @@ def test_harvest(argmax_session, tmp_path):
     assert len({r_["audio_sha256"] for r_ in rows}) == len(rows)
     assert any(r_["label"] == "other" and r_["path"].startswith("other/") for r_ in rows)
     assert set(rows[0]) == {"path", "label", "reason", "session", "t0", "duration", "predicted",
-                            "predicted_b", "confidence", "model_sha256", "audio_sha256"}
+                            "predicted_b", "confidence", "model_sha256", "audio_sha256", "decision"}
     for r_ in rows:
         assert (out / r_["path"]).is_file()
     stamp = {p: p.stat().st_mtime_ns for p in out.rglob("*.wav")}
