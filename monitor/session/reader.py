@@ -43,13 +43,19 @@ class Session:
     @property
     def classes(self) -> list[str]:
         """Model A's classes in output order, from session.json (``classes``, else the card's)."""
-        return list(self.meta.get("classes") or self.meta.get("card", {}).get("classes", []))
+        c = self.meta.get("classes")
+        if not c:
+            card = self.meta.get("card")
+            c = card.get("classes") if isinstance(card, dict) else None
+        return list(c) if isinstance(c, list) and all(isinstance(x, str) for x in c) else []
 
     @property
     def hop_s(self) -> float | None:
         """Seconds between windows, from session.json's card (None when missing or not a number)."""
-        v = self.meta.get("card", {}).get("audio", {}).get("hop_s")
-        return float(v) if isinstance(v, _NUM) else None
+        card = self.meta.get("card")
+        audio = card.get("audio") if isinstance(card, dict) else None
+        v = audio.get("hop_s") if isinstance(audio, dict) else None
+        return float(v) if _finite(v) and v > 0 else None
 
     @property
     def source(self) -> dict[str, Any]:
@@ -69,8 +75,8 @@ class Session:
     def models(self) -> list[dict[str, Any]]:
         """{path, sha256, kind, runtime, ...} per model, A first."""
         m = self.meta.get("models")
-        if isinstance(m, list) and m:
-            return [x for x in m if isinstance(x, dict)]
+        if isinstance(m, list) and m:  # A and B at most: a session runs one or two models
+            return [x for x in m if isinstance(x, dict)][:2]
         one = self.meta.get("model")
         return [one] if isinstance(one, dict) else []
 
@@ -102,6 +108,16 @@ class Session:
         return [self.windows] + ([self.windows_b] if self.windows_b is not None else [])
 
 
+def _finite(v: Any) -> bool:
+    """True for a JSON number (not a boolean) that float64 holds as a finite value."""
+    if isinstance(v, bool) or not isinstance(v, _NUM):
+        return False
+    try:
+        return math.isfinite(v)
+    except OverflowError:  # an integer beyond float64
+        return False
+
+
 def _check_record(rec: Any, where: str, n: int, width: int | None = None) -> str | None:
     """Why `rec` is not a window record (None when it is one); `width`: the values each
     probability list must hold (the classes), when known."""
@@ -111,8 +127,8 @@ def _check_record(rec: Any, where: str, n: int, width: int | None = None) -> str
         v = rec.get(key)
         if key not in rec:
             return f"has no {key}"
-        if isinstance(v, bool) or not isinstance(v, _NUM) or not math.isfinite(v):
-            return f"has {key}={v!r}, not a finite number"
+        if not _finite(v):
+            return f"has {key}={str(v)[:40]}, not a finite number"
     if rec["t1"] < rec["t0"]:
         return f"ends (t1={rec['t1']}) before it starts (t0={rec['t0']})"
     for key in ("decision", "truth", "top"):
@@ -123,15 +139,13 @@ def _check_record(rec: Any, where: str, n: int, width: int | None = None) -> str
         v = rec.get(key)
         if v is None:
             continue
-        if not isinstance(v, list) or not all(isinstance(p, _NUM) and not isinstance(p, bool)
-                                              for p in v):
+        if not isinstance(v, list) or not all(_finite(p) for p in v):
             return f"has {key}={str(v)[:40]}, not a list of numbers"
         if width is not None and len(v) != width:
             return f"has {len(v)} {key} values for {width} classes"
     for key in ("level_dbfs", "clipped", "gap", "novelty", "ms"):
         v = rec.get(key)
-        if v is not None and (isinstance(v, bool) or not isinstance(v, _NUM)
-                              or not math.isfinite(v)):
+        if v is not None and not _finite(v):
             return f"has {key}={str(v)[:40]!s}, not a finite number or null"
     return None
 
@@ -161,6 +175,9 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
             except json.JSONDecodeError:
                 skipped += 1
                 continue
+            except RecursionError:
+                raise SessionError(f"{path}: line {n} is nested too deep to be a window "
+                                   f"record") from None
             why = _check_record(rec, str(path), n, classes)
             if why:
                 raise SessionError(f"{path}: line {n} {why}")
@@ -200,6 +217,8 @@ def load_session(path: str | Path) -> Session:
         raise SessionError(f"{d}: no session.json, not a session directory") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise SessionError(f"{sj}: not valid JSON ({exc})") from None
+    except RecursionError:
+        raise SessionError(f"{sj}: is nested too deep to be a session description") from None
     except OSError as exc:
         raise SessionError(f"{sj}: cannot be read ({exc.strerror})") from None
     if not isinstance(meta, dict):
@@ -226,7 +245,7 @@ def load_session(path: str | Path) -> Session:
     if sp.exists():
         try:
             summary = json.loads(sp.read_text(encoding="utf-8"))
-        except (json.JSONDecodeError, UnicodeDecodeError):
+        except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
             summary = None
         if not isinstance(summary, dict):
             summary = None
