@@ -299,7 +299,8 @@ def read_card_table(path: str | Path) -> dict[str, Any]:
     Raises
     ------
     CardError
-        The file is missing, not a regular file, not UTF-8 or not TOML.
+        The file is missing, not a regular file (a link to one is followed), not UTF-8 or
+        not TOML.
     """
     from monitor.base.files import read_regular_bytes
 
@@ -307,8 +308,8 @@ def read_card_table(path: str | Path) -> dict[str, Any]:
     if not path.exists():
         raise CardError(f"{path}: model card not found (give one with --card, or put "
                         f"a .toml with the model's stem beside it)")
-    try:
-        data = read_regular_bytes(path)
+    try:  # a card may be a link to a card (read where it points); never a FIFO or device
+        data = read_regular_bytes(path.resolve())
     except OSError as exc:
         raise CardError(f"{path}: the model card cannot be read "
                         f"({exc.strerror or exc})") from None
