@@ -24,6 +24,7 @@ audio, truth, models and cards are unchanged is skipped, so an interrupted run r
 from __future__ import annotations
 
 import fnmatch
+import glob
 import hashlib
 import json
 import os
@@ -51,13 +52,52 @@ class Item:
     truth: str | None
 
 
+MAX_NAME_BYTES = 200  # leaves room for ".b.jsonl", ".meta.json" and ".<name>.tmp" in 255
+
+
 def results_name(key: str) -> str:
-    """A unique, reversible file name for an input key (``%`` -> ``%25``, ``/`` -> ``%2F``)."""
-    return key.replace("%", "%25").replace("/", "%2F")
+    """A unique, reversible file name for an input key.
+
+    ``%`` becomes ``%25`` and ``/`` becomes ``%2F``. A name longer than 200 bytes (a deep
+    folder tree; file systems allow 255 per name) keeps its first bytes and ends in ``~``
+    and 16 hex digits of the key's sha256: still unique, and reversible through the key
+    that its ``.meta.json`` holds (`key_of_results` says so by returning None).
+
+    Parameters
+    ----------
+    key : str
+        The input's path below the archive, "/"-separated.
+
+    Returns
+    -------
+    str
+        The file name without extension, at most 200 bytes of UTF-8.
+    """
+    name = key.replace("%", "%25").replace("/", "%2F")
+    if len(name.encode()) <= MAX_NAME_BYTES and "~" not in name:
+        return name
+    digest = hashlib.sha256(key.encode()).hexdigest()[:16]
+    head = name.encode()[: MAX_NAME_BYTES - 17].decode("utf-8", "ignore")
+    return f"{head}~{digest}"
 
 
-def key_of_results(name: str) -> str:
-    """The input key of a results file name without its extension; the inverse of `results_name`."""
+def key_of_results(name: str) -> str | None:
+    """The input key of a results file name without its extension; the inverse of
+    `results_name`.
+
+    Parameters
+    ----------
+    name : str
+        A name `results_name` made.
+
+    Returns
+    -------
+    str or None
+        The key; None for a shortened name (``~`` and a hash), whose key its
+        ``.meta.json`` holds.
+    """
+    if "~" in name:
+        return None
     return name.replace("%2F", "/").replace("%25", "%")
 
 
@@ -83,8 +123,9 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
             continue
         truth = None
         if truth_glob:
-            hits = sorted(t for t in p.parent.glob("*") if fnmatch.fnmatch(
-                t.name, truth_glob.replace("{stem}", p.stem)))
+            # the stem is a name, not a pattern: "take[1]" must not match "take1"
+            pattern = truth_glob.replace("{stem}", glob.escape(p.stem))
+            hits = sorted(t for t in p.parent.iterdir() if fnmatch.fnmatchcase(t.name, pattern))
             truth = str(hits[0]) if hits else None
         elif p.with_suffix(".tsv").is_file():
             truth = str(p.with_suffix(".tsv"))
