@@ -108,6 +108,15 @@ class Session:
         return [self.windows] + ([self.windows_b] if self.windows_b is not None else [])
 
 
+def _show(v: Any) -> str:
+    """A value as a message shows it: its repr, cut at 40 characters."""
+    try:
+        text = repr(v)
+    except ValueError:  # an integer too long to print (Python's int limit)
+        text = "a number too long to print"
+    return text if len(text) <= 40 else text[:37] + "..."
+
+
 def _finite(v: Any) -> bool:
     """True for a JSON number (not a boolean) that float64 holds as a finite value."""
     if isinstance(v, bool) or not isinstance(v, _NUM):
@@ -128,7 +137,7 @@ def _check_record(rec: Any, where: str, n: int, width: int | None = None) -> str
         if key not in rec:
             return f"has no {key}"
         if not _finite(v):
-            return f"has {key}={str(v)[:40]}, not a finite number"
+            return f"has {key}={_show(v)}, not a finite number"
     if rec["t1"] < rec["t0"]:
         return f"ends (t1={rec['t1']}) before it starts (t0={rec['t0']})"
     for key in ("decision", "truth", "top"):
@@ -175,9 +184,9 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
             except json.JSONDecodeError:
                 skipped += 1
                 continue
-            except RecursionError:
-                raise SessionError(f"{path}: line {n} is nested too deep to be a window "
-                                   f"record") from None
+            except (RecursionError, ValueError):  # nested too deep, an integer too long
+                raise SessionError(f"{path}: line {n} is nested too deep or holds a number too "
+                                   f"long to be a window record") from None
             why = _check_record(rec, str(path), n, classes)
             if why:
                 raise SessionError(f"{path}: line {n} {why}")
@@ -217,8 +226,9 @@ def load_session(path: str | Path) -> Session:
         raise SessionError(f"{d}: no session.json, not a session directory") from None
     except (json.JSONDecodeError, UnicodeDecodeError) as exc:
         raise SessionError(f"{sj}: not valid JSON ({exc})") from None
-    except RecursionError:
-        raise SessionError(f"{sj}: is nested too deep to be a session description") from None
+    except (RecursionError, ValueError):
+        raise SessionError(f"{sj}: is nested too deep or holds a number too long to be a "
+                           f"session description") from None
     except OSError as exc:
         raise SessionError(f"{sj}: cannot be read ({exc.strerror})") from None
     if not isinstance(meta, dict):
@@ -245,7 +255,7 @@ def load_session(path: str | Path) -> Session:
     if sp.exists():
         try:
             summary = json.loads(sp.read_text(encoding="utf-8"))
-        except (json.JSONDecodeError, UnicodeDecodeError, RecursionError):
+        except (ValueError, RecursionError):  # not JSON, not UTF-8, too deep, too long
             summary = None
         if not isinstance(summary, dict):
             summary = None
