@@ -322,6 +322,9 @@ def read_features(path: Path) -> np.ndarray:
                             f".npy (numpy.save)")
     if data[:6] != b"\x93NUMPY":  # the .npy magic (numpy's format.MAGIC_PREFIX)
         raise ScenemonError(f"{path}: not a .npy array of numbers")
+    problem = _header_problem(data)
+    if problem:
+        raise ScenemonError(f"{path}: {problem}")
     try:
         a = np.load(io.BytesIO(data), allow_pickle=False)
     except ValueError:
@@ -338,6 +341,45 @@ def read_features(path: Path) -> np.ndarray:
     if not np.all(np.isfinite(a)):
         raise ScenemonError(f"{path}: holds NaN or infinite values")
     return a
+
+
+def _header_problem(data: bytes) -> str | None:
+    """What is wrong with a .npy header before any array is allocated: a shape whose bytes
+    the file does not hold (a header may declare terabytes), or no header at all.
+
+    Parameters
+    ----------
+    data : bytes
+        The whole file.
+
+    Returns
+    -------
+    str or None
+        The problem, or None when the declared array fits in the file (numpy.lib.format,
+        the .npy format's own reader).
+    """
+    from numpy.lib import format as npy_format
+
+    f = io.BytesIO(data)
+    try:
+        version = npy_format.read_magic(f)
+        if version == (1, 0):
+            shape, _, dtype = npy_format.read_array_header_1_0(f)
+        else:
+            shape, _, dtype = npy_format.read_array_header_2_0(f)
+    except (ValueError, OSError, EOFError, SyntaxError, TypeError):
+        return None  # np.load says what is wrong, as before
+    if dtype.hasobject:
+        return None
+    count = 1
+    for n in shape:
+        count *= int(n)
+    need = count * dtype.itemsize
+    have = len(data) - f.tell()
+    if need > have:
+        return (f"declares an array of shape {tuple(shape)} ({need:,} bytes) but holds "
+                f"{have:,} bytes of data")
+    return None
 
 
 def _holds_objects(data: bytes) -> bool:
