@@ -159,9 +159,35 @@ def check_audio_files(paths, *, model_rate: int, window_samples: int,
 
 def load_audio(paths, *, model_rate: int, window_samples: int) -> np.ndarray:
     """A whole checked recording as mono float32 at `model_rate`, exactly as replay feeds the
-    ring (several files of one recording are joined)."""
+    ring (several files of one recording are joined).
+
+    Parameters
+    ----------
+    paths : str, Path or list of them
+        One file, or the files of one recording in order.
+    model_rate : int
+        Hz.
+    window_samples : int
+        A recording shorter than one window is refused.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at `model_rate`.
+
+    Raises
+    ------
+    AudioError
+        The file is missing, unreadable, too short, below the model's rate, or damaged
+        past its header.
+    """
     info, _ = check_audio_files(paths, model_rate=model_rate, window_samples=window_samples)
-    parts = [y for _, y in read_resampled(paths, model_rate, native_rate=info.samplerate)]
+    try:
+        with quiet_native_stderr():
+            parts = [y for _, y in read_resampled(paths, model_rate, native_rate=info.samplerate)]
+    except (sf.LibsndfileError, RuntimeError) as exc:  # damaged past its header
+        first = paths if isinstance(paths, (str, Path)) else list(paths)[0]
+        raise AudioError(f"{first}: cannot be read to the end ({_first_line(exc)})") from None
     return np.concatenate(parts) if parts else np.zeros(0, np.float32)
 
 
