@@ -13,6 +13,7 @@ import sys
 import threading
 from typing import TextIO
 
+from monitor.base.files import terminal_safe
 from monitor.decisions.contract import ObserverBase, WindowResult
 
 
@@ -94,7 +95,8 @@ class ChangePrinter(_Printer):
         if r.others:
             o = r.others[0]
             b = f"   B {o.decision or 'undecided'}"
-        self._write(f"{r.t1:8.1f} s  {shown:<12} {conf:<7}{b}{truth}{mark}\n")
+        line = f"{r.t1:8.1f} s  {shown:<12} {conf:<7}{b}{truth}{mark}"
+        self._write(terminal_safe(line, one_line=True) + "\n")  # class names are the card's
 
 
 class WriteWatch(ObserverBase):

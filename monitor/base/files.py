@@ -124,13 +124,27 @@ def is_regular_file(path: Path) -> bool:
         return False
 
 
-def terminal_safe(text: str) -> str:
+def terminal_safe(text: str, *, one_line: bool = False) -> str:
     """`text` from files someone else may have written, fit for a terminal: line breaks and
     tabs kept, every other unprintable character (an escape sequence's ESC, a carriage
-    return) written as ``\\xNN`` so a label cannot move the cursor or recolour the screen."""
+    return) written as ``\\xNN`` so a label cannot move the cursor or recolour the screen.
+
+    Parameters
+    ----------
+    text : str
+        What to show.
+    one_line : bool
+        Write line breaks and tabs as ``\\xNN`` too (a label inside a line of output).
+
+    Returns
+    -------
+    str
+        The text with its unprintable characters spelled out.
+    """
     if text.isprintable():
         return text
-    return "".join(c if c.isprintable() or c in "\n\t" else
+    keep = "" if one_line else "\n\t"
+    return "".join(c if c.isprintable() or c in keep else
                    (f"\\x{ord(c):02x}" if ord(c) < 256 else f"\\u{ord(c):04x}") for c in text)
 
 

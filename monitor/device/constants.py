@@ -29,19 +29,48 @@ from monitor.features.stages import (
     sparse_bank,
 )
 
-__all__ = ["header", "c_buffers", "c_tables", "cfloat", "sparse_bank", "scaling_tables"]
+__all__ = ["header", "c_string", "c_buffers", "c_tables", "cfloat", "sparse_bank", "scaling_tables"]
+
+
+_PLAIN = frozenset("abcdefghijklmnopqrstuvwxyzABCDEFGHIJKLMNOPQRSTUVWXYZ0123456789 _-.,:;+=()[]{}")
+
+
+def c_string(text: str) -> str:
+    """`text` as a C99 string literal that holds its UTF-8 bytes and nothing else.
+
+    Letters, digits and a few plain marks stand as they are; every other byte (quotes,
+    backslashes, ``?`` which could start a trigraph, ``*`` and ``/``, control characters,
+    UTF-8) is a three-digit octal escape, which no following character can extend (ISO C99
+    6.4.4.4 escape sequences, 5.2.1.1 trigraphs).
+
+    Parameters
+    ----------
+    text : str
+        A class name, as the card gives it.
+
+    Returns
+    -------
+    str
+        The literal, quotes included.
+    """
+    return '"' + "".join(chr(b) if chr(b) in _PLAIN else f"\\{b:03o}"
+                         for b in text.encode("utf-8")) + '"'
+
+
+def _comment_safe(text: str) -> str:
+    """`text` fit for the inside of a C comment: plain characters kept, others as ``_``."""
+    return "".join(c if c in _PLAIN else "_" for c in text)
 
 
 def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
     """The text of ``frontend_constants.h`` for `card`."""
     stages = card.stages()
     running = {s.name for s in stages if s.active}
-    names = ", ".join('"' + c.replace("\\", "\\\\").replace('"', '\\"') + '"'
-                      for c in card.classes)
+    names = ", ".join(c_string(c) for c in card.classes)
     summary = ", ".join(f"{k} = {show_value(v)}" for k, v in card.frontend.settings().items())
     lines = [
         "/* frontend_constants.h: written by `scenemon vectors` for one model card.",
-        f" * card: {Path(card.name).name}" + (f"\n * model sha256: {model_sha256}"
+        f" * card: {_comment_safe(Path(card.name).name)}" + (f"\n * model sha256: {model_sha256}"
                                              if model_sha256 else ""),
         f" * {summary} */",
         "#ifndef SCENEMON_FRONTEND_CONSTANTS_H", "#define SCENEMON_FRONTEND_CONSTANTS_H", "",

@@ -23,6 +23,7 @@ import numpy as np
 
 from monitor.assembly.plan import ModelPlan
 from monitor.base.errors import ExitCode, ScenemonError
+from monitor.base.files import terminal_safe
 from monitor.features.card import ModelCard
 
 CHECK_SOURCES = (Path(__file__).with_name("check.c"), Path(__file__).with_name("check.mk"))
@@ -185,9 +186,9 @@ def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
 
     meta = write_vectors(load_model(plan), audio, out, count=count, seed=seed)
     classes = sorted(set(meta["predicted"]))
-    sys.stdout.write(f"wrote {meta['windows']} windows of golden vectors to {out} "
-                     f"({meta['runtime']} runtime; predicted classes covered: "
-                     f"{', '.join(classes)})\n")
+    sys.stdout.write(terminal_safe(f"wrote {meta['windows']} windows of golden vectors to "
+                                   f"{out} ({meta['runtime']} runtime; predicted classes "
+                                   f"covered: {', '.join(classes)})", one_line=True) + "\n")
     if (out / "Makefile").is_file():
         sys.stdout.write(f"check them with the shipped C front end: make -C {out} check\n")
     return ExitCode.OK
