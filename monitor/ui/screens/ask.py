@@ -2,10 +2,13 @@
 
 from __future__ import annotations
 
+from rich.text import Text
 from textual.app import ComposeResult
 from textual.binding import Binding
 from textual.screen import ModalScreen
 from textual.widgets import Static
+
+from monitor.base.files import terminal_safe
 
 
 class AskLabel(ModalScreen[str | None]):
@@ -19,9 +22,10 @@ class AskLabel(ModalScreen[str | None]):
 
     def compose(self) -> ComposeResult:
         """The question, a numbered line per class, 0 for unknown, and how to cancel."""
-        lines = [self.prompt, ""] + [f"  {i + 1}  {c}" for i, c in enumerate(self.class_names)]
+        lines = [self.prompt, ""] + [f"  {i + 1}  {terminal_safe(c, one_line=True)}"
+                                     for i, c in enumerate(self.class_names)]
         lines += ["  0  unknown", "", "Esc: cancel"]
-        yield Static("\n".join(lines), id="ask")
+        yield Static(Text("\n".join(lines)), id="ask")  # class names shown as written
 
     def on_key(self, event) -> None:
         """A digit answers: 0 with "unknown", 1 to N with that class; every digit key stops here."""

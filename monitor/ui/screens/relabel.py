@@ -22,6 +22,7 @@ from textual.screen import Screen
 from textual.widgets import DataTable, Footer, Static
 
 from monitor.base import palette as P
+from monitor.base.files import terminal_safe
 from monitor.session import snippets as S
 from monitor.ui.screens.ask import AskLabel
 
@@ -65,7 +66,8 @@ class RelabelScreen(Screen):
 
     def compose(self) -> ComposeResult:
         """The title, the snippets table, the status line and the footer."""
-        yield Static(f" snippets of session {self.session_dir.name}", id="relabel_title")
+        yield Static(Text(f" snippets of session {safe(self.session_dir.name)}"),
+                     id="relabel_title")
         yield DataTable(id="snippets", cursor_type="row", zebra_stripes=True)
         yield Static("", id="relabel_status")
         yield Footer()
@@ -102,8 +104,8 @@ class RelabelScreen(Screen):
                 Text(f"{sn.t0:7.1f} s", justify="right"),
                 Text(f"{dur:4.1f}" if isinstance(dur, (int, float)) else "-", justify="right"),
                 self._label(sn.label), said,
-                REASONS.get(sn.reason, sn.reason[:10]),
-                f"{conf:.2f}" if isinstance(conf, (int, float)) else "-",
+                Text(REASONS.get(sn.reason, safe(sn.reason)[:10])),  # shown as written
+                Text(f"{conf:.2f}" if isinstance(conf, (int, float)) else "-"),
                 Text(word, style=P.MUTED if word == "dropped" else
                      f"bold {P.TEXT}" if word in ("kept", "relabeled") else ""),
                 key=str(sn.sidecar), height=1 if b is None else 2)
@@ -113,12 +115,12 @@ class RelabelScreen(Screen):
                     f"dropped, relabeled")
 
     def _label(self, label: str, width: int = 12) -> Text:
-        return Text(label[:width], style=P.class_colour(self.class_names, label))
+        return Text(safe(label)[:width], style=P.class_colour(self.class_names, label))
 
     def status(self, text: str) -> None:
         """Show `text` on the status line (kept in `last_status`)."""
         self.last_status = text
-        self.query_one("#relabel_status", Static).update(text)
+        self.query_one("#relabel_status", Static).update(Text(safe(text)))
 
     def current(self) -> S.SnippetFile | None:
         """The snippet under the cursor, or None when there is none."""
@@ -204,3 +206,20 @@ class RelabelScreen(Screen):
             self.app.exit(0)
         else:
             self.app.pop_screen()
+
+
+def safe(text: str) -> str:
+    """User text (a label, a reason, a file name) as one line of plain characters: shown
+    literally, never read as markup (it goes into a `Text`), never a control character.
+
+    Parameters
+    ----------
+    text : str
+        Text from a sidecar or a card.
+
+    Returns
+    -------
+    str
+        The text with line breaks and control characters spelled out as ``\\xNN``.
+    """
+    return terminal_safe(text, one_line=True)
