@@ -15,7 +15,7 @@ the check with the shipped front end, runs ``pcm.csv`` through it and compares a
 
 from __future__ import annotations
 
-import shutil
+import io
 import sys
 from pathlib import Path
 
@@ -62,7 +62,16 @@ def pick_windows(top: np.ndarray, count: int | None, seed: int = 0) -> np.ndarra
 
 
 def _csv(path: Path, rows: np.ndarray, fmt: str) -> None:
-    np.savetxt(path, rows.reshape(len(rows), -1), fmt=fmt, delimiter=",")
+    buf = io.BytesIO()
+    np.savetxt(buf, rows.reshape(len(rows), -1), fmt=fmt, delimiter=",")
+    _put(path, buf.getvalue())
+
+
+def _put(path: Path, data: bytes) -> None:
+    """Write one file of the folder atomically: a link there is replaced, never followed."""
+    from monitor.base.files import atomic_write
+
+    atomic_write(path, data)
 
 
 def read_csv(path: Path, dtype=np.float64) -> np.ndarray:
@@ -76,6 +85,12 @@ def _check_target(out: Path) -> None:
                             f"vectors go into")
     if out.is_dir() and any(out.iterdir()) and not (out / "meta.json").is_file():
         raise ScenemonError(f"{out}: holds other files; choose a new or empty folder")
+    if out.is_symlink():
+        raise ScenemonError(f"{out}: is a link; --out names a folder, not a link to one")
+    links = sorted(p.name for p in out.iterdir() if p.is_symlink()) if out.is_dir() else []
+    if links:
+        raise ScenemonError(f"{out / links[0]}: is a link; vectors never write through links "
+                            f"(remove it, or choose a new folder)")
 
 
 def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) -> str:
@@ -159,12 +174,12 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
         meta["files"]["input_int8.csv"] = "the int8 input tensor, one window per row"
         meta["files"]["output_int8.csv"] = (f"the int8 output tensor, one window per row "
                                             f"({runner.runtime} runtime)")
-    (out / "frontend_constants.h").write_text(header(card, model_sha256=runner.sha256))
+    _put(out / "frontend_constants.h", header(card, model_sha256=runner.sha256).encode())
     for src in C_SOURCES:
-        shutil.copyfile(src, out / src.name)
-    shutil.copyfile(CHECK_SOURCES[0], out / "check.c")
-    shutil.copyfile(CHECK_SOURCES[1], out / "Makefile")
-    (out / "check_params.h").write_text(check_params(card, runner, len(pick), feats))
+        _put(out / src.name, src.read_bytes())
+    _put(out / "check.c", CHECK_SOURCES[0].read_bytes())
+    _put(out / "Makefile", CHECK_SOURCES[1].read_bytes())
+    _put(out / "check_params.h", check_params(card, runner, len(pick), feats).encode())
     meta["files"].update({"check.c": "the firmware-side check (make check)",
                           "Makefile": "builds and runs check.c with frontend.c"})
     if runner.path.suffix.lower() == ".tflite":
