@@ -247,6 +247,41 @@ def _describe_models(models: tuple[ModelPlan, ...]) -> tuple[list, list[dict]]:
     return cards, described
 
 
+def die_with_parent(parent: int) -> None:
+    """Make this worker end when the process that started it ends, however it ends.
+
+    On Linux the kernel sends SIGKILL when the parent dies (``prctl(PR_SET_PDEATHSIG)``,
+    prctl(2)); everywhere a daemon thread also checks every half second that the parent is
+    still the one that started it, and exits when it is not (a SIGKILL of the parent
+    leaves no chance to stop the workers itself).
+
+    Parameters
+    ----------
+    parent : int
+        The process id of the process that started this worker.
+    """
+    import threading
+
+    if sys.platform.startswith("linux"):
+        import ctypes
+        import signal
+
+        try:
+            libc = ctypes.CDLL(None, use_errno=True)
+            libc.prctl(1, int(signal.SIGKILL), 0, 0, 0)  # 1: PR_SET_PDEATHSIG
+        except (OSError, AttributeError):
+            pass
+    if os.getppid() != parent:  # the parent was gone before the line above
+        os._exit(1)
+
+    def watch() -> None:
+        while os.getppid() == parent:
+            time.sleep(0.5)
+        os._exit(1)
+
+    threading.Thread(target=watch, daemon=True, name="parent-watch").start()
+
+
 def _worker_context():
     """How local workers start: forked from this process where that is safe (Linux, no
     other Python thread, TensorFlow not loaded: a worker then starts in milliseconds, with
@@ -381,7 +416,8 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
         # other n - 1 take inputs from the front, it takes from the back those no worker has
         # started (a future that can still be cancelled is one no worker will run)
         with ProcessPoolExecutor(max_workers=min(n, len(todo)) - 1,
-                                 mp_context=_worker_context()) as pool:
+                                 mp_context=_worker_context(), initializer=die_with_parent,
+                                 initargs=(os.getpid(),)) as pool:
             futures = [(it, pool.submit(score_task, it, models, target, fps[it.key]))
                        for it in todo]
             reported: set[int] = set()
