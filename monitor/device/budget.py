@@ -146,14 +146,20 @@ def layers_of(path: Path) -> list[Layer]:
 
     from monitor.base.native import litert_nodes, quiet_native_stderr
 
-    with quiet_native_stderr():
-        interp = Interpreter(model_path=str(path), experimental_op_resolver_type=
-                             OpResolverType.BUILTIN_WITHOUT_DEFAULT_DELEGATES)
-    tensors = {t["index"]: tuple(int(v) for v in t["shape"]) for t in interp.get_tensor_details()}
+    try:  # a damaged file can pass a loader and fail while its nodes are read
+        with quiet_native_stderr():
+            interp = Interpreter(model_path=str(path), experimental_op_resolver_type=
+                                 OpResolverType.BUILTIN_WITHOUT_DEFAULT_DELEGATES)
+        tensors = {t["index"]: tuple(int(v) for v in t["shape"])
+                   for t in interp.get_tensor_details()}
+        nodes = litert_nodes(interp)
+    except (ValueError, RuntimeError, IndexError) as exc:  # UnicodeDecodeError too
+        raise ModelError(f"{path}: its operators cannot be read "
+                         f"({type(exc).__name__}); is the file damaged?") from None
     model = fb.Model.GetRootAs(Path(path).read_bytes(), 0)
     sg = model.Subgraphs(0)
     out = []
-    for k, op in enumerate(litert_nodes(interp)):
+    for k, op in enumerate(nodes):
         name = op["op_name"]
         ins = [int(i) for i in op["inputs"] if int(i) >= 0]
         outs = [int(i) for i in op["outputs"]]

@@ -121,7 +121,11 @@ class TFLiteRunner(RunnerBase):
 
     def __init__(self, path: Path, card: ModelCard, *, threads: int = 1) -> None:
         interp = _tflite_interpreter(path, threads)
-        ins, outs = interp.get_input_details(), interp.get_output_details()
+        try:  # a damaged file can pass the loader and fail here (a tensor name not UTF-8)
+            ins, outs = interp.get_input_details(), interp.get_output_details()
+        except (ValueError, RuntimeError, IndexError) as exc:  # UnicodeDecodeError too
+            raise ModelError(f"{path}: cannot be loaded as a TFLite model (its tensors "
+                             f"cannot be read: {type(exc).__name__})") from None
         super().__init__(path, card, tuple(ins[0]["shape"][1:]) if ins else (),
                          int(outs[0]["shape"][-1]) if outs else 0, len(ins), len(outs))
         try:

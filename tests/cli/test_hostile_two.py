@@ -557,3 +557,18 @@ def test_a_window_line_with_a_non_finite_figure_is_written_flagged():
     rec = json.loads(r.json_line())
     assert rec["i"] == 3 and rec["probs"] == [0.5, None] and rec["novelty"] is None
     assert rec["level_dbfs"] is None and rec["fault"] == "non-finite figure"
+
+
+@pytest.mark.slow
+@pytest.mark.parametrize("seed", [1, 6])  # flips that leave a tensor name that is not UTF-8
+def test_budget_of_a_model_with_a_few_flipped_bytes_is_one_sentence(tmp_path, seed):
+    data = bytearray((MODELS / "demo.int8.tflite").read_bytes())
+    rng = np.random.default_rng(seed)
+    for k in rng.integers(8, len(data), int(rng.integers(1, 4))):
+        data[k] ^= int(rng.integers(1, 256))
+    folder = tmp_path / "m"
+    folder.mkdir()
+    (folder / "m.tflite").write_bytes(bytes(data))
+    shutil.copy(MODELS / "demo.int8.toml", folder / "m.toml")
+    r = cli("budget", "--model", folder / "m.tflite")
+    assert_refused(r, str(folder / "m.tflite"))
