@@ -7,20 +7,30 @@ from the command to the first result of a file. Prints a table and a verdict.
 
 from __future__ import annotations
 
+import argparse
 import os
 import subprocess
 import sys
 import tempfile
 import time
 from pathlib import Path
+from typing import TYPE_CHECKING
 
-import numpy as np
-
-from monitor.assembly.plan import ModelPlan
 from monitor.base.errors import ScenemonError
+from monitor.cli.flags import add_model_flags, model_plans, positive
+
+if TYPE_CHECKING:  # pragma: no cover
+    from monitor.assembly.plan import ModelPlan
+
+NAME = 'bench'
+HELP = 'will this model keep up on this machine?'
+DESCRIPTION = 'Measure start-up, per-window cost and fast-replay speed.'
+EXAMPLES = 'examples:\n  scenemon bench\n  scenemon bench --model models/demo.keras --seconds 120'
 
 
 def _pct(v: list[float]) -> tuple[float, float]:
+    import numpy as np
+
     a = np.asarray(v) * 1000.0
     return float(np.median(a)), float(np.percentile(a, 99))
 
@@ -47,6 +57,8 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
     if not seconds > 0:
         raise ScenemonError(f"--seconds {seconds} must be above 0")
     t0 = time.perf_counter()
+    import numpy as np
+
     from monitor.assembly.assemble import card_of, load_model, replay_file
     from monitor.decisions.decide import Decider
     from monitor.features.frontend import FrontEnd
@@ -125,3 +137,25 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
     return {"import_s": t_import, "load_s": t_load, "first_result_s": t_first,
             "window_ms_median": med, "window_ms_p99": p99, "realtime_factor": rtf,
             "verdict": verdict}
+
+
+def add_arguments(p: argparse.ArgumentParser) -> None:
+    """The flags and arguments of `scenemon bench`.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+        The command's own parser.
+    """
+    add_model_flags(p, required=False, default_help=" (default: models/demo.tflite)")
+    p.add_argument("--seconds", type=positive, default=240.0, metavar="SECONDS",
+                   help="seconds of tour audio to replay (default 240)")
+
+
+def run(args: argparse.Namespace) -> int:
+    """`scenemon bench`: will this model keep up on this machine?"""
+    from monitor.assembly.assemble import project_root
+
+    plan = model_plans(args, str(project_root() / "models" / "demo.tflite"))[0]
+    run_bench(plan, seconds=args.seconds)
+    return 0

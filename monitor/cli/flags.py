@@ -15,66 +15,6 @@ from typing import Literal
 
 from monitor.base.errors import ExitCode, ScenemonError
 
-EXAMPLES = {
-    "replay": """examples:
-  scenemon replay recordings/demo/tour.wav --model models/demo.tflite --truth recordings/demo/tour.tsv --fast --headless
-  scenemon replay field/corridor.flac --model models/demo.int8.tflite --out recordings/corridor-1
-  scenemon replay walk.wav --model m.keras --card m.toml --smoothing ema --ema-alpha 0.3
-  scenemon replay walk.wav --model models/demo.tflite --model models/demo-mfcc.tflite   # A/B""",
-    "live": """examples:
-  scenemon devices
-  scenemon live --model models/demo.tflite
-  scenemon live --model models/demo.int8.tflite --input "USB" --headless --out recordings/site-a
-  scenemon live --model m.tflite --runtime micro --no-audio --seconds 600""",
-    "demo": """examples:
-  make demo                 # sets up .venv and runs this
-  scenemon demo             # the bundled scene tour at real-time pace
-  scenemon demo --fast      # the same, as fast as the CPU allows
-  scenemon demo --mic       # the demo model on the microphone
-  scenemon demo --model models/demo.tflite --model models/demo-mfcc.tflite   # two models""",
-    "report": """examples:
-  scenemon report recordings/20261201-101500-live
-  scenemon report recordings/tour-check --html tour-check.html""",
-    "tune": """examples:
-  scenemon tune recordings/site-a recordings/site-b
-  scenemon tune recordings/tour-check --grid 'smoothing=ema;ema_alpha=0.2,0.4;confirm=1,2,3'
-  scenemon tune recordings/site-a --apply models/demo.toml""",
-    "harvest": """examples:
-  scenemon harvest recordings/site-a recordings/site-b --out retrain/round2
-  scenemon harvest recordings/* --out retrain/round2 --include disagreement,manual --drop-unknown""",
-    "quantize": """examples:
-  scenemon quantize --model models/demo.keras --calibrate recordings/site-a recordings/site-b --out models/site.int8.tflite""",
-    "compare": """examples:
-  scenemon compare --model models/demo.tflite --model models/demo.int8.tflite recordings/demo/tour.wav
-  scenemon compare --model a.keras --model a.int8.tflite recordings/site-* --min-agree 0.95
-  scenemon compare --model m.int8.tflite --runtime litert --model m.int8.tflite --runtime micro tour.wav""",
-    "vectors": """examples:
-  scenemon vectors --model models/demo.int8.tflite recordings/demo/tour.wav --out golden --count 20
-  make -C golden check      # builds and runs the firmware-side check""",
-    "score": """examples:
-  scenemon score field-archive --model models/demo.int8.tflite --out scores/int8
-  scenemon score field-archive --model m.tflite --out scores/m --workers 2
-  scenemon score field-archive --model a.tflite --model b.tflite --out scores/ab
-  scenemon score field-archive --model m.tflite --out scores/m --cluster tcp://scheduler:8786""",
-    "bench": """examples:
-  scenemon bench
-  scenemon bench --model models/demo.keras --seconds 120""",
-    "budget": """examples:
-  scenemon budget --model models/demo.int8.tflite
-  scenemon budget --model models/demo.int8.tflite --clock-mhz 80 --json""",
-    "card check": """examples:
-  scenemon card check models/demo.toml recordings/demo/tour.wav train_feats.npy
-  scenemon card check m.toml clip.wav clip_features.npy --start 2.5 --scaled
-
-  # train_feats.npy: what your training code gives for the window, e.g.
-  #   np.save("train_feats.npy", my_features(audio[0:16000]))""",
-    "card": """examples:
-  scenemon card check models/demo.toml recordings/demo/tour.wav train_feats.npy""",
-    "profile": """examples:
-  scenemon profile --model models/demo.tflite recordings/site-a recordings/site-b
-  scenemon profile --model m.tflite training/clips/*.wav --out m.profile.npz --quantile 0.99""",
-}
-
 
 class Parser(argparse.ArgumentParser):
     """The command line's parser: a bad flag is one line on stderr and exit code 2 (BAD_INPUT)."""
@@ -235,13 +175,13 @@ def subcommand(sub, name: str, help_: str, description: str, epilog: str | None 
     sub : argparse subparsers action
         What ``add_subparsers()`` returned.
     name : str
-        The command's name; its examples are ``EXAMPLES[name]`` unless `epilog` is given.
+        The command's name.
     help_ : str
         Its line in the list of commands.
     description : str
         The paragraph at the top of its own ``--help``.
     epilog : str, optional
-        Text after the flags instead of the examples.
+        Text after the flags: the command's examples.
 
     Returns
     -------
@@ -249,7 +189,7 @@ def subcommand(sub, name: str, help_: str, description: str, epilog: str | None 
         The command's parser; its raw-description formatter keeps the examples' line breaks.
     """
     return sub.add_parser(name, help=help_, description=description,
-                          epilog=epilog or EXAMPLES.get(name),
+                          epilog=epilog,
                           formatter_class=argparse.RawDescriptionHelpFormatter)
 
 
