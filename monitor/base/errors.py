@@ -82,7 +82,19 @@ def exit_code_for(exc: BaseException | None) -> ExitCode:
 
 
 def one_sentence(exc: BaseException) -> str:
-    """The line the command line prints for `exc` (after ``scenemon: ``)."""
+    """The line the command line prints for `exc` (after ``scenemon: ``).
+
+    Parameters
+    ----------
+    exc : BaseException
+        What stopped the command.
+
+    Returns
+    -------
+    str
+        The message of a `ScenemonError`; for a file that cannot be written, the file and the
+        system's reason; for anything else its type and text, with a pointer to ``--debug``.
+    """
     if isinstance(exc, ScenemonError):
         return str(exc)
     if isinstance(exc, OSError) and exc.errno in OUTPUT_ERRNOS:
@@ -92,7 +104,18 @@ def one_sentence(exc: BaseException) -> str:
 
 
 def summary_failure(summary: dict | None) -> str | None:
-    """The runtime failure a finished session reports, if any (exit code 1)."""
+    """The runtime failure a finished session reports, if any (exit code 1).
+
+    Parameters
+    ----------
+    summary : dict or None
+        summary.json's content.
+
+    Returns
+    -------
+    str or None
+        The lost source, the write error or the model fault it records; None when it ran cleanly.
+    """
     if not summary:
         return None
     return summary.get("source_failure") or summary.get("write_error") \

@@ -31,6 +31,12 @@ def atomic_write(path: Path, data: bytes) -> None:
         The file to (re)place. A symbolic link there is replaced, never followed.
     data : bytes
         The whole content.
+
+    Raises
+    ------
+    OSError
+        The file cannot be written (a read-only or full file system); it names the file, and
+        no temporary file is left behind.
     """
     path = Path(path)
     tmp = path.with_name(f".{path.name}.tmp")
@@ -50,7 +56,13 @@ def atomic_write(path: Path, data: bytes) -> None:
 
 
 def fsync_dir(d: Path) -> None:
-    """fsync a directory, so that a rename in it survives a power cut."""
+    """fsync a directory, so that a rename in it survives a power cut.
+
+    Parameters
+    ----------
+    d : Path
+        The directory.
+    """
     fd = os.open(d, os.O_RDONLY)
     try:
         os.fsync(fd)
@@ -76,6 +88,23 @@ def dumps(obj: Any, **kw: Any) -> str:
 
     Without options one shared encoder does it (a window line per hop: json.dumps with
     options would build an encoder per call); the text is json.dumps's own.
+
+    Parameters
+    ----------
+    obj : object
+        Dicts, lists, numbers, strings, None, numpy scalars and arrays, paths.
+    **kw
+        Options of `json.dumps` (``indent``); without them the shared encoder is used.
+
+    Returns
+    -------
+    str
+        The JSON text.
+
+    Raises
+    ------
+    ValueError
+        A float that is NaN or infinite (JSON has no such number, RFC 8259).
     """
     if not kw:
         return _ENCODER.encode(obj)
@@ -97,6 +126,16 @@ def read_regular_bytes(path: Path, *, inside: Path | None = None) -> bytes:
     OSError
         Not a regular file (a link, a FIFO, a device), outside `inside`, or unreadable;
         ``errno`` says which.
+
+    Returns
+    -------
+    bytes
+        The whole file.
+
+    Raises
+    ------
+    OSError
+        Missing, a link (ELOOP), not a regular file, outside `inside`, or unreadable.
     """
     path = Path(path)
     if inside is not None:
@@ -117,7 +156,18 @@ def read_regular_bytes(path: Path, *, inside: Path | None = None) -> bytes:
 
 
 def is_regular_file(path: Path) -> bool:
-    """True for a regular file that is not a symbolic link."""
+    """True for a regular file that is not a symbolic link.
+
+    Parameters
+    ----------
+    path : Path
+        The path to look at (a link is not followed).
+
+    Returns
+    -------
+    bool
+        True for a regular file reached without a link.
+    """
     try:
         return stat.S_ISREG(os.lstat(path).st_mode)
     except OSError:
@@ -184,7 +234,18 @@ def check_output(out: Path, what: str, ours: Callable[[Path], bool]) -> None:
 
 
 def starts_with(mark: str) -> Callable[[Path], bool]:
-    """An `ours` test for `check_output`: the file's first 256 bytes hold `mark`."""
+    """An `ours` test for `check_output`: the file's first 256 bytes hold `mark`.
+
+    Parameters
+    ----------
+    mark : str
+        Text an output of ours always holds near its start.
+
+    Returns
+    -------
+    callable
+        ``ours(path) -> bool`` for `check_output`.
+    """
     def test(path: Path) -> bool:
         try:
             with open(path, "rb") as f:
@@ -196,12 +257,34 @@ def starts_with(mark: str) -> Callable[[Path], bool]:
 
 # --- audio segments ------------------------------------------------------------------------
 def segment_name(k: int) -> str:
-    """audio.wav, then audio-0001.wav, audio-0002.wav, ..."""
+    """audio.wav, then audio-0001.wav, audio-0002.wav, ...
+
+    Parameters
+    ----------
+    k : int
+        The segment's number, from 0.
+
+    Returns
+    -------
+    str
+        Its file name.
+    """
     return "audio.wav" if k == 0 else f"audio-{k:04d}.wav"
 
 
 def audio_segments(session_dir: Path) -> list[Path]:
-    """A session's audio files in order (session.json lists them; else what is there)."""
+    """A session's audio files in order (session.json lists them; else what is there).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    list of Path
+        The audio segment files that exist, in recording order.
+    """
     d = Path(session_dir)
     try:
         names = json.loads((d / "session.json").read_text(encoding="utf-8")).get("audio_segments")
@@ -219,6 +302,11 @@ class SessionLock:
 
     The kernel drops the lock when the process dies (even by ``kill -9``), so "locked"
     means "being written right now".
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory whose ``.lock`` is held.
     """
 
     def __init__(self, session_dir: Path) -> None:
@@ -254,7 +342,18 @@ class SessionLock:
 
 
 def session_is_live(session_dir: Path) -> bool:
-    """True while another process holds the session's lock (it is still being written)."""
+    """True while another process holds the session's lock (it is still being written).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    bool
+        True when a live process holds its ``.lock``.
+    """
     path = Path(session_dir) / LOCK_NAME
     try:
         fd = os.open(path, os.O_RDONLY | os.O_NOFOLLOW)

@@ -12,7 +12,13 @@ import os
 def quiet_native_stderr():
     """Silence C/C++ chatter written straight to file descriptor 2 (a LiteRT delegate banner,
     an MP3 decoder's complaints): scenemon says what went wrong in one sentence itself.
-    Under ``--debug`` (`DEBUG`) nothing is silenced."""
+    Under ``--debug`` (`DEBUG`) nothing is silenced.
+
+    Yields
+    ------
+    None
+        While the block runs, fd 2 points at /dev/null (unless ``--debug``).
+    """
     if DEBUG:
         yield
         return
@@ -39,6 +45,11 @@ def screen_owns_the_terminal():
     textual's Linux driver draws on ``sys.__stderr__`` (read when the app and its driver are
     made): for the duration it is a file on a duplicate of fd 2. With ``--debug`` nothing
     changes (the chatter is then wanted, screen or not).
+
+    Yields
+    ------
+    None
+        While the UI runs; the terminal and fd 2 are restored afterwards.
     """
     import sys
 
@@ -82,6 +93,11 @@ def update_wav_header(sound_file) -> None:
     ------
     OSError
         When libsndfile refuses (the disk is full, the file is gone).
+
+    Parameters
+    ----------
+    sound_file : soundfile.SoundFile
+        A WAV file open for writing.
     """
     import soundfile as sf
 
@@ -94,6 +110,11 @@ def reinitialise_portaudio(sd) -> None:
 
     sounddevice has no public call for this: its device list is fixed at import, and only its
     private `_terminate` / `_initialize` pair re-runs PortAudio's `Pa_Initialize`.
+
+    Parameters
+    ----------
+    sd : module
+        The imported sounddevice module.
     """
     sd._terminate()
     sd._initialize()
@@ -106,6 +127,16 @@ def litert_nodes(interp) -> list[dict]:
     LiteRT's public interpreter API lists tensors (``get_tensor_details``), inputs, outputs
     and signatures, but not the graph's nodes; only its private ``_get_ops_details`` does,
     so this is the one place that calls it (`budget` counts each layer's work from it).
+
+    Parameters
+    ----------
+    interp : ai_edge_litert.interpreter.Interpreter
+        A loaded interpreter.
+
+    Returns
+    -------
+    list of dict
+        One dict per node, in execution order.
     """
     return list(interp._get_ops_details())
 
@@ -118,6 +149,11 @@ def quiet_tensorflow(debug: bool = False) -> None:
 
     Only environment variables: nothing is imported here (a .tflite model never loads
     TensorFlow). They must be set before TensorFlow's first import to take effect.
+
+    Parameters
+    ----------
+    debug : bool
+        Leave the chatter on (``--debug``).
     """
     global DEBUG
     DEBUG = debug
@@ -151,6 +187,16 @@ def keep_freed_memory(limit: int = HEAP_KEEP_BYTES) -> bool:
     in fast replay. Raising the mmap and trim thresholds (mallopt(3)) keeps those pages.
     Memory stays flat: the same few blocks are reused. Returns False where there is no
     glibc (macOS, musl), which changes nothing but speed.
+
+    Parameters
+    ----------
+    limit : int
+        Bytes: freed blocks below this size stay in the heap.
+
+    Returns
+    -------
+    bool
+        True when glibc took the setting (False elsewhere).
     """
     import ctypes
     import ctypes.util

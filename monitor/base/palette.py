@@ -47,7 +47,20 @@ UI_COLOURS = {"GROUND": GROUND, "PANEL": PANEL, "LINE": LINE, "TEXT": TEXT, "MUT
 
 
 def class_colour(classes, label) -> str:
-    """The colour of `label` among `classes` (the same everywhere)."""
+    """The colour of `label` among `classes` (the same everywhere).
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes in output order.
+    label : str
+        One class (any other label gets the colour for "no class").
+
+    Returns
+    -------
+    str
+        ``#rrggbb``.
+    """
     classes = list(classes)
     if label in classes:
         return CLASS_COLOURS[classes.index(label) % len(CLASS_COLOURS)]
@@ -55,17 +68,54 @@ def class_colour(classes, label) -> str:
 
 
 def heat_index(frac: float) -> int:
-    """The step of the heat ramp for `frac` in [0, 1] (clipped)."""
+    """The step of the heat ramp for `frac` in [0, 1] (clipped).
+
+    Parameters
+    ----------
+    frac : float
+        A fraction; values outside [0, 1] are clipped.
+
+    Returns
+    -------
+    int
+        An index into the heat ramp.
+    """
     return int(min(max(frac, 0.0), 0.9999) * len(HEAT))
 
 
 def heat_colour(frac: float) -> str:
-    """The heat ramp at `frac` in [0, 1]."""
+    """The heat ramp at `frac` in [0, 1].
+
+    Parameters
+    ----------
+    frac : float
+        A fraction; values outside [0, 1] are clipped.
+
+    Returns
+    -------
+    str
+        ``#rrggbb``.
+    """
     return HEAT[heat_index(frac)]
 
 
 def relative_luminance(hex_colour: str) -> float:
-    """WCAG 2.x relative luminance of an sRGB colour ``#rrggbb``."""
+    """WCAG 2.x relative luminance of an sRGB colour ``#rrggbb``.
+
+    Parameters
+    ----------
+    hex_colour : str
+        ``#rrggbb``.
+
+    Returns
+    -------
+    float
+        From 0 (black) to 1 (white).
+
+    References
+    ----------
+    W3C, Web Content Accessibility Guidelines (WCAG) 2.1, "relative luminance".
+    """
     h = hex_colour.lstrip("#")
     c = [int(h[i:i + 2], 16) / 255.0 for i in (0, 2, 4)]
     c = [v / 12.92 if v <= 0.04045 else ((v + 0.055) / 1.055) ** 2.4 for v in c]
@@ -73,7 +123,22 @@ def relative_luminance(hex_colour: str) -> float:
 
 
 def contrast_ratio(a: str, b: str) -> float:
-    """WCAG 2.x contrast ratio ``(L1 + 0.05) / (L2 + 0.05)``, lighter over darker."""
+    """WCAG 2.x contrast ratio ``(L1 + 0.05) / (L2 + 0.05)``, lighter over darker.
+
+    Parameters
+    ----------
+    a, b : str
+        Two colours ``#rrggbb``.
+
+    Returns
+    -------
+    float
+        From 1 to 21.
+
+    References
+    ----------
+    W3C, Web Content Accessibility Guidelines (WCAG) 2.1, "contrast ratio".
+    """
     la, lb = relative_luminance(a), relative_luminance(b)
     hi, lo = max(la, lb), min(la, lb)
     return (hi + 0.05) / (lo + 0.05)

@@ -40,6 +40,45 @@ class WindowResult:
 
     ``probs`` and ``smoothed`` are None when the model gave a non-finite output (``fault``
     says so); the decision then stays what it was.
+
+    Attributes
+    ----------
+    i : int
+        The window's index in the session.
+    start : int
+        Its first sample on the session clock.
+    t0, t1 : float
+        Its start and end in seconds from the session start.
+    probs, smoothed : numpy.ndarray or None
+        Raw and smoothed probabilities in class order.
+    top : str or None
+        The raw top class.
+    decision : str or None
+        The decision after smoothing and hysteresis (None: undecided).
+    truth : str or None
+        The truth label covering at least half of the window.
+    level_dbfs : float
+        Its level (AES17).
+    clipped : float
+        Share of full-scale samples.
+    gap : int
+        Samples lost just before it.
+    ms : float
+        Front end and model time per window of its batch.
+    latency_ms : float or None
+        From the newest sample's arrival to the decision (live only).
+    features : numpy.ndarray or None
+        The model input, kept only when asked for.
+    novelty : float or None
+        Distance from the model's profile, when it has one.
+    unfamiliar : bool or None
+        Whether the sound counts as unfamiliar.
+    fault : str or None
+        What was not finite, when something was.
+    model : int
+        0 for model A, 1 for model B.
+    others : tuple of WindowResult
+        Model B's result of the same window.
     """
 
     i: int
@@ -107,7 +146,27 @@ class WindowResult:
 @dataclass(frozen=True, slots=True)
 class EngineStatus:
     """What the engine publishes after each batch of windows (one snapshot, never a view
-    into its internals)."""
+    into its internals).
+
+    Attributes
+    ----------
+    now_s : float
+        The newest sample on the session clock, in seconds, gaps included.
+    windows : int
+        Windows so far.
+    overruns : int
+        Times the ring overran.
+    dropped_samples : int
+        Samples lost to overruns.
+    gap_windows : int
+        Windows that came after a gap.
+    ms : float or None
+        Front end and model time per window of the last batch.
+    latency_ms : float or None
+        The last window's latency (live only).
+    model_faults : int
+        Windows whose model output was not finite.
+    """
 
     now_s: float  # the newest sample on the session clock, gaps included
     windows: int

@@ -81,6 +81,11 @@ class Hysteresis:
        (``D`` undecided or ``s[c] - s[D] >= margin``);
     3. if it passes, ``k`` counts consecutive passes of the same ``c``, else ``k = 0``;
     4. at ``k >= confirm`` and (undecided or held for ``min_hold_s``): ``D = c``.
+
+    Parameters
+    ----------
+    settings : DecisionSettings
+        enter, exit, margin, confirm and min_hold_s.
     """
 
     def __init__(self, settings: DecisionSettings) -> None:
@@ -123,7 +128,13 @@ class Hysteresis:
 
 
 class Decider:
-    """Smoothing then hysteresis; `step(p, t1) -> (smoothed, decision index or None)`."""
+    """Smoothing then hysteresis; `step(p, t1) -> (smoothed, decision index or None)`.
+
+    Parameters
+    ----------
+    settings : DecisionSettings
+        The smoothing method and the hysteresis settings.
+    """
 
     def __init__(self, settings: DecisionSettings) -> None:
         self.settings = settings
@@ -146,7 +157,24 @@ class Decider:
 
 def decide_sequence(probs: np.ndarray, t1: np.ndarray, settings: DecisionSettings
                     ) -> tuple[np.ndarray, list[int | None]]:
-    """Run a whole sequence of raw probabilities through a fresh `Decider`."""
+    """Run a whole sequence of raw probabilities through a fresh `Decider`.
+
+    Parameters
+    ----------
+    probs : numpy.ndarray
+        ``(n, classes)`` raw probabilities in stream order.
+    t1 : numpy.ndarray
+        ``(n,)`` end time of each window, in seconds.
+    settings : DecisionSettings
+        The decision settings.
+
+    Returns
+    -------
+    smoothed : numpy.ndarray
+        ``(n, classes)``.
+    decisions : list of int or None
+        The decided class index of each window (None: undecided).
+    """
     dec = Decider(settings)
     smoothed, decisions = [], []
     for p, t in zip(probs, t1):

@@ -30,7 +30,20 @@ UNDECIDED = "(undecided)"
 
 
 def percentile(values: Iterable[float], q: float) -> float | None:
-    """The q-th percentile (numpy's linear rule), or None for no values."""
+    """The q-th percentile (numpy's linear rule), or None for no values.
+
+    Parameters
+    ----------
+    values : iterable of float
+        The values.
+    q : float
+        From 0 to 100.
+
+    Returns
+    -------
+    float or None
+        numpy.percentile's value; None when there are no values.
+    """
     v = np.asarray(list(values), dtype=np.float64)
     if not v.size:
         return None
@@ -40,7 +53,17 @@ def percentile(values: Iterable[float], q: float) -> float | None:
 
 @dataclass(frozen=True)
 class Change:
-    """A truth change: the new label from `onset` (s) until `offset` (s; inf if unknown)."""
+    """A truth change: the new label from `onset` (s) until `offset` (s; inf if unknown).
+
+    Attributes
+    ----------
+    onset : float
+        Seconds: when the new truth starts.
+    label : str
+        The new truth.
+    offset : float
+        Seconds: when it ends (infinity when unknown).
+    """
 
     onset: float
     label: str
@@ -262,7 +285,18 @@ def latency_worst(latencies: Sequence[float]) -> float | None:
 
 
 def changes_from_spans(spans) -> list[Change]:
-    """The truth changes of a span list: every span after the first (in time order)."""
+    """The truth changes of a span list: every span after the first (in time order).
+
+    Parameters
+    ----------
+    spans : list of Span
+        Truth spans.
+
+    Returns
+    -------
+    list of Change
+        One per span after the first, in time order.
+    """
     ordered = sorted(spans, key=lambda s: s.onset)
     return [Change(s.onset, s.label, s.offset) for s in ordered[1:]]
 
@@ -272,6 +306,24 @@ def tally_windows(windows: Iterable[dict], classes, *, hop_s: float | None = Non
     """A finished `Tally` of window records (``windows.jsonl`` dicts).
 
     `decisions`, when given, replaces the records' own decisions (the tuning sweep).
+
+    Parameters
+    ----------
+    windows : iterable of dict
+        Window records in stream order.
+    classes : sequence of str
+        The model's classes.
+    hop_s : float, optional
+        Seconds between windows (else from the first two windows).
+    spans : list of Span, optional
+        The truth as spans, for the latency after each change (else the windows' own truth).
+    decisions : iterable of str or None, optional
+        Decisions to count instead of the records' own.
+
+    Returns
+    -------
+    Tally
+        The finished tally.
     """
     t = Tally(classes, hop_s=hop_s, changes=changes_from_spans(spans) if spans else None)
     if decisions is None:
@@ -364,7 +416,18 @@ class LevelTally:
 
 
 def level_tally(windows) -> LevelTally:
-    """A finished `LevelTally` of window records."""
+    """A finished `LevelTally` of window records.
+
+    Parameters
+    ----------
+    windows : iterable of dict
+        Window records in stream order.
+
+    Returns
+    -------
+    LevelTally
+        The finished tally of silent and clipping stretches.
+    """
     t = LevelTally()
     for w in windows:
         lv, cl = w.get("level_dbfs"), w.get("clipped")

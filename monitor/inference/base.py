@@ -22,7 +22,18 @@ from monitor.features.card import ModelCard
 
 
 def file_sha256(path: str | Path) -> str:
-    """Hex sha256 of a file, read in 1 MiB blocks (the model and audio fingerprints)."""
+    """Hex sha256 of a file, read in 1 MiB blocks (the model and audio fingerprints).
+
+    Parameters
+    ----------
+    path : str or Path
+        The file.
+
+    Returns
+    -------
+    str
+        64 hex digits.
+    """
     h = hashlib.sha256()
     with open(path, "rb") as f:
         for block in iter(lambda: f.read(1 << 20), b""):
@@ -58,6 +69,16 @@ def softmax(z: np.ndarray) -> np.ndarray:
     """Softmax over the last axis, as float32.
 
     The row maximum is subtracted first, so large logits do not overflow.
+
+    Parameters
+    ----------
+    z : numpy.ndarray
+        Logits, classes on the last axis.
+
+    Returns
+    -------
+    numpy.ndarray
+        Probabilities summing to 1 on the last axis, float32.
     """
     z = z - np.max(z, axis=-1, keepdims=True)
     e = np.exp(z)
@@ -66,7 +87,21 @@ def softmax(z: np.ndarray) -> np.ndarray:
 
 class RunnerBase:
     """What the runners share: the model checked against its card, the batch-1 input shape,
-    the file's sha256, the output turned into probabilities and the warm-up check."""
+    the file's sha256, the output turned into probabilities and the warm-up check.
+
+    Parameters
+    ----------
+    path : Path
+        The model file.
+    card : ModelCard
+        The card the model must fit (input shape, output size, output kind).
+    input_shape : tuple
+        The model's input shape without the batch axis (None or -1 for a free size).
+    n_outputs : int
+        Values of its output.
+    n_inputs, n_out_tensors : int
+        Its input and output tensors (exactly one each is accepted).
+    """
 
 
     @staticmethod

@@ -52,6 +52,11 @@ def import_micro():
     ------
     ModelError
         The optional ``tflite-micro`` package is not installed (the message says how to get it).
+
+    Returns
+    -------
+    module
+        ``tflite_micro.runtime``.
     """
     try:
         from tflite_micro import runtime
@@ -65,6 +70,13 @@ class UnsupportedOperator(ModelError):
 
     ``operator`` is its name as `list_operators` spells it ("GELU"; "CUSTOM:FlexErf" for a
     custom operator); the message is the one sentence the command prints.
+
+    Parameters
+    ----------
+    message : str
+        The sentence shown to the user.
+    operator : str
+        The operator's name.
     """
 
     def __init__(self, message: str, operator: str) -> None:
@@ -74,7 +86,18 @@ class UnsupportedOperator(ModelError):
 
 def list_operators(data: bytes) -> list[str]:
     """The operator of every node of a `.tflite` flatbuffer, in order ("CONV_2D",
-    "CUSTOM:FlexFoo"), read with the flatbuffer schema LiteRT ships (no interpreter)."""
+    "CUSTOM:FlexFoo"), read with the flatbuffer schema LiteRT ships (no interpreter).
+
+    Parameters
+    ----------
+    data : bytes
+        The ``.tflite`` file.
+
+    Returns
+    -------
+    list of str
+        One operator name per node.
+    """
     from ai_edge_litert import schema_py_generated as fb
 
     names = {v: k for k, v in vars(fb.BuiltinOperator).items() if not k.startswith("_")}
@@ -96,7 +119,18 @@ def list_operators(data: bytes) -> list[str]:
 
 
 def io_counts(data: bytes) -> tuple[int, int]:
-    """Inputs and outputs of the main subgraph."""
+    """Inputs and outputs of the main subgraph.
+
+    Parameters
+    ----------
+    data : bytes
+        The ``.tflite`` file.
+
+    Returns
+    -------
+    inputs, outputs : int
+        Tensors of each.
+    """
     from ai_edge_litert import schema_py_generated as fb
 
     sg = fb.Model.GetRootAs(data, 0).Subgraphs(0)
@@ -121,7 +155,15 @@ interp.print_allocations()
 
 @dataclass(frozen=True)
 class Probe:
-    """What a child process found loading a model in the microcontroller interpreter."""
+    """What a child process found loading a model in the microcontroller interpreter.
+
+    Attributes
+    ----------
+    arena_size : int
+        The tensor arena the model loaded with, in bytes.
+    recorded_bytes : int
+        What the interpreter recorded it used, in bytes.
+    """
 
     arena_size: int  # an arena size the model loads with
     recorded_bytes: int  # the interpreter's allocation recording: the arena it used
@@ -208,6 +250,19 @@ class MicroRunner:
     """A float or int8 `.tflite` model in the microcontroller interpreter (module docstring).
 
     Evaluates one window per ``invoke`` with a fixed batch-1 input, like the other runners.
+
+    Parameters
+    ----------
+    path : Path
+        The model file.
+    card : ModelCard
+        The card the model must fit (input shape, output size, output kind).
+
+    Raises
+    ------
+    ModelError
+        The runtime cannot load the model (an operator it has no kernel for, a damaged file),
+        or the model does not fit its card.
     """
 
     def __init__(self, path: Path, card: ModelCard) -> None:

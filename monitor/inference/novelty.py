@@ -39,7 +39,18 @@ MIN_CLASS_WINDOWS = 20  # below this a class's covariance is mostly shrinkage
 
 
 def profile_path_for(model_path: str | Path) -> Path:
-    """``models/demo.tflite`` -> ``models/demo.profile.npz``."""
+    """``models/demo.tflite`` -> ``models/demo.profile.npz``.
+
+    Parameters
+    ----------
+    model_path : str or Path
+        The model file.
+
+    Returns
+    -------
+    Path
+        The profile's path beside it.
+    """
     p = Path(model_path)
     return p.with_name(p.stem + ".profile.npz")
 
@@ -56,6 +67,11 @@ def summarise(features: np.ndarray, *, time_axis: int) -> np.ndarray:
     time_axis : int
         The frames axis within one window: 0 for "time_mel", 1 for "mel_time", -1 for a
         waveform (one band: the samples).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(..., 2 * bands)`` float64: the means, then the standard deviations.
     """
     f = np.asarray(features, dtype=np.float64)
     if time_axis < 0:
@@ -80,6 +96,23 @@ def ledoit_wolf(x: np.ndarray) -> tuple[np.ndarray, float]:
     ``S = (1 - a) C + a mu I`` with ``C`` the empirical covariance, ``mu = trace(C) / p`` and
     the shrinkage ``a`` of Ledoit and Wolf 2004 (the estimator scikit-learn's ``LedoitWolf``
     implements).
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        ``(n, d)`` observations in rows.
+
+    Returns
+    -------
+    covariance : numpy.ndarray
+        ``(d, d)`` shrunk covariance.
+    shrinkage : float
+        The weight ``a`` of the scaled identity, from 0 to 1.
+
+    References
+    ----------
+    O. Ledoit and M. Wolf, "A well-conditioned estimator for large-dimensional covariance
+    matrices", Journal of Multivariate Analysis 88(2), 2004.
     """
     x = np.asarray(x, dtype=np.float64)
     n, p = x.shape
@@ -102,6 +135,27 @@ class Profile:
 
     ``means`` is ``(k, d)`` and ``covariances`` ``(k, d, d)`` for ``k`` classes (1 when the
     profile was fitted without labels) and ``d = 2 * bands`` summary numbers.
+
+    Attributes
+    ----------
+    means : numpy.ndarray
+        ``(k, d)`` mean summary of each class.
+    covariances : numpy.ndarray
+        ``(k, d, d)`` shrunk covariance of each class.
+    threshold : float
+        Distance above which a window counts toward unfamiliar.
+    quantile : float
+        The quantile of held-out distances the threshold is.
+    time_axis : int
+        The frames axis of one window's features (-1: a waveform).
+    windows : int
+        Windows the profile was fitted on.
+    confirm : int
+        Windows in a row above the threshold before a sound is unfamiliar.
+    path : Path or None
+        The file it was read from.
+    shrinkage : numpy.ndarray or None
+        The Ledoit-Wolf shrinkage of each class.
     """
 
     means: np.ndarray
@@ -165,14 +219,38 @@ class Profile:
 
 
 def time_axis_of(card: ModelCard) -> int:
-    """The frames axis of one window's features (-1: a waveform, no frames)."""
+    """The frames axis of one window's features (-1: a waveform, no frames).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The model's card.
+
+    Returns
+    -------
+    int
+        0 for "time_mel", 1 for "mel_time", -1 for a waveform.
+    """
     if len(card.feature_shape) == 1:
         return -1
     return card.time_axis
 
 
 def block_groups(n: int, block: int = 20) -> np.ndarray:
-    """Group ids of `n` consecutive windows in blocks of `block` (for holding out blocks)."""
+    """Group ids of `n` consecutive windows in blocks of `block` (for holding out blocks).
+
+    Parameters
+    ----------
+    n : int
+        Windows.
+    block : int
+        Windows per block.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n,)`` int: window i is in group ``i // block``.
+    """
     return np.arange(n) // block
 
 
@@ -193,6 +271,16 @@ def fit_profile(features: np.ndarray, card: ModelCard, *, labels: np.ndarray | N
         is held out for the threshold. Default: blocks of 20 consecutive windows.
     quantile : float
         The threshold's quantile of the held-out distances, in [0.5, 1).
+
+    Returns
+    -------
+    Profile
+        The fitted profile.
+
+    Raises
+    ------
+    ScenemonError
+        A quantile outside [0.5, 1), or too few windows (per class, with labels) to fit it.
     """
     if not 0.5 <= quantile < 1.0:
         raise ScenemonError(f"--quantile {quantile} must be in [0.5, 1)")
@@ -251,7 +339,18 @@ def save_profile(prof: Profile, path: Path) -> None:
 
 def is_profile_file(path: Path) -> bool:
     """True when `path` is a profile `save_profile` wrote (a zip of its arrays), so that
-    ``profile --out`` may write over it and over nothing else."""
+    ``profile --out`` may write over it and over nothing else.
+
+    Parameters
+    ----------
+    path : Path
+        The file to look at.
+
+    Returns
+    -------
+    bool
+        True for a zip holding a profile's arrays.
+    """
     import zipfile
 
     try:
@@ -361,6 +460,20 @@ def load_profile(path: Path, card: ModelCard) -> Profile:
 
 
 def profile_beside(model_path: str | Path, card: ModelCard) -> Profile | None:
-    """The profile beside a model, if there is one."""
+    """The profile beside a model, if there is one.
+
+    Parameters
+    ----------
+    model_path : str or Path
+        The model file.
+    card : ModelCard
+        Its card.
+
+    Returns
+    -------
+    Profile or None
+        The profile read by `load_profile`, or None when there is no ``.profile.npz`` beside
+        the model.
+    """
     p = profile_path_for(model_path)
     return load_profile(p, card) if p.is_file() else None

@@ -55,6 +55,11 @@ def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
     ------
     ModelError
         Missing, unreadable or mismatched model.
+
+    Returns
+    -------
+    Runner
+        The loaded model, warmed up.
     """
     path = Path(path)
     if not path.exists():

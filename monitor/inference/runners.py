@@ -32,7 +32,25 @@ MIN_KERAS = (3, 12)
 
 
 class KerasRunner(RunnerBase):
-    """A Keras 3 model behind a batch-1 `tf.function` (see module docstring)."""
+    """A Keras 3 model behind a batch-1 `tf.function` (see module docstring).
+
+    Parameters
+    ----------
+    path : Path
+        The model file.
+    card : ModelCard
+        The card the model must fit (input shape, output size, output kind).
+    trust_model : bool
+        Allow Lambda layers (their code runs when the model loads).
+    threads : int
+        TensorFlow's compute threads.
+
+    Raises
+    ------
+    ModelError
+        Keras too old, the file cannot be loaded (a Lambda layer without `trust_model`, an
+        unknown layer), or the model does not fit its card.
+    """
 
     def __init__(self, path: Path, card: ModelCard, *, trust_model: bool = False,
                  threads: int = 1) -> None:
@@ -117,7 +135,23 @@ def _tflite_interpreter(path: Path, threads: int):
 
 
 class TFLiteRunner(RunnerBase):
-    """A float or int8 `.tflite` model in LiteRT's interpreter (see module docstring)."""
+    """A float or int8 `.tflite` model in LiteRT's interpreter (see module docstring).
+
+    Parameters
+    ----------
+    path : Path
+        The model file.
+    card : ModelCard
+        The card the model must fit (input shape, output size, output kind).
+    threads : int
+        LiteRT's compute threads.
+
+    Raises
+    ------
+    ModelError
+        The file cannot be loaded, its tensors cannot be read or allocated, or the model does
+        not fit its card.
+    """
 
     def __init__(self, path: Path, card: ModelCard, *, threads: int = 1) -> None:
         interp = _tflite_interpreter(path, threads)

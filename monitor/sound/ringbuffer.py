@@ -19,7 +19,18 @@ import numpy as np
 
 
 class RingBuffer:
-    """A float32 ring of `capacity` samples (see module docstring)."""
+    """A float32 ring of `capacity` samples (see module docstring).
+
+    Parameters
+    ----------
+    capacity : int
+        Samples the ring holds (at least 1).
+
+    Raises
+    ------
+    ValueError
+        A capacity below 1.
+    """
 
     def __init__(self, capacity: int) -> None:
         if capacity < 1:

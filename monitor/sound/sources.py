@@ -29,6 +29,13 @@ class StreamResampler:
     Block edges leave no clicks and chunked output equals one-shot output (soxr's
     ``ResampleStream`` documentation); soxr's HQ stop band is far deeper than the Kaiser
     window of scipy's ``resample_poly`` default.
+
+    Parameters
+    ----------
+    in_rate : int
+        Hz of the input.
+    out_rate : int
+        Hz of the output (the model's rate).
     """
 
     def __init__(self, in_rate: int, out_rate: int) -> None:
@@ -64,6 +71,12 @@ def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
     -------
     soundfile info
         Rate, channels, frames and format of the file.
+
+    Raises
+    ------
+    AudioError
+        Missing, a folder, a pipe or device, empty, unreadable, no frames, below the model's
+        rate without `allow_upsample`, shorter than a window, or holding NaN or infinity.
     """
     import stat
 
@@ -120,6 +133,24 @@ def read_resampled(paths, model_rate: int, *, block: int = 1 << 16,
     segments), read in turn through one resampler. The one path from a file to the model's
     rate: file replay, `score` and the device tools all read through it, so they see
     identical samples.
+
+    Parameters
+    ----------
+    paths : str, Path or list of them
+        One file, or the files of one recording in order.
+    model_rate : int
+        Hz of the output.
+    block : int
+        Native frames read at a time.
+    native_rate : int, optional
+        The files' rate, when known (else read from the first file).
+
+    Yields
+    ------
+    frames : int
+        Native frames the block came from (0 for the resampler's tail).
+    samples : numpy.ndarray
+        Mono float32 at `model_rate`.
     """
     paths = [paths] if isinstance(paths, (str, Path)) else list(paths)
     rate = native_rate or sf.info(str(paths[0])).samplerate
@@ -138,7 +169,32 @@ def read_resampled(paths, model_rate: int, *, block: int = 1 << 16,
 def check_audio_files(paths, *, model_rate: int, window_samples: int,
                       allow_upsample: bool = False):
     """`check_audio_file` for one file or the files of one recording (same rate; the whole
-    must hold a window). Returns the first file's info and the total frames."""
+    must hold a window). Returns the first file's info and the total frames.
+
+    Parameters
+    ----------
+    paths : str, Path or list of them
+        One file, or the files of one recording in order.
+    model_rate : int
+        Hz; a rate below it is refused unless `allow_upsample`.
+    window_samples : int
+        The whole recording must hold one window at the model's rate.
+    allow_upsample : bool
+        Accept a rate below the model's.
+
+    Returns
+    -------
+    info : soundfile info
+        The first file's rate, channels and format.
+    frames : int
+        Native frames of all the files together.
+
+    Raises
+    ------
+    AudioError
+        A file fails `check_audio_file`, the files' rates differ, or together they
+        are shorter than a window.
+    """
     paths = [paths] if isinstance(paths, (str, Path)) else list(paths)
     if len(paths) == 1:
         info = check_audio_file(paths[0], model_rate=model_rate, window_samples=window_samples,
@@ -292,7 +348,18 @@ PUMP_PERIOD_S = 0.05  # how often the pump moves raw frames on: latency against 
 
 
 def import_sounddevice():
-    """sounddevice, imported only when a device is needed (replay works without PortAudio)."""
+    """sounddevice, imported only when a device is needed (replay works without PortAudio).
+
+    Returns
+    -------
+    module
+        The sounddevice module.
+
+    Raises
+    ------
+    DeviceError
+        sounddevice or the PortAudio library is not installed.
+    """
     try:
         import sounddevice as sd
     except OSError as exc:  # the wheel loads the system PortAudio on Linux
@@ -302,7 +369,18 @@ def import_sounddevice():
 
 
 def input_devices(sd) -> list[dict]:
-    """Every device with input channels: index, name, host API, channels, default rate."""
+    """Every device with input channels: index, name, host API, channels, default rate.
+
+    Parameters
+    ----------
+    sd : module
+        The sounddevice module.
+
+    Returns
+    -------
+    list of dict
+        One dict per input device: index, name, hostapi, channels, rate, default.
+    """
     apis = sd.query_hostapis()
     try:
         default_in = sd.default.device[0]
@@ -319,7 +397,13 @@ def input_devices(sd) -> list[dict]:
 
 
 def device_table() -> str:
-    """`scenemon devices`: every input device, one line each, the default marked ``*``."""
+    """`scenemon devices`: every input device, one line each, the default marked ``*``.
+
+    Returns
+    -------
+    str
+        The table's lines.
+    """
     devs = input_devices(import_sounddevice())
     if not devs:
         return "no audio input devices\n"
@@ -341,6 +425,24 @@ def resolve_device(sd, spec: str | int | None) -> dict:
 
     With no `spec` on Linux, a ``pipewire``, ``pulse`` or ``default`` device is preferred.
     Raises DeviceError listing the devices when `spec` is unknown or ambiguous.
+
+    Parameters
+    ----------
+    sd : module
+        The sounddevice module.
+    spec : str, int or None
+        A device index, a case-insensitive part of its name, or None for the default.
+
+    Returns
+    -------
+    dict
+        The device, as `input_devices` lists it.
+
+    Raises
+    ------
+    DeviceError
+        No input device, no device with that index, or no match or several for the name
+        (every match listed as "[index] name").
     """
     devs = input_devices(sd)
     if not devs:
@@ -387,6 +489,32 @@ class MicSource:
       or an inactive stream means the input is lost. It then counts a gap, tries to reopen
       the device by name (indices shift after a replug) `reopen_tries` times, and otherwise
       ends the source with `failure` set, so the session closes with its files intact.
+
+    Parameters
+    ----------
+    device : str, int or None
+        An index, a part of the device's name, or None for the default input.
+    model_rate : int
+        Hz the ring delivers (soxr HQ from the device's own rate).
+    window_samples : int
+        One window at the model's rate.
+    latency : str or float
+        PortAudio's suggested latency: "high", "low" or seconds.
+    blocksize : int, optional
+        Frames per callback (None: PortAudio's choice).
+    ring_seconds : float
+        Seconds of audio the model-rate ring holds.
+    watchdog_s : float
+        Seconds without frames after which the device counts as lost.
+    reopen_tries : int
+        Times a lost device is reopened by name before the source gives up.
+    max_seconds : float, optional
+        Stop after this many seconds of audio.
+
+    Raises
+    ------
+    DeviceError
+        The device cannot be found or opened.
     """
 
     realtime = True

@@ -15,7 +15,17 @@ import numpy as np
 
 @dataclass
 class Window:
-    """One window: its first sample on the session clock, its samples and the gap before it."""
+    """One window: its first sample on the session clock, its samples and the gap before it.
+
+    Attributes
+    ----------
+    start : int
+        Index of its first sample on the session clock (model rate).
+    samples : numpy.ndarray
+        ``(window_samples,)`` float32.
+    gap : int
+        Samples lost just before it.
+    """
 
     start: int  # first sample, from session start
     samples: np.ndarray  # (window,) float32, read-only: a view of the stream's samples
@@ -90,6 +100,21 @@ def windows_of(x: np.ndarray, window: int, hop: int) -> np.ndarray:
 
     The same cut the `Windower` makes of a stream without gaps: window k starts at sample
     ``k * hop``. Returns a read-only strided view of shape ``(n, window)``.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        ``(samples,)``.
+    window : int
+        Samples per window.
+    hop : int
+        Samples between window starts.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n, window)``, a read-only view of `x` (no copy); n is 0 when `x` is shorter than a
+        window.
     """
     x = np.asarray(x)
     if x.shape[0] < window:
