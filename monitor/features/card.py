@@ -46,7 +46,27 @@ SMOOTHING = ("none", "mean", "ema", "median")
 
 @dataclass(frozen=True)
 class DecisionSettings:
-    """Smoothing and hysteresis settings (the README's decision rules)."""
+    """Smoothing and hysteresis settings (the README's decision rules).
+
+    Attributes
+    ----------
+    smoothing : {"none", "mean", "ema", "median"}
+        How raw probabilities are smoothed.
+    smoothing_windows : int
+        Windows the mean or median covers (>= 1).
+    ema_alpha : float
+        The weight of the newest window in the EMA, in (0, 1].
+    enter : float
+        Smoothed probability a class needs to become the decision, in [0, 1].
+    exit : float
+        Below it the decision is released (0: never), in [0, 1].
+    margin : float
+        Lead over the current decision a new class needs, in [0, 1].
+    confirm : int
+        Windows in a row a new class must pass (>= 1).
+    min_hold_s : float
+        Seconds a decision holds before another may replace it (0 to 3600).
+    """
 
     smoothing: Smoothing = "mean"
     smoothing_windows: int = 3
@@ -289,7 +309,18 @@ _TOP = ("classes", "output", *_TABLES)
 
 
 def card_beside(model_path: str | Path) -> Path:
-    """The card beside a model: same stem, `.toml` (`demo.int8.tflite` -> `demo.int8.toml`)."""
+    """The card beside a model: same stem, `.toml` (`demo.int8.tflite` -> `demo.int8.toml`).
+
+    Parameters
+    ----------
+    model_path : str or Path
+        The model file.
+
+    Returns
+    -------
+    Path
+        Where its card is expected.
+    """
     return Path(model_path).with_suffix(".toml")
 
 
@@ -301,6 +332,16 @@ def read_card_table(path: str | Path) -> dict[str, Any]:
     CardError
         The file is missing, not a regular file (a link to one is followed), not UTF-8 or
         not TOML.
+
+    Parameters
+    ----------
+    path : str or Path
+        The card file.
+
+    Returns
+    -------
+    dict
+        The TOML tables as parsed.
     """
     from monitor.base.files import read_regular_bytes
 
@@ -328,6 +369,16 @@ def load_card(path: str | Path) -> ModelCard:
     ------
     CardError
         With the file, the key, its value and the rule broken.
+
+    Parameters
+    ----------
+    path : str or Path
+        The card file.
+
+    Returns
+    -------
+    ModelCard
+        The validated card.
     """
     return card_from_dict(read_card_table(path), Path(path))
 
@@ -339,6 +390,24 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
     changes the numbers must be given (only the switches that are off by default may be left
     out); combinations that make no sense are refused. Sizes are bounded before anything is
     allocated.
+
+    Parameters
+    ----------
+    raw : dict
+        The parsed TOML.
+    path : Path, optional
+        The card's file, for messages and for a scaling ``.npz`` named relative to it.
+
+    Returns
+    -------
+    ModelCard
+        The validated card.
+
+    Raises
+    ------
+    CardError
+        A key that is unknown, missing, of the wrong type or value, or a combination that
+        breaks a rule; the message names the file, the key, its value and the rule.
     """
     where = str(path) if path else "<card>"
 
@@ -483,6 +552,11 @@ def card_for_model(model_path: str | Path, card: str | Path | None = None) -> Mo
         The model file does not exist.
     CardError
         No card beside the model and none given, or the card is invalid.
+
+    Returns
+    -------
+    ModelCard
+        The validated card.
     """
     model_path = Path(model_path)
     if not model_path.exists():

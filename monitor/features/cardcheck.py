@@ -53,7 +53,17 @@ TOP_DB = (0.0, 80.0, 60.0, 40.0, 100.0, 120.0)
 
 @dataclass
 class Comparison:
-    """Ours against theirs for one card."""
+    """Ours against theirs for one card.
+
+    Attributes
+    ----------
+    shape : tuple of int
+        The card's feature shape.
+    max_diff : float or None
+        Largest absolute difference from theirs; None when the shapes differ.
+    changes : dict
+        The card keys changed from the card as given (empty for the card itself).
+    """
 
     shape: tuple[int, ...]
     max_diff: float | None  # None when the shapes differ
@@ -62,6 +72,28 @@ class Comparison:
 
 @dataclass
 class CheckResult:
+    """The outcome of a card check: both feature arrays, the tolerance, the search.
+
+    Attributes
+    ----------
+    card : ModelCard
+        The card as given.
+    theirs, ours : numpy.ndarray
+        The training code's features and the card's, in the model's input order.
+    dtype : str
+        The dtype of the features file.
+    tolerance : float
+        The largest difference that still matches.
+    base : Comparison
+        The card as given against theirs.
+    tried : int
+        Cards the search tried.
+    fixes : list of Comparison
+        The changed cards that match, best first.
+    closest : Comparison or None
+        The nearest one when none matches.
+    """
+
     card: ModelCard
     theirs: np.ndarray
     ours: np.ndarray
@@ -78,7 +110,18 @@ class CheckResult:
 
 
 def candidates(settings: dict[str, Any]) -> list[tuple[str, dict[str, Any]]]:
-    """(search key, [frontend] changes) for every alternative to the card's current values."""
+    """(search key, [frontend] changes) for every alternative to the card's current values.
+
+    Parameters
+    ----------
+    settings : dict
+        The card's flat ``[frontend]`` settings.
+
+    Returns
+    -------
+    list of (str, dict)
+        The key searched and the ``[frontend]`` changes of each alternative.
+    """
     from monitor.features.stages import STAGES, keys_of
 
     specs = {}
@@ -122,7 +165,22 @@ def _model_order(theirs: np.ndarray, ndim: int) -> np.ndarray:
 
 
 def features_of(card: ModelCard, window: np.ndarray, *, scaled: bool) -> np.ndarray:
-    """One window through the card's front end, in the model's input order."""
+    """One window through the card's front end, in the model's input order.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+    window : numpy.ndarray
+        ``(window_samples,)`` float32 at the card's rate.
+    scaled : bool
+        After the card's [scaling] (else before it).
+
+    Returns
+    -------
+    numpy.ndarray
+        The window's features, float32.
+    """
     from monitor.features.frontend import FrontEnd
 
     fe = FrontEnd(card)
@@ -132,6 +190,26 @@ def features_of(card: ModelCard, window: np.ndarray, *, scaled: bool) -> np.ndar
 
 def compare(card: ModelCard, window: np.ndarray, theirs: np.ndarray, *,
             scaled: bool) -> tuple[np.ndarray, Comparison]:
+    """The card's features of one window against theirs.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card to try.
+    window : numpy.ndarray
+        ``(window_samples,)`` float32 at the card's rate.
+    theirs : numpy.ndarray
+        The training code's features of that window.
+    scaled : bool
+        Compare after the card's [scaling] (else before it).
+
+    Returns
+    -------
+    ours : numpy.ndarray
+        The card's features, in the model's input order.
+    comparison : Comparison
+        Their shapes and the largest absolute difference (None when the shapes differ).
+    """
     ours = features_of(card, window, scaled=scaled)
     t = _model_order(theirs, ours.ndim)
     if t.shape != ours.shape:
@@ -141,7 +219,26 @@ def compare(card: ModelCard, window: np.ndarray, theirs: np.ndarray, *,
 
 def check(raw: dict[str, Any], path: Path | None, window: np.ndarray, theirs: np.ndarray, *,
           scaled: bool) -> CheckResult:
-    """Compare, and search the keys of `SEARCH` when it does not match (module docstring)."""
+    """Compare, and search the keys of `SEARCH` when it does not match (module docstring).
+
+    Parameters
+    ----------
+    raw : dict
+        The card's parsed TOML.
+    path : Path or None
+        The card's file.
+    window : numpy.ndarray
+        ``(window_samples,)`` float32 at the card's rate.
+    theirs : numpy.ndarray
+        The training code's features of that window.
+    scaled : bool
+        Compare after the card's [scaling] (else before it).
+
+    Returns
+    -------
+    CheckResult
+        The comparison and, when it does not match, the search's outcome.
+    """
     card = card_from_dict(raw, path)
     ours, base = compare(card, window, theirs, scaled=scaled)
     t = _model_order(theirs, ours.ndim)
@@ -202,7 +299,18 @@ def _axes(card: ModelCard) -> tuple[str, str]:
 
 
 def where(res: CheckResult) -> str:
-    """Which frames and which bands the difference above the tolerance sits in."""
+    """Which frames and which bands the difference above the tolerance sits in.
+
+    Parameters
+    ----------
+    res : CheckResult
+        A check whose shapes agree.
+
+    Returns
+    -------
+    str
+        The frames and bands (as ranges) where the difference exceeds the tolerance.
+    """
     d = np.abs(res.ours.astype(np.float64) - res.theirs)
     big = d > res.tolerance
     k = np.unravel_index(int(np.argmax(d)), d.shape)
@@ -227,6 +335,18 @@ def where(res: CheckResult) -> str:
 
 
 def card_lines(changes: dict[str, Any]) -> list[str]:
+    """The card lines that make a change, as a user writes them into ``[frontend]``.
+
+    Parameters
+    ----------
+    changes : dict
+        Key to new value.
+
+    Returns
+    -------
+    list of str
+        ``key = value`` lines in TOML's spelling.
+    """
     return [f"{k} = {show_value(v)}" for k, v in changes.items()]
 
 
@@ -242,6 +362,11 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
         resampling in the training code is a likely cause.
     channels : int
         The recording's channels (more than one: down-mixed to their mean).
+
+    Returns
+    -------
+    str
+        The report's lines.
     """
     c = res.card
     resampled = native_rate is not None and native_rate != c.sample_rate
@@ -308,7 +433,24 @@ def _shape_finding(res: CheckResult) -> str:
 
 
 def read_features(path: Path) -> np.ndarray:
-    """A numeric, finite .npy array (read without pickle); ScenemonError otherwise."""
+    """A numeric, finite .npy array (read without pickle); ScenemonError otherwise.
+
+    Parameters
+    ----------
+    path : Path
+        The ``.npy`` file.
+
+    Returns
+    -------
+    numpy.ndarray
+        The array, numeric and finite.
+
+    Raises
+    ------
+    ScenemonError
+        Missing, unreadable, not a ``.npy`` of numbers, an ``.npz``, Python objects, a header
+        declaring more data than the file holds, empty, or not finite.
+    """
     from monitor.base.files import read_regular_bytes
 
     try:
@@ -398,7 +540,31 @@ def _holds_objects(data: bytes) -> bool:
 
 def run_card_check(card_path: Path, audio: Path, features: Path, *, start_s: float = 0.0,
                    scaled: bool = False) -> int:
-    """`scenemon card check` (module docstring); returns the exit code."""
+    """`scenemon card check` (module docstring); returns the exit code.
+
+    Parameters
+    ----------
+    card_path : Path
+        The card.
+    audio : Path
+        The recording the features were computed from.
+    features : Path
+        The training code's features of one window (``.npy``).
+    start_s : float
+        Where the window starts in the recording, in seconds.
+    scaled : bool
+        The features are after the card's [scaling].
+
+    Returns
+    -------
+    int
+        0 when they match, 1 when not.
+
+    Raises
+    ------
+    ScenemonError
+        A bad card, audio or features file, or a window past the recording's end.
+    """
     from monitor.sound.sources import check_audio_files, load_audio
 
     raw = read_card_table(card_path)

@@ -57,7 +57,20 @@ def hz_to_mel(freq_hz: np.ndarray | float, *, scale: MelScale = "htk") -> np.nda
 
 
 def mel_to_hz(mel: np.ndarray | float, *, scale: MelScale = "htk") -> np.ndarray:
-    """Inverse of `hz_to_mel`; float64, same shape as `mel`."""
+    """Inverse of `hz_to_mel`; float64, same shape as `mel`.
+
+    Parameters
+    ----------
+    mel : numpy.ndarray or float
+        Mels.
+    scale : {"htk", "slaney"}
+        The mel scale.
+
+    Returns
+    -------
+    numpy.ndarray
+        Hz, float64.
+    """
     m = np.asarray(mel, dtype=np.float64)
     if scale == "htk":
         return 700.0 * (10.0 ** (m / 2595.0) - 1.0)
@@ -68,7 +81,22 @@ def mel_to_hz(mel: np.ndarray | float, *, scale: MelScale = "htk") -> np.ndarray
 
 def mel_band_edges(*, mel_bands: int, fmin: float, fmax: float,
                    scale: MelScale = "htk") -> np.ndarray:
-    """The ``mel_bands + 2`` band edges in Hz, evenly spaced in mel; float64."""
+    """The ``mel_bands + 2`` band edges in Hz, evenly spaced in mel; float64.
+
+    Parameters
+    ----------
+    mel_bands : int
+        Bands.
+    fmin, fmax : float
+        Hz, the lowest and highest edge.
+    scale : {"htk", "slaney"}
+        The mel scale.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(mel_bands + 2,)`` Hz.
+    """
     m = np.linspace(hz_to_mel(fmin, scale=scale), hz_to_mel(fmax, scale=scale), mel_bands + 2)
     return mel_to_hz(m, scale=scale)
 
@@ -125,7 +153,25 @@ def mel_filterbank(*, sample_rate: int, fft_length: int, mel_bands: int, fmin: f
 
 def window_coefficients(length: int, *, kind: WindowKind = "hann",
                         symmetric: bool = False, dtype=np.float32) -> np.ndarray:
-    """Hann or Hamming window [3]_, periodic unless `symmetric`; shape ``(length,)``."""
+    """Hann or Hamming window [3]_, periodic unless `symmetric`; shape ``(length,)``.
+
+    Parameters
+    ----------
+    length : int
+        Samples.
+    kind : {"hann", "hamming"}
+        The window.
+    symmetric : bool
+        The symmetric window (``np.hanning``) instead of the periodic one
+        (``scipy.signal.get_window``'s default).
+    dtype : numpy dtype
+        Of the result.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(length,)``.
+    """
     n = np.arange(length, dtype=np.float64)
     denom = max(1, (length - 1) if symmetric else length)
     a0 = 0.5 if kind == "hann" else 0.54
@@ -167,7 +213,20 @@ def dct_matrix(coefficients: int, bands: int, *, norm: DctNorm = "ortho",
 
 
 def lifter_weights(coefficients: int, lifter: float) -> np.ndarray:
-    """``1 + (lifter / 2) sin(pi (n + 1) / lifter)`` for n = 0 .. coefficients - 1 [5]_; float64."""
+    """``1 + (lifter / 2) sin(pi (n + 1) / lifter)`` for n = 0 .. coefficients - 1 [5]_; float64.
+
+    Parameters
+    ----------
+    coefficients : int
+        Coefficients kept.
+    lifter : float
+        The lifter parameter (0: all weights 1).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(coefficients,)`` float64.
+    """
     n = np.arange(coefficients, dtype=np.float64)
     return 1.0 + (lifter / 2.0) * np.sin(np.pi * (n + 1.0) / lifter)
 

@@ -232,6 +232,11 @@ class FrameStream:
     It keeps the shared frames of the newest window it computed; a later window one or more
     frame steps further on reuses those it holds. `features` gives the same numbers as
     `FrontEnd.batch` of the same windows, byte for byte. One caller thread (the engine's).
+
+    Parameters
+    ----------
+    frontend : FrontEnd
+        The front end whose stages it runs.
     """
 
     def __init__(self, frontend: FrontEnd) -> None:
@@ -294,6 +299,13 @@ def reference_features(card: ModelCard, windows: np.ndarray) -> tuple[np.ndarray
         `FrontEnd.unscaled`.
     scaled : numpy.ndarray
         ``(n, *card.feature_shape)`` float64, the model input (as `FrontEnd.batch`).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+    windows : numpy.ndarray
+        ``(n, window_samples)`` samples.
     """
     x = np.asarray(windows, np.float64)
     out = None

@@ -63,6 +63,15 @@ class Stage:
     Subclasses set `name` (their field of `FrontendConfig`), `config` (their config class),
     `part`, and override what they do. `active` is False for a switch that is off: the
     stage is then left out of the computation (and its C flag is 0).
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
     """
 
     name: ClassVar[str]

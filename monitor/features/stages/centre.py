@@ -13,7 +13,15 @@ from monitor.features.stages.keys import AudioConfig, CardProblem, key
 
 @dataclass(frozen=True)
 class CentreConfig:
-    """The centre stage's keys: padding by fft_length // 2 samples, and with what."""
+    """The centre stage's keys: padding by fft_length // 2 samples, and with what.
+
+    Attributes
+    ----------
+    center : bool
+        true: pad each window by fft_length // 2 on both sides first.
+    pad_mode : str
+        with center: "constant" (zeros) or "reflect".
+    """
     center: bool = key(bool, "true: pad each window by fft_length // 2 on both sides first",
                        default=False, off=False)
     pad_mode: str = key(str, "with center: \"constant\" (zeros) or \"reflect\"",

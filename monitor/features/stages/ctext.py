@@ -8,7 +8,18 @@ import numpy as np
 
 
 def cfloat(v: float) -> str:
-    """A C float literal: 9 significant digits, always with a point or an exponent."""
+    """A C float literal: 9 significant digits, always with a point or an exponent.
+
+    Parameters
+    ----------
+    v : float
+        The value.
+
+    Returns
+    -------
+    str
+        The literal, ``f`` suffix included.
+    """
     text = f"{float(v):.9g}"
     if not any(ch in text for ch in ".eEn"):
         text += ".0"
@@ -16,21 +27,68 @@ def cfloat(v: float) -> str:
 
 
 def c_floats(name: str, values, per_line: int = 8) -> str:
-    """A C ``static const float`` table of `values` (flattened, float32), `per_line` a line."""
+    """A C ``static const float`` table of `values` (flattened, float32), `per_line` a line.
+
+    Parameters
+    ----------
+    name : str
+        The C array's name.
+    values : array_like
+        The numbers.
+    per_line : int
+        Numbers per line.
+
+    Returns
+    -------
+    str
+        The declaration.
+    """
     vals = [cfloat(v) for v in np.asarray(values, dtype=np.float32).reshape(-1)]
     body = ",\n".join("    " + ", ".join(vals[i:i + per_line]) for i in range(0, len(vals), per_line))
     return f"static const float {name}[{len(vals)}] = {{\n{body}\n}};"
 
 
 def c_ints(name: str, ctype: str, values, per_line: int = 12) -> str:
-    """A C ``static const`` table of type `ctype` of integer `values`, `per_line` a line."""
+    """A C ``static const`` table of type `ctype` of integer `values`, `per_line` a line.
+
+    Parameters
+    ----------
+    name : str
+        The C array's name.
+    ctype : str
+        Its element type (``int16_t``).
+    values : iterable of int
+        The numbers.
+    per_line : int
+        Numbers per line.
+
+    Returns
+    -------
+    str
+        The declaration.
+    """
     vals = [str(int(v)) for v in values]
     body = ",\n".join("    " + ", ".join(vals[i:i + per_line]) for i in range(0, len(vals), per_line))
     return f"static const {ctype} {name}[{len(vals)}] = {{\n{body}\n}};"
 
 
 def c_define(name: str, value: Any, comment: str = "") -> str:
-    """A ``#define`` line (a bool as 0 or 1, a float as `cfloat`), with `comment` if given."""
+    """A ``#define`` line (a bool as 0 or 1, a float as `cfloat`), with `comment` if given.
+
+    Parameters
+    ----------
+    name : str
+        The macro.
+    value : object
+        Its value.
+    comment : str
+        A comment after it.
+
+    Returns
+    -------
+    str
+        The line.
+    """
     if isinstance(value, bool):
         value = int(value)
     if isinstance(value, float):
@@ -40,7 +98,22 @@ def c_define(name: str, value: Any, comment: str = "") -> str:
 
 def sparse_bank(weights: np.ndarray) -> tuple[list[int], list[int], np.ndarray]:
     """(first bins, lengths, packed weights) of a (bands, bins) filterbank, the way embedded
-    DSP libraries store one."""
+    DSP libraries store one.
+
+    Parameters
+    ----------
+    weights : numpy.ndarray
+        ``(bands, bins)``.
+
+    Returns
+    -------
+    first : list of int
+        Each band's first non-zero bin.
+    length : list of int
+        Each band's count of bins from there.
+    packed : numpy.ndarray
+        Every band's weights, one after the other.
+    """
     first, length, packed = [], [], []
     for row in weights:
         nz = np.flatnonzero(row)

@@ -16,7 +16,18 @@ from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, ke
 
 @dataclass(frozen=True)
 class DctConfig:
-    """The dct stage's keys (kind "mfcc"): coefficients kept, DCT-II normalisation, lifter."""
+    """The dct stage's keys (kind "mfcc"): coefficients kept, DCT-II normalisation, lifter.
+
+    Attributes
+    ----------
+    mfcc : int
+        kind = "mfcc": coefficients kept from the DCT-II of the log-mel.
+    dct_norm : str
+        "ortho" (scipy.fft.dct norm="ortho") or "uniform" (every row times sqrt(2 /
+        mel_bands): TensorFlow, CMSIS-DSP).
+    lifter : float
+        > 0: coefficient n (from 0) times 1 + (lifter/2) sin(pi (n+1) / lifter).
+    """
     mfcc: int = key(int, "kind = \"mfcc\": coefficients kept from the DCT-II of the log-mel",
                     lo=1, hi=MAX_BANDS, off=0)
     # off: "ortho" is what a card written out at the defaults carries beside kind = "logmel"
@@ -34,7 +45,17 @@ class DctConfig:
 
 
 class DctStage(Stage):
-    """DCT-II of each log-mel frame, mfcc rows kept, lifter folded in (`monitor.features.dsp.dct_matrix`)."""
+    """DCT-II of each log-mel frame, mfcc rows kept, lifter folded in (`monitor.features.dsp.dct_matrix`).
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "dct", DctConfig, "features"
     band_name = "coefficients"
 

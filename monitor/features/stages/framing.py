@@ -22,7 +22,20 @@ from monitor.features.stages.preemphasis import PreemphasisStage
 
 @dataclass(frozen=True)
 class FramingConfig:
-    """The framing stage's keys: frame length, step and FFT size in samples, window place."""
+    """The framing stage's keys: frame length, step and FFT size in samples, window place.
+
+    Attributes
+    ----------
+    frame_length : int
+        samples per frame (the window's length).
+    frame_step : int
+        samples between frames.
+    fft_length : int
+        FFT size, a power of two >= frame_length (the C front end's radix-2 FFT).
+    window_in_frame : str
+        "start": frame_length samples, zero-padded at the end to fft_length; "centre":
+        fft_length samples, the window centred in them.
+    """
     frame_length: int = key(int, "samples per frame (the window's length)", lo=2, hi=MAX_FFT)
     frame_step: int = key(int, "samples between frames", lo=1, hi=MAX_SAMPLES)
     fft_length: int = key(int, "FFT size, a power of two >= frame_length (the C front end's "
@@ -69,7 +82,17 @@ class FramingConfig:
 
 
 class FramingStage(Stage):
-    """Frames of a (padded) window, and which of them a stream shares between windows."""
+    """Frames of a (padded) window, and which of them a stream shares between windows.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "framing", FramingConfig, "frames"
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:

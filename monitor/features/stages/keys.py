@@ -48,6 +48,25 @@ class Key:
     that is no switch it is the value a card written out at the defaults carries
     (``dct_norm = "ortho"`` beside ``mfcc = 0``); ``needs`` names a switch of the same stage
     without which the key does nothing (``pad_mode`` needs ``center``).
+
+    Attributes
+    ----------
+    type : type
+        int, float, str or bool.
+    doc : str
+        What the key means, for messages and the README.
+    choices : tuple
+        The allowed values (empty: any in range).
+    lo, hi : float or None
+        Bounds of a number.
+    above : bool
+        `lo` itself is not allowed.
+    default : object
+        The value when the card leaves the key out, or REQUIRED.
+    off : object
+        The value that changes nothing, or NO_OFF.
+    needs : str or None
+        The switch of the same stage without which the key does nothing.
     """
 
     type: type
@@ -114,7 +133,18 @@ class Key:
 
 
 def show_value(value: Any) -> str:
-    """A card value as a message shows it: TOML's true/false, a quoted string, else repr."""
+    """A card value as a message shows it: TOML's true/false, a quoted string, else repr.
+
+    Parameters
+    ----------
+    value : object
+        A card value.
+
+    Returns
+    -------
+    str
+        Its spelling in a message.
+    """
     if isinstance(value, bool):
         return "true" if value else "false"
     if isinstance(value, str):
@@ -123,7 +153,22 @@ def show_value(value: Any) -> str:
 
 
 def key(type_: type, doc: str, **kw: Any) -> Any:
-    """A dataclass field that is a card key (see `Key`)."""
+    """A dataclass field that is a card key (see `Key`).
+
+    Parameters
+    ----------
+    type_ : type
+        int, float, str or bool.
+    doc : str
+        What the key means.
+    **kw
+        The rest of `Key`'s fields.
+
+    Returns
+    -------
+    dataclasses.Field
+        A field whose metadata holds the `Key`.
+    """
     k = Key(type_, doc, **kw)
     if k.default is REQUIRED:
         return field(metadata={"key": k})
@@ -131,19 +176,53 @@ def key(type_: type, doc: str, **kw: Any) -> Any:
 
 
 def keys_of(config: type) -> dict[str, Key]:
-    """The card keys of a config class, in declaration order."""
+    """The card keys of a config class, in declaration order.
+
+    Parameters
+    ----------
+    config : type
+        A stage's config class (or `AudioConfig`).
+
+    Returns
+    -------
+    dict
+        Key name to `Key`.
+    """
     return {f.name: f.metadata["key"] for f in dataclasses.fields(config) if "key" in f.metadata}
 
 
 def nearest(name: str, known) -> str:
-    """", did you mean X?" for the nearest known name, or ""."""
+    """", did you mean X?" for the nearest known name, or "".
+
+    Parameters
+    ----------
+    name : str
+        An unknown name.
+    known : iterable of str
+        The names allowed.
+
+    Returns
+    -------
+    str
+        The hint, or "" when none is close (difflib).
+    """
     close = difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)
     return f"; did you mean {close[0]}?" if close else ""
 
 
 @dataclass(frozen=True)
 class AudioConfig:
-    """The ``[audio]`` table: the rate the model was trained on, its window and hop."""
+    """The ``[audio]`` table: the rate the model was trained on, its window and hop.
+
+    Attributes
+    ----------
+    sample_rate : int
+        Hz, what the model was trained on.
+    window_s : float
+        seconds of audio per decision (a whole number of samples).
+    hop_s : float
+        seconds between decisions (a whole number of samples).
+    """
 
     sample_rate: int = key(int, "Hz, what the model was trained on", lo=1000, hi=768000)
     window_s: float = key(float, "seconds of audio per decision (a whole number of samples)",
@@ -163,7 +242,24 @@ class AudioConfig:
 
 
 def audio_from_table(table: dict[str, Any]) -> AudioConfig:
-    """Validate an ``[audio]`` table; CardProblem names the key and the rule."""
+    """Validate an ``[audio]`` table; CardProblem names the key and the rule.
+
+    Parameters
+    ----------
+    table : dict
+        The ``[audio]`` table as parsed.
+
+    Returns
+    -------
+    AudioConfig
+        The validated table.
+
+    Raises
+    ------
+    CardProblem
+        A key missing or out of bounds, or a window or hop that is not a whole number of
+        samples.
+    """
     values = {}
     for name, k in keys_of(AudioConfig).items():
         if name not in table:

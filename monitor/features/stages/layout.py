@@ -13,7 +13,14 @@ from monitor.features.stages.keys import key
 
 @dataclass(frozen=True)
 class LayoutConfig:
-    """The layout stage's key: the model input's axis order, "time_mel" or "mel_time"."""
+    """The layout stage's key: the model input's axis order, "time_mel" or "mel_time".
+
+    Attributes
+    ----------
+    layout : str
+        model input axes after the batch: "time_mel" (frames, bands) or "mel_time" (bands,
+        frames); a channel axis is added if the model has one.
+    """
     layout: str = key(str, "model input axes after the batch: \"time_mel\" (frames, bands) or "
                       "\"mel_time\" (bands, frames); a channel axis is added if the model has "
                       "one", choices=("time_mel", "mel_time"))

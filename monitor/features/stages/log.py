@@ -13,7 +13,22 @@ from monitor.features.stages.keys import AudioConfig, CardProblem, key
 
 @dataclass(frozen=True)
 class LogConfig:
-    """The log stage's keys: which log, its offset and floor, for dB its reference and top_db."""
+    """The log stage's keys: which log, its offset and floor, for dB its reference and top_db.
+
+    Attributes
+    ----------
+    log : str
+        "ln", "log10" or "db" (10 log10 of power, 20 log10 of magnitude).
+    log_offset : float
+        added before the log (0 with a log_floor).
+    log_floor : float
+        values below it are raised to it before the log (after log_offset; librosa's amin).
+    db_ref : str
+        log = "db": "one" (10 log10(x / 1)) or "max" (minus the window's own maximum;
+        librosa's ref=np.max).
+    top_db : float
+        log = "db", > 0: values below the window's maximum minus top_db are raised to it.
+    """
     log: str = key(str, "\"ln\", \"log10\" or \"db\" (10 log10 of power, 20 log10 of "
                    "magnitude)", choices=("ln", "log10", "db"))
     log_offset: float = key(float, "added before the log (0 with a log_floor)", lo=0.0, hi=1e6)
@@ -52,7 +67,17 @@ class LogConfig:
 
 
 class LogStage(Stage):
-    """The log of each value (offset, floor, ln, log10 or dB), then dB reference and top_db."""
+    """The log of each value (offset, floor, ln, log10 or dB), then dB reference and top_db.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "log", LogConfig, "features"
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:

@@ -15,7 +15,24 @@ from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, ke
 
 @dataclass(frozen=True)
 class MelConfig:
-    """The mel stage's keys: band count, edges in Hz, mel scale, normalisation, triangles."""
+    """The mel stage's keys: band count, edges in Hz, mel scale, normalisation, triangles.
+
+    Attributes
+    ----------
+    mel_bands : int
+        triangular mel bands.
+    fmin : float
+        Hz, lower edge of the lowest band.
+    fmax : float
+        Hz, upper edge of the highest band, at most sample_rate / 2.
+    mel_scale : str
+        "htk" (2595 log10(1 + f/700)) or "slaney".
+    mel_norm : str
+        "none" or "slaney" (each band scaled to unit area in Hz).
+    mel_triangles : str
+        "hz": triangles linear in Hz at the FFT bins (librosa); "mel": linear in mel
+        (TensorFlow, CMSIS-DSP).
+    """
     mel_bands: int = key(int, "triangular mel bands", lo=1, hi=MAX_BANDS)
     fmin: float = key(float, "Hz, lower edge of the lowest band", lo=0.0)
     fmax: float = key(float, "Hz, upper edge of the highest band, at most sample_rate / 2",
@@ -44,7 +61,17 @@ class MelConfig:
 
 
 class MelStage(Stage):
-    """The triangular mel filterbank (`monitor.features.dsp.mel_filterbank`) applied to each frame."""
+    """The triangular mel filterbank (`monitor.features.dsp.mel_filterbank`) applied to each frame.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "mel", MelConfig, "features"
     band_name = "bands"
 

@@ -14,7 +14,14 @@ from monitor.sound.samples import quantise_pcm16
 
 @dataclass(frozen=True)
 class PcmConfig:
-    """The pcm stage's key: ``pcm_bits``, 16 to quantise the input to int16, 0 to keep it."""
+    """The pcm stage's key: ``pcm_bits``, 16 to quantise the input to int16, 0 to keep it.
+
+    Attributes
+    ----------
+    pcm_bits : int
+        16: quantise the input to int16 first, as the device's microphone path does; 0: keep
+        float.
+    """
     pcm_bits: int = key(int, "16: quantise the input to int16 first, as the device's "
                         "microphone path does; 0: keep float", choices=(0, 16), default=0, off=0)
 

@@ -13,7 +13,13 @@ from monitor.features.stages.keys import key
 
 @dataclass(frozen=True)
 class PreemphasisConfig:
-    """The pre-emphasis stage's key: the coefficient ``preemphasis`` (0: off)."""
+    """The pre-emphasis stage's key: the coefficient ``preemphasis`` (0: off).
+
+    Attributes
+    ----------
+    preemphasis : float
+        a > 0: y[0] = x[0], y[n] = x[n] - a x[n-1], within each window.
+    """
     preemphasis: float = key(float, "a > 0: y[0] = x[0], y[n] = x[n] - a x[n-1], within each "
                              "window", lo=0.0, hi=1.0, default=0.0, off=0.0)
 

@@ -34,7 +34,17 @@ from monitor.features.stages.window import WindowConfig, WindowStage
 @dataclass(frozen=True)
 class FrontendConfig:
     """The ``[frontend]`` table: the kind, and one config per stage (None when the kind
-    does not run the stage)."""
+    does not run the stage).
+
+    Attributes
+    ----------
+    kind : {"waveform", "spectrogram", "logmel", "mfcc"}
+        The front end's kind (its list of stages).
+    pcm, preemphasis : config
+        The configs of the stages every kind runs.
+    centre, framing, window, spectrum, mel, log, dct, layout : config or None
+        The configs of the other stages, None where the kind does not run them.
+    """
 
     kind: Kind
     pcm: PcmConfig
@@ -104,6 +114,24 @@ def frontend_from_table(table: dict[str, Any], audio: AudioConfig) -> FrontendCo
     is refused; a key of a stage it does not run may only carry its off value (one without an
     off value is refused there at any value, naming the kind); an unknown key
     is refused with the nearest known one; then each stage checks its combinations.
+
+    Parameters
+    ----------
+    table : dict
+        The ``[frontend]`` table as parsed.
+    audio : AudioConfig
+        The validated ``[audio]`` table (some rules need the window).
+
+    Returns
+    -------
+    FrontendConfig
+        The validated table.
+
+    Raises
+    ------
+    CardProblem
+        A key that is unknown, missing, of the wrong type or value, set for a stage the kind
+        does not run, or a combination that breaks a stage's rule.
     """
     if "kind" not in table:
         raise CardProblem(f"frontend.kind is missing: it must be one of {', '.join(KINDS)}")
@@ -174,7 +202,22 @@ KINDS: dict[str, tuple[str, ...]] = {
 
 
 def build_stages(audio: AudioConfig, fe: FrontendConfig, scaling: ScalingConfig) -> list[Stage]:
-    """The stages of the front end's kind, built (active or not), in order."""
+    """The stages of the front end's kind, built (active or not), in order.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendConfig
+        The card's ``[frontend]`` table.
+    scaling : ScalingConfig
+        The card's ``[scaling]`` table.
+
+    Returns
+    -------
+    list of Stage
+        One built stage per stage of the kind.
+    """
     return [STAGES[name](audio, fe, scaling) for name in KINDS[fe.kind]]
 
 

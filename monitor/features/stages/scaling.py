@@ -13,7 +13,15 @@ from monitor.features.stages.keys import PER_WINDOW_EPS, AudioConfig, key
 
 @dataclass(frozen=True)
 class ScalingConfig:
-    """The ``[scaling]`` table: standardisation learned in training, and per window."""
+    """The ``[scaling]`` table: standardisation learned in training, and per window.
+
+    Attributes
+    ----------
+    mean, std : numpy.ndarray
+        float32, one value, one per band, or the full feature shape.
+    per_window : {"none", "standardise"}
+        Standardise each window first.
+    """
 
     mean: np.ndarray = field(default_factory=lambda: np.zeros((), np.float32), compare=False)
     std: np.ndarray = field(default_factory=lambda: np.ones((), np.float32), compare=False)
@@ -28,7 +36,17 @@ class ScalingConfig:
 
 
 class ScalingStage(Stage):
-    """The ``[scaling]`` table: optional per-window standardisation, then (x - mean) / std."""
+    """The ``[scaling]`` table: optional per-window standardisation, then (x - mean) / std.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingConfig
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "scaling", ScalingConfig, "output"
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingConfig) -> None:

@@ -16,7 +16,13 @@ from monitor.features.stages.keys import key
 
 @dataclass(frozen=True)
 class SpectrumConfig:
-    """The spectrum stage's key: ``power``, 1 for magnitude, 2 for power."""
+    """The spectrum stage's key: ``power``, 1 for magnitude, 2 for power.
+
+    Attributes
+    ----------
+    power : float
+        1: magnitude |X|, 2: power |X|^2.
+    """
     power: float = key(float, "1: magnitude |X|, 2: power |X|^2", choices=(1.0, 2.0))
 
 

@@ -15,7 +15,15 @@ from monitor.features.stages.keys import AudioConfig, key
 
 @dataclass(frozen=True)
 class WindowConfig:
-    """The window stage's keys: Hann or Hamming, periodic or symmetric."""
+    """The window stage's keys: Hann or Hamming, periodic or symmetric.
+
+    Attributes
+    ----------
+    window : str
+        "hann" or "hamming" (Harris 1978); periodic unless window_symmetric.
+    window_symmetric : bool
+        true: the symmetric window (np.hanning) instead of the periodic one.
+    """
     window: str = key(str, "\"hann\" or \"hamming\" (Harris 1978); periodic unless "
                       "window_symmetric", choices=("hann", "hamming"))
     window_symmetric: bool = key(bool, "true: the symmetric window (np.hanning) instead of the "
@@ -23,7 +31,17 @@ class WindowConfig:
 
 
 class WindowStage(Stage):
-    """Each frame times the Hann or Hamming window, placed in a zero-filled FFT buffer."""
+    """Each frame times the Hann or Hamming window, placed in a zero-filled FFT buffer.
+
+    Parameters
+    ----------
+    audio : AudioConfig
+        The card's ``[audio]`` table.
+    fe : FrontendLike
+        The card's ``[frontend]`` table.
+    scaling : ScalingLike
+        The card's ``[scaling]`` table.
+    """
     name, config, part = "window", WindowConfig, "frames"
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:
