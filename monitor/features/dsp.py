@@ -220,7 +220,7 @@ def lifter_weights(coefficients: int, lifter: float) -> np.ndarray:
     coefficients : int
         Coefficients kept.
     lifter : float
-        The lifter parameter (0: all weights 1).
+        The lifter parameter, > 0 (without a lifter the DCT stage does not call this).
 
     Returns
     -------
