@@ -44,7 +44,19 @@ from monitor.sound.windower import windows_of
 
 @dataclass
 class LoadedModel:
-    """A model ready to run: its plan, its card and its runner."""
+    """A model ready to run: its plan, its card and its runner.
+
+    Attributes
+    ----------
+    plan : ModelPlan
+        What was asked for.
+    card : ModelCard
+        Its card.
+    runner : Runner
+        The loaded model.
+    profile : Profile or None
+        Its unfamiliar-sound profile, when one lies beside it.
+    """
 
     plan: ModelPlan
     card: ModelCard
@@ -84,7 +96,20 @@ def card_of(plan: ModelPlan) -> ModelCard:
 
 
 def load_model(plan: ModelPlan, card: ModelCard | None = None) -> LoadedModel:
-    """Card (unless given) and runner of one model, checked against each other."""
+    """Card (unless given) and runner of one model, checked against each other.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The model file, its card and runtime.
+    card : ModelCard, optional
+        The card, when already read.
+
+    Returns
+    -------
+    LoadedModel
+        The card, runner and profile.
+    """
     card = card or card_of(plan)
     runner = load_runner(plan.path, card, runtime=plan.runtime, trust_model=plan.trust)
     from monitor.inference.novelty import profile_beside
@@ -93,7 +118,25 @@ def load_model(plan: ModelPlan, card: ModelCard | None = None) -> LoadedModel:
 
 
 def decision_settings(card: ModelCard, overrides: dict[str, Any]) -> DecisionSettings:
-    """The card's ``[decision]`` table with the command line's values over it."""
+    """The card's ``[decision]`` table with the command line's values over it.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The model's card.
+    overrides : dict
+        Settings given on the command line (None: not given).
+
+    Returns
+    -------
+    DecisionSettings
+        The settings used.
+
+    Raises
+    ------
+    ScenemonError
+        A combination the settings refuse.
+    """
     try:
         return card.decision.replace(**overrides)
     except ValueError as exc:
@@ -102,7 +145,20 @@ def decision_settings(card: ModelCard, overrides: dict[str, Any]) -> DecisionSet
 
 def open_source(src: FileInput | MicInput | Source, card: ModelCard) -> Source:
     """The file or microphone source for a card's rate and window (validated now); a
-    `Source` already built (a test's, or an embedding program's) is used as it is."""
+    `Source` already built (a test's, or an embedding program's) is used as it is.
+
+    Parameters
+    ----------
+    src : FileInput, MicInput or Source
+        What to listen to.
+    card : ModelCard
+        Model A's card (its rate and window).
+
+    Returns
+    -------
+    Source
+        The source, not started.
+    """
     if not isinstance(src, (FileInput, MicInput)):
         return src
     if isinstance(src, FileInput):
@@ -120,7 +176,13 @@ def open_source(src: FileInput | MicInput | Source, card: ModelCard) -> Source:
 
 # --- where sessions go ---------------------------------------------------------------------
 def project_root() -> Path:
-    """The checkout holding models/ (the working directory, else the package's parent)."""
+    """The checkout holding models/ (the working directory, else the package's parent).
+
+    Returns
+    -------
+    Path
+        The folder.
+    """
     cwd = Path.cwd()
     if (cwd / "models" / "demo.toml").is_file():
         return cwd
@@ -129,7 +191,20 @@ def project_root() -> Path:
 
 def unclosed_sessions(base: Path, limit: int = 2000) -> list[Path]:
     """Sessions under `base` that did not close cleanly (killed, power loss); sessions that
-    another process is still writing are not among them."""
+    another process is still writing are not among them.
+
+    Parameters
+    ----------
+    base : Path
+        A folder of sessions.
+    limit : int
+        Sessions looked at, at most.
+
+    Returns
+    -------
+    list of Path
+        The sessions without a summary.json and without a live writer.
+    """
     try:
         dirs = sorted(p.parent for p in base.glob("*/session.json"))[-limit:]
     except OSError:
@@ -138,7 +213,18 @@ def unclosed_sessions(base: Path, limit: int = 2000) -> list[Path]:
 
 
 def session_dir(out: OutputPlan) -> Path:
-    """The session directory: ``--out``, or a new ``recordings/<date>-<time>-<name>``."""
+    """The session directory: ``--out``, or a new ``recordings/<date>-<time>-<name>``.
+
+    Parameters
+    ----------
+    out : OutputPlan
+        Where and what the session writes.
+
+    Returns
+    -------
+    Path
+        The directory (not yet made).
+    """
     if out.dir is not None:
         return Path(out.dir)
     base = project_root() / "recordings"
@@ -192,6 +278,19 @@ class SessionHandle:
 
     The UI never reads the engine, the writer, the capture policy or the source itself: it
     asks the handle (`now_s`, `can_capture`, `snippet_count`, `write_error`).
+
+    Attributes
+    ----------
+    dir : Path
+        The session directory.
+    models : list of LoadedModel
+        The models, A first.
+    decisions : list of DecisionSettings
+        Each model's decision settings.
+    live_truth : LiveTruth or None
+        The truth keys' record, when the truth is told live.
+    source : dict
+        session.json's ``source``.
     """
 
     dir: Path
@@ -243,7 +342,24 @@ class SessionHandle:
 
 def describe_session(plan: SessionPlan, models: list[LoadedModel],
                      decisions: list[DecisionSettings], source: Source) -> dict[str, Any]:
-    """session.json (the README's session directory): model A as a one-model session has it, plus ``models``."""
+    """session.json (the README's session directory): model A as a one-model session has it, plus ``models``.
+
+    Parameters
+    ----------
+    plan : SessionPlan
+        The session's plan.
+    models : list of LoadedModel
+        The models, A first.
+    decisions : list of DecisionSettings
+        Each model's settings.
+    source : Source
+        The source (its ``describe()``).
+
+    Returns
+    -------
+    dict
+        session.json's content.
+    """
     a = models[0]
     meta = {
         "tool": "scenemon", "version": __version__,
@@ -290,6 +406,11 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
     ------
     ScenemonError
         Bad input (card, model, audio, truth, flags, output directory): nothing is left on disk.
+
+    Returns
+    -------
+    dict
+        summary.json's content.
     """
     say = progress or (lambda text: None)
     if plan.prepare is not None:
@@ -369,7 +490,26 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
 def replay_file(models: Sequence[LoadedModel], audio, *, truth: TruthTrack | None = None,
                 observers: Sequence[Observer] = (), realtime: bool = False) -> dict[str, Any]:
     """One recording (a file, or a list of one recording's files) through the replay chain,
-    without a session directory; returns the summary."""
+    without a session directory; returns the summary.
+
+    Parameters
+    ----------
+    models : sequence of LoadedModel
+        One model, or two (A/B).
+    audio : Path or list of Path
+        The recording.
+    truth : TruthTrack, optional
+        Its truth.
+    observers : sequence of Observer
+        Observers of the windows (a `Collector`).
+    realtime : bool
+        Pace the file at real time.
+
+    Returns
+    -------
+    dict
+        The summary.
+    """
     from monitor.sound.sources import FileSource
 
     card = models[0].card
@@ -382,7 +522,23 @@ def replay_file(models: Sequence[LoadedModel], audio, *, truth: TruthTrack | Non
 
 
 def recording_files(path: Path) -> list[Path]:
-    """The audio files of a recording: the file itself, or a session's audio segments."""
+    """The audio files of a recording: the file itself, or a session's audio segments.
+
+    Parameters
+    ----------
+    path : Path
+        An audio file or a session directory.
+
+    Returns
+    -------
+    list of Path
+        The audio files, in order.
+
+    Raises
+    ------
+    ScenemonError
+        A session without audio.
+    """
     from monitor.base.files import audio_segments
 
     path = Path(path)
@@ -397,7 +553,20 @@ def recording_files(path: Path) -> list[Path]:
 
 def file_windows(path: Path, card: ModelCard) -> np.ndarray:
     """Every window of a recording (or a session's audio segments, joined) at the card's rate,
-    resampled exactly as replay resamples; shape ``(n, window_samples)``."""
+    resampled exactly as replay resamples; shape ``(n, window_samples)``.
+
+    Parameters
+    ----------
+    path : Path
+        An audio file or a session directory.
+    card : ModelCard
+        The card (rate, window, hop).
+
+    Returns
+    -------
+    numpy.ndarray
+        float32 windows.
+    """
     from monitor.sound.sources import load_audio
 
     x = load_audio(recording_files(path), model_rate=card.sample_rate,

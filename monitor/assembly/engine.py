@@ -87,6 +87,13 @@ class Engine:
         Per model, a novelty profile or None.
     keep_features : bool
         Keep each window's features in its result (for the UI's picture).
+
+    Raises
+    ------
+    ModelError
+        Two models whose cards differ in rate, window or hop.
+    ValueError
+        No model, or more than two.
     """
 
     def __init__(self, models: Sequence[tuple[ModelCard, Runner]], source: Source, *,
@@ -336,7 +343,18 @@ def _with_others(res: WindowResult, others: tuple[WindowResult, ...]) -> WindowR
 
 
 def lane_summary(lane: _Lane) -> dict[str, Any]:
-    """One model's decision figures for summary.json."""
+    """One model's decision figures for summary.json.
+
+    Parameters
+    ----------
+    lane : _Lane
+        One model's part of the chain.
+
+    Returns
+    -------
+    dict
+        Windows, decision changes, accuracy and the rest of that model's figures.
+    """
     t = lane.tally
     return {
         "windows": t.windows,

@@ -72,7 +72,15 @@ class HeadlessPrinter(_Printer):
 
 class ChangePrinter(_Printer):
     """One readable line per decision change (the demo without a screen); the undecided
-    start is not a change."""
+    start is not a change.
+
+    Parameters
+    ----------
+    stream : TextIO, optional
+        Where the lines go (stdout).
+    stop : threading.Event, optional
+        Set when the stream is closed (a pipe whose reader left).
+    """
 
     def __init__(self, stream: TextIO | None = None, stop: threading.Event | None = None) -> None:
         super().__init__(stream, stop)
@@ -100,7 +108,15 @@ class ChangePrinter(_Printer):
 
 
 class WriteWatch(ObserverBase):
-    """Says once, on stderr, when the session writer has stopped (disk full)."""
+    """Says once, on stderr, when the session writer has stopped (disk full).
+
+    Parameters
+    ----------
+    writer : SessionWriter
+        The session's writer.
+    stream : TextIO, optional
+        Where the notice goes (stderr).
+    """
 
     def __init__(self, writer, stream: TextIO | None = None) -> None:
         self.writer, self.said = writer, False
@@ -115,7 +131,13 @@ class WriteWatch(ObserverBase):
 
 
 class Collector(ObserverBase):
-    """Keeps the window records (``ms`` left out when `timings` is False): `score` and tests."""
+    """Keeps the window records (``ms`` left out when `timings` is False): `score` and tests.
+
+    Parameters
+    ----------
+    timings : bool
+        Keep each record's ``ms``.
+    """
 
     def __init__(self, *, timings: bool = True) -> None:
         self.records: list[dict] = []

@@ -18,7 +18,19 @@ DEFAULT_SEGMENT_S = 3600.0
 
 @dataclass(frozen=True)
 class ModelPlan:
-    """One model: its file, its card (None: the card beside it) and the runtime."""
+    """One model: its file, its card (None: the card beside it) and the runtime.
+
+    Attributes
+    ----------
+    path : Path
+        The model file.
+    card : Path or None
+        Its card (None: the card beside it).
+    runtime : str
+        "litert" or "micro" for a ``.tflite``.
+    trust : bool
+        Allow Keras Lambda layers.
+    """
 
     path: Path
     card: Path | None = None
@@ -28,7 +40,17 @@ class ModelPlan:
 
 @dataclass(frozen=True)
 class FileInput:
-    """A recording replayed through the chain."""
+    """A recording replayed through the chain.
+
+    Attributes
+    ----------
+    path : Path
+        The recording.
+    realtime : bool
+        Pace it at real time (else as fast as the CPU allows).
+    allow_upsample : bool
+        Accept a rate below the model's.
+    """
 
     path: Path
     realtime: bool = True  # paced as a microphone; False: as fast as the CPU allows
@@ -37,7 +59,19 @@ class FileInput:
 
 @dataclass(frozen=True)
 class MicInput:
-    """An input device (PortAudio)."""
+    """An input device (PortAudio).
+
+    Attributes
+    ----------
+    device : str or None
+        An index or part of a name; None: the preferred default.
+    latency : str or float
+        PortAudio's suggested latency ("high", "low" or seconds).
+    blocksize : int or None
+        Frames per callback (None: about 50 ms; 0: PortAudio's choice).
+    seconds : float or None
+        Stop after this much audio.
+    """
 
     device: str | None = None  # an index or part of a name; None: the preferred default
     latency: str | float = "high"
@@ -47,7 +81,19 @@ class MicInput:
 
 @dataclass(frozen=True)
 class OutputPlan:
-    """Where and what the session writes."""
+    """Where and what the session writes.
+
+    Attributes
+    ----------
+    dir : Path or None
+        The session directory (None: a new one under recordings/).
+    name : str
+        The session's name in a new directory's name.
+    audio : bool
+        Keep the audio.
+    segment_s : float
+        Seconds per audio file.
+    """
 
     dir: Path | None = None  # None: recordings/<date>-<time>-<name>
     name: str = "session"
@@ -61,6 +107,29 @@ class SessionPlan:
 
     ``decision`` holds only the decision settings given on the command line (the rest come
     from each card's ``[decision]`` table); ``capture`` None turns capture off.
+
+    Attributes
+    ----------
+    source : FileInput, MicInput or Source
+        What to listen to.
+    models : tuple of ModelPlan
+        One model, or two (A, B).
+    output : OutputPlan
+        Where and what to write.
+    decision : dict
+        Decision settings from the command line.
+    capture : CaptureSettings or None
+        When snippets are taken (None: never).
+    truth : Path or None
+        A truth file.
+    live_truth : bool
+        The truth is told with keys.
+    keep_features : bool
+        Each window's features travel to the observers.
+    prepare : callable or None
+        Run before the source opens (making the demo tour).
+    prepare_note : str
+        Shown while `prepare` runs.
     """
 
     source: FileInput | MicInput | Any  # or a built `engine.Source` (tests, embedding programs)

@@ -18,7 +18,20 @@ from monitor.base.errors import ExitCode, summary_failure
 
 
 def finish(summary: dict, stream=None) -> int:
-    """Print the closing summary; the exit code of the session."""
+    """Print the closing summary; the exit code of the session.
+
+    Parameters
+    ----------
+    summary : dict
+        The session's summary.
+    stream : TextIO, optional
+        Where the lines go (stderr).
+
+    Returns
+    -------
+    int
+        0, or 1 for a runtime failure the summary records.
+    """
     stream = stream or sys.stderr
     stream.write(summary_text(summary))
     failure = summary_failure(summary)
@@ -30,7 +43,20 @@ def finish(summary: dict, stream=None) -> int:
 
 def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
     """A session without a screen: one JSON object per window (`json_lines`) or one line per
-    decision change on stdout, the summary on stderr."""
+    decision change on stdout, the summary on stderr.
+
+    Parameters
+    ----------
+    plan : SessionPlan
+        The session.
+    json_lines : bool
+        JSON lines (``--headless``) instead of change lines.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.assemble import run_session
     from monitor.assembly.observers import ChangePrinter, HeadlessPrinter
 
@@ -49,6 +75,22 @@ def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
     Each window is labelled with its class: the truth of a session that has one (windows
     without truth are left out), else the model's own top class. Windows are held out for the
     threshold in blocks of 20 within each recording, never across recordings.
+
+    Parameters
+    ----------
+    model : ModelPlan
+        The model.
+    sources : list of Path
+        Recordings or sessions of its own scenes.
+    out : Path or None
+        Where to write (None: beside the model).
+    quantile : float
+        The threshold's quantile of held-out distances.
+
+    Returns
+    -------
+    int
+        The exit code.
     """
     from monitor.assembly.assemble import file_windows, load_model
     from monitor.base.files import check_output
@@ -100,7 +142,18 @@ def _plural(n: int, word: str) -> str:
 
 
 def summary_text(summary: dict) -> str:
-    """The lines printed when a session ends: what happened, and what to run next."""
+    """The lines printed when a session ends: what happened, and what to run next.
+
+    Parameters
+    ----------
+    summary : dict
+        The session's summary.
+
+    Returns
+    -------
+    str
+        The lines.
+    """
     from monitor.assembly.assemble import invocation
 
     acc = summary.get("accuracy")

@@ -37,7 +37,28 @@ MAX_EVERY_S = 86400.0
 
 @dataclass(frozen=True)
 class CaptureSettings:
-    """When and how snippets are cut (the ``--capture*`` flags; defaults here are theirs)."""
+    """When and how snippets are cut (the ``--capture*`` flags; defaults here are theirs).
+
+    Attributes
+    ----------
+    policies : tuple of str
+        The reasons snippets are taken for (disagreement, uncertain, manual, models_disagree,
+        unfamiliar).
+    on : {"decision", "top"}
+        What is compared with the truth for "disagreement".
+    pre_roll_s, post_roll_s : float
+        Seconds kept before and after the windows that triggered it.
+    max_s : float
+        Seconds a snippet may last at most.
+    every_s : float
+        At most one snippet per (truth, predicted) pair this often, in seconds.
+    uncertain_below : float
+        "uncertain": the top smoothed probability is below this (least confidence).
+    uncertain_margin : float
+        "uncertain": the top two smoothed probabilities are closer than this (margin).
+    manual_s : float
+        Seconds a manual capture keeps.
+    """
 
     policies: tuple[str, ...] = POLICIES
     on: str = "decision"  # "decision" | "top": what disagrees with the truth
@@ -88,6 +109,13 @@ class AudioHistory:
     The engine hands audio over before the windows it holds are decided, so a chunk's whole
     length must fit beside the `seconds` a snippet may reach back: a chunk longer than the room
     left grows the buffer once (fast replay reads up to the ring's size at a time).
+
+    Parameters
+    ----------
+    sample_rate : int
+        Hz (the model's rate).
+    seconds : float
+        Seconds kept at first; it grows when a longer stretch is asked for.
     """
 
     def __init__(self, sample_rate: int, seconds: float) -> None:

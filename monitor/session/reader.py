@@ -24,7 +24,27 @@ _NUM = (int, float)
 
 @dataclass
 class Session:
-    """A session read back from disk."""
+    """A session read back from disk.
+
+    Attributes
+    ----------
+    dir : Path
+        The session directory.
+    meta : dict
+        session.json.
+    windows : list of dict
+        Model A's window records.
+    truth : TruthTrack or None
+        truth.tsv, when there is one.
+    summary : dict or None
+        summary.json (None: it did not close cleanly).
+    skipped_lines : int
+        Torn window lines left out.
+    notes : list of str
+        What a reader should know (incomplete, still being recorded).
+    windows_b : list of dict or None
+        Model B's window records in an A/B session.
+    """
 
     dir: Path
     meta: dict[str, Any]
@@ -169,6 +189,20 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
     ------
     SessionError
         A line that is JSON but not a window record (naming the file and the line).
+
+    Parameters
+    ----------
+    path : Path
+        A ``windows.jsonl`` or ``windows.b.jsonl`` file (missing: no windows).
+    classes : int, optional
+        The values every probability list must hold.
+
+    Returns
+    -------
+    windows : list of dict
+        The records in file order.
+    skipped : int
+        Lines that were not JSON (a torn last line).
     """
     windows, skipped = [], 0
     if not path.exists():
@@ -215,6 +249,16 @@ def load_session(path: str | Path) -> Session:
         Not a session directory, an unreadable ``session.json``, or a malformed window line.
     TruthError
         A ``truth.tsv`` that is not UTF-8 text or not valid truth lines.
+
+    Parameters
+    ----------
+    path : str or Path
+        The session directory.
+
+    Returns
+    -------
+    Session
+        Its files, read and checked.
     """
     d = Path(path)
     if not d.is_dir():
@@ -274,5 +318,16 @@ def load_session(path: str | Path) -> Session:
 
 
 def is_session(path: Path) -> bool:
-    """True for a folder holding a session.json."""
+    """True for a folder holding a session.json.
+
+    Parameters
+    ----------
+    path : Path
+        A path.
+
+    Returns
+    -------
+    bool
+        True for a directory with a session.json.
+    """
     return Path(path).is_dir() and (Path(path) / "session.json").is_file()

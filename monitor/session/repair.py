@@ -28,7 +28,18 @@ from monitor.session.truth import Span, format_truth, load_truth
 
 
 def drop_torn_line(path: Path) -> int:
-    """Cut a last line that has no newline; return the bytes removed."""
+    """Cut a last line that has no newline; return the bytes removed.
+
+    Parameters
+    ----------
+    path : Path
+        A window-lines file.
+
+    Returns
+    -------
+    int
+        Bytes removed (0 when the file ends with a newline).
+    """
     size = path.stat().st_size
     if size == 0:
         return 0
@@ -54,7 +65,18 @@ def drop_torn_line(path: Path) -> int:
 
 def wav_layout(path: Path) -> tuple[int, int, int, int, int] | None:
     """(data offset, header frames, frames on disk, channels, sample rate) of a PCM_16 WAV
-    written by the session writer, read from its chunks; None when it is not one."""
+    written by the session writer, read from its chunks; None when it is not one.
+
+    Parameters
+    ----------
+    path : Path
+        A WAV file.
+
+    Returns
+    -------
+    tuple of int or None
+        The five figures, or None.
+    """
     size = path.stat().st_size
     with open(path, "rb") as f:
         head = f.read(12)
@@ -85,7 +107,18 @@ def wav_layout(path: Path) -> tuple[int, int, int, int, int] | None:
 
 
 def fix_wav(path: Path) -> int | None:
-    """Rewrite a WAV whose header lags its data; return its frames (None if unreadable)."""
+    """Rewrite a WAV whose header lags its data; return its frames (None if unreadable).
+
+    Parameters
+    ----------
+    path : Path
+        An audio segment of the session.
+
+    Returns
+    -------
+    int or None
+        Frames on disk, or None when the file is not a WAV the writer wrote.
+    """
     import soundfile as sf
 
     layout = wav_layout(path)
@@ -164,7 +197,24 @@ def truth_from_windows(windows: list[dict]) -> list[Span]:
 
 
 def repair(path: str | Path) -> dict:
-    """Make the session at `path` whole (see module docstring); what was done."""
+    """Make the session at `path` whole (see module docstring); what was done.
+
+    Parameters
+    ----------
+    path : str or Path
+        The session directory.
+
+    Returns
+    -------
+    dict
+        ``session``, ``repaired`` and ``actions`` (what was done, one sentence each), or a
+        ``note`` when there was nothing to repair.
+
+    Raises
+    ------
+    SessionError
+        Not a session, or a session another process is still writing.
+    """
     d = Path(path)
     if session_is_live(d):
         raise SessionError(f"{d}: is still being recorded by another process; repair it once "
@@ -222,7 +272,18 @@ def repair(path: str | Path) -> dict:
 
 
 def check_whole(path: str | Path) -> list[str]:
-    """Problems a reader would meet in a session's files (empty when all is readable)."""
+    """Problems a reader would meet in a session's files (empty when all is readable).
+
+    Parameters
+    ----------
+    path : str or Path
+        The session directory.
+
+    Returns
+    -------
+    list of str
+        One sentence per problem.
+    """
     import wave
 
     import soundfile as sf
@@ -254,7 +315,18 @@ def check_whole(path: str | Path) -> list[str]:
 
 
 def run_repair(session: Path) -> int:
-    """`scenemon repair`: repair and say what was done."""
+    """`scenemon repair`: repair and say what was done.
+
+    Parameters
+    ----------
+    session : Path
+        The session directory.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     res = repair(session)
     if not res["repaired"]:
         sys.stdout.write(f"{res['session']}: {res['note']}\n")

@@ -36,14 +36,33 @@ _MAX_SIDECAR_BYTES = 1 << 20
 
 def safe_label(label: str | None) -> str:
     """A label as a folder name: letters, digits, ``_`` and ``-`` only, no leading dot or
-    dash, at most 64 characters; anything else becomes ``_`` ("unknown" when empty)."""
+    dash, at most 64 characters; anything else becomes ``_`` ("unknown" when empty).
+
+    Parameters
+    ----------
+    label : str or None
+        A label from a card or a sidecar.
+
+    Returns
+    -------
+    str
+        A folder name.
+    """
     text = _SAFE.sub("_", str(label or "")).strip("_-.")[:MAX_LABEL]
     return text or "unknown"
 
 
 @dataclass(frozen=True)
 class SnippetFile:
-    """One snippet on disk: its sidecar path and the sidecar's fields."""
+    """One snippet on disk: its sidecar path and the sidecar's fields.
+
+    Attributes
+    ----------
+    sidecar : Path
+        The snippet's ``.json``.
+    meta : dict
+        The sidecar's fields.
+    """
 
     sidecar: Path
     meta: dict[str, Any]
@@ -98,7 +117,20 @@ class SnippetFile:
 
 
 def encode_wav(audio: np.ndarray, sample_rate: int) -> bytes:
-    """A float32 snippet as 16-bit PCM WAV bytes."""
+    """A float32 snippet as 16-bit PCM WAV bytes.
+
+    Parameters
+    ----------
+    audio : numpy.ndarray
+        float32 samples.
+    sample_rate : int
+        Hz.
+
+    Returns
+    -------
+    bytes
+        The WAV file.
+    """
     import soundfile as sf
 
     buf = io.BytesIO()
@@ -151,6 +183,16 @@ def iter_snippets(session_dir: Path) -> list[SnippetFile]:
 
     A sidecar that is not a regular file, is larger than 1 MB or is not a JSON object is
     skipped; `count_unreadable` says how many.
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    list of SnippetFile
+        In time order.
     """
     out = []
     root = Path(session_dir) / "snippets"
@@ -256,6 +298,20 @@ def verified_audio(snip: SnippetFile, session_dir: Path) -> tuple[bytes | None, 
     Trusted means: a regular file inside the session's ``snippets/`` folder, opened without
     following a link; a WAV that libsndfile reads; its sha256, sample rate and length match
     the sidecar.
+
+    Parameters
+    ----------
+    snip : SnippetFile
+        The snippet.
+    session_dir : Path
+        Its session directory.
+
+    Returns
+    -------
+    data : bytes or None
+        The WAV bytes, or None.
+    why : str or None
+        Why they cannot be trusted, or None.
     """
     import soundfile as sf
 
@@ -291,18 +347,61 @@ def _rewrite(snip: SnippetFile, session_dir: Path, **changes: Any) -> SnippetFil
 
 
 def keep(snip: SnippetFile, session_dir: Path) -> SnippetFile:
-    """Mark the snippet reviewed and kept (only its sidecar changes)."""
+    """Mark the snippet reviewed and kept (only its sidecar changes).
+
+    Parameters
+    ----------
+    snip : SnippetFile
+        The snippet.
+    session_dir : Path
+        Its session directory.
+
+    Returns
+    -------
+    SnippetFile
+        The snippet as its sidecar now says.
+    """
     return _rewrite(snip, session_dir, reviewed=True, dropped=False)
 
 
 def drop(snip: SnippetFile, session_dir: Path) -> SnippetFile:
-    """Mark the snippet dropped: harvest leaves it out (only its sidecar changes)."""
+    """Mark the snippet dropped: harvest leaves it out (only its sidecar changes).
+
+    Parameters
+    ----------
+    snip : SnippetFile
+        The snippet.
+    session_dir : Path
+        Its session directory.
+
+    Returns
+    -------
+    SnippetFile
+        The snippet as its sidecar now says.
+    """
     return _rewrite(snip, session_dir, reviewed=True, dropped=True)
 
 
 def relabel(snip: SnippetFile, session_dir: Path, label: str,
             classes: list[str]) -> SnippetFile:
-    """Give the snippet another label, remembering the first one in ``relabeled_from``."""
+    """Give the snippet another label, remembering the first one in ``relabeled_from``.
+
+    Parameters
+    ----------
+    snip : SnippetFile
+        The snippet.
+    session_dir : Path
+        Its session directory.
+    label : str
+        The new label.
+    classes : list of str
+        The model's classes (the sidecar notes whether the label is one of them).
+
+    Returns
+    -------
+    SnippetFile
+        The snippet as its sidecar now says.
+    """
     fresh = _read_sidecar(snip.sidecar, session_dir) or snip.meta
     if label == fresh.get("label"):
         return SnippetFile(snip.sidecar, fresh)
@@ -313,7 +412,18 @@ def relabel(snip: SnippetFile, session_dir: Path, label: str,
 
 
 def verify_all(session_dir: Path) -> list[str]:
-    """Problems with the session's snippets (empty when every one is whole and trusted)."""
+    """Problems with the session's snippets (empty when every one is whole and trusted).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session directory.
+
+    Returns
+    -------
+    list of str
+        One sentence per problem.
+    """
     problems = []
     for snip in iter_snippets(session_dir):
         _, why = verified_audio(snip, session_dir)

@@ -12,7 +12,15 @@ from monitor.base.errors import TruthError
 
 @dataclass(frozen=True)
 class Span:
-    """One labelled stretch of truth, from `onset` to `offset` in seconds."""
+    """One labelled stretch of truth, from `onset` to `offset` in seconds.
+
+    Attributes
+    ----------
+    onset, offset : float
+        Seconds from the session start.
+    label : str
+        The truth.
+    """
 
     onset: float
     offset: float
@@ -21,7 +29,13 @@ class Span:
 
 class TruthTrack:
     """Non-overlapping labelled spans; `label_for(t0, t1)` gives the label covering at least
-    half of the window, else None."""
+    half of the window, else None.
+
+    Parameters
+    ----------
+    spans : list of Span
+        Non-overlapping spans (sorted here).
+    """
 
     def __init__(self, spans: list[Span]) -> None:
         self.spans = sorted(spans, key=lambda s: s.onset)
@@ -57,6 +71,11 @@ def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None
     TruthError
         A malformed line, a time that is not a finite number >= 0, a span that ends before
         it starts, lines out of time order, or overlapping spans; naming the file and line.
+
+    Returns
+    -------
+    TruthTrack
+        The spans.
     """
     spans = []
     last_onset, last_line = -math.inf, 0
@@ -107,6 +126,11 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
     ------
     TruthError
         The file is missing, not UTF-8 text, or not valid truth lines.
+
+    Returns
+    -------
+    TruthTrack
+        The spans.
     """
     path = Path(path)
     if not path.exists():
@@ -121,7 +145,18 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
 
 
 def format_truth(spans: list[Span]) -> str:
-    """Spans as truth lines, times to the millisecond (the text of truth.tsv)."""
+    """Spans as truth lines, times to the millisecond (the text of truth.tsv).
+
+    Parameters
+    ----------
+    spans : list of Span
+        The spans.
+
+    Returns
+    -------
+    str
+        ``onset<TAB>offset<TAB>label`` lines.
+    """
     return "".join(f"{s.onset:.3f}\t{s.offset:.3f}\t{s.label}\n" for s in spans)
 
 
@@ -130,6 +165,11 @@ class LiveTruth:
 
     `set` is called from the UI thread, `label_for` from the compute thread; a lock guards
     the short list operations.
+
+    Parameters
+    ----------
+    classes : tuple of str
+        The labels the keys may set.
     """
 
     def __init__(self, classes: tuple[str, ...]) -> None:

@@ -63,6 +63,23 @@ def prepare_dir(out: Path, *, truth_file: Path | None = None) -> Path:
     A ``truth.tsv`` already in `out` is refused too (the session would write its own),
     unless it is the very truth file this session replays (`truth_file`), which is then
     left exactly as it is.
+
+    Parameters
+    ----------
+    out : Path
+        The session directory to create (or an empty one to use).
+    truth_file : Path, optional
+        The truth file this session replays.
+
+    Returns
+    -------
+    Path
+        The directory.
+
+    Raises
+    ------
+    SessionError
+        `out` is a file, or already holds a session's files or another truth.tsv.
     """
     if out.exists() and not out.is_dir():
         raise SessionError(f"{out}: exists and is not a directory")
@@ -106,6 +123,11 @@ class SessionWriter(ObserverBase):
         Seconds per audio file before the next segment starts (> 0).
     truth_file : Path, optional
         The truth file being replayed; when it is ``out/truth.tsv`` it is kept, not rewritten.
+
+    Raises
+    ------
+    SessionError
+        The directory cannot be made or already holds a session.
     """
 
     def __init__(self, out: str | Path, meta: dict[str, Any], *, sample_rate: int,
