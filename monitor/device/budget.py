@@ -48,6 +48,21 @@ class Layer:
 
     ``filter`` is the weight tensor's shape for convolutions and fully connected layers, else
     None; ``other_ops`` counts the comparisons of pooling or the additions of a mean.
+
+    Attributes
+    ----------
+    index : int
+        The node's place in execution order.
+    op : str
+        Its operator.
+    input, output : tuple of int
+        Shapes of its first input and its output.
+    filter : tuple of int or None
+        The weight tensor's shape, for convolutions and fully connected layers.
+    macs : int
+        Multiply-accumulates per window.
+    other_ops : int
+        Other operations per window.
     """
 
     index: int
@@ -66,6 +81,31 @@ class Budget:
     ``arena_bytes`` is None when the model does not load in the microcontroller runtime
     (``unsupported_ops`` then names the operator). ``frontend_ram`` also holds the caller's
     buffers (one window of int16 PCM, the feature tensor), not only the front end's own.
+
+    Attributes
+    ----------
+    model : str
+        The model file's name.
+    runtime : str
+        The runtime measured ("micro").
+    arena_bytes : int or None
+        The interpreter's recorded arena.
+    frontend_ram, frontend_flash : dict
+        Bytes of the front end's buffers and tables, by name.
+    model_bytes : int
+        The flatbuffer's size.
+    layers : list of Layer
+        Every node.
+    ops, unsupported_ops : list of str
+        The model's operators, and those the microcontroller runtime has no kernel for.
+    frontend_ops_per_hop : dict
+        The front end's operations per hop, by stage.
+    hop_s : float
+        Seconds per hop.
+    int8 : bool
+        The model's input is int8.
+    notes : list of str
+        What the figures rest on.
     """
 
     model: str
@@ -140,7 +180,23 @@ class Budget:
 
 
 def layers_of(path: Path) -> list[Layer]:
-    """Every node of a `.tflite` model with its shapes and work (see module docstring)."""
+    """Every node of a `.tflite` model with its shapes and work (see module docstring).
+
+    Parameters
+    ----------
+    path : Path
+        The ``.tflite`` model.
+
+    Returns
+    -------
+    list of Layer
+        In execution order.
+
+    Raises
+    ------
+    ModelError
+        The file's operators cannot be read (a damaged file).
+    """
     from ai_edge_litert import schema_py_generated as fb
     from ai_edge_litert.interpreter import Interpreter, OpResolverType
 
@@ -189,7 +245,18 @@ def layers_of(path: Path) -> list[Layer]:
 
 def frontend_ops_per_hop(card: ModelCard) -> dict[str, int]:
     """Operations the front end does for each new hop of audio, stage by stage (frames shared
-    across windows computed once, as the streaming C call does)."""
+    across windows computed once, as the streaming C call does).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    dict
+        Operation name to count per hop.
+    """
 
     stages = card.stages()
     framing = next((s for s in stages if s.name == "framing"), None)
@@ -237,6 +304,11 @@ def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) ->
     ModelError
         Not a ``.tflite`` model, or one that does not load for another reason than an
         operator the runtime lacks (that one is recorded in ``unsupported_ops``).
+
+    Returns
+    -------
+    Budget
+        The figures.
     """
     from monitor.assembly.assemble import load_model
     from monitor.device.constants import c_buffers, c_tables
@@ -290,6 +362,18 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
     Each RAM and flash figure with where it comes from, the work per layer and per hop, the
     operators (and those the runtime cannot run), and the estimate when a clock is given,
     its assumed cycle figures on a line of their own.
+
+    Parameters
+    ----------
+    b : Budget
+        The figures.
+    clock_mhz : float, optional
+        The target's clock, for a duty-cycle estimate.
+
+    Returns
+    -------
+    str
+        The tables.
     """
     def kb(n: int | None) -> str:
         return "-" if n is None else f"{n / 1024:,.1f} KiB"
@@ -342,7 +426,27 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
 
 
 def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> int:
-    """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime."""
+    """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The ``.tflite`` model.
+    clock_mhz : float or None
+        The target's clock in MHz.
+    as_json : bool
+        Print JSON.
+
+    Returns
+    -------
+    int
+        0, or 1 when the model cannot run in the microcontroller runtime.
+
+    Raises
+    ------
+    ScenemonError
+        A clock that is not above 0, or a model or card that cannot be used.
+    """
     from monitor.assembly.assemble import card_of
 
     card = card_of(plan)

@@ -24,7 +24,25 @@ from monitor.features.card import ModelCard
 
 
 def compare(a, b, sources: list[Path]) -> dict:
-    """Compare two `assemble.LoadedModel`s on the windows of `sources` (module docstring)."""
+    """Compare two `assemble.LoadedModel`s on the windows of `sources` (module docstring).
+
+    Parameters
+    ----------
+    a, b : LoadedModel
+        The two models.
+    sources : list of Path
+        Recordings or sessions.
+
+    Returns
+    -------
+    dict
+        The figures (agreements, differences, per class, the front end's error).
+
+    Raises
+    ------
+    ScenemonError
+        The two cards cannot see the same windows (another rate, window or hop).
+    """
     from monitor.assembly.assemble import file_windows
     from monitor.features.frontend import FrontEnd, reference_features
 
@@ -101,6 +119,16 @@ def compare_text(res: dict) -> str:
 
     Agreements, probability differences, the int8 comparison when there is one, the front
     end's error, the agreement per class of A, and the table of A's against B's top class.
+
+    Parameters
+    ----------
+    res : dict
+        A `compare` result.
+
+    Returns
+    -------
+    str
+        The lines.
     """
     a, b = res["a"], res["b"]
     lines = [f"A = {a['model']} ({a['kind']}, {a['runtime']})",
@@ -131,7 +159,24 @@ def compare_text(res: dict) -> str:
 
 def run_compare(plans: tuple[ModelPlan, ...], sources: list[Path], *,
                 min_agree: float | None, as_json: bool) -> int:
-    """`scenemon compare`; exit 1 when the top-1 agreement is below `min_agree`."""
+    """`scenemon compare`; exit 1 when the top-1 agreement is below `min_agree`.
+
+    Parameters
+    ----------
+    plans : tuple of ModelPlan
+        A and B.
+    sources : list of Path
+        Recordings or sessions.
+    min_agree : float or None
+        The top-1 agreement below which the exit code is 1.
+    as_json : bool
+        Print JSON.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.assemble import load_model
 
     a, b = (load_model(p) for p in plans)

@@ -63,7 +63,20 @@ def _comment_safe(text: str) -> str:
 
 
 def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
-    """The text of ``frontend_constants.h`` for `card`."""
+    """The text of ``frontend_constants.h`` for `card`.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+    model_sha256 : str, optional
+        Noted in the header's comment.
+
+    Returns
+    -------
+    str
+        The header's text.
+    """
     stages = card.stages()
     running = {s.name for s in stages if s.active}
     names = ", ".join(c_string(c) for c in card.classes)
@@ -96,7 +109,18 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
 
 
 def c_buffers(card: ModelCard) -> dict[str, int]:
-    """Bytes of every static buffer `frontend.c` keeps for this card (its RAM), by name."""
+    """Bytes of every static buffer `frontend.c` keeps for this card (its RAM), by name.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    dict
+        Buffer name to bytes.
+    """
     out: dict[str, int] = {}
     for s in card.stages():
         out.update(s.c_buffers())
@@ -105,7 +129,18 @@ def c_buffers(card: ModelCard) -> dict[str, int]:
 
 def c_tables(card: ModelCard) -> dict[str, int]:
     """Bytes of every constant table in `frontend_constants.h` for this card (its flash),
-    by name (the class names aside: the firmware's labels, not the front end's)."""
+    by name (the class names aside: the firmware's labels, not the front end's).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    dict
+        Table name to bytes.
+    """
     out: dict[str, int] = {}
     for s in card.stages():
         out.update(s.c_tables())
@@ -113,5 +148,18 @@ def c_tables(card: ModelCard) -> dict[str, int]:
 
 
 def scaling_tables(card: ModelCard) -> tuple[int, np.ndarray, np.ndarray]:
-    """(mode, mean, 1 / std) as the C code stores the scaling (see module docstring)."""
+    """(mode, mean, 1 / std) as the C code stores the scaling (see module docstring).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    mode : int
+        0 one value, 1 one per band, 2 the full feature shape.
+    mean, inv_std : numpy.ndarray
+        float32, flat.
+    """
     return card.stages()[-1].tables()  # type: ignore[attr-defined]

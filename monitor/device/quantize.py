@@ -23,7 +23,24 @@ CARD_MARK = "quantised by scenemon quantize"
 def calibration_features(card: ModelCard, sources: list[Path], *, count: int = 300,
                          seed: int = 0) -> np.ndarray:
     """About `count` windows spread evenly over all recordings (seeded jitter), as model
-    input ``(n, *card.feature_shape)``."""
+    input ``(n, *card.feature_shape)``.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+    sources : list of Path
+        Recordings or sessions.
+    count : int
+        Windows wanted.
+    seed : int
+        Seed of the jitter.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n, *card.feature_shape)`` float32.
+    """
     from monitor.assembly.assemble import file_windows
     from monitor.features.frontend import FrontEnd
 
@@ -56,7 +73,37 @@ def _check_target(out: Path) -> None:
 
 def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
              trust_model: bool = False, debug: bool = False) -> dict:
-    """Convert the Keras `model` to a full-integer `.tflite` at `out`, its card beside it."""
+    """Convert the Keras `model` to a full-integer `.tflite` at `out`, its card beside it.
+
+    Parameters
+    ----------
+    model : Path
+        The Keras model (``.keras`` or ``.h5``).
+    card : ModelCard
+        Its card.
+    features : numpy.ndarray
+        Calibration windows' model input.
+    out : Path
+        The ``.tflite`` to write.
+    trust_model : bool
+        Allow Keras Lambda layers.
+    debug : bool
+        Leave the converter's output on the terminal.
+
+    Returns
+    -------
+    dict
+        The model and card written, the calibration windows and the model's bytes.
+
+    Raises
+    ------
+    ModelError
+        Not a Keras model, or the conversion failed.
+
+    References
+    ----------
+    TensorFlow Lite 8-bit quantization specification (full-integer post-training quantisation).
+    """
     from monitor.base.files import atomic_write
     from monitor.base.native import quiet_native_stderr, silence_absl
     from monitor.inference.runners import KerasRunner
@@ -100,7 +147,30 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
 
 def run_quantize(model: Path, *, card: Path | None, calibrate: list[Path], out: Path,
                  windows: int, seed: int, trust_model: bool) -> int:
-    """`scenemon quantize`."""
+    """`scenemon quantize`.
+
+    Parameters
+    ----------
+    model : Path
+        The Keras model.
+    card : Path or None
+        Its card (None: beside it).
+    calibrate : list of Path
+        Recordings or sessions.
+    out : Path
+        The ``.tflite`` to write.
+    windows : int
+        Calibration windows.
+    seed : int
+        Seed of the window choice.
+    trust_model : bool
+        Allow Keras Lambda layers.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.features.card import card_for_model
 
     c = card_for_model(model, card)

@@ -32,7 +32,27 @@ INT8_TOL_STEPS = 1  # a float difference of ~1e-5 can move a value across a roun
 
 
 def pick_windows(top: np.ndarray, count: int | None, seed: int = 0) -> np.ndarray:
-    """Indices of `count` windows covering every predicted class (module docstring)."""
+    """Indices of `count` windows covering every predicted class (module docstring).
+
+    Parameters
+    ----------
+    top : numpy.ndarray
+        ``(n,)`` predicted class of each window.
+    count : int or None
+        Windows wanted (None: all).
+    seed : int
+        Seed of the choice.
+
+    Returns
+    -------
+    numpy.ndarray
+        Sorted window indices.
+
+    Raises
+    ------
+    ScenemonError
+        `count` is below the number of predicted classes.
+    """
     n = len(top)
     if count is None or count >= n:
         return np.arange(n)
@@ -75,7 +95,20 @@ def _put(path: Path, data: bytes) -> None:
 
 
 def read_csv(path: Path, dtype=np.float64) -> np.ndarray:
-    """A vectors CSV file as a 2-D array, one window per row (`dtype` for the integer files)."""
+    """A vectors CSV file as a 2-D array, one window per row (`dtype` for the integer files).
+
+    Parameters
+    ----------
+    path : Path
+        A CSV file of the vectors folder.
+    dtype : numpy dtype
+        Of the result.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(windows, values)``.
+    """
     return np.loadtxt(path, delimiter=",", dtype=dtype, ndmin=2)
 
 
@@ -106,6 +139,11 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
         Windows written; the check insists on reading exactly as many.
     features : numpy.ndarray
         The written features; the feature tolerance is `FEATURE_TOL_OF_RANGE` of their range.
+
+    Returns
+    -------
+    str
+        The header's text.
     """
     from monitor.device.constants import cfloat
 
@@ -126,7 +164,26 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
 
 def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
                   seed: int = 0) -> dict:
-    """Write the golden vectors folder (see module docstring); returns meta.json's content."""
+    """Write the golden vectors folder (see module docstring); returns meta.json's content.
+
+    Parameters
+    ----------
+    loaded : LoadedModel
+        The model.
+    audio : Path
+        The recording.
+    out : Path
+        The folder (new, empty, or an earlier vectors folder without links).
+    count : int, optional
+        Windows wanted (None: all).
+    seed : int
+        Seed of the window choice.
+
+    Returns
+    -------
+    dict
+        meta.json's content.
+    """
     from monitor.assembly.assemble import file_windows
     from monitor.base.files import atomic_write, dumps
     from monitor.device import C_SOURCES
@@ -196,7 +253,26 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
 
 def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
                 seed: int = 0) -> int:
-    """`scenemon vectors`."""
+    """`scenemon vectors`.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The model.
+    audio : Path
+        The recording.
+    out : Path
+        The folder.
+    count : int or None
+        Windows wanted.
+    seed : int
+        Seed of the window choice.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.assemble import load_model
 
     meta = write_vectors(load_model(plan), audio, out, count=count, seed=seed)

@@ -57,7 +57,18 @@ _FORMULA_START = ("=", "+", "-", "@", "\t", "\r")
 
 
 def csv_cell(value) -> str:
-    """A manifest cell a spreadsheet will show as text, never run as a formula."""
+    """A manifest cell a spreadsheet will show as text, never run as a formula.
+
+    Parameters
+    ----------
+    value : object
+        The cell's value (None: empty).
+
+    Returns
+    -------
+    str
+        The text, with a leading ``'`` when it starts like a formula.
+    """
     text = "" if value is None else str(value)
     return "'" + text if text.startswith(_FORMULA_START) else text
 
@@ -68,6 +79,26 @@ class HarvestResult:
 
     ``adopted`` counts files an interrupted run had copied that are now entered in the
     manifest; ``notes`` are the sessions' notes and why untrusted audio was skipped.
+
+    Attributes
+    ----------
+    added, total : dict
+        Snippets added by this harvest, and in the set, per label.
+    duplicates, dropped, unknown_skipped, excluded, broken : int
+        Snippets left out: already in the set, dropped, still "unknown" (with
+        ``--drop-unknown``), of a reason not included, with untrusted or broken audio.
+    unreadable : int
+        Sidecars that cannot be read (links, not regular, not JSON, fields of the wrong type).
+    not_sessions : int
+        Paths given that are not sessions.
+    adopted : int
+        Files an interrupted run copied, now in the manifest.
+    moved, retired : int
+        Snippets relabelled since the last harvest (moved) or dropped since (taken out).
+    unreadable_names : list of str
+        The unreadable sidecars, relative to their session.
+    notes : list of str
+        The sessions' notes and why audio was not trusted.
     """
 
     added: dict[str, int] = field(default_factory=dict)
@@ -117,7 +148,26 @@ def _check_target(out: Path, *, locked: bool = False) -> None:
 
 def harvest(sessions: list[Path], out: Path, *, include: tuple[str, ...],
             drop_unknown: bool = False, progress=None) -> HarvestResult:
-    """Gather the snippets of `sessions` into the set `out` (see module docstring)."""
+    """Gather the snippets of `sessions` into the set `out` (see module docstring).
+
+    Parameters
+    ----------
+    sessions : list of Path
+        Session directories (other paths are counted and skipped).
+    out : Path
+        The set's folder (new, empty, or an earlier harvest).
+    include : tuple of str
+        The capture reasons to take.
+    drop_unknown : bool
+        Leave out snippets still labelled "unknown".
+    progress : callable, optional
+        ``progress(done, total)`` after each snippet.
+
+    Returns
+    -------
+    HarvestResult
+        What was done.
+    """
     _check_target(out)
     res = HarvestResult()
     loaded = []
@@ -291,6 +341,16 @@ def progress_bar(stream=sys.stderr):
 
     It draws only on a terminal and for 20 snippets or more, so a small harvest and a pipe
     stay quiet.
+
+    Parameters
+    ----------
+    stream : TextIO
+        Where the bar goes.
+
+    Returns
+    -------
+    callable
+        ``show(done, total)``.
     """
     width = 30
 
@@ -307,7 +367,29 @@ def progress_bar(stream=sys.stderr):
 
 def run_harvest(sessions: list[Path], out: Path, *, include: str | None,
                 drop_unknown: bool = False) -> int:
-    """`scenemon harvest`: gather, then print what was added."""
+    """`scenemon harvest`: gather, then print what was added.
+
+    Parameters
+    ----------
+    sessions : list of Path
+        Session directories.
+    out : Path
+        The set's folder.
+    include : str or None
+        Comma-separated reasons (None: all).
+    drop_unknown : bool
+        Leave out snippets still labelled "unknown".
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        An unknown reason in `include`, or a set folder that is not ours.
+    """
     reasons = tuple(x.strip() for x in (include or ",".join(REASONS)).split(",") if x.strip())
     bad = [x for x in reasons if x not in REASONS]
     if bad:

@@ -31,7 +31,41 @@ __all__ = ["UNDECIDED", "Metrics", "window_metrics", "metrics_of_tally", "paired
 
 @dataclass
 class Metrics:
-    """The figures of one model's windows (see module docstring)."""
+    """The figures of one model's windows (see module docstring).
+
+    Attributes
+    ----------
+    classes : list of str
+        The model's classes.
+    windows, with_truth : int
+        Windows, and windows with a truth label.
+    duration_s : float
+        Seconds covered.
+    accuracy, balanced_accuracy : float or None
+        Overall and class-wise mean accuracy over windows with truth.
+    per_class : dict
+        Per class: support, precision, recall (class-wise accuracy) and F1.
+    confusion : list of list of int
+        Rows: truth (classes); columns: decisions (classes, then undecided).
+    changes : int
+        Decision changes.
+    switches_per_min : float or None
+        Decision changes per minute.
+    decided_s : dict
+        Seconds each class was the decision.
+    latencies : list of float
+        Seconds from each truth change to the decision that reached it.
+    never_reached, truth_changes : int
+        Truth changes the decision never reached, and all truth changes.
+    raw_changes : int or None
+        Changes of the raw top class.
+    levels : dict
+        Silent and clipping stretches.
+    unfamiliar : dict or None
+        Windows marked unfamiliar, overall and per truth class.
+    model_faults, figure_faults : int
+        Windows whose model output, or another figure, was not finite.
+    """
 
     classes: list[str]
     windows: int
@@ -81,7 +115,18 @@ class Metrics:
 
 
 def metrics_of_tally(t: Tally) -> Metrics:
-    """A finished tally as a `Metrics` record."""
+    """A finished tally as a `Metrics` record.
+
+    Parameters
+    ----------
+    t : Tally
+        A finished tally.
+
+    Returns
+    -------
+    Metrics
+        Its figures.
+    """
     return Metrics(
         classes=list(t.classes), windows=t.windows, duration_s=t.duration_s,
         with_truth=t.with_truth, accuracy=t.accuracy, balanced_accuracy=t.balanced_accuracy,
@@ -105,6 +150,11 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
         Seconds between windows (from the first two windows when not given).
     truth_spans : list of Span, optional
         The truth as spans (for the latency after each change); else the windows' own truth.
+
+    Returns
+    -------
+    Metrics
+        The figures, with raw changes, levels, unfamiliar windows and faults.
     """
     m = metrics_of_tally(tally_windows(windows, classes, hop_s=hop_s, spans=truth_spans))
     tops = [w.get("top") for w in windows]
@@ -131,6 +181,21 @@ def mcnemar_exact(b: int, c: int) -> float:
 
     The terms are summed in log space (``log C(n, i) - n log 2``, from `math.lgamma`), so
     hours of windows (thousands of discordant pairs) neither overflow nor underflow.
+
+    Parameters
+    ----------
+    b, c : int
+        Windows where only A is right, and where only B is.
+
+    Returns
+    -------
+    float
+        The p-value, from 0 to 1.
+
+    References
+    ----------
+    Q. McNemar, "Note on the sampling error of the difference between correlated proportions
+    or percentages", Psychometrika 12(2), 1947.
     """
     n = b + c
     if n == 0:
@@ -145,7 +210,19 @@ def mcnemar_exact(b: int, c: int) -> float:
 
 def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
     """Agreement of two models' decisions on the same windows, and McNemar's exact test on
-    the windows with truth where exactly one of them is right."""
+    the windows with truth where exactly one of them is right.
+
+    Parameters
+    ----------
+    wa, wb : list of dict
+        Model A's and model B's window records of the same windows.
+
+    Returns
+    -------
+    dict
+        Windows compared, decision agreement, windows both, neither, only A and only B got
+        right, McNemar's p-value and a sentence saying it.
+    """
     n = min(len(wa), len(wb))
     same = sum(1 for a, b in zip(wa[:n], wb[:n]) if a.get("decision") == b.get("decision"))
     only_a = only_b = both = neither = 0

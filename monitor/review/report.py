@@ -34,7 +34,18 @@ REPORT_MARK = "<!-- scenemon report -->"
 
 
 def model_metrics(s: Session) -> list[Metrics]:
-    """Metrics of each model of the session (A first)."""
+    """Metrics of each model of the session (A first).
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+
+    Returns
+    -------
+    list of Metrics
+        One per model, each read with its own classes.
+    """
     spans = s.truth.spans if s.truth else None
     return [window_metrics(w, s.classes_of(k), hop_s=s.hop_s, truth_spans=spans)
             for k, w in enumerate(s.model_windows())]
@@ -59,7 +70,18 @@ def _switch_line(m: Metrics) -> str:
 
 def latency_words(m: Metrics) -> str:
     """The latency line's words: median and worst after a truth change, and whether every
-    change was reached."""
+    change was reached.
+
+    Parameters
+    ----------
+    m : Metrics
+        One model's figures.
+
+    Returns
+    -------
+    str
+        The words.
+    """
     if not m.truth_changes:
         return "no truth change in this session"
     if not m.latencies:
@@ -222,7 +244,20 @@ def _runs(windows: list[dict], key: str, hop: float) -> list[tuple[float, float,
 
 
 def timeline_svg(s: Session, m: Metrics) -> str:
-    """The timeline figure (`timeline_figure`) as SVG."""
+    """The timeline figure (`timeline_figure`) as SVG.
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+    m : Metrics
+        Model A's figures.
+
+    Returns
+    -------
+    str
+        The SVG text.
+    """
     fig = timeline_figure(s, m)
     out = _svg(fig)
     _plt().close(fig)
@@ -232,7 +267,20 @@ def timeline_svg(s: Session, m: Metrics) -> str:
 def timeline_figure(s: Session, m: Metrics):
     """Smoothed probabilities of model A with its unfamiliar sounds marked (ALERT
     triangles), then one band per model's decisions, then truth, then with two models a row
-    marking where they differ (light grey); a matplotlib figure."""
+    marking where they differ (light grey); a matplotlib figure.
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+    m : Metrics
+        Model A's figures.
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The figure.
+    """
     plt = _plt()
     classes = m.classes
     ws = s.model_windows()
@@ -284,7 +332,20 @@ def timeline_figure(s: Session, m: Metrics):
 
 def level_figure(s: Session, m: Metrics):
     """Input level in dBFS per window, silent and clipping stretches shaded, the silence
-    threshold dotted (the axis always reaches below it); a matplotlib figure."""
+    threshold dotted (the axis always reaches below it); a matplotlib figure.
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+    m : Metrics
+        Model A's figures (its level stretches).
+
+    Returns
+    -------
+    matplotlib.figure.Figure
+        The figure.
+    """
     plt = _plt()
     from monitor.decisions.tally import SILENT_BELOW_DBFS
 
@@ -306,7 +367,20 @@ def level_figure(s: Session, m: Metrics):
 
 
 def level_svg(s: Session, m: Metrics) -> str:
-    """The input level figure (`level_figure`) as SVG."""
+    """The input level figure (`level_figure`) as SVG.
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+    m : Metrics
+        Model A's figures.
+
+    Returns
+    -------
+    str
+        The SVG text.
+    """
     fig = level_figure(s, m)
     out = _svg(fig)
     _plt().close(fig)
@@ -318,6 +392,18 @@ def confusion_svg(m: Metrics, title: str = "") -> str:
 
     Each cell shows its window count; its shade is the share of its row, so classes with few
     windows read as clearly as the common ones.
+
+    Parameters
+    ----------
+    m : Metrics
+        One model's figures.
+    title : str
+        The figure's title.
+
+    Returns
+    -------
+    str
+        The SVG text.
     """
     plt = _plt()
     from matplotlib.colors import ListedColormap
@@ -372,7 +458,18 @@ audio {{ height: 2em; vertical-align: middle; }}
 
 def review_word(state: str | None) -> str:
     """A snippet's review state in one word (as the relabel view shows it): dropped,
-    relabeled, kept or new."""
+    relabeled, kept or new.
+
+    Parameters
+    ----------
+    state : str or None
+        `SnippetFile.state`.
+
+    Returns
+    -------
+    str
+        The word.
+    """
     state = state or ""
     for word in ("dropped", "relabeled", "kept"):
         if word in state:
@@ -548,6 +645,20 @@ def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     ------
     ScenemonError
         `out` exists and is not an earlier report, or is one of a session's own files.
+
+    Parameters
+    ----------
+    s : Session
+        The session.
+    ms : list of Metrics
+        Each model's figures, A first.
+    out : Path
+        The page to write.
+
+    Returns
+    -------
+    Path
+        `out`.
     """
     from monitor.base.files import atomic_write
 
@@ -558,7 +669,27 @@ def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
 
 
 def run_report(session: Path, *, html: Path | None = None, as_json: bool = False) -> int:
-    """`scenemon report`: print the account; with `html`, also write the page."""
+    """`scenemon report`: print the account; with `html`, also write the page.
+
+    Parameters
+    ----------
+    session : Path
+        The session directory.
+    html : Path, optional
+        Also write the HTML page here.
+    as_json : bool
+        Print the figures as JSON instead of text.
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        Not a readable session, a session without windows, or an HTML target that is not ours.
+    """
     s = load_session(session)
     if not s.windows:
         raise ScenemonError(f"{session}: the session holds no windows")

@@ -45,7 +45,17 @@ RESULTS_VERSION = 2
 
 @dataclass(frozen=True)
 class Item:
-    """One input of the archive: its key, its audio file(s) and its truth file, if any."""
+    """One input of the archive: its key, its audio file(s) and its truth file, if any.
+
+    Attributes
+    ----------
+    key : str
+        The input's path below the archive, "/"-separated.
+    audio : tuple of str
+        One file, or a session's audio segments in order.
+    truth : str or None
+        Its truth file.
+    """
 
     key: str  # the input's path below the archive ("/"-separated)
     audio: tuple[str, ...]  # one file, or a session's audio segments in order
@@ -102,7 +112,25 @@ def key_of_results(name: str) -> str | None:
 
 
 def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
-    """Audio files (recursively) and session directories under `archive`."""
+    """Audio files (recursively) and session directories under `archive`.
+
+    Parameters
+    ----------
+    archive : Path
+        The folder.
+    truth_glob : str, optional
+        The truth file's name beside each audio file, ``{stem}`` standing for its stem.
+
+    Returns
+    -------
+    list of Item
+        Sessions first, then audio files outside sessions, each in path order.
+
+    Raises
+    ------
+    ScenemonError
+        `archive` is not a folder.
+    """
     archive = Path(archive)
     if not archive.is_dir():
         raise ScenemonError(f"{archive}: not a folder of recordings")
@@ -142,6 +170,15 @@ def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
         ``results/<name>.jsonl`` for model A (`model` 0), ``results/<name>.b.jsonl`` for B.
     meta : Path
         ``results/<name>.meta.json``, shared by both models.
+
+    Parameters
+    ----------
+    out : Path
+        The results folder.
+    item : Item
+        The input.
+    model : int
+        0 for model A, 1 for model B.
     """
     name = results_name(item.key)
     tag = "" if model == 0 else ".b"
@@ -153,6 +190,18 @@ def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
 
     The results version, the sha256 of each audio file and of the truth file, and `models`
     (path, model and card sha256, and runtime of each).
+
+    Parameters
+    ----------
+    item : Item
+        The input.
+    models : list of dict
+        Each model's path, model and card sha256 and runtime.
+
+    Returns
+    -------
+    dict
+        The fingerprint, as the meta file stores it.
     """
     from monitor.inference.base import file_sha256
 
@@ -175,6 +224,11 @@ def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
         The input's `fingerprint` now.
     n_models : int
         1, or 2 for an A/B run.
+
+    Returns
+    -------
+    bool
+        True when the input can be skipped.
     """
     paths = [result_paths(out, item, m)[0] for m in range(n_models)]
     meta = result_paths(out, item)[1]
@@ -191,7 +245,24 @@ _LOADED: dict = {}
 
 
 def score_task(item: Item, models: tuple[ModelPlan, ...], out: str, fp: dict) -> dict:
-    """One input through the chain (runs in a worker process); writes its results."""
+    """One input through the chain (runs in a worker process); writes its results.
+
+    Parameters
+    ----------
+    item : Item
+        The input.
+    models : tuple of ModelPlan
+        The models.
+    out : str
+        The results folder.
+    fp : dict
+        The input's fingerprint, stored in its meta file.
+
+    Returns
+    -------
+    dict
+        The input's key, its duration and compute seconds, and the worker's pid.
+    """
     from monitor.assembly.assemble import load_model, replay_file
     from monitor.assembly.observers import Collector
     from monitor.session.truth import load_truth
@@ -317,6 +388,16 @@ def check_results_folder(out: Path) -> None:
     ------
     ScenemonError
         With one sentence naming the path.
+
+    Parameters
+    ----------
+    out : Path
+        The results folder.
+
+    Raises
+    ------
+    ScenemonError
+        `out` is a file, or holds an ``aggregate.json`` or ``results`` that is not ours.
     """
     from monitor.base.files import check_output
 
@@ -455,7 +536,26 @@ def _read_results(path: Path) -> list[dict]:
 
 def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 1,
               hops: list[float] | None = None) -> dict:
-    """Per-file figures and the overall sums over files (see module docstring)."""
+    """Per-file figures and the overall sums over files (see module docstring).
+
+    Parameters
+    ----------
+    out : Path
+        The results folder.
+    items : list of Item
+        The inputs.
+    classes : list of str
+        Model A's classes.
+    n_models : int
+        1, or 2 for A/B.
+    hops : list of float, optional
+        Each model's hop in seconds.
+
+    Returns
+    -------
+    dict
+        aggregate.json's content.
+    """
     from monitor.decisions.tally import Tally, tally_windows
     from monitor.review.metrics import metrics_of_tally, paired
     from monitor.session.truth import load_truth
@@ -497,6 +597,16 @@ def aggregate_text(agg: dict) -> str:
 
     What was scored and how fast, each model's overall figures, A against B with McNemar's
     exact test in an A/B run, and model A's worst files.
+
+    Parameters
+    ----------
+    agg : dict
+        The aggregate.
+
+    Returns
+    -------
+    str
+        The lines.
     """
     def overall_line(name: str, part: dict) -> str:
         o = part["overall"] or {}
@@ -534,6 +644,26 @@ def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *
     ------
     ScenemonError
         No ``--model`` given, or bad input found by `run_score`.
+
+    Parameters
+    ----------
+    archive : Path
+        The folder of recordings and sessions.
+    models : tuple of ModelPlan
+        One model, or two (A/B).
+    out : Path
+        The results folder.
+    truth_glob : str or None
+        The truth file's name beside each audio file.
+    workers : int or None
+        Local worker processes (None: the number of cores).
+    cluster : str or None
+        A Dask scheduler's address.
+
+    Returns
+    -------
+    int
+        The exit code.
     """
     if not models:
         raise ScenemonError("score: give --model")

@@ -40,7 +40,23 @@ RECOMMEND_SLACK = 0.005
 
 
 def parse_grid(text: str | None) -> dict[str, list]:
-    """``"smoothing=mean,ema;enter=0.5,0.6"`` -> grid; unnamed fields keep the default grid."""
+    """``"smoothing=mean,ema;enter=0.5,0.6"`` -> grid; unnamed fields keep the default grid.
+
+    Parameters
+    ----------
+    text : str or None
+        The ``--grid`` value.
+
+    Returns
+    -------
+    dict
+        Field name to the values to try.
+
+    Raises
+    ------
+    ScenemonError
+        A part that is not NAME=V1,V2 with a known name, or a value of the wrong type.
+    """
     grid = {k: list(v) for k, v in DEFAULT_GRID.items()}
     if not text:
         return grid
@@ -59,7 +75,23 @@ def parse_grid(text: str | None) -> dict[str, list]:
 
 
 def expand(grid: dict[str, list]) -> list[DecisionSettings]:
-    """Every combination, without repeats that differ only in unused fields."""
+    """Every combination, without repeats that differ only in unused fields.
+
+    Parameters
+    ----------
+    grid : dict
+        Field name to values.
+
+    Returns
+    -------
+    list of DecisionSettings
+        The combinations.
+
+    Raises
+    ------
+    ScenemonError
+        A combination the decision settings refuse.
+    """
     seen, out = set(), []
     keys = list(grid)
     for combo in itertools.product(*(grid[k] for k in keys)):
@@ -83,7 +115,23 @@ def expand(grid: dict[str, list]) -> list[DecisionSettings]:
 
 @dataclass
 class Row:
-    """One decision setting's figures over all sessions, and whether it is on the front."""
+    """One decision setting's figures over all sessions, and whether it is on the front.
+
+    Attributes
+    ----------
+    settings : DecisionSettings
+        The setting.
+    accuracy : float
+        Windows decided right over windows with truth.
+    switches_per_min : float
+        Decision changes per minute.
+    latency_median : float or None
+        Median seconds to reach a truth change.
+    never_reached : int
+        Truth changes never reached.
+    front : bool
+        No other row beats it.
+    """
 
     settings: DecisionSettings
     accuracy: float
@@ -105,7 +153,22 @@ class Row:
 
 
 def evaluate(sessions: list[Session], settings: DecisionSettings, model: int = 0) -> Row:
-    """One setting's figures over all sessions (each session's decider state its own)."""
+    """One setting's figures over all sessions (each session's decider state its own).
+
+    Parameters
+    ----------
+    sessions : list of Session
+        Sessions with truth.
+    settings : DecisionSettings
+        The setting to try.
+    model : int
+        0 for model A, 1 for model B.
+
+    Returns
+    -------
+    Row
+        Its figures.
+    """
     correct = scored = changes = never = 0
     minutes = 0.0
     lat: list[float] = []
@@ -142,6 +205,11 @@ def mark_front(rows: list[Row]) -> None:
     A row is beaten by one at least as good on all three figures and better on one. The
     figures are accuracy, switch rate, and the median latency with 1000 s added for each
     truth change never reached, so a setting that misses changes does not look fast.
+
+    Parameters
+    ----------
+    rows : list of Row
+        Every setting's figures (changed in place).
     """
     keys = [_key(r) for r in rows]
     for i, r in enumerate(rows):
@@ -154,6 +222,16 @@ def recommend(rows: list[Row]) -> Row:
 
     On the front, the highest accuracy; among rows within `RECOMMEND_SLACK` of it, the fewest
     switches per minute, then the lowest latency. Without a marked front every row competes.
+
+    Parameters
+    ----------
+    rows : list of Row
+        Every setting's figures, the front marked.
+
+    Returns
+    -------
+    Row
+        The recommended one.
     """
     front = [r for r in rows if r.front] or rows
     best = max(r.accuracy for r in front)
@@ -195,6 +273,20 @@ def table(rows: list[Row], chosen: Row, limit: int = 25) -> str:
     """The front as a table for the terminal, at most `limit` rows, `chosen` marked ``>``.
 
     A last line counts the settings and states the rule that chose the recommendation.
+
+    Parameters
+    ----------
+    rows : list of Row
+        Every setting's figures.
+    chosen : Row
+        The recommended one.
+    limit : int
+        Rows shown at most.
+
+    Returns
+    -------
+    str
+        The table.
     """
     out = [f"  {'':1} {'setting':<52} {'accuracy':>8} {'switch/min':>10} {'latency':>8}"]
     shown = [r for r in rows if r.front][:limit]
@@ -264,7 +356,34 @@ def apply_to_card(card_path: Path, settings: DecisionSettings) -> None:
 
 def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None = None,
              show_all: bool = False, model: int = 0, stream=None) -> int:
-    """`scenemon tune`: sweep, print the front and the recommendation, optionally apply it."""
+    """`scenemon tune`: sweep, print the front and the recommendation, optionally apply it.
+
+    Parameters
+    ----------
+    paths : list of Path
+        Session directories with truth.
+    grid : str, optional
+        The ``--grid`` value.
+    apply : Path, optional
+        A card whose [decision] table gets the recommendation.
+    show_all : bool
+        List every setting, not only the front.
+    model : int
+        0 for model A, 1 for model B of A/B sessions.
+    stream : TextIO, optional
+        Where the table goes (stdout).
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        A session without windows, not an A/B session for `model` 1, or sessions whose
+        classes differ.
+    """
     import sys
     import time
 
