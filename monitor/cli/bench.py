@@ -36,7 +36,20 @@ def _pct(v: list[float]) -> tuple[float, float]:
 
 
 def first_result_seconds(plan: ModelPlan, wav: Path) -> float:
-    """Wall time from starting `scenemon replay --fast --headless` to its first JSON line."""
+    """Wall time from starting `scenemon replay --fast --headless` to its first JSON line.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The model.
+    wav : Path
+        A recording.
+
+    Returns
+    -------
+    float
+        Seconds.
+    """
     with tempfile.TemporaryDirectory() as td:
         cmd = [sys.executable, "-m", "monitor", "replay", str(wav), "--model", str(plan.path),
                "--fast", "--headless", "--out", str(Path(td) / "s"), "--runtime", plan.runtime]
@@ -53,7 +66,27 @@ def first_result_seconds(plan: ModelPlan, wav: Path) -> float:
 
 
 def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> dict:
-    """`scenemon bench`: measure one model on this machine and print a verdict."""
+    """`scenemon bench`: measure one model on this machine and print a verdict.
+
+    Parameters
+    ----------
+    plan : ModelPlan
+        The model.
+    seconds : float
+        Seconds of tour audio to replay.
+    stream : TextIO
+        Where the table goes.
+
+    Returns
+    -------
+    dict
+        The figures.
+
+    Raises
+    ------
+    ScenemonError
+        `seconds` not above 0, or a model or card that cannot be used.
+    """
     if not seconds > 0:
         raise ScenemonError(f"--seconds {seconds} must be above 0")
     t0 = time.perf_counter()
@@ -153,7 +186,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon bench`: will this model keep up on this machine?"""
+    """`scenemon bench`: will this model keep up on this machine?
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon bench`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.assemble import project_root
 
     plan = model_plans(args, str(project_root() / "models" / "demo.tflite"))[0]

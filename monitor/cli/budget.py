@@ -33,7 +33,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon budget`: RAM, flash, operators and work per window on the target."""
+    """`scenemon budget`: RAM, flash, operators and work per window on the target.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon budget`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     import dataclasses
 
     from monitor.device.budget import run_budget

@@ -55,7 +55,23 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon card check`: the card's features of one window against training's."""
+    """`scenemon card check`: the card's features of one window against training's.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon card`.
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        No action given (`scenemon card check`).
+    """
     if args.card_command != "check":
         raise ScenemonError("card: give an action: scenemon card check CARD AUDIO FEATURES.npy "
                             "(see scenemon card --help)")

@@ -34,7 +34,23 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon compare`: two models, or one model in two runtimes, on the same windows."""
+    """`scenemon compare`: two models, or one model in two runtimes, on the same windows.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon compare`.
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        ``--model`` not given exactly twice.
+    """
     from monitor.device.compare import run_compare
 
     plans = model_plans(args)

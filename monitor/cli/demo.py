@@ -41,7 +41,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon demo`: the demo model(s) on the demo tour (made on first use) or the microphone."""
+    """`scenemon demo`: the demo model(s) on the demo tour (made on first use) or the microphone.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon demo`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.assemble import project_root
     from monitor.assembly.plan import FileInput
     from monitor.demo import tour_paths

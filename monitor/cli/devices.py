@@ -25,7 +25,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon devices`: the input devices, one line each."""
+    """`scenemon devices`: the input devices, one line each.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon devices`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.sound.sources import device_table
 
     sys.stdout.write(device_table())

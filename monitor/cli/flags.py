@@ -38,6 +38,16 @@ def number(text: str) -> float:
     ------
     argparse.ArgumentTypeError
         Not a number, or NaN or an infinity; argparse reports it against the flag.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    float
+        The value.
     """
     try:
         v = float(text)
@@ -55,6 +65,16 @@ def fraction(text: str) -> float:
     ------
     argparse.ArgumentTypeError
         Not a finite number, or outside [0, 1].
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    float
+        The value.
     """
     v = number(text)
     if not 0.0 <= v <= 1.0:
@@ -69,6 +89,16 @@ def seconds(text: str) -> float:
     ------
     argparse.ArgumentTypeError
         Not a finite number, or negative.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    float
+        The value.
     """
     v = number(text)
     if v < 0:
@@ -83,6 +113,16 @@ def positive(text: str) -> float:
     ------
     argparse.ArgumentTypeError
         Not a finite number, or 0 or below.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    float
+        The value.
     """
     v = number(text)
     if v <= 0:
@@ -97,6 +137,16 @@ def positive_int(text: str) -> int:
     ------
     argparse.ArgumentTypeError
         Not an integer, or below 1.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    int
+        The value.
     """
     try:
         v = int(text)
@@ -120,6 +170,16 @@ def segment_minutes(text: str) -> float:
     argparse.ArgumentTypeError
         Not a finite number, or outside the bounds (a tiny value would write one file per
         few samples).
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    float
+        The value.
     """
     v = number(text)
     if not MIN_SEGMENT_MIN <= v <= MAX_SEGMENT_MIN:
@@ -135,6 +195,16 @@ def latency(text: str) -> str | float:
     ------
     argparse.ArgumentTypeError
         Another word, a number that is not finite, or one outside (0, 1].
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    str or float
+        The value.
     """
     if text in ("high", "low"):
         return text
@@ -156,6 +226,16 @@ def blocksize(text: str) -> int:
     ------
     argparse.ArgumentTypeError
         Not an integer, or outside the bounds.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed.
+
+    Returns
+    -------
+    int
+        The value.
     """
     try:
         v = int(text)
@@ -198,6 +278,11 @@ def add_decision_flags(p: argparse.ArgumentParser) -> None:
 
     Each defaults to None, so only a flag that is given replaces the card's value; the help
     shows the built-in `DecisionSettings` defaults in brackets.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+        A command's parser.
     """
     from monitor.features.card import DecisionSettings
 
@@ -270,7 +355,13 @@ def add_model_flags(p: argparse.ArgumentParser, *, required: bool = True, many: 
 
 
 def add_live_flags(p: argparse.ArgumentParser) -> None:
-    """Add the input device flags: ``--input``, ``--seconds``, ``--latency``, ``--blocksize``."""
+    """Add the input device flags: ``--input``, ``--seconds``, ``--latency``, ``--blocksize``.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+        A command's parser.
+    """
     g = p.add_argument_group("input device")
     g.add_argument("--input", metavar="DEVICE",
                    help="device index or a case-insensitive part of its name (see scenemon "
@@ -287,7 +378,13 @@ def add_live_flags(p: argparse.ArgumentParser) -> None:
 
 
 def add_session_flags(p: argparse.ArgumentParser) -> None:
-    """Add the session flags: ``--out``, ``--no-audio``, ``--segment-min``, ``--headless``."""
+    """Add the session flags: ``--out``, ``--no-audio``, ``--segment-min``, ``--headless``.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+        A command's parser.
+    """
     from monitor.assembly.plan import DEFAULT_SEGMENT_S
 
     p.add_argument("--out", metavar="DIR",
@@ -306,6 +403,11 @@ def add_capture_flags(p: argparse.ArgumentParser) -> None:
     """Add the ``--capture*`` flags, the rolls and the uncertainty thresholds to `p`.
 
     Each defaults to None, so `CaptureSettings`'s own default stands unless the flag is given.
+
+    Parameters
+    ----------
+    p : argparse.ArgumentParser
+        A command's parser.
     """
     from monitor.session.capture import POLICIES, CaptureSettings
 
@@ -349,6 +451,18 @@ def model_plans(args, default: str | None = None) -> tuple:
     ------
     ScenemonError
         More than two models, or a per-model flag given more often than ``--model``.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags.
+    default : str, optional
+        The model when ``--model`` is not given.
+
+    Returns
+    -------
+    tuple of ModelPlan
+        One or two.
     """
     from monitor.assembly.plan import ModelPlan
 
@@ -365,7 +479,23 @@ def model_plans(args, default: str | None = None) -> tuple:
 
 
 def capture_settings(args):
-    """`CaptureSettings` from the ``--capture*`` flags (None for ``--capture none``)."""
+    """`CaptureSettings` from the ``--capture*`` flags (None for ``--capture none``).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags.
+
+    Returns
+    -------
+    CaptureSettings or None
+        The settings.
+
+    Raises
+    ------
+    ScenemonError
+        An unknown capture policy, or settings the capture refuses (naming the flag).
+    """
     from monitor.session.capture import POLICIES, CaptureSettings
 
     text = args.capture
@@ -396,7 +526,32 @@ def session_plan(args, source, *, name: str, default_model: str | None = None,
                  truth: str | None = None, live_truth: bool = True, prepare=None,
                  prepare_note: str = "preparing the input …"):
     """The `plan.SessionPlan` of a session command: `source`, the models, output, the decision
-    flags given (the card's values stand for the rest), capture and truth."""
+    flags given (the card's values stand for the rest), capture and truth.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags.
+    source : FileInput or MicInput
+        What to listen to.
+    name : str
+        The session's name in a new directory's name.
+    default_model : str, optional
+        The model when ``--model`` is not given.
+    truth : str, optional
+        A truth file.
+    live_truth : bool
+        The truth may be told with keys.
+    prepare : callable, optional
+        Run before the source opens.
+    prepare_note : str
+        Shown while `prepare` runs.
+
+    Returns
+    -------
+    SessionPlan
+        The plan.
+    """
     from monitor.assembly.plan import OutputPlan, SessionPlan
     from monitor.features.card import DecisionSettings
 
@@ -411,7 +566,18 @@ def session_plan(args, source, *, name: str, default_model: str | None = None,
 
 
 def mic_input(args):
-    """The `plan.MicInput` of the ``--input``/``--latency``/``--blocksize``/``--seconds`` flags."""
+    """The `plan.MicInput` of the ``--input``/``--latency``/``--blocksize``/``--seconds`` flags.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags.
+
+    Returns
+    -------
+    MicInput
+        The input device's plan.
+    """
     from monitor.assembly.plan import MicInput
 
     return MicInput(args.input, args.latency, args.blocksize, args.seconds)

@@ -32,7 +32,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon harvest`: sessions' snippets into a retraining set."""
+    """`scenemon harvest`: sessions' snippets into a retraining set.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon harvest`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.review.harvest import run_harvest
 
     return run_harvest([Path(p) for p in args.sessions], Path(args.out), include=args.include,

@@ -40,6 +40,17 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon live`: an input device through the chain into a session."""
+    """`scenemon live`: an input device through the chain into a session.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon live`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     return run_chain(args, session_plan(args, mic_input(args), name="live"),
                 f"live {args.input or ''}".strip())

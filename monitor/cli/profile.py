@@ -33,7 +33,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon profile`: fit the unfamiliar-sound profile beside a model."""
+    """`scenemon profile`: fit the unfamiliar-sound profile beside a model.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon profile`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.run import run_profile
 
     return run_profile(model_plans(args)[0], [Path(p) for p in args.sources],

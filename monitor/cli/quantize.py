@@ -38,7 +38,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon quantize`: a full-integer int8 .tflite calibrated on field audio."""
+    """`scenemon quantize`: a full-integer int8 .tflite calibrated on field audio.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon quantize`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.device.quantize import run_quantize
 
     return run_quantize(Path(args.model), card=Path(args.card) if args.card else None,

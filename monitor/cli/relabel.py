@@ -28,7 +28,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon relabel`: the relabel view on a session (needs a terminal)."""
+    """`scenemon relabel`: the relabel view on a session (needs a terminal).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon relabel`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.ui.app import run_relabel
 
     return run_relabel(Path(args.session), interactive=interactive())

@@ -26,7 +26,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon repair`: make a session that did not close cleanly whole."""
+    """`scenemon repair`: make a session that did not close cleanly whole.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon repair`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.session.repair import run_repair
 
     return run_repair(Path(args.session))

@@ -43,7 +43,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon replay`: a recording through the chain into a session (UI or printed lines)."""
+    """`scenemon replay`: a recording through the chain into a session (UI or printed lines).
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon replay`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.assembly.plan import FileInput
 
     audio = Path(args.audio)

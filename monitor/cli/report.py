@@ -28,7 +28,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon report`: a session's account on the terminal, as JSON or as HTML."""
+    """`scenemon report`: a session's account on the terminal, as JSON or as HTML.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon report`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.review.report import run_report
 
     return run_report(Path(args.session), html=Path(args.html) if args.html else None,

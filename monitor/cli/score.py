@@ -38,7 +38,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon score`: re-score an archive of recordings and sessions."""
+    """`scenemon score`: re-score an archive of recordings and sessions.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon score`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.review.score import run_score_command
 
     return run_score_command(Path(args.archive), model_plans(args), Path(args.out),

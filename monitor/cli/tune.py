@@ -34,7 +34,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon tune`: the decision-settings sweep over sessions with truth."""
+    """`scenemon tune`: the decision-settings sweep over sessions with truth.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon tune`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     from monitor.review.tune import run_tune
 
     return run_tune([Path(p) for p in args.sessions], grid=args.grid,

@@ -35,7 +35,18 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
 
 
 def run(args: argparse.Namespace) -> int:
-    """`scenemon vectors`: golden vectors, the C front end and its check program."""
+    """`scenemon vectors`: golden vectors, the C front end and its check program.
+
+    Parameters
+    ----------
+    args : argparse.Namespace
+        The parsed flags of `scenemon vectors`.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     import dataclasses
 
     from monitor.device.vectors import run_vectors
