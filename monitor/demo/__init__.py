@@ -11,7 +11,18 @@ SAMPLE_RATE = 16000
 
 
 def tour_paths(directory):
-    """Where the tour and its truth live (made by `monitor.demo.tour.ensure_tour`)."""
+    """Where the tour and its truth live (made by `monitor.demo.tour.ensure_tour`).
+
+    Parameters
+    ----------
+    directory : str or Path
+        The tour's folder.
+
+    Returns
+    -------
+    wav, tsv : Path
+        The tour and its truth.
+    """
     from pathlib import Path
 
     d = Path(directory)

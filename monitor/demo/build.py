@@ -48,6 +48,22 @@ CLIP_S = 3.0
 
 
 def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
+    """Training windows of every place for each seed, through the front end unscaled.
+
+    Parameters
+    ----------
+    seeds : iterable of int
+        One clip of every place per seed.
+    fe : FrontEnd
+        The demo card's front end.
+
+    Returns
+    -------
+    x : numpy.ndarray
+        ``(n, *feature_shape)`` float32 features before scaling.
+    y : numpy.ndarray
+        ``(n,)`` class index of each window.
+    """
     c = fe.card
     xs, ys = [], []
     for seed in seeds:
@@ -62,6 +78,25 @@ def dataset(seeds, fe: FrontEnd) -> tuple[np.ndarray, np.ndarray]:
 
 def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str,
               per: str = "per mel band") -> str:
+    """The text of a demo model's card.
+
+    Parameters
+    ----------
+    card : dict
+        The card's classes and its audio, frontend and decision tables.
+    mean, std : numpy.ndarray
+        The scaling learned from the training features.
+    note : str
+        The card's first comment line.
+    per : str
+        What the scaling holds one value per, for the comment.
+
+    Returns
+    -------
+    str
+        The TOML.
+    """
+
     def v(x):
         if isinstance(x, bool):
             return "true" if x else "false"
@@ -86,6 +121,27 @@ def card_toml(card: dict, mean: np.ndarray, std: np.ndarray, note: str,
 
 
 def build_model(shape, n_classes, input_name="logmel"):
+    """The small demo network: depthwise-separable convolutions on the feature picture.
+
+    Parameters
+    ----------
+    shape : tuple of int
+        One window's features (a channel axis of 1 is added).
+    n_classes : int
+        Outputs (softmax).
+    input_name : str
+        The input layer's name.
+
+    Returns
+    -------
+    keras.Model
+        The untrained model.
+
+    References
+    ----------
+    Y. Zhang, N. Suda, L. Lai and V. Chandra, "Hello Edge: Keyword Spotting on
+    Microcontrollers", arXiv:1711.07128, 2017 (the depthwise-separable CNN family).
+    """
     import keras
     from keras import layers
 
@@ -108,6 +164,18 @@ def build_model(shape, n_classes, input_name="logmel"):
 
 
 def main(argv: list[str] | None = None) -> int:
+    """`python -m monitor.demo.build`: build every demo model, each in a process of its own.
+
+    Parameters
+    ----------
+    argv : list of str, optional
+        The arguments (``--out``, ``--epochs``, ``--only``).
+
+    Returns
+    -------
+    int
+        0, or the first failing build's exit code.
+    """
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--out", default="models", help="output folder (default: models)")
     ap.add_argument("--epochs", type=int, default=30)
@@ -127,7 +195,22 @@ def main(argv: list[str] | None = None) -> int:
 
 
 def build(name: str, out: Path, *, epochs: int = 30) -> int:
-    """Train and write one demo model (module docstring)."""
+    """Train and write one demo model (module docstring).
+
+    Parameters
+    ----------
+    name : str
+        The demo model to build ("demo" or "demo-mfcc").
+    out : Path
+        The models folder.
+    epochs : int
+        Training epochs.
+
+    Returns
+    -------
+    int
+        0.
+    """
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
     os.environ["TF_DETERMINISTIC_OPS"] = "1"
     t_start = time.time()

@@ -28,7 +28,24 @@ CLIP_S = 3.0
 
 
 def profile_material(card: ModelCard, *, walks: int = WALKS):
-    """(features, labels, groups) of the demo profile's windows for `card`."""
+    """(features, labels, groups) of the demo profile's windows for `card`.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The demo model's card.
+    walks : int
+        Seeded walks through the places.
+
+    Returns
+    -------
+    features : numpy.ndarray
+        ``(n, *card.feature_shape)`` scaled features.
+    labels : numpy.ndarray
+        ``(n,)`` class of each window.
+    groups : numpy.ndarray
+        ``(n,)`` block of each window, for holding out blocks.
+    """
     from monitor.demo.build import TRAIN_SEEDS
     from monitor.demo.tour import TOUR, tour_audio
     from monitor.session.truth import TruthTrack
@@ -59,7 +76,18 @@ def profile_material(card: ModelCard, *, walks: int = WALKS):
 
 
 def write_profiles(models: Path) -> list[Path]:
-    """Fit and write the profile beside every demo model in `models`."""
+    """Fit and write the profile beside every demo model in `models`.
+
+    Parameters
+    ----------
+    models : Path
+        The models folder.
+
+    Returns
+    -------
+    list of Path
+        The profiles written.
+    """
     written: list[Path] = []
     fitted: list[tuple[ModelCard, object]] = []  # one fit per distinct front end
     for model in sorted(models.glob("demo*.tflite")) + sorted(models.glob("demo*.keras")):
@@ -87,6 +115,11 @@ def main(argv: list[str] | None = None) -> int:
     ----------
     argv : list of str, optional
         The arguments (default: the command line's); ``--models DIR`` names the models folder.
+
+    Returns
+    -------
+    int
+        0.
     """
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--models", default="models", help="the models folder (default: models)")

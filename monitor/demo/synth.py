@@ -33,7 +33,24 @@ def _normalise(x: np.ndarray, dbfs: float) -> np.ndarray:
 
 
 def pink(n: int, rng: np.random.Generator) -> np.ndarray:
-    """Approximate 1/f noise (Kellet's filter on white noise)."""
+    """Approximate 1/f noise (Kellet's filter on white noise).
+
+    Parameters
+    ----------
+    n : int
+        Samples.
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n,)`` float64.
+
+    References
+    ----------
+    P. Kellet's economy pink-noise filter, as documented in the music-dsp archive (from memory).
+    """
     b = [0.049922035, -0.095993537, 0.050612699, -0.004408786]
     a = [1, -2.494956002, 2.017265875, -0.522189400]
     return signal.lfilter(b, a, rng.standard_normal(n + 2000))[2000:]
@@ -44,6 +61,18 @@ def brown(n: int, rng: np.random.Generator) -> np.ndarray:
 
     Integrated white noise through a leaky high-pass, so that it does not drift off; 4000 more
     samples are made and the first 4000 left out, so the filter has settled.
+
+    Parameters
+    ----------
+    n : int
+        Samples.
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(n,)`` float64.
     """
     x = np.cumsum(rng.standard_normal(n + 4000))
     x = signal.lfilter([1, -1], [1, -0.995], x)[4000:]
@@ -61,6 +90,13 @@ def quiet_room(seconds: float, rng: np.random.Generator) -> np.ndarray:
     -------
     numpy.ndarray
         float32, shape ``(int(seconds * SR),)``.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
     """
     n = int(seconds * SR)
     t = np.arange(n) / SR
@@ -120,6 +156,13 @@ def voices(seconds: float, rng: np.random.Generator) -> np.ndarray:
     -------
     numpy.ndarray
         float32, shape ``(int(seconds * SR),)``.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
     """
     n = int(seconds * SR)
     talkers = int(rng.integers(2, 6))
@@ -142,6 +185,13 @@ def traffic(seconds: float, rng: np.random.Generator) -> np.ndarray:
     -------
     numpy.ndarray
         float32, shape ``(int(seconds * SR),)``.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
     """
     n = int(seconds * SR)
     t = np.arange(n) / SR
@@ -176,6 +226,13 @@ def machinery(seconds: float, rng: np.random.Generator) -> np.ndarray:
     -------
     numpy.ndarray
         float32, shape ``(int(seconds * SR),)``.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
     """
     n = int(seconds * SR)
     t = np.arange(n) / SR
@@ -205,7 +262,22 @@ PLACES = {"quiet_room": quiet_room, "voices": voices, "traffic": traffic,
 
 
 def clip(place: str, seconds: float, seed: int) -> np.ndarray:
-    """`seconds` of `place`, bit-identical for the same seed; peaks kept below full scale."""
+    """`seconds` of `place`, bit-identical for the same seed; peaks kept below full scale.
+
+    Parameters
+    ----------
+    place : str
+        One of the four places.
+    seconds : float
+        Length.
+    seed : int
+        The seed.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     rng = np.random.default_rng([seed, list(PLACES).index(place)])
     x = PLACES[place](seconds, rng)
     peak = float(np.max(np.abs(x))) if x.size else 0.0
@@ -216,7 +288,18 @@ def clip(place: str, seconds: float, seed: int) -> np.ndarray:
 
 # --- moments that real places have: short sounds from elsewhere, and sounds of no place ----
 def door(rng: np.random.Generator) -> np.ndarray:
-    """A door closing (about 0.6 s): a low thud, then the latch's rattle."""
+    """A door closing (about 0.6 s): a low thud, then the latch's rattle.
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     n = int(0.6 * SR)
     t = np.arange(n) / SR
     thud = np.sin(2 * np.pi * rng.uniform(55, 90) * t) * np.exp(-t / rng.uniform(0.05, 0.09))
@@ -233,23 +316,69 @@ def _excerpt(place: str, seconds: float, dbfs: float, rng: np.random.Generator) 
 
 
 def laugh(rng: np.random.Generator) -> np.ndarray:
-    """A group laughing in the corridor (1.2 s of voices)."""
+    """A group laughing in the corridor (1.2 s of voices).
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     return _excerpt("voices", 1.2, rng.uniform(-31, -29), rng)
 
 
 def passing_car(rng: np.random.Generator) -> np.ndarray:
-    """One car passing close by (0.8 s of traffic)."""
+    """One car passing close by (0.8 s of traffic).
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     return _excerpt("traffic", 0.8, rng.uniform(-31, -29), rng)
 
 
 def drill(rng: np.random.Generator) -> np.ndarray:
-    """A drill from the room next door (0.8 s of machinery)."""
+    """A drill from the room next door (0.8 s of machinery).
+
+    Parameters
+    ----------
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     return _excerpt("machinery", 0.8, rng.uniform(-23, -21), rng)
 
 
 def alarm(seconds: float, rng: np.random.Generator) -> np.ndarray:
     """An invented alarm: groups of three 2.9 kHz beeps with a 700 Hz undertone, belonging
-    to none of the four places."""
+    to none of the four places.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     n = int(seconds * SR)
     t = np.arange(n) / SR
     f = rng.uniform(2700, 3100)
@@ -263,7 +392,20 @@ def alarm(seconds: float, rng: np.random.Generator) -> np.ndarray:
 
 def melody(seconds: float, rng: np.random.Generator) -> np.ndarray:
     """An invented ring melody: plucked tones on a pentatonic scale, each with a few
-    harmonics and an exponential decay."""
+    harmonics and an exponential decay.
+
+    Parameters
+    ----------
+    seconds : float
+        Length of the sound.
+    rng : numpy.random.Generator
+        The seeded generator.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    """
     n = int(seconds * SR)
     x = np.zeros(n)
     scale = 523.25 * 2 ** (np.array([0, 2, 4, 7, 9, 12]) / 12)

@@ -52,7 +52,18 @@ TOUR = (
 
 
 def tour_events(plan=TOUR) -> list[tuple[str, float, str]]:
-    """(event, session time in s, the place it happens in) of every short sound."""
+    """(event, session time in s, the place it happens in) of every short sound.
+
+    Parameters
+    ----------
+    plan : tuple
+        The tour's legs and events.
+
+    Returns
+    -------
+    list of (str, float, str)
+        In time order.
+    """
     out, t = [], 0.0
     for leg in plan:
         out += [(name, t + at, leg.place) for name, at in leg.events]
@@ -64,7 +75,22 @@ TOUR_EVENTS = tour_events()
 
 
 def tour_audio(seed: int = TOUR_SEED, plan=TOUR) -> tuple[np.ndarray, list[Span]]:
-    """The tour's samples (float32, 16 kHz) and its truth spans (boundaries mid-fade)."""
+    """The tour's samples (float32, 16 kHz) and its truth spans (boundaries mid-fade).
+
+    Parameters
+    ----------
+    seed : int
+        The tour's seed.
+    plan : tuple
+        The tour's legs and events.
+
+    Returns
+    -------
+    audio : numpy.ndarray
+        ``(samples,)`` float32 at 16 kHz.
+    spans : list of Span
+        The truth.
+    """
     total = sum(leg.seconds for leg in plan)
     out = np.zeros(int(total * SR), np.float64)
     spans, t = [], 0.0
@@ -96,7 +122,18 @@ def tour_audio(seed: int = TOUR_SEED, plan=TOUR) -> tuple[np.ndarray, list[Span]
 
 def ensure_tour(directory: str | Path) -> tuple[Path, Path]:
     """Write the tour and its truth under `directory` if absent (or from an older version of
-    the tour); return both paths."""
+    the tour); return both paths.
+
+    Parameters
+    ----------
+    directory : str or Path
+        The tour's folder (created).
+
+    Returns
+    -------
+    wav, tsv : Path
+        The tour and its truth.
+    """
     from monitor.demo import tour_paths
 
     d = Path(directory)
