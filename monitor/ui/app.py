@@ -70,7 +70,21 @@ THEME = Theme(
 
 @dataclass(frozen=True)
 class Layout:
-    """Outer sizes of the live view's parts for one terminal size (cells)."""
+    """Outer sizes of the live view's parts for one terminal size (cells).
+
+    Attributes
+    ----------
+    width, height : int
+        The terminal's cells and lines.
+    row1 : int
+        Lines of the top row (decision, health, session panels).
+    strip : int
+        Lines of the decision strip.
+    row2 : int
+        Lines of the bottom row (class bars, feature picture).
+    decision_w, health_w, session_w : int
+        Widths of the top row's panels.
+    """
 
     width: int
     height: int
@@ -108,7 +122,22 @@ class Layout:
 
 
 def layout_for(width: int, height: int, n_classes: int, two: bool) -> Layout:
-    """The live view's layout (see module docstring)."""
+    """The live view's layout (see module docstring).
+
+    Parameters
+    ----------
+    width, height : int
+        The terminal's cells and lines.
+    n_classes : int
+        The model's classes.
+    two : bool
+        Two models (A/B).
+
+    Returns
+    -------
+    Layout
+        The sizes.
+    """
     row1 = max(6, n_classes + 2)
     strip = 6 if two else 5
     row2 = height - 2 - row1 - strip
@@ -118,7 +147,19 @@ def layout_for(width: int, height: int, n_classes: int, two: bool) -> Layout:
 
 @dataclass
 class SessionHooks:
-    """What the UI hands the session function (`start(hooks) -> summary`)."""
+    """What the UI hands the session function (`start(hooks) -> summary`).
+
+    Attributes
+    ----------
+    bridge : UIBridge
+        The observer that posts results to the UI.
+    stop : threading.Event
+        Set to end the session.
+    ready : callable
+        Called once with the `SessionHandle`.
+    say : callable
+        Shows a line while the session prepares.
+    """
 
     bridge: UIBridge
     stop: threading.Event
@@ -127,7 +168,13 @@ class SessionHooks:
 
 
 class SessionReady(Message):
-    """Posted once by the session worker with its `SessionHandle`, before the first window."""
+    """Posted once by the session worker with its `SessionHandle`, before the first window.
+
+    Parameters
+    ----------
+    handle : SessionHandle
+        The running session.
+    """
 
     def __init__(self, handle) -> None:
         super().__init__()
@@ -136,7 +183,25 @@ class SessionReady(Message):
 
 @dataclass
 class Lane:
-    """One model's part of what the UI shows (UI thread only)."""
+    """One model's part of what the UI shows (UI thread only).
+
+    Attributes
+    ----------
+    decision : str or None
+        The model's decision.
+    since_t : float
+        Session seconds since the decision was set.
+    probs, smoothed : numpy.ndarray or None
+        The newest window's raw and smoothed probabilities.
+    unfamiliar : bool
+        The newest window is unfamiliar.
+    unfamiliar_windows : int
+        Windows marked unfamiliar so far.
+    decisions : collections.deque
+        Recent decisions, one per hop, for the strip.
+    tally : Tally or None
+        The running counts.
+    """
 
     decision: str | None = None
     since_t: float = 0.0
@@ -175,7 +240,35 @@ class Lane:
 
 @dataclass
 class ViewState:
-    """The UI's own copy of what it shows (UI thread only)."""
+    """The UI's own copy of what it shows (UI thread only).
+
+    Attributes
+    ----------
+    classes : tuple or None
+        Model A's classes (None before the session is ready).
+    keys : dict
+        Each class's letter.
+    hop_s, enter : float
+        The hop and the decision threshold.
+    t1 : float
+        The newest window's end.
+    features : numpy.ndarray or None
+        The newest window's features.
+    level, clipped, quiet_s : float
+        The newest level, clipped share and seconds of silence.
+    truth : str or None
+        The truth now.
+    truths : collections.deque
+        Recent truths, one per hop.
+    lanes : list of Lane
+        One per model.
+    agree : int
+        Windows where A and B decided alike.
+    profiled : bool
+        A profile gives unfamiliar flags.
+    status : SessionStatus or None
+        The newest health figures.
+    """
 
     classes: tuple | None = None
     keys: dict = field(default_factory=dict)
@@ -264,14 +357,43 @@ class CpuMeter:
 
 
 def too_small_text(width: int, height: int, need: tuple[int, int]) -> Text:
-    """The sentence shown instead of the live view while the terminal is smaller than `need`."""
+    """The sentence shown instead of the live view while the terminal is smaller than `need`.
+
+    Parameters
+    ----------
+    width, height : int
+        The terminal's size.
+    need : tuple of int
+        The size the view needs.
+
+    Returns
+    -------
+    rich.text.Text
+        The sentence.
+    """
     return Text(f"scenemon needs a terminal of at least {need[0]} x {need[1]} characters; "
                 f"this one is {width} x {height}. Make the window larger or the font "
                 f"smaller.", style=f"bold {P.TEXT}")
 
 
 class MonitorApp(App):
-    """The live view (see module docstring)."""
+    """The live view (see module docstring).
+
+    Parameters
+    ----------
+    start : callable
+        The session function, run on a worker thread (`session_starter`).
+    heading : str
+        The title line.
+    redraw_hz : float
+        Redraws per second at most.
+    show_timings : bool
+        Show compute and latency figures.
+    cpu_meter : callable, optional
+        The process's CPU share (a test's fixed one).
+    exit_when_done : bool
+        Leave the app when the session ends.
+    """
 
     CSS_PATH = "app.tcss"
     TITLE = "scenemon"
@@ -731,7 +853,15 @@ class MonitorApp(App):
 
 
 class RelabelApp(App):
-    """`scenemon relabel SESSION`: the relabel view on its own."""
+    """`scenemon relabel SESSION`: the relabel view on its own.
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session.
+    classes : list of str
+        Its classes.
+    """
 
     CSS_PATH = "app.tcss"
     TITLE = "scenemon relabel"
@@ -750,7 +880,18 @@ class RelabelApp(App):
 
 def session_starter(plan) -> Callable[[SessionHooks], dict]:
     """The function the UI's session worker runs: `assemble.run_session` with the UI's
-    observer, stop event and ready callback."""
+    observer, stop event and ready callback.
+
+    Parameters
+    ----------
+    plan : SessionPlan
+        The session.
+
+    Returns
+    -------
+    callable
+        ``start(hooks) -> summary``.
+    """
     from monitor.assembly.assemble import run_session
 
     plan = dataclasses.replace(plan, keep_features=True, live_truth=True)
@@ -763,7 +904,20 @@ def session_starter(plan) -> Callable[[SessionHooks], dict]:
 
 
 def run_ui(plan, *, heading: str) -> int:
-    """The terminal UI around one session; returns the exit code."""
+    """The terminal UI around one session; returns the exit code.
+
+    Parameters
+    ----------
+    plan : SessionPlan
+        The session.
+    heading : str
+        The title line.
+
+    Returns
+    -------
+    int
+        The exit code.
+    """
     import sys
 
     from monitor.assembly.plan import MicInput
@@ -784,7 +938,25 @@ def run_ui(plan, *, heading: str) -> int:
 
 
 def run_relabel(session: Path, *, interactive: bool) -> int:
-    """`scenemon relabel SESSION`: the relabel view; it needs a terminal."""
+    """`scenemon relabel SESSION`: the relabel view; it needs a terminal.
+
+    Parameters
+    ----------
+    session : Path
+        The session directory.
+    interactive : bool
+        stdin and stdout are a terminal.
+
+    Returns
+    -------
+    int
+        The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        A session without snippets, or no terminal.
+    """
     from monitor.session.reader import load_session
 
     s = load_session(session)

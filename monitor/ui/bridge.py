@@ -28,7 +28,17 @@ class NewWindows(Message):
 @dataclass(frozen=True)
 class SessionStatus:
     """What the health panel shows: the engine's snapshot plus the writer's and the capture
-    policy's counts, read on the compute thread where they are owned or published."""
+    policy's counts, read on the compute thread where they are owned or published.
+
+    Attributes
+    ----------
+    engine : EngineStatus
+        The engine's snapshot.
+    snippets : int
+        Snippets captured.
+    write_error : str or None
+        The writer's failure.
+    """
 
     engine: EngineStatus
     snippets: int
@@ -36,7 +46,13 @@ class SessionStatus:
 
 
 class Status(Message):
-    """The newest `SessionStatus` (a newer one replaces an unhandled older one)."""
+    """The newest `SessionStatus` (a newer one replaces an unhandled older one).
+
+    Parameters
+    ----------
+    status : SessionStatus
+        The figures.
+    """
 
     def __init__(self, status: SessionStatus) -> None:
         super().__init__()

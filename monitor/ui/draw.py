@@ -27,13 +27,35 @@ DIFFER = "≠"  # two models' decisions differ
 
 # --- numbers that keep their columns ------------------------------------------------------
 def clock(t_s: float) -> str:
-    """Session time as h:mm:ss (7 characters up to 9:59:59)."""
+    """Session time as h:mm:ss (7 characters up to 9:59:59).
+
+    Parameters
+    ----------
+    t_s : float
+        Seconds.
+
+    Returns
+    -------
+    str
+        The time.
+    """
     s = int(max(t_s, 0.0))
     return f"{s // 3600}:{s // 60 % 60:02d}:{s % 60:02d}"
 
 
 def held(t_s: float) -> str:
-    """A duration in 7 characters: "  4.5 s", "  12:34", "1:02:03"."""
+    """A duration in 7 characters: "  4.5 s", "  12:34", "1:02:03".
+
+    Parameters
+    ----------
+    t_s : float
+        Seconds.
+
+    Returns
+    -------
+    str
+        7 characters.
+    """
     t_s = max(t_s, 0.0)
     if t_s < 60:
         return f"{t_s:5.1f} s"
@@ -44,7 +66,18 @@ def held(t_s: float) -> str:
 
 
 def count4(n: int) -> str:
-    """A count in at most 4 characters: 9999, 12k, 999k, 1.2M, 12M, 999M, 1.2G, ..."""
+    """A count in at most 4 characters: 9999, 12k, 999k, 1.2M, 12M, 999M, 1.2G, ...
+
+    Parameters
+    ----------
+    n : int
+        A count >= 0.
+
+    Returns
+    -------
+    str
+        At most 4 characters.
+    """
     if n < 10000:
         return str(n)
     for unit, scale in (("k", 1e3), ("M", 1e6), ("G", 1e9), ("T", 1e12)):
@@ -61,6 +94,16 @@ def count3(n: int) -> str:
 
     The unit letter stands where the decimal point would (the letter code of resistor
     values, IEC 60062, from memory): 1k2 is 1.2 thousand, M12 is 0.12 million (120,000).
+
+    Parameters
+    ----------
+    n : int
+        A count >= 0.
+
+    Returns
+    -------
+    str
+        At most 3 characters.
     """
     if n < 1000:
         return str(n)
@@ -78,18 +121,53 @@ def count3(n: int) -> str:
 
 
 def pct(x: float | None) -> str:
-    """A share in 6 characters ("100.0%", " 97.6%", "     -")."""
+    """A share in 6 characters ("100.0%", " 97.6%", "     -").
+
+    Parameters
+    ----------
+    x : float or None
+        A share from 0 to 1 (None: no figure).
+
+    Returns
+    -------
+    str
+        6 characters.
+    """
     return "     -" if x is None else f"{x:6.1%}"
 
 
 def fit(s: str, width: int) -> str:
-    """`s` cut to `width` cells with an ellipsis (labels are short ASCII)."""
+    """`s` cut to `width` cells with an ellipsis (labels are short ASCII).
+
+    Parameters
+    ----------
+    s : str
+        The text.
+    width : int
+        Cells.
+
+    Returns
+    -------
+    str
+        At most `width` characters.
+    """
     return s if len(s) <= width else (s[:max(width - 1, 0)] + "…" if width > 0 else "")
 
 
 # --- classes --------------------------------------------------------------------------------
 def class_keys(classes) -> dict[str, str]:
-    """One distinct character per class: its first unused letter, else a digit."""
+    """One distinct character per class: its first unused letter, else a digit.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+
+    Returns
+    -------
+    dict
+        Class to its character.
+    """
     used, out = set(), {}
     for i, c in enumerate(classes):
         key = next((ch for ch in c.lower() if ch.isalnum() and ch not in used), str(i % 10))
@@ -99,12 +177,42 @@ def class_keys(classes) -> dict[str, str]:
 
 
 def colour(classes, c) -> str:
-    """The class colour (`monitor.base.palette`, the same as the HTML report's)."""
+    """The class colour (`monitor.base.palette`, the same as the HTML report's).
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    c : str
+        A label.
+
+    Returns
+    -------
+    str
+        ``#rrggbb``.
+    """
     return P.class_colour(classes, c)
 
 
 def bar(frac: float, width: int, *, mark: float | None = None, style: str = "") -> Text:
-    """A horizontal bar of `width` cells in eighths; `mark` draws a threshold tick."""
+    """A horizontal bar of `width` cells in eighths; `mark` draws a threshold tick.
+
+    Parameters
+    ----------
+    frac : float
+        From 0 to 1 (clipped).
+    width : int
+        Cells.
+    mark : float, optional
+        Where the threshold tick goes, from 0 to 1.
+    style : str
+        The bar's Rich style.
+
+    Returns
+    -------
+    rich.text.Text
+        One line of `width` cells.
+    """
     frac = min(max(float(frac), 0.0), 1.0)
     eighths = int(round(frac * width * 8))
     full, part = divmod(eighths, 8)
@@ -118,7 +226,23 @@ def bar(frac: float, width: int, *, mark: float | None = None, style: str = "") 
 
 @dataclass(frozen=True)
 class ModelView:
-    """What the decision panel shows of one model (UI thread values)."""
+    """What the decision panel shows of one model (UI thread values).
+
+    Attributes
+    ----------
+    name : str
+        The model's name (A, B, or its file).
+    decision : str or None
+        Its decision.
+    held_s : float
+        Seconds the decision has held.
+    top_p : float
+        Its top smoothed probability.
+    accuracy : float or None
+        Its running accuracy against the truth.
+    unfamiliar : bool
+        The sound is unfamiliar to it.
+    """
 
     name: str  # "" for a one-model session, else "A" / "B"
     decision: str | None
@@ -151,6 +275,28 @@ def decision_text(classes, keys, models: list[ModelView], truth: str | None, *,
     differ, each model's running accuracy and how often they agree.
 
     ``truth_mode``: "keys" (the operator gives it), "file" (a truth file) or "none".
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    keys : dict
+        Each class's letter (`class_keys`).
+    models : list of ModelView
+        One model, or A and B.
+    truth : str or None
+        The truth now.
+    truth_mode : str
+        How the truth is told ("keys", "file", "none").
+    agreement : float, optional
+        How often A and B decided alike.
+    width : int
+        Cells.
+
+    Returns
+    -------
+    rich.text.Text
+        The panel's lines.
     """
     t = Text(no_wrap=True, overflow="crop")
     if len(models) == 1:
@@ -224,7 +370,20 @@ def decision_text(classes, keys, models: list[ModelView], truth: str | None, *,
 
 
 def name_width(classes, limit: int = 12) -> int:
-    """Width of the class-name column: the longest class name, at most `limit`."""
+    """Width of the class-name column: the longest class name, at most `limit`.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    limit : int
+        Cells at most.
+
+    Returns
+    -------
+    int
+        Cells.
+    """
     return min(limit, max(len(c) for c in classes))
 
 
@@ -233,6 +392,24 @@ def class_bars(classes, keys, columns: list, enter: float, *, width: int) -> Tex
 
     ``columns``: a list of (values or None, with_enter_mark, with_number); one model shows
     raw and smoothed, two models A's and B's smoothed.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    keys : dict
+        Each class's letter (`class_keys`).
+    columns : list
+        (values or None, with_enter_mark, with_number) per bar column.
+    enter : float
+        The decision threshold, marked on the bars that ask for it.
+    width : int
+        Cells.
+
+    Returns
+    -------
+    rich.text.Text
+        One line per class.
     """
     t = Text(no_wrap=True, overflow="crop")
     nw = name_width(classes)
@@ -259,7 +436,18 @@ STRIP_LABEL = 9
 
 
 def strip_cells(width: int) -> int:
-    """How many hops the strip shows in a panel `width` cells wide (one cell per hop)."""
+    """How many hops the strip shows in a panel `width` cells wide (one cell per hop).
+
+    Parameters
+    ----------
+    width : int
+        The panel's cells.
+
+    Returns
+    -------
+    int
+        Hops shown.
+    """
     return max(8, width - STRIP_LABEL)
 
 
@@ -297,7 +485,26 @@ def _axis(cells: int, hop_s: float) -> str:
 
 def strip_text(classes, keys, rows: list[tuple[str, list]], width: int, hop_s: float) -> Text:
     """The newest hops, one cell each, newest on the right: a row per model and the truth,
-    then the time axis."""
+    then the time axis.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    keys : dict
+        Each class's letter (`class_keys`).
+    rows : list of (str, list)
+        Each row's name and its labels per hop, oldest first.
+    width : int
+        Cells.
+    hop_s : float
+        Seconds per hop.
+
+    Returns
+    -------
+    rich.text.Text
+        The strip's lines.
+    """
     cells = strip_cells(width)
     t = Text(no_wrap=True, overflow="crop")
     for label, values in rows:
@@ -316,7 +523,20 @@ def strip_text(classes, keys, rows: list[tuple[str, list]], width: int, hop_s: f
 
 
 def strip_title(width: int, hop_s: float) -> str:
-    """The strip's border title: the seconds it spans at `width` and the hop of one cell."""
+    """The strip's border title: the seconds it spans at `width` and the hop of one cell.
+
+    Parameters
+    ----------
+    width : int
+        The panel's cells.
+    hop_s : float
+        Seconds per hop.
+
+    Returns
+    -------
+    str
+        The title.
+    """
     span = strip_cells(width) * hop_s
     return f"last {span:.0f} s · a cell per {hop_s:g} s hop"
 
@@ -328,6 +548,21 @@ class PictureSpec:
 
     ``display = features * gain + offset`` (broadcast to the card's layout) gives the values
     drawn, from ``lo`` (the ramp's first step) to ``hi`` (its last), in ``unit``.
+
+    Attributes
+    ----------
+    time_axis : int or None
+        The frames axis of one window's features (None: no picture, a waveform model).
+    centres_hz : tuple of float or None
+        The centre frequency of each band, for the axis labels.
+    gain, offset : numpy.ndarray
+        ``display = features * gain + offset``.
+    lo, hi : float
+        The display values at the ends of the heat ramp.
+    unit : str
+        The display's unit ("dB", or none).
+    what : str
+        What the picture shows, for its title.
     """
 
     time_axis: int | None  # None: no picture (a waveform model)
@@ -348,6 +583,16 @@ def picture_spec(card) -> PictureSpec:
     card's band centres (`monitor.features.dsp.mel_band_edges`) or FFT bins. Anything else
     (MFCC, per-window standardisation) is drawn as the model's scaled input in standard
     deviations, without a frequency axis.
+
+    Parameters
+    ----------
+    card : ModelCard
+        The model's card.
+
+    Returns
+    -------
+    PictureSpec
+        How to draw its features.
     """
     fe = card.frontend
     kind = fe.kind
@@ -424,7 +669,18 @@ AXIS_W = 4
 
 
 def khz(f_hz: float) -> str:
-    """A frequency in Hz as its kHz axis label: one decimal below 10 kHz, none from there on."""
+    """A frequency in Hz as its kHz axis label: one decimal below 10 kHz, none from there on.
+
+    Parameters
+    ----------
+    f_hz : float
+        Hz.
+
+    Returns
+    -------
+    str
+        The label.
+    """
     f = f_hz / 1000.0
     return f"{f:.1f}" if f < 9.95 else f"{f:.0f}"
 
@@ -436,6 +692,22 @@ def heat_text(features, spec: PictureSpec, rows: int, cols: int, *, color: bool 
     In colour each cell is two pixels (the upper half block's foreground and its
     background), steps of `monitor.base.palette.HEAT`; without colour one pixel per cell, by
     glyph density (`SHADES`).
+
+    Parameters
+    ----------
+    features : numpy.ndarray
+        One window's model input.
+    spec : PictureSpec
+        How to draw it.
+    rows, cols : int
+        Lines and picture cells.
+    color : bool
+        Colours (else characters of rising density).
+
+    Returns
+    -------
+    rich.text.Text
+        The picture.
     """
     t = Text(no_wrap=True, overflow="crop")
     if spec.time_axis is None:
@@ -476,7 +748,22 @@ def heat_text(features, spec: PictureSpec, rows: int, cols: int, *, color: bool 
 
 
 def scale_text(spec: PictureSpec, width: int, *, color: bool = True) -> Text:
-    """The picture's value scale on one line: lowest value, the ramp, highest value."""
+    """The picture's value scale on one line: lowest value, the ramp, highest value.
+
+    Parameters
+    ----------
+    spec : PictureSpec
+        The picture's scale.
+    width : int
+        Cells.
+    color : bool
+        Colours (else characters).
+
+    Returns
+    -------
+    rich.text.Text
+        One line.
+    """
     t = Text(no_wrap=True, overflow="crop")
     if spec.time_axis is None:
         return t
@@ -502,7 +789,24 @@ def scale_text(spec: PictureSpec, width: int, *, color: bool = True) -> Text:
 
 def level_text(level_dbfs: float, clipped: float, quiet_s: float, width: int) -> Text:
     """The input level: its value, then a meter from -60 to 0 dBFS, or in its place the
-    warning that matters (clipping; silent for 3 s or more: a muted input?)."""
+    warning that matters (clipping; silent for 3 s or more: a muted input?).
+
+    Parameters
+    ----------
+    level_dbfs : float
+        The newest window's level (AES17).
+    clipped : float
+        Its share of full-scale samples.
+    quiet_s : float
+        Seconds the input has been silent.
+    width : int
+        Cells.
+
+    Returns
+    -------
+    rich.text.Text
+        One line.
+    """
     t = Text(no_wrap=True, overflow="crop")
     t.append(f"{max(level_dbfs, -160.0):6.1f} dBFS ")  # the windows' floor, -160
     room = max(4, width - 12)
@@ -529,6 +833,24 @@ def confusion_text(classes, keys, cm, width: int, *, color: bool = True) -> Text
 
     A cell is 5 or 4 characters wide with its space; its count is written in what is left
     (`count4` or `count3`), so hours of windows never break a column.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+    keys : dict
+        Each class's letter (`class_keys`).
+    cm : array_like
+        Counts, rows truth, columns decisions then undecided.
+    width : int
+        Cells.
+    color : bool
+        Shade the cells.
+
+    Returns
+    -------
+    rich.text.Text or None
+        The table, or None when it does not fit.
     """
     cols = [keys[c] for c in classes] + ["?"]
     cell = 5
@@ -560,7 +882,38 @@ def session_text(*, t_s: float, windows: int, snippets: int, tally, classes, key
                  width: int, height: int, truth_mode: str, which: str = "",
                  unfamiliar: int | None = None, color: bool = True) -> Text:
     """The session panel: time, windows, snippets, accuracy and the confusion table, then
-    what fits of latency and switch rate. At most `height` lines of at most `width`."""
+    what fits of latency and switch rate. At most `height` lines of at most `width`.
+
+    Parameters
+    ----------
+    t_s : float
+        Session seconds.
+    windows : int
+        Windows so far.
+    snippets : int
+        Snippets captured.
+    tally : Tally
+        The running counts.
+    classes : sequence of str
+        The model's classes.
+    keys : dict
+        Each class's letter (`class_keys`).
+    width, height : int
+        Cells and lines.
+    truth_mode : str
+        How the truth is told.
+    which : str
+        Which model the panel is about ("", "A", "B").
+    unfamiliar : int, optional
+        Windows marked unfamiliar.
+    color : bool
+        Colours.
+
+    Returns
+    -------
+    rich.text.Text
+        The panel's lines.
+    """
     acc = pct(tally.accuracy) if tally.with_truth else "     -"
     # 26 cells (the panel's inner width at every size): up to 99:59:59 and 999,999 windows
     # in full, beyond that in short form
@@ -610,7 +963,38 @@ def health_text(*, source: str, rate, ms: float | None, latency_ms: float | None
                 height: int = 7) -> Text:
     """The health panel: source, native rate, compute and latency, CPU, losses; then the
     alarms (windows whose model output was not finite, a disk that stopped), for which the
-    rate and then the latency rows make room when the panel has `height` rows only."""
+    rate and then the latency rows make room when the panel has `height` rows only.
+
+    Parameters
+    ----------
+    source : str
+        The source's origin and name.
+    rate : int or str
+        The native rate.
+    ms : float or None
+        Compute per window.
+    latency_ms : float or None
+        Latency of the last window (live).
+    cpu : float or None
+        Share of one core the process used.
+    overruns, gaps : int
+        Ring overruns and windows after a gap.
+    write_error : bool
+        The session writer has stopped.
+    width : int
+        Cells.
+    show_timings : bool
+        Show compute and latency (a clock-frozen test leaves them out).
+    model_faults : int
+        Windows whose model output was not finite.
+    height : int
+        Lines.
+
+    Returns
+    -------
+    rich.text.Text
+        The panel's lines.
+    """
     t = Text(no_wrap=True, overflow="crop")
 
     def num(v, spec, unit):
@@ -689,13 +1073,41 @@ STAGE_SCALES = (2, 1)  # cells per font pixel, across; one line per pixel row
 
 
 def big_width(word: str, scale: int) -> int:
-    """Cells `word` takes in the stage font at `scale` cells per pixel (letters one pixel apart)."""
+    """Cells `word` takes in the stage font at `scale` cells per pixel (letters one pixel apart).
+
+    Parameters
+    ----------
+    word : str
+        The word.
+    scale : int
+        Cells per font pixel.
+
+    Returns
+    -------
+    int
+        Cells.
+    """
     return len(word) * (FONT_W + 1) * scale - scale if word else 0
 
 
 def big_text(word: str, *, max_width: int = 10 ** 6, style: str = "") -> Text:
     """`word` in the stage font, at the widest scale that fits `max_width` (two cells or one
-    per pixel); a word too long even at one cell per pixel is cut with a trailing "-"."""
+    per pixel); a word too long even at one cell per pixel is cut with a trailing "-".
+
+    Parameters
+    ----------
+    word : str
+        The word.
+    max_width : int
+        Cells at most.
+    style : str
+        Its Rich style.
+
+    Returns
+    -------
+    rich.text.Text
+        Six lines.
+    """
     word = word.upper()
     scale = next((s for s in STAGE_SCALES if big_width(word, s) <= max_width), 1)
     while big_width(word, scale) > max_width and len(word) > 1:

@@ -12,7 +12,15 @@ from monitor.base.files import terminal_safe
 
 
 class AskLabel(ModalScreen[str | None]):
-    """Which class is this? Number keys pick one; 0 means unknown; Escape cancels."""
+    """Which class is this? Number keys pick one; 0 means unknown; Escape cancels.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The classes, numbered from 1.
+    prompt : str
+        The question.
+    """
 
     BINDINGS = [Binding("escape", "cancel", "cancel", id="ask_cancel")]
 

@@ -34,7 +34,18 @@ REASONS = {"disagreement": "disagree", "models_disagree": "A≠B", "uncertain": 
 
 
 def state_word(sn: S.SnippetFile) -> str:
-    """One word for the review state: dropped, relabeled, kept, or new (not reviewed)."""
+    """One word for the review state: dropped, relabeled, kept, or new (not reviewed).
+
+    Parameters
+    ----------
+    sn : SnippetFile
+        The snippet.
+
+    Returns
+    -------
+    str
+        The word.
+    """
     state = sn.state or ""
     if "dropped" in state:
         return "dropped"
@@ -44,7 +55,17 @@ def state_word(sn: S.SnippetFile) -> str:
 
 
 class RelabelScreen(Screen):
-    """The snippets of a session (see module docstring)."""
+    """The snippets of a session (see module docstring).
+
+    Parameters
+    ----------
+    session_dir : Path
+        The session.
+    classes : list of str
+        Its classes.
+    standalone : bool
+        The app's only screen (its back key leaves the app).
+    """
 
     BINDINGS = [
         Binding("space", "play", "play", id="relabel_play"),

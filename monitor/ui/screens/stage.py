@@ -21,7 +21,24 @@ SHOW = ("A", "B", "both")
 
 
 def stage_text(st, show: str, width: int, height: int, names: tuple[str, ...] = ()) -> Text:
-    """The stage view's content for a screen of `width` x `height` cells (pure)."""
+    """The stage view's content for a screen of `width` x `height` cells (pure).
+
+    Parameters
+    ----------
+    st : ViewState
+        What the UI shows.
+    show : str
+        Which model: "both", or one of A and B.
+    width, height : int
+        The screen's cells and lines.
+    names : tuple of str
+        The models' names.
+
+    Returns
+    -------
+    rich.text.Text
+        The content.
+    """
     lanes = list(enumerate(st.lanes))
     if st.two and show != "both":
         lanes = [lanes[SHOW.index(show)]]
