@@ -132,11 +132,27 @@ class RunnerBase:
         return out.astype(np.float32)
 
     def check_outputs(self) -> None:
-        """Warm up once and warn when a 'probabilities' model does not output probabilities."""
+        """Warm up once, and refuse a "probabilities" model whose outputs are not probabilities.
+
+        A softmax output is never negative and sums to 1; a model that ends in logits gives
+        negative values or another sum, and deciding on those would be wrong without a word.
+
+        Raises
+        ------
+        ModelError
+            A "probabilities" model gave a negative value or a sum more than 0.05 from 1 on
+            a silent window: the sentence names the card key to set (``output = "logits"``).
+        """
         out = self.predict(np.zeros((1, *self.card.feature_shape), np.float32))
-        if self.card.output == "probabilities":
-            s = float(out.sum())
-            if not np.all(np.isfinite(out)) or out.min() < -1e-3 or abs(s - 1.0) > 0.02:
-                warnings.warn(f"{self.path}: outputs do not look like probabilities "
-                              f"(sum {s:.3f}); set output = \"logits\" in the card if the model "
-                              f"ends without a softmax", stacklevel=2)
+        if self.card.output != "probabilities":
+            return
+        if not np.all(np.isfinite(out)):
+            warnings.warn(f"{self.path}: a silent window gives a non-finite output; such "
+                          f"windows are recorded as model faults", stacklevel=2)
+            return
+        s, low = float(out.sum()), float(out.min())
+        if low < -1e-3 or abs(s - 1.0) > 0.05:
+            raise ModelError(f"{self.path}: its outputs are not probabilities (on a silent "
+                             f"window they sum to {s:.3f}, the smallest is {low:.3f}); if the "
+                             f"model ends without a softmax, set output = \"logits\" in its "
+                             f"card {self.card.name}")

@@ -3,7 +3,6 @@
 import os
 import subprocess
 import sys
-import warnings
 
 import numpy as np
 import pytest
@@ -106,12 +105,12 @@ def test_two_inputs_refused(tmp_path, demo_card, keras_runner):
 
 
 @pytest.mark.slow
-def test_logits_model_warns_and_softmax_on_request(tmp_path, demo_card, keras_runner):
+def test_logits_model_is_refused_and_softmax_on_request(tmp_path, demo_card, keras_runner):
+    # a softmax output is never negative and sums to 1; logits decided on as probabilities
+    # gave negative "probabilities" and exit 0 before: now the card key to set is named
     path = _tiny(tmp_path, "logits")
-    with warnings.catch_warnings(record=True) as w:
-        warnings.simplefilter("always")
+    with pytest.raises(ModelError, match='set output = "logits" in its card'):
         load_runner(path, demo_card)
-    assert any("do not look like probabilities" in str(x.message) for x in w)
     card = card_from_dict(card_dict(output="logits"))
     p = load_runner(path, card).predict(np.random.default_rng(0).standard_normal((3, 98, 40)))
     np.testing.assert_allclose(p.sum(axis=1), 1.0, atol=1e-6)
