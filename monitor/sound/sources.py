@@ -93,7 +93,12 @@ def check_audio_file(path: str | Path, *, model_rate: int, window_samples: int,
         with quiet_native_stderr():
             info = sf.info(str(path))
     except (sf.LibsndfileError, RuntimeError, TypeError) as exc:
-        raise AudioError(f"{path}: not a readable audio file ({_first_line(exc)})") from None
+        why = _first_line(exc).split("': ", 1)[-1].rstrip(".")  # the file is named already
+        if "does not exist" in why or "possibly a pipe" in why:
+            # libsndfile's words for a regular file whose content it cannot parse (a
+            # non-audio file named .mp3): the file exists and is regular, checked above
+            why = "its content is not audio in a format libsndfile reads"
+        raise AudioError(f"{path}: not a readable audio file ({why})") from None
     if info.frames <= 0 or info.samplerate <= 0:
         raise AudioError(f"{path}: holds no audio frames")
     if info.samplerate < model_rate and not allow_upsample:
