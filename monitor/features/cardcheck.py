@@ -385,7 +385,7 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
         lines.append(f"shape        {res.base.shape}, the same")
         verdict = "match" if res.matched else "MISMATCH"
         lines.append(f"max abs diff {res.base.max_diff:.3g} (tolerance {res.tolerance:.3g}, "
-                     f"1e-3 of the file's range): {verdict}")
+                     f"1e-3 of the range of {features.name}): {verdict}")
         if not res.matched:
             lines.append(f"where        {where(res)}")
     if res.matched:

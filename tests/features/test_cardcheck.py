@@ -71,6 +71,7 @@ def test_librosa_features_are_matched(made):
         r = check(d, audio, LIBROSA_CARD, name)
         assert r.returncode == 0, r.stdout + r.stderr
         assert ": match" in r.stdout and "shape        (101, 40), the same" in r.stdout
+        assert f"1e-3 of the range of {name})" in r.stdout  # the range of which file
 
 
 @pytest.mark.parametrize("key,wrong,right", [
