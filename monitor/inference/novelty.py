@@ -296,9 +296,17 @@ def fit_profile(features: np.ndarray, card: ModelCard, *, labels: np.ndarray | N
     present = sorted(set(labels[~held].tolist()))
     small = [c for c in present if np.sum(~held & (labels == c)) < MIN_CLASS_WINDOWS]
     if not present or small or held.sum() < MIN_CLASS_WINDOWS:
-        raise ScenemonError(f"{n} windows are too few for a profile: each class present needs "
-                            f"at least {MIN_CLASS_WINDOWS} windows to fit and the held-out part "
-                            f"{MIN_CLASS_WINDOWS} (give more audio)")
+        names = list(card.classes)
+        fit = ", ".join(f"{names[c] if 0 <= c < len(names) else c} "
+                        f"{int(np.sum(~held & (labels == c)))}" for c in present)
+        # every HOLD_OUT_EVERY-th block is held out: a class needs about this many windows
+        need = -(-MIN_CLASS_WINDOWS * HOLD_OUT_EVERY // (HOLD_OUT_EVERY - 1))
+        raise ScenemonError(
+            f"{n} windows are too few for a profile: each class needs {MIN_CLASS_WINDOWS} "
+            f"windows to fit after every {HOLD_OUT_EVERY}th block of windows is held out, "
+            f"and the held-out part {MIN_CLASS_WINDOWS} in all; windows to fit per class: "
+            f"{fit or 'none'}, held out: {int(held.sum())}. Give each class at least about "
+            f"{need} windows ({need * card.hop_s:.1f} s of audio at a hop of {card.hop_s:g} s)")
     means, covs, shrink = [], [], []
     for c in present:
         x = s[~held & (labels == c)]

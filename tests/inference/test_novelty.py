@@ -190,3 +190,19 @@ def test_a_profile_for_another_card_is_refused(tmp_path, demo_card):
     r = cli("replay", wav, "--model", d / "demo.tflite", "--fast", "--out", tmp_path / "s")
     assert r.returncode == 2 and "demo.profile.npz" in r.stderr and "gives 80" in r.stderr
     assert not (tmp_path / "s").exists()
+
+
+def test_too_few_windows_are_counted_per_class(demo_card):
+    # 39 windows of each of the four classes: too few once every fifth block is held out;
+    # the sentence says what each class has and how much audio is needed
+    from monitor.base.errors import ScenemonError
+    from monitor.inference.novelty import fit_profile
+
+    rng = np.random.default_rng(0)
+    x = rng.standard_normal((4 * 39, *demo_card.feature_shape)).astype(np.float32)
+    labels = np.repeat(np.arange(4), 39)
+    with pytest.raises(ScenemonError) as e:
+        fit_profile(x, demo_card, labels=labels)
+    text = str(e.value)
+    assert "156 windows" in text and "quiet_room " in text and "machinery " in text
+    assert "12.5 s of audio" in text  # 25 windows at the demo card's 0.5 s hop
