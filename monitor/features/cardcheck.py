@@ -406,7 +406,8 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
         if res.closest is not None and res.closest.changes:
             lines.append(f"The closest: {'; '.join(card_lines(res.closest.changes))} "
                          f"(max abs diff {res.closest.max_diff:.3g}). Check the other keys "
-                         f"(fmin, fmax, mel_bands, frame_length, frame_step, the scaling) "
+                         f"(fmin, fmax, mel_bands, frame_length, frame_step, fft_length, "
+                         f"the scaling) "
                          f"against the training code.")
         if resampled:
             lines += ["", f"A likely cause: the recording is at {native_rate} Hz and was "

@@ -223,3 +223,19 @@ def test_help_has_an_example():
     assert r.returncode == 0 and "examples:" in r.stdout and "FEATURES.npy" in r.stdout
     r = cli("card")
     assert r.returncode == 2 and "give an action" in r.stderr
+
+
+def test_the_keys_to_look_at_name_fft_length(tmp_path):
+    # when no change of the searched keys matches, the sentence lists the keys the search
+    # does not change; a wrong fft_length was the cause in a user's trial and was not listed
+    from monitor.features.card import load_card
+    from monitor.features.cardcheck import CheckResult, Comparison, report
+
+    card = load_card(MODELS / "demo.toml")
+    a = np.zeros(card.feature_shape, np.float32)
+    res = CheckResult(card, a, a + 1, tolerance=1e-3,
+                      base=Comparison(card.feature_shape, 1.0), tried=40,
+                      closest=Comparison(card.feature_shape, 0.5, {"power": 1.0}))
+    text = report(res, card_path=MODELS / "demo.toml", audio=tmp_path / "a.wav",
+                  features=tmp_path / "f.npy", start_s=0.0, scaled=False)
+    assert "fft_length" in text.split("The closest:", 1)[1]
