@@ -2,9 +2,9 @@
 its fix: `mean = [ ... ]` is not TOML, and `mfcc = 13` is refused for kind = "logmel"."""
 
 import re
-import tomllib
 
 from conftest import ROOT
+from monitor.features.card import tomllib  # Python 3.11+: the standard library's; else tomli
 
 
 def test_every_card_in_the_readme_loads_as_written():
