@@ -92,7 +92,16 @@ class KerasRunner(RunnerBase):
                 raise ModelError(f"{path}: --trust-model was given, but its Lambda layer's "
                                  f"function cannot be restored from the file (it was saved "
                                  f"by name, not as code: {first[:160]})") from None
-            raise ModelError(f"{path}: cannot be loaded as a Keras model ({first[:200]})") from None
+            if "Unknown layer" in text or "custom" in text.lower() or "registered" in text:
+                # the whole reason (Keras names the layer), then what to do about it
+                raise ModelError(f"{path}: cannot be loaded as a Keras model: "
+                                 f"{' '.join(text.split())} -- it uses a layer Keras does not "
+                                 f"know here: the code that registers it "
+                                 f"(keras.saving.register_keras_serializable) is not imported "
+                                 f"in this process. Convert the model to .tflite where that "
+                                 f"code runs (scenemon quantize, or TFLiteConverter), or save "
+                                 f"it with built-in layers only") from None
+            raise ModelError(f"{path}: cannot be loaded as a Keras model ({first})") from None
         inputs = model.inputs if isinstance(model.inputs, list) else [model.inputs]
         outputs = model.outputs if isinstance(model.outputs, list) else [model.outputs]
         super().__init__(path, card, tuple(inputs[0].shape[1:]), outputs[0].shape[-1],

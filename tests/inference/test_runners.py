@@ -1,6 +1,7 @@
 """Model runners: Keras vs TFLite agreement, int8 agreement, safety and shape checks."""
 
 import os
+import shutil
 import subprocess
 import sys
 
@@ -8,7 +9,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, ROOT, card_dict
+from conftest import MODELS, ROOT, card_dict, run_cli
 from monitor.base.errors import ModelError
 from monitor.features.card import card_from_dict, load_card
 from monitor.features.frontend import FrontEnd
@@ -162,3 +163,35 @@ def test_core_imports_no_ui_or_audio_device():
             " if m in sys.modules))")
     out = subprocess.run([sys.executable, "-c", code], cwd=ROOT, capture_output=True, text=True)
     assert out.stdout.strip() == "[]", out.stderr
+
+
+@pytest.mark.slow
+def test_a_custom_layer_gives_the_whole_reason_and_what_to_do(tmp_path, tour):
+    # a model saved with a registered custom layer, loaded in a process that does not import
+    # the code registering it: Keras's whole reason (it was cut mid-word at 200 characters)
+    # and what to do about it
+    import keras
+    from keras import layers
+
+    @keras.saving.register_keras_serializable(package="usercode")
+    class ScaleBy(layers.Layer):
+        def __init__(self, k=2.0, **kw):
+            super().__init__(**kw)
+            self.k = k
+
+        def call(self, x):
+            return x * self.k
+
+        def get_config(self):
+            return {**super().get_config(), "k": self.k}
+
+    inp = keras.Input((98, 40, 1))
+    x = ScaleBy()(layers.GlobalAveragePooling2D()(inp))
+    model = keras.Model(inp, layers.Dense(4, activation="softmax")(x))
+    model.save(tmp_path / "custom.keras")
+    shutil.copy(MODELS / "demo.toml", tmp_path / "custom.toml")
+    r = run_cli("replay", tour[0], "--model", tmp_path / "custom.keras", "--fast",
+                "--headless", "--out", tmp_path / "s", timeout=300)
+    assert r.returncode == 2, r.stderr
+    line = [x for x in r.stderr.splitlines() if x.startswith("scenemon: ") and "warning" not in x]
+    assert len(line) == 1 and "ScaleBy" in line[0] and "register_keras_serializable" in line[0]
