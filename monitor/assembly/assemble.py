@@ -175,18 +175,38 @@ def open_source(src: FileInput | MicInput | Source, card: ModelCard) -> Source:
 
 
 # --- where sessions go ---------------------------------------------------------------------
-def project_root() -> Path:
-    """The checkout holding models/ (the working directory, else the package's parent).
+def demo_models() -> Path:
+    """The folder of the demo models.
+
+    ``models/`` of the current folder when it holds them (a checkout, as ``make demo`` runs
+    it), else the copy installed with the package (a wheel ships them as
+    ``monitor/demo/models``), else the checkout the package was installed from (an
+    editable install).
 
     Returns
     -------
     Path
         The folder.
     """
-    cwd = Path.cwd()
-    if (cwd / "models" / "demo.toml").is_file():
+    cwd = Path.cwd() / "models"
+    if (cwd / "demo.toml").is_file():
         return cwd
-    return Path(__file__).resolve().parent.parent.parent
+    packaged = Path(__file__).resolve().parent.parent / "demo" / "models"
+    if (packaged / "demo.toml").is_file():
+        return packaged
+    return Path(__file__).resolve().parent.parent.parent / "models"
+
+
+def recordings_dir() -> Path:
+    """Where sessions and the demo tour go without ``--out``: ``recordings/`` in the current
+    folder (never inside the installed package or its checkout).
+
+    Returns
+    -------
+    Path
+        The folder (not made here).
+    """
+    return Path.cwd() / "recordings"
 
 
 def unclosed_sessions(base: Path, limit: int = 2000) -> list[Path]:
@@ -213,7 +233,8 @@ def unclosed_sessions(base: Path, limit: int = 2000) -> list[Path]:
 
 
 def session_dir(out: OutputPlan) -> Path:
-    """The session directory: ``--out``, or a new ``recordings/<date>-<time>-<name>``.
+    """The session directory: ``--out``, or a new ``recordings/<date>-<time>-<name>`` in
+    the current folder.
 
     Parameters
     ----------
@@ -227,7 +248,7 @@ def session_dir(out: OutputPlan) -> Path:
     """
     if out.dir is not None:
         return Path(out.dir)
-    base = project_root() / "recordings"
+    base = recordings_dir()
     for d in unclosed_sessions(base):
         sys.stderr.write(f"scenemon: warning: {d} did not close cleanly; "
                          f"{invocation()} repair {d} makes it whole\n")

@@ -106,12 +106,12 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
 
     import soundfile as sf
 
-    from monitor.assembly.assemble import project_root
+    from monitor.assembly.assemble import recordings_dir
     from monitor.demo.tour import ensure_tour
     from monitor.sound.sources import load_audio
     from monitor.sound.windower import windows_of
 
-    wav, _ = ensure_tour(project_root() / "recordings" / "demo")
+    wav, _ = ensure_tour(recordings_dir() / "demo")
     sr = card.sample_rate  # the tour at the card's rate, resampled as replay resamples it
     x = load_audio([wav], model_rate=sr, window_samples=card.window_samples)
     x = x[: int(seconds * sr)]
@@ -198,8 +198,8 @@ def run(args: argparse.Namespace) -> int:
     int
         The exit code.
     """
-    from monitor.assembly.assemble import project_root
+    from monitor.assembly.assemble import demo_models
 
-    plan = model_plans(args, str(project_root() / "models" / "demo.tflite"))[0]
+    plan = model_plans(args, str(demo_models() / "demo.tflite"))[0]
     run_bench(plan, seconds=args.seconds)
     return 0

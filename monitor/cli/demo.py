@@ -20,7 +20,7 @@ from monitor.cli.screen import run_chain
 
 NAME = 'demo'
 HELP = 'the bundled demo model on the bundled scene tour'
-DESCRIPTION = 'Run the demo model on the demo scene tour (made on first use under recordings/demo/) and record a session.'
+DESCRIPTION = 'Run the demo model on the demo scene tour (made on first use under recordings/demo/ in the current folder) and record a session.'
 EXAMPLES = 'examples:\n  make demo                 # sets up .venv and runs this\n  scenemon demo             # the bundled scene tour at real-time pace\n  scenemon demo --fast      # the same, as fast as the CPU allows\n  scenemon demo --mic       # the demo model on the microphone\n  scenemon demo --model models/demo.tflite --model models/demo-mfcc.tflite   # two models'
 
 
@@ -53,17 +53,16 @@ def run(args: argparse.Namespace) -> int:
     int
         The exit code.
     """
-    from monitor.assembly.assemble import project_root
+    from monitor.assembly.assemble import demo_models, recordings_dir
     from monitor.assembly.plan import FileInput
     from monitor.demo import tour_paths
 
-    root = project_root()
-    default = str(root / "models" / "demo.tflite")
+    default = str(demo_models() / "demo.tflite")
     names = " + ".join(Path(m).name for m in (args.model or [default]))
     if args.mic:
         return run_chain(args, session_plan(args, mic_input(args), name="demo-mic", default_model=default),
                     f"demo on the microphone, {names}")
-    folder = root / "recordings" / "demo"
+    folder = recordings_dir() / "demo"
     wav, tsv = tour_paths(folder)
 
     def make_tour() -> None:  # synthesis imports scipy.signal: keep it off the first screen

@@ -388,7 +388,8 @@ def add_session_flags(p: argparse.ArgumentParser) -> None:
     from monitor.assembly.plan import DEFAULT_SEGMENT_S
 
     p.add_argument("--out", metavar="DIR",
-                   help="session directory (default: recordings/<date>-<time>-<name>)")
+                   help="session directory (default: recordings/<date>-<time>-<name> in the "
+                        "current folder)")
     p.add_argument("--no-audio", action="store_true", help="keep no audio in the session")
     p.add_argument("--segment-min", type=segment_minutes, default=DEFAULT_SEGMENT_S / 60.0,
                    metavar="MINUTES",

@@ -181,3 +181,47 @@ def test_an_install_prints_nothing_alarming(tmp_path):
         text = (r.stdout + r.stderr).lower()
         assert "same name as your package" not in text and "warning: " not in text.replace(
             "warning: location", ""), r.stderr[-2000:]
+
+
+@pytest.mark.slow
+def test_a_wheel_in_a_fresh_venv_runs_demo_and_a_users_model_from_any_folder(tmp_path):
+    # as a user installs it: a wheel built from the repository, a new venv (its
+    # dependencies from the package index or pip's cache), run from an unrelated folder.
+    # Sessions go to that folder's recordings/, never into the installed package; the demo
+    # models come inside the package. Failed before its fix ("models/demo.tflite: model file
+    # not found", and sessions written under the checkout's recordings/).
+    import venv
+
+    wheels = tmp_path / "wheels"
+    r = subprocess.run([sys.executable, "-m", "pip", "wheel", "--no-deps",
+                        "--no-build-isolation", "-q", "-w", str(wheels), str(ROOT)],
+                       capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr[-2000:]
+    wheel = next(wheels.glob("scenemon-*.whl"))
+    env_dir = tmp_path / "fresh"
+    venv.EnvBuilder(with_pip=True).create(env_dir)
+    r = subprocess.run([str(env_dir / "bin" / "python"), "-m", "pip", "install", "-q",
+                        str(wheel)], capture_output=True, text=True, timeout=1200)
+    assert r.returncode == 0, r.stderr[-2000:]
+    site = next((env_dir / "lib").glob("python3*/site-packages"))
+    installed = {p: p.stat().st_mtime_ns for p in (site / "monitor").rglob("*")}
+    work = tmp_path / "somewhere" / "else"
+    work.mkdir(parents=True)
+    exe = str(env_dir / "bin" / "scenemon")
+    env = {k: v for k, v in os.environ.items() if k not in ("PYTHONPATH",)}
+    r = subprocess.run([exe, "demo", "--fast", "--headless"], cwd=work, env=env,
+                       capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr[-2000:]
+    sessions = [d for d in (work / "recordings").iterdir() if d.name != "demo"]
+    assert len(sessions) == 1 and (sessions[0] / "summary.json").is_file()
+    # the user's own model: a copy of a model and its card in the user's folder
+    shutil.copy(MODELS / "demo-mfcc.tflite", work / "mine.tflite")
+    shutil.copy(MODELS / "demo-mfcc.toml", work / "mine.toml")
+    r = subprocess.run([exe, "replay", str(work / "recordings" / "demo" / "tour.wav"),
+                        "--model", "mine.tflite", "--fast", "--headless", "--out", "mine-s"],
+                       cwd=work, env=env, capture_output=True, text=True, timeout=600)
+    assert r.returncode == 0, r.stderr[-2000:]
+    assert (work / "mine-s" / "windows.jsonl").stat().st_size > 0
+    assert {p: p.stat().st_mtime_ns for p in (site / "monitor").rglob("*")
+            if "__pycache__" not in p.parts} == {p: t for p, t in installed.items()
+                                                if "__pycache__" not in p.parts}
