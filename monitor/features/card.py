@@ -496,10 +496,15 @@ def _scaling(table: dict[str, Any], fe: FrontendConfig, shape: tuple[int, ...],
         except (TypeError, ValueError):
             raise fail(f"scaling.{name} must be a number, a list of numbers, or a .npz "
                        f"file") from None
-        if a.ndim == 1 and len(shape) == 2:
+        if a.ndim == 1 and len(shape) == 2 and a.size == int(np.prod(shape)) \
+                and a.size != bands:
+            a = a.reshape(shape)  # a flat scaler of the whole input, in the model's order
+        elif a.ndim == 1 and len(shape) == 2:
             if a.shape[0] != bands:
-                raise fail(f"scaling.{name} has {a.shape[0]} values but the features have "
-                           f"{bands} per frame")
+                raise fail(f"scaling.{name} has {a.shape[0]} values, but the features have "
+                           f"{bands} per frame (one value per band) and {int(np.prod(shape))} "
+                           f"in all: give one per band, the full shape {shape}, or all "
+                           f"{int(np.prod(shape))} flat in the model's input order")
             if mel_time:
                 a = a[:, None]
         elif a.ndim >= 1 and a.shape != shape:
@@ -530,8 +535,12 @@ def _scaling_file(name: str, path: Path | None, fail: Any) -> tuple[np.ndarray, 
         with np.load(io.BytesIO(data), allow_pickle=False) as z:
             if not isinstance(z, np.lib.npyio.NpzFile):  # pragma: no cover
                 raise ValueError("not an .npz archive")
+            if "mean" not in z.files or "std" not in z.files:
+                found = ", ".join(repr(f) for f in z.files) or "no arrays"
+                raise fail(f"scaling file {npz} holds {found}, not arrays 'mean' and 'std' "
+                           f"(numpy.savez(file, mean=scaler.mean_, std=scaler.scale_))")
             return np.asarray(z["mean"]), np.asarray(z["std"])
-    except (OSError, KeyError, ValueError, AttributeError, EOFError) as exc:
+    except (OSError, ValueError, AttributeError, EOFError) as exc:
         raise fail(f"scaling file {npz} is not an .npz holding arrays 'mean' and 'std' "
                    f"({type(exc).__name__}: {exc})") from None
 
