@@ -341,7 +341,7 @@ def case_card_scaling_npz_without_std(tmp_path):
     p = tmp_path / "bad.toml"
     p.write_text(text)
     return (["replay", _good(tmp_path), "--card", p], "scale.npz",
-            "is not an .npz holding arrays 'mean' and 'std'")
+            "holds 'mean', not arrays 'mean' and 'std'")  # the arrays found are named
 
 
 def case_truth_not_numbers(tmp_path):
