@@ -177,7 +177,7 @@ class ModelCard:
 
     @property
     def layout(self) -> str:
-        """"time_mel" or "mel_time"; "samples" for a kind without frames."""
+        """"time_mel", "mel_time" or "flat"; "samples" for a kind without frames."""
         return self.frontend.layout.layout if self.frontend.layout is not None else "samples"
 
     @property
@@ -253,6 +253,52 @@ class ModelCard:
             "card": str(self.path) if self.path else None,
         }
 
+    def model_input_shape(self, input_shape: tuple[int | None, ...]) -> tuple[int, ...] | None:
+        """One window's features as the model takes them: the card's feature shape, with a
+        channel axis of 1 in front or behind where the model has one.
+
+        Parameters
+        ----------
+        input_shape : tuple
+            The model's input shape without the batch axis (None or -1: any size).
+
+        Returns
+        -------
+        tuple of int or None
+            The shape one window is reshaped to (the same values in the same order: a single
+            channel changes no memory layout); None when the model takes something else.
+        """
+        want = tuple(self.feature_shape)
+        shape = tuple(None if s is None or int(s) == -1 else int(s) for s in input_shape)
+
+        def fits(s: tuple) -> bool:
+            return len(s) == len(want) and all(a is None or a == b for a, b in zip(s, want))
+
+        if fits(shape):
+            return want
+        if len(shape) == len(want) + 1:
+            if shape[-1] in (1, None) and fits(shape[:-1]):
+                return (*want, 1)
+            if shape[0] in (1, None) and fits(shape[1:]):
+                return (1, *want)
+        return None
+
+    def _layouts_that_fit(self, input_shape: tuple[int | None, ...]) -> list[str]:
+        """The layouts under which the model's input would fit (the sizes match, not the axes)."""
+        if self.frontend.framing is None or self.frontend.layout is None:
+            return []
+        out = []
+        for layout in ("time_mel", "mel_time", "flat"):
+            if layout == self.frontend.layout.layout:
+                continue
+            fe = dataclasses.replace(self.frontend,
+                                     layout=dataclasses.replace(self.frontend.layout,
+                                                                layout=layout))
+            other = dataclasses.replace(self, frontend=fe)
+            if other.model_input_shape(input_shape) is not None:
+                out.append(layout)
+        return out
+
     def check_model(self, input_shape: tuple[int | None, ...], n_outputs: int,
                     model_path: Path | str) -> bool:
         """Check the model's input shape and output size against the card.
@@ -267,7 +313,8 @@ class ModelCard:
         Returns
         -------
         bool
-            True when the model wants a trailing channel axis of size 1.
+            True when the model wants a trailing channel axis of size 1 (`model_input_shape`
+            says where any channel axis goes).
 
         Raises
         ------
@@ -275,13 +322,14 @@ class ModelCard:
             When the card cannot produce what the model expects.
         """
         want = self.feature_shape
-        shape = tuple(input_shape)
-        channel = False
-        if len(shape) == len(want) + 1 and shape[-1] == 1:
-            shape, channel = shape[:-1], True
-        if len(shape) != len(want) or any(s is not None and s != w for s, w in zip(shape, want)):
+        fitted = self.model_input_shape(input_shape)
+        if fitted is None:
             hint = ""
-            if self.frontend.framing is not None:
+            layouts = self._layouts_that_fit(input_shape)
+            if layouts:
+                hint = (f": the sizes match, the axes do not; set layout = \"{layouts[0]}\" "
+                        f"in [frontend]")
+            elif self.frontend.framing is not None:
                 keys = self.frontend.settings()
                 shaping = [k for k in ("frame_step", "frame_length", "fft_length", "window_s",
                                        "center", "window_in_frame", "mel_bands", "mfcc",
@@ -296,7 +344,7 @@ class ModelCard:
                 f"{model_path}: model has {n_outputs} outputs but the card {self.name} "
                 f"lists {len(self.classes)} classes"
             )
-        return channel
+        return len(fitted) > len(want) and fitted[-1] == 1 and fitted[:-1] == want
 
 
 FRONTEND_KEYS = ("kind", *dict.fromkeys(k for st in STAGES.values()
@@ -490,13 +538,18 @@ def _scaling(table: dict[str, Any], fe: FrontendConfig, shape: tuple[int, ...],
     out = []
     bands = fe.bands()
     mel_time = fe.layout is not None and fe.layout.layout == "mel_time"
+    flat = fe.layout is not None and fe.layout.layout == "flat"
     for name, value in (("mean", mean), ("std", std)):
         try:
             a = np.asarray(value, dtype=np.float32)
         except (TypeError, ValueError):
             raise fail(f"scaling.{name} must be a number, a list of numbers, or a .npz "
                        f"file") from None
-        if a.ndim == 1 and len(shape) == 2 and a.size == int(np.prod(shape)) \
+        if flat and a.ndim == 1 and a.shape[0] == bands and a.size != shape[0]:
+            a = np.tile(a, shape[0] // bands)  # one per band, for every frame of the flat input
+        elif flat and a.ndim == 2 and a.size == shape[0]:
+            a = a.reshape(shape)  # (frames, bands) as computed, flattened frame after frame
+        elif a.ndim == 1 and len(shape) == 2 and a.size == int(np.prod(shape)) \
                 and a.size != bands:
             a = a.reshape(shape)  # a flat scaler of the whole input, in the model's order
         elif a.ndim == 1 and len(shape) == 2:

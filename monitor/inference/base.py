@@ -122,8 +122,7 @@ class RunnerBase:
         self.check_io(path, card, input_shape, n_outputs, n_inputs, n_out_tensors)
         self.input_shape = tuple(int(s) if s is not None else -1 for s in input_shape)
         self.n_outputs = int(n_outputs)
-        self._one_shape = (1, *card.feature_shape,
-                           *([1] if len(self.input_shape) > len(card.feature_shape) else []))
+        self._one_shape = (1, *card.model_input_shape(input_shape))
         self.sha256 = file_sha256(path)
 
     def _finish(self, out: np.ndarray) -> np.ndarray:

@@ -597,8 +597,8 @@ def picture_spec(card) -> PictureSpec:
     fe = card.frontend
     kind = fe.kind
     one = np.ones((), np.float32)
-    if kind == "waveform":
-        return PictureSpec(None, None, one, one * 0, 0.0, 1.0, "", "waveform")
+    if kind == "waveform" or card.layout == "flat":  # no axes to draw a picture on
+        return PictureSpec(None, None, one, one * 0, 0.0, 1.0, "", kind)
     time_axis = card.time_axis
     centres: tuple[float, ...] | None = None
     if kind == "logmel" and fe.mel is not None:

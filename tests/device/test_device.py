@@ -71,6 +71,7 @@ C_CASES = {
                                      "preemphasis": 0.97},
     "hamming symmetric, mel_time": {"window": "hamming", "window_symmetric": True,
                                     "layout": "mel_time"},
+    "flat layout, per-band scaling for every frame": {"layout": "flat"},
     "mfcc 13 ortho, lifter 22": {"kind": "mfcc", "mfcc": 13, "dct_norm": "ortho",
                                  "lifter": 22.0},
     "mfcc 20 uniform, magnitude (CMSIS-DSP style)": {"kind": "mfcc", "mfcc": 20,

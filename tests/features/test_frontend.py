@@ -497,6 +497,7 @@ OPTIONS = {
     "mfcc ortho lifter": {"kind": "mfcc", "mfcc": 20, "dct_norm": "ortho", "lifter": 22.0},
     "mfcc uniform mel_time": {"kind": "mfcc", "mfcc": 13, "dct_norm": "uniform",
                               "layout": "mel_time"},
+    "mfcc flat": {"kind": "mfcc", "mfcc": 13, "dct_norm": "ortho", "layout": "flat"},
     "spectrogram": {"kind": "spectrogram", **NO_MEL},
     "waveform": {"kind": "waveform"},
 }

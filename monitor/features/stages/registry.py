@@ -104,6 +104,8 @@ class FrontendConfig:
         shape = self.time_major_shape(audio)
         if self.layout is not None and self.layout.layout == "mel_time":
             return shape[::-1]
+        if self.layout is not None and self.layout.layout == "flat":
+            return (shape[0] * shape[1],)
         return shape
 
 
