@@ -22,7 +22,7 @@ test: $(STAMP)            ## the whole test suite
 	$(BIN)/python -m pytest -q -ra
 
 test-fast: $(STAMP)       ## the tests that need neither much time nor system parts (under a minute)
-	$(BIN)/python -m pytest -q -ra -m "not slow and not system"
+	$(BIN)/python -m pytest -q -ra -n 2 -m "not slow and not system"
 
 lint: $(STAMP)
 	$(BIN)/ruff check monitor tests benchmarks docs
