@@ -16,10 +16,12 @@ HELP = 'check a model card against features from training code'
 DESCRIPTION = "Model card tools. card check: compute one window of AUDIO through the card's front end and compare it with FEATURES.npy from your own training code; when they differ, say where, and try the card with one key, then two keys changed."
 CARD_CHECK_HELP = """\
 Compare the card's features of one window of AUDIO with FEATURES.npy: what your
-training code computed for the window that starts at --start, unscaled (or with
---scaled after the card's scaling), in the model's input order (a channel axis of
-1 allowed). Prints the shapes, the max abs difference (tolerance: 1e-3 of the
-file's range) and which frames and bands it sits in. When they differ, it tries
+training code computed for the window that starts at --start (or for several
+windows one hop apart: a leading axis), unscaled (or with --scaled after the
+card's scaling), in the model's input order (a channel axis of 1 allowed). Prints
+the shapes, the max abs difference (tolerance: 1e-3 of each band's range in the
+file), which frames and bands it sits in, and the keys the windows cannot tell
+apart. When they differ, it tries
 the card with one key changed, then two (center, pad_mode, window_in_frame,
 mel_scale, mel_norm, mel_triangles, power, log, log_offset/log_floor, db_ref,
 top_db, window, window_symmetric, pcm_bits, layout, dct_norm) and prints the card

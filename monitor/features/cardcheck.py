@@ -7,8 +7,12 @@ of 1 and a batch axis of 1 are allowed), this computes the same window through t
 front end and reports:
 
 - the two shapes (a different shape is a finding: which axis, by how many);
-- the largest absolute difference, against a tolerance of 1e-3 of the file's range (common
-  practice for float32 parity);
+- the largest absolute difference, against a tolerance of 1e-3 of each band's range in the
+  file (common practice for float32 parity; per band, so an MFCC's wide c0 hides nothing);
+  a file may hold several consecutive windows (a leading axis), one hop apart from --start,
+  and all of them are compared;
+- when it matches: the searched keys whose other values match too, which these windows
+  cannot tell (a top_db that floors nothing in them);
 - where the difference sits: which frames and which bands exceed the tolerance;
 - when it does not match: the card changed in one key at a time, then in pairs of keys (the
   keys of `SEARCH`, each over its other allowed values or the usual ones), and the card
@@ -16,6 +20,10 @@ front end and reports:
 - a recording at another rate is resampled to the card's (soxr HQ, as replay does) and the
   report says from which rate; when nothing matches, it names that resampling as a likely
   cause (training code may have resampled differently).
+
+A full-shape scaler that fits only the card's present (wrong) shape does not block the
+search: it is set aside (unscaled features need none) and the report says what shape it
+needs.
 
 A features file that is no ``.npy`` of numbers is refused in our own words: numpy's
 exception text would suggest loading it with pickle.
@@ -63,11 +71,14 @@ class Comparison:
         Largest absolute difference from theirs; None when the shapes differ.
     changes : dict
         The card keys changed from the card as given (empty for the card itself).
+    excess : float or None
+        The largest absolute difference over its band's tolerance (at most 1: a match).
     """
 
     shape: tuple[int, ...]
     max_diff: float | None  # None when the shapes differ
     changes: dict[str, Any] = field(default_factory=dict)
+    excess: float | None = None  # the largest |difference| over its band's tolerance
 
 
 @dataclass
@@ -79,11 +90,12 @@ class CheckResult:
     card : ModelCard
         The card as given.
     theirs, ours : numpy.ndarray
-        The training code's features and the card's, in the model's input order.
+        The training code's features and the card's, in the model's input order, one row
+        per window ``(windows, *feature_shape)``.
     dtype : str
         The dtype of the features file.
-    tolerance : float
-        The largest difference that still matches.
+    tolerance : numpy.ndarray or float
+        The largest difference that still matches, per band (1e-3 of that band's range).
     base : Comparison
         The card as given against theirs.
     tried : int
@@ -92,21 +104,25 @@ class CheckResult:
         The changed cards that match, best first.
     closest : Comparison or None
         The nearest one when none matches.
+    untold : list of str
+        Card keys whose other values match these windows too: the windows do not tell them.
     """
 
     card: ModelCard
     theirs: np.ndarray
     ours: np.ndarray
     dtype: str = "float64"
-    tolerance: float = 0.0
+    tolerance: Any = 0.0
     base: Comparison = field(default_factory=lambda: Comparison((), None))
     tried: int = 0
     fixes: list[Comparison] = field(default_factory=list)  # matches, best first
     closest: Comparison | None = None
+    untold: list[str] = field(default_factory=list)  # keys the windows cannot tell apart
 
     @property
     def matched(self) -> bool:
-        return self.base.max_diff is not None and self.base.max_diff <= self.tolerance
+        """True when every value of every window is within its band's tolerance."""
+        return self.base.excess is not None and self.base.excess <= 1.0
 
 
 def candidates(settings: dict[str, Any]) -> list[tuple[str, dict[str, Any]]]:
@@ -164,6 +180,68 @@ def _model_order(theirs: np.ndarray, ndim: int) -> np.ndarray:
     return x
 
 
+def as_windows(theirs: np.ndarray, card: ModelCard) -> np.ndarray:
+    """The training code's features as ``(windows, *feature_shape)``.
+
+    A file may hold one window (a batch or channel axis of 1 allowed) or several
+    consecutive ones (a leading axis), one hop apart.
+
+    Parameters
+    ----------
+    theirs : numpy.ndarray
+        The features file's array.
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    numpy.ndarray
+        With a leading windows axis (1 for a single window).
+    """
+    shape = tuple(card.feature_shape)
+    nd = len(shape)
+    x = np.asarray(theirs)
+    if x.shape == shape:
+        return x[None]
+    if x.ndim == nd + 1 and x.shape[1:] == shape:
+        return x  # several windows
+    if x.ndim == nd + 2 and x.shape[-1] == 1 and x.shape[1:-1] == shape:
+        return x[..., 0]  # several windows, each with a channel axis behind
+    if x.ndim == nd + 2 and x.shape[1] == 1 and x.shape[2:] == shape:
+        return x[:, 0]  # several windows, each with a channel axis in front
+    return _model_order(x, nd)[None]  # one window (batch or channel axes of 1 dropped)
+
+
+def tolerance(theirs: np.ndarray, card: ModelCard) -> np.ndarray:
+    """1e-3 of each band's range over all the windows (common practice for float32 parity).
+
+    Per band (mel band, coefficient, bin), so that a coefficient with a wide range (an MFCC's
+    c0) does not hide a wrong key in the others; a band without range uses the whole
+    array's.
+
+    Parameters
+    ----------
+    theirs : numpy.ndarray
+        ``(windows, *feature_shape)``.
+    card : ModelCard
+        The card (which axis holds the bands).
+
+    Returns
+    -------
+    numpy.ndarray
+        Broadcastable to `theirs`.
+    """
+    t = np.asarray(theirs, np.float64)
+    whole = float(np.ptp(t)) if t.size else 0.0
+    whole = whole if whole > 0 else max(1.0, float(np.max(np.abs(t)))) if t.size else 1.0
+    if t.ndim != 3:  # samples, or a flat layout: one range
+        return np.full((1,) * t.ndim, TOLERANCE_OF_RANGE * whole)
+    band_axis = 1 if card.layout == "mel_time" else 2
+    other = tuple(a for a in range(3) if a != band_axis)
+    span = np.ptp(t, axis=other, keepdims=True)
+    return TOLERANCE_OF_RANGE * np.where(span > 0, span, whole)
+
+
 def features_of(card: ModelCard, window: np.ndarray, *, scaled: bool) -> np.ndarray:
     """One window through the card's front end, in the model's input order.
 
@@ -189,32 +267,39 @@ def features_of(card: ModelCard, window: np.ndarray, *, scaled: bool) -> np.ndar
 
 
 def compare(card: ModelCard, window: np.ndarray, theirs: np.ndarray, *,
-            scaled: bool) -> tuple[np.ndarray, Comparison]:
-    """The card's features of one window against theirs.
+            scaled: bool, tol: Any = None) -> tuple[np.ndarray, Comparison]:
+    """The card's features of the windows against theirs.
 
     Parameters
     ----------
     card : ModelCard
         The card to try.
     window : numpy.ndarray
-        ``(window_samples,)`` float32 at the card's rate.
+        ``(window_samples,)`` or ``(windows, window_samples)`` float32 at the card's rate.
     theirs : numpy.ndarray
-        The training code's features of that window.
+        The training code's features, ``(windows, *feature_shape)`` (or one window).
     scaled : bool
         Compare after the card's [scaling] (else before it).
+    tol : numpy.ndarray or float, optional
+        The tolerance per band (`tolerance`); without it no excess is computed.
 
     Returns
     -------
     ours : numpy.ndarray
-        The card's features, in the model's input order.
+        The card's features, ``(windows, *feature_shape)``.
     comparison : Comparison
-        Their shapes and the largest absolute difference (None when the shapes differ).
+        The feature shape, the largest absolute difference and its excess over the
+        tolerance (None when the shapes differ).
     """
-    ours = features_of(card, window, scaled=scaled)
-    t = _model_order(theirs, ours.ndim)
+    w = np.atleast_2d(window)
+    ours = np.stack([features_of(card, x, scaled=scaled) for x in w])
+    t = theirs if theirs.ndim == ours.ndim else theirs[None]
+    shape = tuple(ours.shape[1:])
     if t.shape != ours.shape:
-        return ours, Comparison(ours.shape, None)
-    return ours, Comparison(ours.shape, float(np.max(np.abs(ours.astype(np.float64) - t))))
+        return ours, Comparison(shape, None)
+    d = np.abs(ours.astype(np.float64) - t)
+    excess = None if tol is None else float(np.max(d / tol))
+    return ours, Comparison(shape, float(np.max(d)), excess=excess)
 
 
 def check(raw: dict[str, Any], path: Path | None, window: np.ndarray, theirs: np.ndarray, *,
@@ -240,44 +325,57 @@ def check(raw: dict[str, Any], path: Path | None, window: np.ndarray, theirs: np
         The comparison and, when it does not match, the search's outcome.
     """
     card = card_from_dict(raw, path)
-    ours, base = compare(card, window, theirs, scaled=scaled)
-    t = _model_order(theirs, ours.ndim)
-    span = float(np.ptp(t)) if t.size else 0.0
-    tol = TOLERANCE_OF_RANGE * (span if span > 0 else max(1.0, float(np.max(np.abs(t)))))
-    res = CheckResult(card, t.astype(np.float64), ours, str(theirs.dtype), tol, base)
-    if res.matched:
-        return res
+    t = as_windows(np.asarray(theirs), card).astype(np.float64)
+    tol = tolerance(t, card)
+    w = np.atleast_2d(window)
+    ours, base = compare(card, w, t, scaled=scaled, tol=tol)
+    res = CheckResult(card, t, ours, str(theirs.dtype), tol, base)
     if not scaled:
         raw = {k: v for k, v in raw.items() if k != "scaling"}  # shapes may change
-    singles = candidates(card.frontend.settings())
     results = []
     done: set[tuple] = set()
 
-    def attempt(changes: dict[str, Any]) -> None:
+    def attempt(changes: dict[str, Any], on: dict[str, Any] = raw) -> Comparison | None:
         sig = tuple(sorted(changes.items()))
-        if sig in done:
-            return
+        if sig in done and on is raw:
+            return None
         done.add(sig)
-        trial = copy.deepcopy(raw)
+        trial = copy.deepcopy(on)
         trial["frontend"] = {**trial["frontend"], **changes}
         try:
             c = card_from_dict(trial, path)
         except CardError:
-            return  # a combination the card rules refuse
-        _, cmp_ = compare(c, window, theirs, scaled=scaled)
+            return None  # a combination the card rules refuse
+        _, cmp_ = compare(c, w, t, scaled=scaled, tol=tol)
         cmp_.changes = changes
-        res.tried += 1
-        results.append(cmp_)
+        return cmp_
 
+    def matches(r: Comparison | None) -> bool:
+        return r is not None and r.excess is not None and r.excess <= 1.0
+
+    if res.matched:
+        # which searched keys these windows cannot tell apart: another value matches too
+        for key, changes in candidates(card.frontend.settings()):
+            r = attempt(changes)
+            if matches(r) and key not in res.untold:
+                res.untold.append(key)
+        return res
+    singles = candidates(card.frontend.settings())
     for _, changes in singles:
-        attempt(changes)
-    if not any(r.max_diff is not None and r.max_diff <= tol for r in results):
+        r = attempt(changes)
+        if r is not None:
+            res.tried += 1
+            results.append(r)
+    if not any(matches(r) for r in results):
         for (ka, a), (kb, b) in itertools.combinations(singles, 2):
             if ka != kb and not set(a) & set(b):
-                attempt({**a, **b})
-    fitting = sorted((r for r in results if r.max_diff is not None),
-                     key=lambda r: (r.max_diff, len(r.changes)))
-    res.fixes = [r for r in fitting if r.max_diff <= tol]
+                r = attempt({**a, **b})
+                if r is not None:
+                    res.tried += 1
+                    results.append(r)
+    fitting = sorted((r for r in results if r.excess is not None),
+                     key=lambda r: (r.excess, len(r.changes)))
+    res.fixes = [r for r in fitting if r.excess <= 1.0]
     res.closest = fitting[0] if fitting else None
     return res
 
@@ -311,13 +409,16 @@ def where(res: CheckResult) -> str:
     str
         The frames and bands (as ranges) where the difference exceeds the tolerance.
     """
-    d = np.abs(res.ours.astype(np.float64) - res.theirs)
-    big = d > res.tolerance
-    k = np.unravel_index(int(np.argmax(d)), d.shape)
+    e = np.abs(res.ours.astype(np.float64) - res.theirs) / res.tolerance
+    wk = int(np.argmax(e.reshape(len(e), -1).max(axis=1)))  # the window that differs most
+    d = np.abs(res.ours[wk].astype(np.float64) - res.theirs[wk])
+    big = (e > 1.0).any(axis=0)  # above tolerance in any window
+    k = np.unravel_index(int(np.argmax(e[wk])), d.shape)
     at = ", ".join(f"{n.rstrip('s')} {int(i)}" for n, i in zip(
         _axes(res.card) if d.ndim == 2 else ("sample",), k))
-    largest = (f"largest at {at} (yours {float(res.theirs[k]):.6g}, the card's "
-               f"{float(res.ours[k]):.6g})")
+    window = f"window {wk}, " if len(res.theirs) > 1 else ""
+    largest = (f"largest at {window}{at} (yours {float(res.theirs[wk][k]):.6g}, the card's "
+               f"{float(res.ours[wk][k]):.6g})")
     if d.ndim == 1:
         rows = np.flatnonzero(big)
         return f"{rows.size} of {d.size} samples ({_ranges(rows)}); {largest}"
@@ -376,19 +477,32 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
     lines = [f"card         {card_path} ({c.kind}, {c.describe_shape()})",
              f"audio        {audio}, the window at {start_s:.3f} s ({c.window_samples} samples "
              f"at {c.sample_rate} Hz{how})",
-             f"features     {features}: {tuple(res.theirs.shape)} {res.dtype}, "
-             f"{'scaled' if scaled else 'unscaled'}, in the model's input order"]
+             f"features     {features}: {tuple(res.theirs.shape[1:])} {res.dtype}"
+             + (f" x {len(res.theirs)} windows, one every {c.hop_s:g} s" if len(res.theirs) > 1
+                else "")
+             + f", {'scaled' if scaled else 'unscaled'}, in the model's input order"]
     if res.base.max_diff is None:
-        lines.append(f"shape        yours {tuple(res.theirs.shape)}, the card's "
+        lines.append(f"shape        yours {tuple(res.theirs.shape[1:])}, the card's "
                      f"{res.base.shape}: {_shape_finding(res)}")
     else:
         lines.append(f"shape        {res.base.shape}, the same")
         verdict = "match" if res.matched else "MISMATCH"
-        lines.append(f"max abs diff {res.base.max_diff:.3g} (tolerance {res.tolerance:.3g}, "
-                     f"1e-3 of the range of {features.name}): {verdict}")
+        tol = np.asarray(res.tolerance)
+        span = (f"{float(tol.min()):.3g} to {float(tol.max()):.3g}" if tol.size > 1
+                else f"{float(tol.max()):.3g}")
+        per = "each band's range" if tol.size > 1 else "the range"
+        lines.append(f"max abs diff {res.base.max_diff:.3g} (tolerance {span}: 1e-3 of {per} "
+                     f"in {features.name}): {verdict}")
         if not res.matched:
             lines.append(f"where        {where(res)}")
     if res.matched:
+        if res.untold:
+            lines.append(f"untold       {'these windows do' if len(res.theirs) > 1 else 'this window does'} "
+                         f"not tell {', '.join(res.untold)}: another value of "
+                         f"{'each' if len(res.untold) > 1 else 'it'} matches too; give "
+                         f"features of windows where it matters (more windows, or --start "
+                         f"where the sound is loud and quiet) to check "
+                         f"{'them' if len(res.untold) > 1 else 'it'}")
         return "\n".join(lines) + "\n"
     lines.append(f"search       {res.tried} cards, each with one or two of these [frontend] "
                  f"keys changed: {', '.join(SEARCH)}")
@@ -419,7 +533,7 @@ def report(res: CheckResult, *, card_path: Path, audio: Path, features: Path, st
 
 
 def _shape_finding(res: CheckResult) -> str:
-    a, b = tuple(res.theirs.shape), res.base.shape
+    a, b = tuple(res.theirs.shape[1:]), res.base.shape
     if len(a) != len(b):
         return f"{len(a)} axes against {len(b)}"
     if a == b[::-1]:
@@ -569,7 +683,21 @@ def run_card_check(card_path: Path, audio: Path, features: Path, *, start_s: flo
     from monitor.sound.sources import check_audio_files, load_audio
 
     raw = read_card_table(card_path)
-    card = card_from_dict(raw, card_path)
+    scaling_note = None
+    try:
+        card = card_from_dict(raw, card_path)
+    except CardError as exc:
+        # a full-shape scaler fits only the shape the card makes now: when that is what is
+        # wrong, the search runs with the scaling set aside (unscaled features need none)
+        if scaled or "scaling" not in raw or "scaling." not in str(exc):
+            raise
+        bare = {k: v for k, v in raw.items() if k != "scaling"}
+        try:
+            card = card_from_dict(bare, card_path)
+        except CardError:
+            raise exc from None
+        scaling_note = str(exc).split(": ", 1)[-1]
+        raw = bare
     theirs = read_features(features)
     if not np.isfinite(start_s) or start_s < 0:
         raise ScenemonError(f"--start {start_s} must be a number of seconds >= 0")
@@ -577,16 +705,30 @@ def run_card_check(card_path: Path, audio: Path, features: Path, *, start_s: flo
                                 window_samples=card.window_samples)
     x = load_audio([audio], model_rate=card.sample_rate, window_samples=card.window_samples)
     a = int(round(start_s * card.sample_rate))
-    if a + card.window_samples > x.size:
+    n = len(as_windows(theirs, card))  # a file may hold several windows, one hop apart
+    end = a + (n - 1) * card.hop_samples + card.window_samples
+    if end > x.size:
         raise ScenemonError(f"{audio}: holds {x.size / card.sample_rate:.3f} s at "
-                            f"{card.sample_rate} Hz; a window of {card.window_s:g} s does not "
-                            f"fit at --start {start_s:g}")
-    window = np.ascontiguousarray(x[a:a + card.window_samples], np.float32)
-    res = check(raw, card_path, window, theirs, scaled=scaled)
-    sys.stdout.write(report(res, card_path=card_path, audio=audio, features=features,
-                            start_s=start_s, scaled=scaled, native_rate=int(info.samplerate),
-                            channels=int(info.channels)))
-    return ExitCode.OK if res.matched else ExitCode.FAILURE
+                            f"{card.sample_rate} Hz; "
+                            + (f"a window of {card.window_s:g} s does not fit at --start "
+                               f"{start_s:g}" if n == 1 else
+                               f"{n} windows of {card.window_s:g} s, one every "
+                               f"{card.hop_s:g} s, do not fit from --start {start_s:g}"))
+    windows = np.stack([np.ascontiguousarray(x[b:b + card.window_samples], np.float32)
+                        for b in range(a, a + n * card.hop_samples, card.hop_samples)])
+    res = check(raw, card_path, windows, theirs, scaled=scaled)
+    text = report(res, card_path=card_path, audio=audio, features=features, start_s=start_s,
+                  scaled=scaled, native_rate=int(info.samplerate), channels=int(info.channels))
+    if scaling_note is not None:
+        good = res.fixes[0].shape if res.fixes else (res.base.shape if res.matched else None)
+        need = (f"with the card as it then is, one window's features are {good}: the "
+                f"scaler's mean and std must have that shape, one value per band ("
+                f"{good[-1] if res.card.layout != 'mel_time' else good[0]}), or one value"
+                if good else "make the card match first, then the scaler's shape to its "
+                             "features")
+        text += (f"\nscaling      set aside for this check: {scaling_note}; {need}\n")
+    sys.stdout.write(text)
+    return ExitCode.OK if res.matched and scaling_note is None else ExitCode.FAILURE
 
 
 __all__ = ["check", "candidates", "run_card_check", "report", "read_features", "SEARCH"]

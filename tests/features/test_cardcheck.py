@@ -1,5 +1,7 @@
 """`scenemon card check` against features made by librosa (issue 12)."""
 
+import shutil
+
 import numpy as np
 import pytest
 import soundfile as sf
@@ -71,7 +73,7 @@ def test_librosa_features_are_matched(made):
         r = check(d, audio, LIBROSA_CARD, name)
         assert r.returncode == 0, r.stdout + r.stderr
         assert ": match" in r.stdout and "shape        (101, 40), the same" in r.stdout
-        assert f"1e-3 of the range of {name})" in r.stdout  # the range of which file
+        assert f"1e-3 of each band's range in {name})" in r.stdout  # the range of which file
 
 
 @pytest.mark.parametrize("key,wrong,right", [
@@ -239,3 +241,75 @@ def test_the_keys_to_look_at_name_fft_length(tmp_path):
     text = report(res, card_path=MODELS / "demo.toml", audio=tmp_path / "a.wav",
                   features=tmp_path / "f.npy", start_s=0.0, scaled=False)
     assert "fft_length" in text.split("The closest:", 1)[1]
+
+
+MFCC_CARD = LIBROSA_CARD.replace('kind = "logmel"', 'kind = "mfcc"').replace(
+    'db_ref = "max"', 'db_ref = "one"') + 'mfcc = 13\ndct_norm = "ortho"\n'
+
+
+def test_mfcc_with_a_wrong_window_symmetric_is_caught_per_coefficient(made, tmp_path):
+    # librosa.feature.mfcc (periodic Hann, librosa 0.11): c0's range dwarfs the others, so a
+    # tolerance of the whole range let a symmetric window pass; per coefficient it does not
+    d, audio = made
+    x, _ = sf.read(str(audio), dtype="float32")
+    w = x[16000 * 40:16000 * 41].astype(np.float64)
+    m = librosa.feature.mfcc(y=w, sr=16000, n_mfcc=13, n_fft=512, hop_length=160,
+                             win_length=400, n_mels=40, fmax=8000.0).T
+    np.save(tmp_path / "mfcc.npy", m.astype(np.float32))
+    shutil.copy(tmp_path / "mfcc.npy", d / "mfcc.npy")
+    r = check(d, audio, MFCC_CARD, "mfcc.npy")
+    assert r.returncode == 0 and ": match" in r.stdout, r.stdout + r.stderr
+    wrong = MFCC_CARD.replace('window = "hann"\n', 'window = "hann"\nwindow_symmetric = true\n')
+    r = check(d, audio, wrong, "mfcc.npy")
+    assert r.returncode == 1 and "MISMATCH" in r.stdout, r.stdout
+    fix = r.stdout.split("make it match", 1)[1].split("\n\n", 2)[1]
+    assert fix.strip() == "window_symmetric = false", r.stdout
+
+
+def test_a_key_the_window_never_exercises_is_said(made):
+    # librosa's top_db 80 floors nothing in a window whose dB values span less than 80 dB:
+    # the check matches, and says that this window cannot tell top_db
+    d, audio = made
+    feats = np.load(d / "lib.npy")
+    assert float(np.ptp(feats)) < 80.0
+    r = check(d, audio, LIBROSA_CARD, "lib.npy")
+    assert r.returncode == 0, r.stdout
+    untold = [x for x in r.stdout.splitlines() if x.startswith("untold")]
+    assert untold and "top_db" in untold[0], r.stdout
+
+
+def test_several_windows_in_one_file(made, tmp_path):
+    # three consecutive windows (one hop apart) from the training code, checked together
+    d, audio = made
+    x, _ = sf.read(str(audio), dtype="float32")
+    rows = []
+    for k in range(3):
+        a = 16000 * 40 + k * 8000
+        w = x[a:a + 16000].astype(np.float64)
+        S = librosa.feature.melspectrogram(y=w, sr=16000, n_fft=512, hop_length=160,
+                                           win_length=400, n_mels=40, fmax=8000.0)
+        rows.append(librosa.power_to_db(S, ref=np.max, top_db=80.0).T)
+    np.save(d / "lib3.npy", np.stack(rows).astype(np.float32))
+    r = check(d, audio, LIBROSA_CARD, "lib3.npy")
+    assert r.returncode == 0 and ": match" in r.stdout, r.stdout + r.stderr
+    assert "x 3 windows" in r.stdout
+    wrong = LIBROSA_CARD.replace('mel_norm = "slaney"', 'mel_norm = "none"')
+    r = check(d, audio, wrong, "lib3.npy")
+    assert r.returncode == 1 and "mel_norm = \"slaney\"" in r.stdout, r.stdout
+
+
+def test_a_full_shape_scaler_does_not_block_the_search(made):
+    # the card is wrong in center (98 frames, not librosa's 101) and carries a full-shape
+    # scaler of the training features' (101, 40): the search runs with the scaling set aside
+    # and then says what shape the scaler needs
+    d, audio = made
+    np.savez(d / "full.npz", mean=np.zeros((101, 40), np.float32),
+             std=np.ones((101, 40), np.float32))
+    text = LIBROSA_CARD.replace("center = true", "center = false") + \
+        '\n[scaling]\nmean = "full.npz"\nstd = "full.npz"\n'
+    r = check(d, audio, text, "lib.npy")
+    assert r.returncode == 1, r.stdout + r.stderr
+    fix = r.stdout.split("make it match", 1)[1].split("\n\n", 2)[1]
+    assert "center = true" in fix, r.stdout
+    scaling = [x for x in r.stdout.splitlines() if x.startswith("scaling")]
+    assert scaling and "(101, 40)" in scaling[0], r.stdout
