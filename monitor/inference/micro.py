@@ -233,6 +233,12 @@ def probe(path: Path, data: bytes) -> Probe:
                 f"{path}: the microcontroller runtime cannot run the custom operator "
                 f"{name[7:] or 'without a name'} (a TensorFlow op outside the built-in set)",
                 name)
+        if "allocate" in text and is_hybrid(data):
+            raise ModelError(
+                f"{path}: a dynamic-range (\"hybrid\") int8 model: int8 weights with float "
+                f"activations, which the microcontroller runtime does not run; make a "
+                f"full-integer model (int8 weights, activations, input and output) with "
+                f"scenemon quantize, or run this one with --runtime litert")
         if ("Failed to resize buffer" in text or "Failed to allocate" in text) \
                 and arena < MAX_ARENA:
             arena *= 4
@@ -242,8 +248,45 @@ def probe(path: Path, data: bytes) -> Probe:
                              f"interpreter crashed on it, signal {-code})")
         said = re.findall(r"probe failed: (.*)", text)
         first = said[-1].strip() if said else f"exit code {code}"
+        first = first.replace("TFLM ", "the runtime ")  # the name the README uses
         raise ModelError(f"{path}: cannot be loaded in the microcontroller runtime "
                          f"({first[:160]})")
+
+
+def is_hybrid(data: bytes) -> bool:
+    """True for a dynamic-range ("hybrid") quantised model: a convolution or fully connected
+    layer whose weights are int8 while its input is float32.
+
+    Parameters
+    ----------
+    data : bytes
+        The ``.tflite`` file.
+
+    Returns
+    -------
+    bool
+        Whether such a layer exists (read with the flatbuffer schema, no interpreter).
+    """
+    from ai_edge_litert import schema_py_generated as fb
+
+    try:
+        model = fb.Model.GetRootAs(data, 0)
+        sg = model.Subgraphs(0)
+        ops = list_operators(data)
+        for i in range(sg.OperatorsLength()):
+            op = sg.Operators(i)
+            if ops[op.OpcodeIndex()] not in ("FULLY_CONNECTED", "CONV_2D",
+                                             "DEPTHWISE_CONV_2D"):
+                continue
+            ins = op.InputsAsNumpy()
+            if len(ins) < 2 or ins[0] < 0 or ins[1] < 0:
+                continue
+            x, w = sg.Tensors(int(ins[0])), sg.Tensors(int(ins[1]))
+            if x.Type() == fb.TensorType.FLOAT32 and w.Type() == fb.TensorType.INT8:
+                return True
+    except Exception:  # noqa: BLE001 - a damaged flatbuffer: not this case
+        return False
+    return False
 
 
 class MicroRunner:
