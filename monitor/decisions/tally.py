@@ -97,6 +97,7 @@ class Tally:
         self.windows_after_gap = 0
         self.changes = 0
         self._last: object = ...  # decision of the previous window (... before the first)
+        self._last_set: str | None = None  # the latest decision that was not undecided
         n = len(self.classes)
         self.confusion = np.zeros((n, n + 1), dtype=np.int64)  # undecided last
         self.decided_windows = np.zeros(n, dtype=np.int64)
@@ -127,9 +128,13 @@ class Tally:
         if gap:
             self.gap_samples += gap
             self.windows_after_gap += 1
-        if self._last is not ... and decision != self._last:
+        # a change is a switch once a first decision is made: the undecided start is not
+        # one (the raw top class, never undecided at the start, is counted the same way)
+        if self._last is not ... and decision != self._last and self._last_set is not None:
             self.changes += 1
         self._last = decision
+        if decision is not None:
+            self._last_set = decision
         d = self._idx.get(decision) if decision is not None else None
         if d is None:
             self.undecided += 1
@@ -282,6 +287,26 @@ def latency_worst(latencies: Sequence[float]) -> float | None:
         The longest in seconds; None when no change was reached.
     """
     return float(max(latencies)) if len(latencies) else None
+
+
+def switches(labels: Sequence[str | None]) -> int:
+    """Changes of a label stream, counted as `Tally` counts decision changes: a switch from
+    one label to another, or to and from None, once a first label is there (a leading None,
+    the undecided start, is no change).
+
+    Parameters
+    ----------
+    labels : sequence of str or None
+        One label per window, in stream order.
+
+    Returns
+    -------
+    int
+        The changes.
+    """
+    first = next((k for k, x in enumerate(labels) if x is not None), len(labels))
+    rest = labels[first:]
+    return sum(1 for a, b in zip(rest, rest[1:]) if a != b)
 
 
 def changes_from_spans(spans) -> list[Change]:

@@ -22,6 +22,7 @@ from monitor.decisions.tally import (
     latency_median,
     latency_worst,
     level_tally,
+    switches,
     tally_windows,
 )
 
@@ -158,7 +159,7 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
     """
     m = metrics_of_tally(tally_windows(windows, classes, hop_s=hop_s, spans=truth_spans))
     tops = [w.get("top") for w in windows]
-    m.raw_changes = sum(1 for a, b in zip(tops, tops[1:]) if a != b)
+    m.raw_changes = switches(tops)  # counted as the decision changes are
     m.levels = level_tally(windows).summary()
     # a model fault leaves the probabilities null; other faults (a non-finite novelty) do not
     m.model_faults = sum(1 for w in windows if w.get("fault") and w.get("probs") is None)

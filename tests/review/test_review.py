@@ -198,7 +198,9 @@ def test_tune_row_rederived_by_hand(argmax_session):
     hits = sum(1 for w, d in zip(s.windows, labels) if w["truth"] and d == w["truth"])
     total = sum(1 for w in s.windows if w["truth"])
     assert row.accuracy == pytest.approx(hits / total)
-    changes = sum(1 for a, b in zip(labels, labels[1:]) if a != b)
+    made = next((k for k, x in enumerate(labels) if x is not None), len(labels))
+    rest = labels[made:]  # the undecided start is not a change: the first decision is made
+    changes = sum(1 for a, b in zip(rest, rest[1:]) if a != b)
     assert row.switches_per_min == pytest.approx(changes / (t1[-1] / 60))
     lat = []
     for sp in s.truth.spans[1:]:
@@ -488,3 +490,19 @@ def test_unfamiliar_and_a_b_differences_have_marks_of_their_own(ab_session):
     mark = to_hex(unf[0].get_color())
     assert mark != spans.pop() and mark not in classes
     assert not {to_hex(p.get_facecolor()) for p in differ_ax.patches} & classes
+
+
+def test_decision_and_raw_changes_are_counted_the_same_way():
+    # the decision follows the raw top class two windows late, starting undecided: the
+    # same three switches (a, b, a, b), so the report says the same number for both; it
+    # said "4 decision changes; the raw top class changes 3 times" (the first decision,
+    # made from undecided, counted as a change)
+    from monitor.review.metrics import window_metrics
+
+    tops = ["a", "a", "b", "b", "a", "a", "b", "b", "b", "b"]
+    decs = [None, None] + tops[:-2]
+    windows = [{"i": k, "t0": k * 0.5, "t1": k * 0.5 + 1.0, "probs": [0.5, 0.5],
+                "top": t, "decision": d, "truth": None} for k, (t, d) in
+               enumerate(zip(tops, decs))]
+    m = window_metrics(windows, ["a", "b"])
+    assert m.raw_changes == 3 and m.changes == 3
