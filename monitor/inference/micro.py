@@ -234,11 +234,15 @@ def probe(path: Path, data: bytes) -> Probe:
                 f"{name[7:] or 'without a name'} (a TensorFlow op outside the built-in set)",
                 name)
         if "allocate" in text and is_hybrid(data):
+            from monitor.base import native
+
+            said = re.findall(r"probe failed: (.*)", text)
+            own = f" (the runtime said: {said[-1].strip()})" if native.DEBUG and said else ""
             raise ModelError(
                 f"{path}: a dynamic-range (\"hybrid\") int8 model: int8 weights with float "
                 f"activations, which the microcontroller runtime does not run; make a "
                 f"full-integer model (int8 weights, activations, input and output) with "
-                f"scenemon quantize, or run this one with --runtime litert")
+                f"scenemon quantize, or run this one with --runtime litert{own}")
         if ("Failed to resize buffer" in text or "Failed to allocate" in text) \
                 and arena < MAX_ARENA:
             arena *= 4

@@ -7,7 +7,7 @@ import shutil
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, cli, write_wav
+from conftest import MODELS, cli, run_cli, write_wav
 
 
 @pytest.mark.slow
@@ -35,3 +35,7 @@ def test_a_hybrid_model_is_named_as_such_in_the_micro_runtime(tmp_path, tour):
             "--headless", "--out", tmp_path / "s")
     assert r.returncode == 2, r.stderr
     assert "hybrid" in r.stderr and "scenemon quantize" in r.stderr and "TFLM" not in r.stderr
+    # with --debug the runtime's own line comes along (it was dropped)
+    r = run_cli("--debug", "replay", wav, "--model", tmp_path / "h.tflite", "--runtime", "micro",
+            "--fast", "--headless", "--out", tmp_path / "s2")
+    assert "the runtime said:" in r.stderr
