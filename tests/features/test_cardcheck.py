@@ -6,7 +6,7 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, cli
+from conftest import MODELS, ROOT, cli
 
 librosa = pytest.importorskip("librosa")
 
@@ -313,3 +313,24 @@ def test_a_full_shape_scaler_does_not_block_the_search(made):
     assert "center = true" in fix, r.stdout
     scaling = [x for x in r.stdout.splitlines() if x.startswith("scaling")]
     assert scaling and "(101, 40)" in scaling[0], r.stdout
+
+
+def test_librosas_own_defaults_as_the_readme_gives_them(made):
+    # librosa.feature.melspectrogram and power_to_db with nothing set (librosa 0.11): n_fft
+    # 2048, hop 512, n_mels 128, fmax sr/2, center with zeros, ref 1.0, top_db 80; the
+    # README's row of librosa's defaults gives the card that matches
+    d, audio = made
+    x, _ = sf.read(str(audio), dtype="float32")
+    w = x[16000 * 40:16000 * 41].astype(np.float64)
+    feats = librosa.power_to_db(librosa.feature.melspectrogram(y=w, sr=16000)).T
+    np.save(d / "lib_defaults.npy", feats.astype(np.float32))
+    card = LIBROSA_CARD
+    for k, v in (("frame_length", "2048"), ("frame_step", "512"), ("fft_length", "2048"),
+                 ("mel_bands", "128"), ("db_ref", '"one"')):
+        card = "\n".join(f"{k} = {v}" if line.startswith(f"{k} = ") else line
+                         for line in card.splitlines()) + "\n"
+    card = card.replace('window_in_frame = "centre"', 'window_in_frame = "start"')
+    readme = (ROOT / "README.md").read_text()
+    assert "`n_fft` 2048" in readme and "`n_mels` 128" in readme and "512" in readme
+    r = check(d, audio, card, "lib_defaults.npy")
+    assert r.returncode == 0 and ": match" in r.stdout, r.stdout + r.stderr
