@@ -273,7 +273,10 @@ def _harvest_locked(loaded, out: Path, include, drop_unknown, progress,
                 dst = _label_folder(out, label) / src.name
                 if dst.exists() or dst.is_symlink():
                     dst = dst.with_name(f"{dst.stem}-{digest[:8]}.wav")
-                os.replace(src, dst)
+                if src.is_file():
+                    os.replace(src, dst)
+                else:  # gone from the set meanwhile: the verified audio is copied again
+                    atomic_write(dst, data)
                 old["path"] = f"{dst.parent.name}/{dst.name}"
                 old["label"] = csv_cell(label)
                 res.moved += 1
@@ -316,8 +319,7 @@ def _harvest_locked(loaded, out: Path, include, drop_unknown, progress,
             "decision": decision_of(sn)})
         res.added[label] = res.added.get(label, 0) + 1
     res.total = {}
-    for r in rows + new_rows:
-        lab = r["label"] if r in rows else csv_cell(r["label"])
+    for lab in [r["label"] for r in rows] + [csv_cell(r["label"]) for r in new_rows]:
         res.total[lab] = res.total.get(lab, 0) + 1
     buf = io.StringIO()
     w = csv.DictWriter(buf, fieldnames=FIELDS, lineterminator="\n")

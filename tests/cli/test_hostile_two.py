@@ -575,3 +575,23 @@ def test_budget_of_a_model_with_a_few_flipped_bytes_is_one_sentence(tmp_path, se
     shutil.copy(MODELS / "demo.int8.toml", folder / "m.toml")
     r = cli("budget", "--model", folder / "m.tflite")
     assert_refused(r, str(folder / "m.tflite"))
+
+
+def test_a_relabel_whose_file_left_the_set_is_copied_again(tmp_path, captured):
+    # someone deleted a harvested file by hand; the snippet is relabelled since: the next
+    # harvest puts its verified audio under the new label (it stopped with an error)
+    from monitor.session import snippets as S
+
+    s = tmp_path / "s"
+    shutil.copytree(captured, s)
+    out = tmp_path / "set"
+    assert cli("harvest", s, "--out", out).returncode == 0
+    sn = S.iter_snippets(s)[0]
+    row = next(r for r in _manifest(out) if r["path"].endswith(sn.wav.stem + ".wav"))
+    (out / row["path"]).unlink()
+    new = next(c for c in ("quiet_room", "voices", "traffic", "machinery") if c != sn.label)
+    S.relabel(sn, s, new, ["quiet_room", "voices", "traffic", "machinery"])
+    r = cli("harvest", s, "--out", out)
+    assert r.returncode == 0, r.stderr
+    moved = next(r_ for r_ in _manifest(out) if r_["audio_sha256"] == row["audio_sha256"])
+    assert moved["label"] == new and (out / moved["path"]).is_file()
