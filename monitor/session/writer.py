@@ -2,8 +2,11 @@
 
 Threads: `SessionWriter` owns one thread, "session-writer", which does every disk write of
 a session after `session.json`: window records, audio, snippets, truth and the summary. The
-compute thread only puts items on an unbounded queue (`put` never blocks), so disk speed
-never stalls the audio or compute path. The writing process holds the session's lock
+compute thread only puts items on a queue, so disk speed does not stall the audio or compute
+path; only the audio waiting in that queue is bounded (`MAX_BACKLOG_BYTES`, minutes of sound):
+a disk slower than the sound for that long makes the compute thread wait for it rather than
+fill memory (a fast replay then goes at the disk's pace; a live source's ring buffer counts
+what it could not hold as dropped audio). The writing process holds the session's lock
 (`files.SessionLock`) from the start to the close, so `repair` and the start-up notice can
 tell a session being written from one that was killed.
 
@@ -38,6 +41,7 @@ from monitor.sound.samples import to_pcm16
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
+MAX_BACKLOG_BYTES = 32 << 20  # queued audio (float32): about 8 minutes at 16 kHz
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
 
 
@@ -79,7 +83,8 @@ def prepare_dir(out: Path, *, truth_file: Path | None = None) -> Path:
     Raises
     ------
     SessionError
-        `out` is a file, or already holds a session's files or another truth.tsv.
+        `out` is a file, already holds a session's files or another truth.tsv, or cannot be
+        created.
     """
     if out.exists() and not out.is_dir():
         raise SessionError(f"{out}: exists and is not a directory")
@@ -99,6 +104,11 @@ def prepare_dir(out: Path, *, truth_file: Path | None = None) -> Path:
     return out
 
 
+def _audio_bytes(snippet: dict[str, Any]) -> int:
+    audio = snippet.get("audio")
+    return int(getattr(audio, "nbytes", 0))
+
+
 def _same_file(a: Path, b: Path) -> bool:
     try:
         return os.path.samefile(a, b)
@@ -111,7 +121,7 @@ class SessionWriter(ObserverBase):
 
     Parameters
     ----------
-    out : Path
+    out : str or Path
         The session directory (created; refused when it holds a session).
     meta : dict
         The session.json contents (the assembler's description of the session).
@@ -123,16 +133,21 @@ class SessionWriter(ObserverBase):
         Seconds per audio file before the next segment starts (> 0).
     truth_file : Path, optional
         The truth file being replayed; when it is ``out/truth.tsv`` it is kept, not rewritten.
+    max_backlog_bytes : int
+        Bytes of audio (chunks and snippets) that may wait in the queue before the compute
+        thread waits for the disk.
 
     Raises
     ------
     SessionError
-        The directory cannot be made or already holds a session.
+        `segment_s` is not above 0, the directory cannot be made or already holds a session
+        (`prepare_dir`), or another process holds its lock.
     """
 
     def __init__(self, out: str | Path, meta: dict[str, Any], *, sample_rate: int,
                  audio: bool = True, segment_s: float = SEGMENT_S,
-                 truth_file: Path | None = None) -> None:
+                 truth_file: Path | None = None,
+                 max_backlog_bytes: int = MAX_BACKLOG_BYTES) -> None:
         if not segment_s > 0:
             raise SessionError(f"segment length {segment_s} s must be > 0")
         self.dir = prepare_dir(Path(out), truth_file=truth_file)
@@ -150,6 +165,10 @@ class SessionWriter(ObserverBase):
                      "audio_segment_s": segment_s}
         atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
         self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self.max_backlog_bytes = int(max_backlog_bytes)
+        self.backlog_bytes = 0  # audio queued and not yet written (under `_room`)
+        self.peak_backlog_bytes = 0
+        self._room = threading.Condition()
         self._thread = threading.Thread(target=self._run, name="session-writer", daemon=True)
         self.error: BaseException | None = None
         self.error_text: str | None = None
@@ -165,10 +184,12 @@ class SessionWriter(ObserverBase):
 
     # --- observer interface: called from the compute thread, never blocks ------------------
     def on_audio(self, chunk: np.ndarray, gap: int) -> None:
-        """Queue a chunk and the `gap` before it for the audio file; compute thread, never blocks.
+        """Queue a chunk and the `gap` before it for the audio file; compute thread.
 
-        The chunk is queued without a copy: the ring's `read` has already made one.
+        The chunk is queued without a copy: the ring's `read` has already made one. Waits
+        only while `max_backlog_bytes` of audio are already queued.
         """
+        self._reserve(chunk.nbytes)
         self._q.put(("audio", chunk, gap))
 
     def on_window(self, result: Any) -> None:
@@ -177,7 +198,26 @@ class SessionWriter(ObserverBase):
 
     def on_snippet(self, snippet: dict[str, Any]) -> None:
         """Queue a snippet from the capture policy (its "audio" is float32 at the model rate)."""
+        self._reserve(_audio_bytes(snippet))
         self._q.put(("snippet", snippet))
+
+    def _reserve(self, nbytes: int) -> None:
+        """Count `nbytes` of queued audio, first waiting while the backlog is full.
+
+        The writer's thread frees room as it writes; once it has stopped (a write error) or
+        died, nothing waits.
+        """
+        with self._room:
+            while (self.backlog_bytes and self.backlog_bytes + nbytes > self.max_backlog_bytes
+                   and self.error is None and self._thread.is_alive()):
+                self._room.wait(0.1)
+            self.backlog_bytes += nbytes
+            self.peak_backlog_bytes = max(self.peak_backlog_bytes, self.backlog_bytes)
+
+    def _release(self, nbytes: int) -> None:
+        with self._room:
+            self.backlog_bytes -= nbytes
+            self._room.notify_all()
 
     def close(self, summary: dict[str, Any] | None, truth: list[Span] | None = None) -> None:
         """Finish: write truth and (when given) summary.json, close files, join the thread."""
@@ -203,6 +243,10 @@ class SessionWriter(ObserverBase):
             if op == "close":
                 self._close(jl, wav, item[1], item[2])
                 return
+            if op == "audio":
+                self._release(item[1].nbytes)
+            elif op == "snippet":
+                self._release(_audio_bytes(item[1]))
             if self.error is not None:  # after a write error (disk full): drop, never tear
                 self.dropped_items += 1
                 continue

@@ -154,6 +154,34 @@ def test_slow_disk_never_slows_decisions(tour, demo_card, tmp_path, monkeypatch,
     assert len((tmp_path / "s" / "windows.jsonl").read_text().splitlines()) == tour_windows
 
 
+def test_writer_backlog_is_bounded_and_nothing_is_lost(tmp_path, monkeypatch):
+    # Fault injection (a fake, because a real disk cannot be made slow on demand): each audio
+    # write takes 5 ms on the writer's thread while the compute side queues 2 MB of audio
+    import monitor.session.writer as sw
+
+    real = sw.SessionWriter._write_audio
+
+    def slow_audio(self, wav, chunk, gap):
+        time.sleep(0.005)
+        return real(self, wav, chunk, gap)
+
+    monkeypatch.setattr(sw.SessionWriter, "_write_audio", slow_audio)
+    chunk_bytes = 8000 * 4
+    writer = sw.SessionWriter(tmp_path / "s", {"classes": ["a"]}, sample_rate=16000,
+                              max_backlog_bytes=4 * chunk_bytes)
+    rng = np.random.default_rng(0)
+    chunks = [rng.uniform(-0.5, 0.5, 8000).astype(np.float32) for _ in range(64)]
+    for c in chunks:
+        writer.on_audio(c, 0)
+        assert writer.backlog_bytes <= 4 * chunk_bytes
+    writer.close({"windows": 0})
+    assert writer.peak_backlog_bytes == 4 * chunk_bytes
+    written, sr = sf.read(str(tmp_path / "s" / "audio.wav"), dtype="int16")
+    # PCM_16 conversion as the writer does it (to_pcm16), every sample kept in order
+    from monitor.sound.samples import to_pcm16
+    assert np.array_equal(written, np.concatenate([to_pcm16(c) for c in chunks]))
+
+
 @pytest.mark.slow
 def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
     # 10 minutes of tour audio at fast pace through the whole chain with capture
@@ -169,7 +197,10 @@ def test_soak_memory_stays_flat_and_counts_add_up(tour, demo_card, tmp_path):
     sf.write(str(tmp_path / "long.wav"), long, sr, subtype="PCM_16")
     truth = load_truth(tour[1])
     tour_s = x.size / sr
-    writer = SessionWriter(tmp_path / "s", {"classes": list(demo_card.classes)}, sample_rate=sr)
+    # the audio waiting for the disk is bounded on purpose (test_writer_backlog_is_bounded);
+    # a small bound here keeps that backlog out of the growth measured below
+    writer = SessionWriter(tmp_path / "s", {"classes": list(demo_card.classes)}, sample_rate=sr,
+                           max_backlog_bytes=1 << 20)
     cap = CapturePolicy(CaptureSettings(every_s=1.0), classes=demo_card.classes, sample_rate=sr,
                         sink=writer.on_snippet)
     rss = []
