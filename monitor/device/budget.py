@@ -299,16 +299,17 @@ def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) ->
         The model already loaded in the microcontroller runtime (``vectors`` passes its own);
         otherwise it is loaded here, once, through `assemble.load_model`.
 
-    Raises
-    ------
-    ModelError
-        Not a ``.tflite`` model, or one that does not load for another reason than an
-        operator the runtime lacks (that one is recorded in ``unsupported_ops``).
-
     Returns
     -------
     Budget
         The figures.
+
+    Raises
+    ------
+    ModelError
+        Not a ``.tflite`` model, or one that does not load for another reason than an
+        operator the runtime lacks (that one is recorded in ``unsupported_ops``), or does
+        not fit its card.
     """
     from monitor.assembly.assemble import load_model
     from monitor.device.constants import c_buffers, c_tables

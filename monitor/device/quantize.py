@@ -82,7 +82,8 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
     card : ModelCard
         Its card.
     features : numpy.ndarray
-        Calibration windows' model input.
+        Calibration windows' model input, ``(n, *card.feature_shape)`` float32
+        (`calibration_features`).
     out : Path
         The ``.tflite`` to write.
     trust_model : bool
@@ -98,7 +99,8 @@ def quantize(model: Path, card: ModelCard, features: np.ndarray, out: Path, *,
     Raises
     ------
     ModelError
-        Not a Keras model, or the conversion failed.
+        Not a Keras model (``.keras`` or ``.h5``), or one that cannot be loaded or does not
+        fit its card.
 
     References
     ----------

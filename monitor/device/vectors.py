@@ -46,7 +46,7 @@ def pick_windows(top: np.ndarray, count: int | None, seed: int = 0) -> np.ndarra
     Returns
     -------
     numpy.ndarray
-        Sorted window indices.
+        ``(min(count, n),)`` sorted window indices (all ``n`` when `count` is None).
 
     Raises
     ------
@@ -132,6 +132,7 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
     Parameters
     ----------
     card : ModelCard
+        The card (the header's text does not depend on it).
     runner : Runner
         An int8 model also gives the input tensor's scale and zero point, so the check can
         quantise the C front end's features itself.
@@ -183,6 +184,12 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
     -------
     dict
         meta.json's content.
+
+    Raises
+    ------
+    ScenemonError
+        `out` is not a folder, holds files other than an earlier vectors folder's, or is or
+        holds a link; or `count` is below the number of classes the model predicts there.
     """
     from monitor.assembly.assemble import file_windows
     from monitor.base.files import atomic_write, dumps

@@ -68,6 +68,11 @@ def csv_cell(value) -> str:
     -------
     str
         The text, with a leading ``'`` when it starts like a formula.
+
+    References
+    ----------
+    OWASP, "CSV Injection" (prefix cells starting with ``=``, ``+``, ``-``, ``@``, tab or
+    carriage return with a single quote).
     """
     text = "" if value is None else str(value)
     return "'" + text if text.startswith(_FORMULA_START) else text
@@ -167,6 +172,12 @@ def harvest(sessions: list[Path], out: Path, *, include: tuple[str, ...],
     -------
     HarvestResult
         What was done.
+
+    Raises
+    ------
+    ScenemonError
+        `out` is a file or a folder of other files, its manifest cannot be read or is not a
+        harvest's, a file or label folder of the set is a link, or a session cannot be read.
     """
     _check_target(out)
     res = HarvestResult()
@@ -203,7 +214,8 @@ def decision_of(sn) -> str:
     Returns
     -------
     str
-        The manifest's ``decision`` cell.
+        The manifest's ``decision`` cell; "dropped" for a dropped snippet, which never gets
+        a row.
     """
     if sn.dropped:
         return "dropped"
@@ -347,7 +359,7 @@ def progress_bar(stream=sys.stderr):
     Parameters
     ----------
     stream : TextIO
-        Where the bar goes.
+        Where the bar goes (standard error by default).
 
     Returns
     -------

@@ -43,7 +43,8 @@ class Metrics:
     duration_s : float
         Seconds covered.
     accuracy, balanced_accuracy : float or None
-        Overall and class-wise mean accuracy over windows with truth.
+        Overall accuracy (undecided counts as wrong) and the mean of the per-class recalls,
+        over windows with truth; None without truth.
     per_class : dict
         Per class: support, precision, recall (class-wise accuracy) and F1.
     confusion : list of list of int
@@ -66,6 +67,12 @@ class Metrics:
         Windows marked unfamiliar, overall and per truth class.
     model_faults, figure_faults : int
         Windows whose model output, or another figure, was not finite.
+
+    References
+    ----------
+    A. Mesaros, T. Heittola and T. Virtanen, "Metrics for Polyphonic Sound Event Detection",
+    Applied Sciences 6(6):162, 2016 (accuracy and class-wise accuracy of scene
+    classification).
     """
 
     classes: list[str]
@@ -156,6 +163,12 @@ def window_metrics(windows: list[dict], classes: list[str], hop_s: float | None 
     -------
     Metrics
         The figures, with raw changes, levels, unfamiliar windows and faults.
+
+    References
+    ----------
+    A. Mesaros, T. Heittola and T. Virtanen, "Metrics for Polyphonic Sound Event Detection",
+    Applied Sciences 6(6):162, 2016 (accuracy and class-wise accuracy of scene
+    classification).
     """
     m = metrics_of_tally(tally_windows(windows, classes, hop_s=hop_s, spans=truth_spans))
     tops = [w.get("top") for w in windows]

@@ -98,6 +98,7 @@ def text_report(s: Session, ms: list[Metrics]) -> str:
     Parameters
     ----------
     s : Session
+        The session.
     ms : list of Metrics
         Each model's metrics, A first (`model_metrics`); with two, both side by side.
 
@@ -483,6 +484,7 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
     Parameters
     ----------
     s : Session
+        The session.
     ms : list of Metrics
         Each model's metrics, A first.
     embed_audio : bool
@@ -641,11 +643,6 @@ def html_report(s: Session, ms: list[Metrics], *, embed_audio: bool = True) -> s
 def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     """Write the HTML report to `out`, atomically; returns `out`.
 
-    Raises
-    ------
-    ScenemonError
-        `out` exists and is not an earlier report, or is one of a session's own files.
-
     Parameters
     ----------
     s : Session
@@ -653,12 +650,18 @@ def write_html(s: Session, ms: list[Metrics], out: Path) -> Path:
     ms : list of Metrics
         Each model's figures, A first.
     out : Path
-        The page to write.
+        The page to write; its folder is created when missing.
 
     Returns
     -------
     Path
         `out`.
+
+    Raises
+    ------
+    ScenemonError
+        `out` is a link or not a regular file, is one of a session's own files, or exists
+        and is not an earlier report (`files.check_output`).
     """
     from monitor.base.files import atomic_write
 

@@ -164,13 +164,6 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
 def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
     """Where one input's results live under `out`.
 
-    Returns
-    -------
-    results : Path
-        ``results/<name>.jsonl`` for model A (`model` 0), ``results/<name>.b.jsonl`` for B.
-    meta : Path
-        ``results/<name>.meta.json``, shared by both models.
-
     Parameters
     ----------
     out : Path
@@ -179,6 +172,13 @@ def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
         The input.
     model : int
         0 for model A, 1 for model B.
+
+    Returns
+    -------
+    results : Path
+        ``results/<name>.jsonl`` for model A (`model` 0), ``results/<name>.b.jsonl`` for B.
+    meta : Path
+        ``results/<name>.meta.json``, shared by both models.
     """
     name = results_name(item.key)
     tag = "" if model == 0 else ".b"
@@ -220,6 +220,7 @@ def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
     out : Path
         The output folder.
     item : Item
+        The input.
     fp : dict
         The input's `fingerprint` now.
     n_models : int
@@ -384,11 +385,6 @@ def check_results_folder(out: Path) -> None:
     not an earlier score's (a rerun resumes in a folder of ours and writes over nothing
     else).
 
-    Raises
-    ------
-    ScenemonError
-        With one sentence naming the path.
-
     Parameters
     ----------
     out : Path
@@ -397,7 +393,8 @@ def check_results_folder(out: Path) -> None:
     Raises
     ------
     ScenemonError
-        `out` is a file, or holds an ``aggregate.json`` or ``results`` that is not ours.
+        `out` or its ``results`` is a link or not a folder, or its ``aggregate.json`` is not
+        an earlier score's (`files.check_output`); one sentence naming the path.
     """
     from monitor.base.files import check_output
 
@@ -431,7 +428,8 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
     cluster : str, optional
         A Dask scheduler's address; the inputs are scored there instead.
     progress : bool
-        Draw a progress bar on stderr (only when it is a terminal).
+        Draw a progress bar on stderr (`run_score_command` asks for one only when stderr is
+        a terminal).
 
     Returns
     -------
@@ -442,7 +440,8 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
     Raises
     ------
     ScenemonError
-        An archive without inputs, a bad card, model, truth or audio file.
+        An archive that is not a folder or holds no inputs, a results folder that is not
+        ours, or a bad card, model, truth or audio file.
     """
     if isinstance(models, (str, Path)):
         models = (ModelPlan(Path(models)),)
@@ -640,11 +639,6 @@ def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *
 
     The progress bar is drawn only when stderr is a terminal.
 
-    Raises
-    ------
-    ScenemonError
-        No ``--model`` given, or bad input found by `run_score`.
-
     Parameters
     ----------
     archive : Path
@@ -664,6 +658,11 @@ def run_score_command(archive: Path, models: tuple[ModelPlan, ...], out: Path, *
     -------
     int
         The exit code.
+
+    Raises
+    ------
+    ScenemonError
+        No ``--model`` given, or bad input found by `run_score`.
     """
     if not models:
         raise ScenemonError("score: give --model")

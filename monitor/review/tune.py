@@ -245,6 +245,7 @@ def sweep(sessions: list[Session], grid: dict[str, list], model: int = 0) -> lis
     Parameters
     ----------
     sessions : list of Session
+        Sessions with truth (at least one).
     grid : dict
         Values per `DecisionSettings` field (`parse_grid`).
     model : int
@@ -258,7 +259,8 @@ def sweep(sessions: list[Session], grid: dict[str, list], model: int = 0) -> lis
     Raises
     ------
     ScenemonError
-        No window of any session has a truth label.
+        No window of any session has a truth label, or `grid` holds a combination the
+        decision settings refuse (`expand`).
     """
     if not any(x.get("truth") is not None for s in sessions for x in s.windows):
         raise ScenemonError(f"{sessions[0].dir}: no window has a truth label; tune needs "

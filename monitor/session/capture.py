@@ -42,22 +42,34 @@ class CaptureSettings:
     Attributes
     ----------
     policies : tuple of str
-        The reasons snippets are taken for (disagreement, uncertain, manual, models_disagree,
-        unfamiliar).
+        The reasons snippets are taken for, each one of `POLICIES` (disagreement, uncertain,
+        models_disagree, unfamiliar); a manual capture needs none.
     on : {"decision", "top"}
         What is compared with the truth for "disagreement".
     pre_roll_s, post_roll_s : float
-        Seconds kept before and after the windows that triggered it.
+        Seconds kept before and after the windows that triggered it, from 0 to `MAX_ROLL_S`.
     max_s : float
-        Seconds a snippet may last at most.
+        Seconds a snippet may last at most, above 0 and at most `MAX_SNIPPET_S`.
     every_s : float
-        At most one snippet per (truth, predicted) pair this often, in seconds.
+        At most one snippet per (truth, predicted) pair this often, in seconds (per reason
+        alone for unfamiliar and uncertain sounds), from 0 to `MAX_EVERY_S`.
     uncertain_below : float
-        "uncertain": the top smoothed probability is below this (least confidence).
+        "uncertain": the top smoothed probability is below this (least confidence), 0 to 1.
     uncertain_margin : float
-        "uncertain": the top two smoothed probabilities are closer than this (margin).
+        "uncertain": the top two smoothed probabilities are closer than this (margin), 0 to 1.
     manual_s : float
-        Seconds a manual capture keeps.
+        Seconds a manual capture keeps, above 0 and at most `MAX_SNIPPET_S`.
+
+    Raises
+    ------
+    ValueError
+        An unknown policy, `on` not "decision" or "top", or a figure outside its range
+        (NaN included).
+
+    References
+    ----------
+    B. Settles, "Active Learning Literature Survey", Computer Sciences Technical Report 1648,
+    University of Wisconsin-Madison, 2009 (least-confidence and margin uncertainty sampling).
     """
 
     policies: tuple[str, ...] = POLICIES
@@ -115,7 +127,8 @@ class AudioHistory:
     sample_rate : int
         Hz (the model's rate).
     seconds : float
-        Seconds kept at first; it grows when a longer stretch is asked for.
+        Seconds a cut may reach back; the buffer grows when a chunk does not fit beside
+        them.
     """
 
     def __init__(self, sample_rate: int, seconds: float) -> None:
@@ -189,11 +202,17 @@ class CapturePolicy(ObserverBase):
     Parameters
     ----------
     settings : CaptureSettings
+        When and how snippets are cut.
     classes : tuple of str
+        Model A's classes in output order.
     sample_rate : int
+        Hz of the audio handed to `on_audio` (the model's rate).
     sink : callable
         ``sink(snippet: dict)`` receives finished snippets (the session writer's
         `on_snippet`, which only queues).
+    two_models : bool
+        The session runs two models (A/B); stored as ``two_models``. The "models_disagree"
+        policy reads model B from each window's ``others``.
     """
 
     def __init__(self, settings: CaptureSettings, *, classes: tuple[str, ...],

@@ -185,11 +185,6 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
     Every probability list holds `classes` values when given, else as many as the first
     record's.
 
-    Raises
-    ------
-    SessionError
-        A line that is JSON but not a window record (naming the file and the line).
-
     Parameters
     ----------
     path : Path
@@ -203,6 +198,12 @@ def read_windows(path: Path, classes: int | None = None) -> tuple[list[dict[str,
         The records in file order.
     skipped : int
         Lines that were not JSON (a torn last line).
+
+    Raises
+    ------
+    SessionError
+        `path` is not a regular file, or a line is JSON but not a window record, is nested
+        too deep or holds a number too long (naming the file and the line).
     """
     windows, skipped = [], 0
     if not path.exists():
@@ -243,13 +244,6 @@ def _classes_of_b(meta: dict) -> int | None:
 def load_session(path: str | Path) -> Session:
     """Read a session directory (see module docstring).
 
-    Raises
-    ------
-    SessionError
-        Not a session directory, an unreadable ``session.json``, or a malformed window line.
-    TruthError
-        A ``truth.tsv`` that is not UTF-8 text or not valid truth lines.
-
     Parameters
     ----------
     path : str or Path
@@ -259,6 +253,14 @@ def load_session(path: str | Path) -> Session:
     -------
     Session
         Its files, read and checked.
+
+    Raises
+    ------
+    SessionError
+        Not a session directory, an unreadable ``session.json`` (or not a JSON object, or
+        its ``classes`` not a list of names), or a malformed window line.
+    TruthError
+        A ``truth.tsv`` that is not UTF-8 text or not valid truth lines.
     """
     d = Path(path)
     if not d.is_dir():

@@ -214,6 +214,8 @@ def repair(path: str | Path) -> dict:
     ------
     SessionError
         Not a session, or a session another process is still writing.
+    TruthError
+        Its ``truth.tsv`` is not UTF-8 text or not valid truth lines (`load_session`).
     """
     d = Path(path)
     if session_is_live(d):

@@ -149,7 +149,9 @@ def write_snippet(session_dir: Path, snippet: dict[str, Any], *, session_id: str
     snippet : dict
         From the capture policy: ``audio`` (float32 at the model rate), ``reason``,
         ``label``, ``predicted``, ``t0``, ``t1``, probabilities and anything else to keep.
-    session_id, model_sha256 : str
+    session_id : str
+        Written into the sidecar as ``session``.
+    model_sha256 : str or None
         Written into the sidecar.
     sample_rate : int
         Hz of ``audio``.
@@ -181,8 +183,9 @@ def write_snippet(session_dir: Path, snippet: dict[str, Any], *, session_id: str
 def iter_snippets(session_dir: Path) -> list[SnippetFile]:
     """Every readable sidecar of a session, in time order (unreadable ones are left out).
 
-    A sidecar that is not a regular file, is larger than 1 MB or is not a JSON object is
-    skipped; `count_unreadable` says how many.
+    A sidecar that is not a regular file, is larger than 1 MiB, is not a JSON object or
+    holds a field of the wrong type (`sidecar_problem`) is skipped; `count_unreadable` says
+    how many.
 
     Parameters
     ----------
@@ -360,6 +363,11 @@ def keep(snip: SnippetFile, session_dir: Path) -> SnippetFile:
     -------
     SnippetFile
         The snippet as its sidecar now says.
+
+    Raises
+    ------
+    OSError
+        The sidecar can no longer be read back, or cannot be written.
     """
     return _rewrite(snip, session_dir, reviewed=True, dropped=False)
 
@@ -378,6 +386,11 @@ def drop(snip: SnippetFile, session_dir: Path) -> SnippetFile:
     -------
     SnippetFile
         The snippet as its sidecar now says.
+
+    Raises
+    ------
+    OSError
+        The sidecar can no longer be read back, or cannot be written.
     """
     return _rewrite(snip, session_dir, reviewed=True, dropped=True)
 
@@ -401,6 +414,11 @@ def relabel(snip: SnippetFile, session_dir: Path, label: str,
     -------
     SnippetFile
         The snippet as its sidecar now says.
+
+    Raises
+    ------
+    OSError
+        The sidecar can no longer be read back, or cannot be written.
     """
     fresh = _read_sidecar(snip.sidecar, session_dir) or snip.meta
     if label == fresh.get("label"):

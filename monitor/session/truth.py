@@ -66,16 +66,17 @@ def parse_truth(text: str, *, where: str, classes: tuple[str, ...] | None = None
     classes : tuple of str, optional
         When given, every label must be one of them.
 
-    Raises
-    ------
-    TruthError
-        A malformed line, a time that is not a finite number >= 0, a span that ends before
-        it starts, lines out of time order, or overlapping spans; naming the file and line.
-
     Returns
     -------
     TruthTrack
         The spans.
+
+    Raises
+    ------
+    TruthError
+        A malformed line, a time that is not a finite number >= 0, a span that does not end
+        after it starts, a label not in `classes`, lines out of time order, or overlapping
+        spans; naming the file (and the line, but for an overlap).
     """
     spans = []
     last_onset, last_line = -math.inf, 0
@@ -122,15 +123,16 @@ def load_truth(path: str | Path, *, classes: tuple[str, ...] | None = None) -> T
     classes : tuple of str, optional
         When given, every label must be one of them.
 
-    Raises
-    ------
-    TruthError
-        The file is missing, not UTF-8 text, or not valid truth lines.
-
     Returns
     -------
     TruthTrack
         The spans.
+
+    Raises
+    ------
+    TruthError
+        The file is missing, not a regular file, not UTF-8 text, or not valid truth lines
+        (`parse_truth`).
     """
     path = Path(path)
     if not path.exists():
