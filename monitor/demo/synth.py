@@ -33,7 +33,7 @@ def _normalise(x: np.ndarray, dbfs: float) -> np.ndarray:
 
 
 def pink(n: int, rng: np.random.Generator) -> np.ndarray:
-    """Approximate 1/f noise (Kellet's filter on white noise).
+    """Approximate 1/f noise (a three-pole, three-zero filter on white noise).
 
     Parameters
     ----------
@@ -49,7 +49,8 @@ def pink(n: int, rng: np.random.Generator) -> np.ndarray:
 
     References
     ----------
-    P. Kellet's economy pink-noise filter, as documented in the music-dsp archive (from memory).
+    J. O. Smith III, "Spectral Audio Signal Processing", W3K Publishing, 2011, section
+    "Example: Synthesis of 1/f Noise (Pink Noise)" (these coefficients, from memory).
     """
     b = [0.049922035, -0.095993537, 0.050612699, -0.004408786]
     a = [1, -2.494956002, 2.017265875, -0.522189400]
