@@ -6,11 +6,11 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
-import scipy.fft
 
 from monitor.features.dsp import dct_matrix, lifter_weights
-from monitor.features.stages.base import FrontendLike, ScalingLike, Stage
+from monitor.features.stages.base import FrontendLike, ScalingLike, Stage, blocked_product
 from monitor.features.stages.ctext import c_define, c_floats
+from monitor.features.stages.framing import FramingStage
 from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, key
 
 
@@ -57,6 +57,7 @@ class DctStage(Stage):
         The card's ``[scaling]`` table.
     """
     name, config, part = "dct", DctConfig, "features"
+    per_frame = True
     band_name = "coefficients"
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:
@@ -64,6 +65,8 @@ class DctStage(Stage):
         c = self.cfg
         self.matrix = dct_matrix(c.mfcc, self.fe.mel.mel_bands, norm=c.dct_norm, lifter=c.lifter)
         self.matrix_t = np.ascontiguousarray(self.matrix.T)
+        framing = FramingStage(audio, fe, scaling)
+        self.block, self.frames = framing.block, framing.frames
 
     @staticmethod
     def width(cfg: Any, fe: FrontendLike, width: int) -> int:
@@ -71,11 +74,18 @@ class DctStage(Stage):
         return cfg.mfcc
 
     def run(self, x: np.ndarray) -> np.ndarray:
-        """Frames ``(..., mel_bands)`` times the float32 DCT matrix: ``(..., mfcc)``."""
-        return np.matmul(x, self.matrix_t)
+        """Frames ``(..., frames, mel_bands)`` times the float32 DCT matrix: ``(..., frames,
+        mfcc)``, in blocks of a hop's frames (`base.blocked_product`)."""
+        return blocked_product(x, self.matrix_t, self.block)
+
+    def run_frames(self, x: np.ndarray, first: int) -> np.ndarray:
+        """Rows of a stream's frames, row 0 frame `first` of a window: as in `run`."""
+        return blocked_product(x, self.matrix_t, self.block, first - self.frames)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
         """scipy.fft.dct type 2 ("uniform": unnormalised / sqrt(2 M)), then the lifter."""
+        import scipy.fft  # the reference only: the run is a matrix product
+
         c = self.cfg
         if c.dct_norm == "ortho":
             y = scipy.fft.dct(x, type=2, norm="ortho", axis=-1)
