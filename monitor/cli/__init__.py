@@ -10,43 +10,69 @@ May import: everything below it.
 from __future__ import annotations
 
 import argparse
+import importlib
 import os
 import sys
 import warnings
+from types import ModuleType
 
 from monitor import __version__
 from monitor.base.errors import ExitCode, exit_code_for, one_sentence
 from monitor.base.files import terminal_safe
-from monitor.cli import (
-    bench,
-    budget,
-    card,
-    compare,
-    demo,
-    devices,
-    harvest,
-    live,
-    profile,
-    quantize,
-    relabel,
-    repair,
-    replay,
-    report,
-    score,
-    tune,
-    vectors,
-)
 from monitor.cli.flags import Parser, subcommand
 
-# every command, in the order `scenemon --help` lists them; each module owns its name, help,
-# examples, flags (`add_arguments`) and handler (`run`)
-COMMAND_MODULES = (replay, live, devices, demo, report, tune, harvest, relabel, quantize,
-                   compare, vectors, repair, score, bench, profile, budget, card)
-COMMANDS = {m.NAME: m for m in COMMAND_MODULES}
+# every command, in the order `scenemon --help` lists them; each has its module here, which
+# owns its name, help, examples, flags (`add_arguments`) and handler (`run`). A run imports
+# only its own command's module (and what that needs), so start-up does not pay for the rest.
+COMMAND_NAMES = ("replay", "live", "devices", "demo", "report", "tune", "harvest", "relabel",
+                 "quantize", "compare", "vectors", "repair", "score", "bench", "profile",
+                 "budget", "card")
 
 
-def build_parser() -> argparse.ArgumentParser:
+def command_module(name: str) -> ModuleType:
+    """The module of command `name` (``monitor.cli.<name>``).
+
+    Parameters
+    ----------
+    name : str
+        One of `COMMAND_NAMES`.
+
+    Returns
+    -------
+    module
+        The command's module, imported on first use.
+    """
+    return importlib.import_module(f"monitor.cli.{name}")
+
+
+def command_of(argv: list[str]) -> str | None:
+    """The command `argv` names, when its first word that is not an option is one.
+
+    Parameters
+    ----------
+    argv : list of str
+        The arguments after the program name.
+
+    Returns
+    -------
+    str or None
+        The command, or None (no command, a misspelt one, or only top-level options).
+    """
+    for word in argv:
+        if word.startswith("-"):
+            continue
+        return word if word in COMMAND_NAMES else None
+    return None
+
+
+def build_parser(only: str | None = None) -> argparse.ArgumentParser:
     """The `scenemon` parser: every command module's flags, help and examples.
+
+    Parameters
+    ----------
+    only : str, optional
+        Build only this command's sub-parser (the command being run); every command's
+        otherwise (top-level help, a misspelt command).
 
     Returns
     -------
@@ -62,7 +88,8 @@ def build_parser() -> argparse.ArgumentParser:
     ap.add_argument("--version", action="version", version=f"scenemon {__version__}")
     ap.add_argument("--debug", action="store_true", help="show tracebacks")
     sub = ap.add_subparsers(dest="command", metavar="COMMAND", parser_class=Parser)
-    for m in COMMAND_MODULES:
+    for name in COMMAND_NAMES if only is None else (only,):
+        m = command_module(name)
         m.add_arguments(subcommand(sub, m.NAME, m.HELP, m.DESCRIPTION, m.EXAMPLES))
     for p in sub.choices.values():  # --debug also after the command; SUPPRESS keeps the top one
         p.add_argument("--debug", action="store_true", default=argparse.SUPPRESS,
@@ -85,7 +112,9 @@ def main(argv: list[str] | None = None) -> int:
         on stderr, with a traceback only under ``--debug``.
     """
     os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
-    ap = build_parser()
+    if argv is None:
+        argv = sys.argv[1:]
+    ap = build_parser(command_of(argv))
     args = ap.parse_args(argv)
     if not args.command:
         ap.print_help()
@@ -99,7 +128,7 @@ def main(argv: list[str] | None = None) -> int:
         warnings.simplefilter("default")
         warnings.showwarning = _show_warning
         try:
-            return int(COMMANDS[args.command].run(args))
+            return int(command_module(args.command).run(args))
         except (Exception, KeyboardInterrupt) as exc:
             if debug and not isinstance(exc, KeyboardInterrupt):
                 raise

@@ -9,7 +9,6 @@ built with. The bounds here are checked before anything is allocated (a card is 
 from __future__ import annotations
 
 import dataclasses
-import difflib
 import math
 from dataclasses import dataclass, field
 from typing import Any
@@ -206,6 +205,8 @@ def nearest(name: str, known) -> str:
     str
         The hint, or "" when none is close (difflib).
     """
+    import difflib  # only when a key is unknown
+
     close = difflib.get_close_matches(name, list(known), n=1, cutoff=0.6)
     return f"; did you mean {close[0]}?" if close else ""
 
