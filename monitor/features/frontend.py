@@ -72,6 +72,11 @@ class FrontEnd:
         self._samples = [s for s in self.stages if s.part == "samples"]
         self._frames = [s for s in self.stages if s.part == "frames"]
         self._features = [s for s in self.stages if s.part == "features"]
+        # the leading features stages that work frame by frame run once per frame in a stream
+        k = 0
+        while k < len(self._features) and self._features[k].per_frame:
+            k += 1
+        self._frame_features, self._window_features = self._features[:k], self._features[k:]
         self._output = [s for s in self.stages if s.part == "output"]
         self.framing: FramingStage | None = by.get("framing")  # type: ignore[assignment]
         scaling = by["scaling"]
@@ -186,10 +191,14 @@ class FrontEnd:
 
     def _consecutive(self, signal: np.ndarray, n: int,
                      known: tuple[int, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray | None]:
-        """Scaled features of `n` windows one hop apart, and the last window's shared frames.
+        """Scaled features of `n` windows one hop apart, and the last window's shared rows.
 
-        `known` is ``(q, frames)``: the shared frames of an earlier window whose shared frame
-        ``q + j`` is this run's shared frame j.
+        `known` is ``(q, rows)``: the shared rows of an earlier window whose shared frame
+        ``q + j`` is this run's shared frame j. When every frame of a window is shared, the
+        rows are the frames after the per-frame features stages (mel, and the log and DCT
+        when they work frame by frame): each is computed once, in the block it has in every
+        window (`stages.base.blocked_product`). Otherwise they are spectra, and the features
+        stages run per window.
         """
         c = self.card
         f = self.framing
@@ -198,28 +207,38 @@ class FrontEnd:
         lo, hi = f.shared
         cnt, r = hi - lo + 1, f.share_step
         total = (n - 1) * r + cnt
+        whole = cnt == f.frames  # every frame shared: each window is a block of rows
         have = 0
-        if known is not None and 0 < known[0] < cnt:
+        if known is not None and 0 < known[0] < cnt and (not whole or known[0] % f.block == 0):
             have = cnt - known[0]
-        shared = np.empty((total, *self._frame_shape()), np.float32)
-        if have:
-            shared[:have] = known[1][known[0]:]
-        shared[have:] = self._stream_frames(signal, have, total - have)
-        if cnt == f.frames:  # every frame shared: each window is a block of rows, no copy
+        spectra = self._stream_frames(signal, have, total - have)
+        if whole:
+            rows = spectra
+            for s in self._frame_features:  # row k is frame have + k of the first window
+                rows = s.run_frames(rows, have)
+            shared = np.empty((total, *rows.shape[1:]), np.float32)
+            if have:
+                shared[:have] = known[1][known[0]:]
+            shared[have:] = rows
             item = shared.strides[0]
-            spectra = np.lib.stride_tricks.as_strided(
+            frames = np.lib.stride_tricks.as_strided(
                 shared, (n, cnt, *shared.shape[1:]), (r * item, *shared.strides),
                 writeable=False)
             last = shared if n == 1 else shared[(n - 1) * r:].copy()
-            return self._finish(spectra), last
-        spectra = np.empty((n, f.frames, *shared.shape[1:]), np.float32)
+            x = self._run(self._window_features, frames)
+            return self._run(self._output, x), last
+        shared = np.empty((total, *self._frame_shape()), np.float32)
+        if have:
+            shared[:have] = known[1][known[0]:]
+        shared[have:] = spectra
+        frames = np.empty((n, f.frames, *shared.shape[1:]), np.float32)
         idx = (np.arange(n) * r)[:, None] + np.arange(cnt)[None, :]
-        spectra[:, lo:hi + 1] = shared[idx]
+        frames[:, lo:hi + 1] = shared[idx]
         if f.edges.size:
             windows = windows_of(signal, c.window_samples, c.hop_samples)[:n]
-            spectra[:, f.edges] = self._spectra(windows, f.edges)
+            frames[:, f.edges] = self._spectra(windows, f.edges)
         last = shared if n == 1 else shared[(n - 1) * r:].copy()
-        return self._finish(spectra), last
+        return self._finish(frames), last
 
     def _frame_shape(self) -> tuple[int, ...]:
         fe = self.card.frontend

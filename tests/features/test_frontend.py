@@ -5,6 +5,8 @@ import subprocess
 import sys
 
 import numpy as np
+from hypothesis import given, settings
+from hypothesis import strategies as st
 import pytest
 import scipy.fft
 import scipy.signal
@@ -587,6 +589,53 @@ def test_stream_computes_only_the_new_frames(monkeypatch, demo_card):
     lo, hi = fe.framing.shared
     assert (lo, hi, fe.framing.frames) == (2, 98, 101)
     assert counted == [97, 4, 50, 4, 50, 4]  # per window: shared frames (all, then new), edges
+
+
+def test_stream_weights_each_frame_once(monkeypatch, demo_card):
+    # the mel weighting (one GEMM per block of a hop's 50 frames) runs on the new frames
+    # only: the first window's 98 frames (two blocks, the first padded), then one block a hop
+    from monitor.features.stages import base
+
+    rows = []
+    real = np.matmul
+
+    def counting(a, b, *args, **kw):
+        if b.shape == (257, 40):
+            rows.append(int(np.prod(a.shape[:-1])))
+        return real(a, b, *args, **kw)
+
+    monkeypatch.setattr(base.np, "matmul", counting)
+    fe = FrontEnd(demo_card)
+    x = _noise(9, 16000 * 3)
+    for i in range(5):
+        fe.stream.features([i * 8000], [x[i * 8000:i * 8000 + 16000]])
+    assert rows == [100, 50, 50, 50, 50]
+    rows.clear()
+    fe.batch_consecutive(x[: 4 * 8000 + 16000], 5)  # fast replay: 4 hops after 98 frames
+    assert rows == [98 + 2 + 4 * 50]
+
+
+@settings(max_examples=40, deadline=None, derandomize=True)
+@given(rows=st.integers(1, 130), block=st.integers(1, 60), place=st.integers(-200, 200),
+       seed=st.integers(0, 2**16))
+def test_blocked_product_rounds_each_row_by_its_place_alone(rows, block, place, seed):
+    # A row's result is the row's own product in a GEMM of `block` rows at its place: the
+    # same bytes as that row computed alone in such a block (numpy.matmul through OpenBLAS,
+    # whose rounding depends on the matrix size and the row's place), and within float32
+    # rounding of the float64 product
+    from monitor.features.stages.base import blocked_product
+
+    rng = np.random.default_rng(seed)
+    x = (rng.standard_normal((rows, 257)) ** 2).astype(np.float32)
+    m = rng.uniform(0, 1, (257, 40)).astype(np.float32)
+    y = blocked_product(x, m, block, place)
+    assert y.shape == (rows, 40)
+    j = int(rng.integers(rows))
+    alone = np.zeros((block, 257), np.float32)
+    at = (place + j) % block
+    alone[at] = x[j]
+    np.testing.assert_array_equal(y[j], np.matmul(alone, m)[at])
+    np.testing.assert_allclose(y, x.astype(np.float64) @ m.astype(np.float64), rtol=1e-5)
 
 
 def test_features_do_not_depend_on_what_the_program_imported_first(tour, tmp_path):

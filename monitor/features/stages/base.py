@@ -79,6 +79,7 @@ class Stage:
     part: ClassVar[Part]
     left: ClassVar[int] = 0  # samples at a window's start that differ from the stream's
     band_name: ClassVar[str | None] = None  # what its output values per frame are called
+    per_frame: bool = False  # a "features" stage whose values of a frame depend on it alone
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:
         self.audio, self.fe, self.scaling = audio, fe, scaling
@@ -102,6 +103,12 @@ class Stage:
         """The same in float64, built independently where it can be."""
         return x
 
+    def run_frames(self, x: np.ndarray, first: int) -> np.ndarray:
+        """A `per_frame` stage on rows of frames ``(rows, values)`` of a stream; row 0 is
+        frame `first` of a window (or of one hop further on), so that each frame goes
+        through the very operations it meets in `run` of a whole window."""
+        return self.run(x)
+
     def stream(self, x: np.ndarray) -> np.ndarray:
         """A "samples" stage applied to a stream of consecutive windows (1-D)."""
         return self.run(x[None])[0]
@@ -121,3 +128,47 @@ class Stage:
     def ops(self, new_frames: int) -> dict[str, int]:
         """Operations per hop when `new_frames` frames are new (the streaming C call)."""
         return {}
+
+
+def blocked_product(x: np.ndarray, matrix_t: np.ndarray, block: int, place: int | None = None,
+                    ) -> np.ndarray:
+    """``x @ matrix_t`` over the frames axis in blocks of `block` frames, one GEMM each.
+
+    A BLAS matrix product's rounding of a row depends on the matrix's size and on where the
+    row sits in it (the kernels for the edges differ), so a frame computed with a different
+    number of other frames would differ in its last bits. Here every frame's row is computed
+    in a product of exactly `block` rows, at a fixed place: the blocks are laid from a
+    window's end backwards (its last frame ends a block; a first block that is short is
+    padded with zeros in front). With `block` the frames a hop moves on, a frame has the
+    same place in every window that holds it, and a hop's new frames are one block: computed
+    once for a stream of windows, a frame's values are those of each whole window, byte for
+    byte.
+
+    Parameters
+    ----------
+    x : numpy.ndarray
+        ``(..., rows, k)`` float32: frames.
+    matrix_t : numpy.ndarray
+        ``(k, m)`` float32.
+    block : int
+        Rows per product (> 0).
+    place : int, optional
+        The place of row 0 of `x` in its block; by default that of a whole window's first
+        frame, ``-rows % block``.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(..., rows, m)`` float32.
+    """
+    rows, k = x.shape[-2], x.shape[-1]
+    front = (-rows if place is None else place) % block
+    blocks = -(-(front + rows) // block)
+    lead = x.shape[:-2]
+    if front or blocks * block != rows:
+        padded = np.zeros((*lead, blocks * block, k), x.dtype)
+        padded[..., front:front + rows, :] = x
+        x = padded
+    y = np.matmul(x.reshape(*lead, blocks, block, k), matrix_t)  # one GEMM per block
+    y = y.reshape(*lead, blocks * block, matrix_t.shape[1])
+    return y if y.shape[-2] == rows else y[..., front:front + rows, :]

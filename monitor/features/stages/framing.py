@@ -113,6 +113,10 @@ class FramingStage(Stage):
         self.share_step = (hop // c.frame_step
                            if hop % c.frame_step == 0 and hop // c.frame_step <= hi - lo else 0)
         self.edges = np.array([t for t in range(self.frames) if not lo <= t <= hi], np.intp)
+        # frames per block of the per-frame products (mel, DCT; `base.blocked_product`): the
+        # frames a hop moves on, so that a frame has the same place in every window and a
+        # hop's new frames are one block
+        self.block = self.share_step or self.frames
 
     @staticmethod
     def width(cfg: Any, fe: FrontendLike, width: int) -> int:

@@ -84,6 +84,7 @@ class LogStage(Stage):
         super().__init__(audio, fe, scaling)
         self.factor = self.cfg.factor(self.fe)
         self.per_window = self.cfg.db_ref == "max" or self.cfg.top_db > 0
+        self.per_frame = not self.per_window
 
     def run(self, x: np.ndarray) -> np.ndarray:
         """float32 log of max(x + log_offset, log_floor); db_ref and top_db over each window."""

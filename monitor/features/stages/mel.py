@@ -8,8 +8,9 @@ from typing import Any
 import numpy as np
 
 from monitor.features.dsp import mel_filterbank
-from monitor.features.stages.base import FrontendLike, ScalingLike, Stage
+from monitor.features.stages.base import FrontendLike, ScalingLike, Stage, blocked_product
 from monitor.features.stages.ctext import c_define, c_floats, c_ints, sparse_bank
+from monitor.features.stages.framing import FramingStage
 from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, key
 
 
@@ -74,6 +75,7 @@ class MelStage(Stage):
     """
     name, config, part = "mel", MelConfig, "features"
     band_name = "bands"
+    per_frame = True
 
     def __init__(self, audio: AudioConfig, fe: FrontendLike, scaling: ScalingLike) -> None:
         super().__init__(audio, fe, scaling)
@@ -81,6 +83,8 @@ class MelStage(Stage):
         self.weights = mel_filterbank(**kw)
         self.mel_t = np.ascontiguousarray(self.weights.T)
         self.first, self.length, self.packed = sparse_bank(self.weights)
+        framing = FramingStage(audio, fe, scaling)
+        self.block, self.frames = framing.block, framing.frames
 
     def _bank_args(self) -> dict[str, Any]:
         c = self.cfg
@@ -94,10 +98,14 @@ class MelStage(Stage):
         return cfg.mel_bands
 
     def run(self, x: np.ndarray) -> np.ndarray:
-        """Spectra ``(..., bins)`` times the float32 filterbank: ``(..., mel_bands)``."""
-        # np.matmul on a stack runs one GEMM per window, so a window's numbers never depend
-        # on how many windows were computed with it (BLAS kernels differ by matrix size)
-        return np.matmul(x, self.mel_t)
+        """Spectra ``(..., frames, bins)`` times the float32 filterbank: ``(..., frames,
+        mel_bands)``, in blocks of a hop's frames (`base.blocked_product`), so that a frame's
+        numbers never depend on how many frames or windows were computed with it."""
+        return blocked_product(x, self.mel_t, self.block)
+
+    def run_frames(self, x: np.ndarray, first: int) -> np.ndarray:
+        """Rows of a stream's frames, row 0 frame `first` of a window: as in `run`."""
+        return blocked_product(x, self.mel_t, self.block, first - self.frames)
 
     def reference(self, x: np.ndarray) -> np.ndarray:
         """The same product with the filterbank built in float64."""
