@@ -5,11 +5,11 @@ import subprocess
 import sys
 
 import numpy as np
-from hypothesis import given, settings
-from hypothesis import strategies as st
 import pytest
 import scipy.fft
 import scipy.signal
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from conftest import MODELS, ROOT, card_dict
 from monitor.features.card import card_from_dict
