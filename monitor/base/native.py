@@ -199,14 +199,9 @@ def keep_freed_memory(limit: int = HEAP_KEEP_BYTES) -> bool:
         True when glibc took the setting (False elsewhere).
     """
     import ctypes
-    import ctypes.util
 
-    name = ctypes.util.find_library("c")
-    try:
-        libc = ctypes.CDLL(name) if name else None
-        mallopt = libc.mallopt if libc is not None else None
+    try:  # the C library the interpreter itself is linked with (no search for its file)
+        mallopt = ctypes.CDLL(None).mallopt
     except (OSError, AttributeError):
-        return False
-    if mallopt is None:
         return False
     return bool(mallopt(_M_MMAP_THRESHOLD, limit)) and bool(mallopt(_M_TRIM_THRESHOLD, 2 * limit))

@@ -45,6 +45,8 @@ from monitor.features.stages import Stage
 from monitor.features.stages.framing import FramingStage
 from monitor.sound.windower import windows_of
 
+FRAME_CHUNK = 512  # frames windowed and transformed at a time in a long run
+
 
 class FrontEnd:
     """Features exactly as the card says, built once per card.
@@ -110,7 +112,17 @@ class FrontEnd:
         item = y.strides[0]
         view = np.lib.stride_tricks.as_strided(y, (count, length), (step * item, item),
                                                writeable=False)
-        return self._run(self._frames[1:], view)
+        if count <= FRAME_CHUNK:
+            return self._run(self._frames[1:], view)
+        # a long run in pieces: the windowed frames and the complex spectra of a piece are
+        # a few MB at most, not those of every frame of the batch at once (the same numbers:
+        # each frame's FFT is its own)
+        first = self._run(self._frames[1:], view[:FRAME_CHUNK])
+        out = np.empty((count, *first.shape[1:]), first.dtype)
+        out[:FRAME_CHUNK] = first
+        for a in range(FRAME_CHUNK, count, FRAME_CHUNK):
+            out[a:a + FRAME_CHUNK] = self._run(self._frames[1:], view[a:a + FRAME_CHUNK])
+        return out
 
     def _finish(self, spectra: np.ndarray) -> np.ndarray:
         return self._run(self._output, self._run(self._features, spectra))

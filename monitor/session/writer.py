@@ -41,7 +41,7 @@ from monitor.sound.samples import to_pcm16
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
-MAX_BACKLOG_BYTES = 32 << 20  # queued audio (float32): about 8 minutes at 16 kHz
+MAX_BACKLOG_BYTES = 8 << 20  # queued audio (float32): about 2 minutes at 16 kHz
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
 
 

@@ -592,8 +592,9 @@ def test_stream_computes_only_the_new_frames(monkeypatch, demo_card):
 
 
 def test_stream_weights_each_frame_once(monkeypatch, demo_card):
-    # the mel weighting (one GEMM per block of a hop's 50 frames) runs on the new frames
-    # only: the first window's 98 frames (two blocks, the first padded), then one block a hop
+    # the mel weighting (one GEMM per block of a hop's 50 frames, laid from the window's end)
+    # runs on the new frames only: the first window's 98 frames are a short block (48 frames
+    # padded to 50) and a whole one, then each hop's 50 new frames are one block
     from monitor.features.stages import base
 
     rows = []
@@ -609,10 +610,10 @@ def test_stream_weights_each_frame_once(monkeypatch, demo_card):
     x = _noise(9, 16000 * 3)
     for i in range(5):
         fe.stream.features([i * 8000], [x[i * 8000:i * 8000 + 16000]])
-    assert rows == [100, 50, 50, 50, 50]
+    assert rows == [50, 50, 50, 50, 50, 50]
     rows.clear()
-    fe.batch_consecutive(x[: 4 * 8000 + 16000], 5)  # fast replay: 4 hops after 98 frames
-    assert rows == [98 + 2 + 4 * 50]
+    fe.batch_consecutive(x[: 4 * 8000 + 16000], 5)  # fast replay: 298 frames, each once
+    assert rows == [50, 250]  # the short first block (48 frames), then five whole ones
 
 
 @settings(max_examples=40, deadline=None, derandomize=True)

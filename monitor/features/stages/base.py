@@ -163,12 +163,21 @@ def blocked_product(x: np.ndarray, matrix_t: np.ndarray, block: int, place: int 
     """
     rows, k = x.shape[-2], x.shape[-1]
     front = (-rows if place is None else place) % block
-    blocks = -(-(front + rows) // block)
     lead = x.shape[:-2]
-    if front or blocks * block != rows:
-        padded = np.zeros((*lead, blocks * block, k), x.dtype)
-        padded[..., front:front + rows, :] = x
-        x = padded
-    y = np.matmul(x.reshape(*lead, blocks, block, k), matrix_t)  # one GEMM per block
-    y = y.reshape(*lead, blocks * block, matrix_t.shape[1])
-    return y if y.shape[-2] == rows else y[..., front:front + rows, :]
+    head = min(rows, block - front) if front else 0  # rows in a first block that is short
+    body = (rows - head) // block * block  # then whole blocks
+    parts = []
+    if head:
+        padded = np.zeros((*lead, block, k), x.dtype)
+        padded[..., front:front + head, :] = x[..., :head, :]
+        parts.append(np.matmul(padded, matrix_t)[..., front:front + head, :])
+    if body:
+        y = np.matmul(x[..., head:head + body, :].reshape(*lead, body // block, block, k),
+                      matrix_t)  # one GEMM per block
+        parts.append(y.reshape(*lead, body, matrix_t.shape[1]))
+    if head + body < rows:  # a last block that is short (only where rows end mid-block)
+        tail = rows - head - body
+        padded = np.zeros((*lead, block, k), x.dtype)
+        padded[..., :tail, :] = x[..., head + body:, :]
+        parts.append(np.matmul(padded, matrix_t)[..., :tail, :])
+    return parts[0] if len(parts) == 1 else np.concatenate(parts, axis=-2)
