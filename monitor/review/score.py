@@ -30,7 +30,7 @@ import json
 import os
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor, ThreadPoolExecutor, as_completed
+from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -188,8 +188,11 @@ def result_paths(out: Path, item: Item, model: int = 0) -> tuple[Path, Path]:
 def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
     """What makes a stored result current (compared by `up_to_date`).
 
-    The results version, the sha256 of each audio file and of the truth file, and `models`
-    (path, model and card sha256, and runtime of each).
+    The results version, each audio file's and the truth file's size and modification time
+    (nanoseconds), and `models` (path, model and card sha256, and runtime of each). Size and
+    time tell a changed file, as make(1) does, without reading an hour of audio before any
+    work starts; the worker that scores an input stores its files' sha256 beside them
+    (`content_sha256`).
 
     Parameters
     ----------
@@ -203,11 +206,31 @@ def fingerprint(item: Item, models: list[dict]) -> dict[str, Any]:
     dict
         The fingerprint, as the meta file stores it.
     """
+    def stat(path: str) -> list[int]:
+        st = os.stat(path)
+        return [st.st_size, st.st_mtime_ns]
+
+    return {"version": RESULTS_VERSION, "audio_stat": [stat(a) for a in item.audio],
+            "truth_stat": stat(item.truth) if item.truth else None, "models": models}
+
+
+def content_sha256(item: Item) -> dict[str, Any]:
+    """The sha256 of each audio file and of the truth file, for the meta file.
+
+    Parameters
+    ----------
+    item : Item
+        The input.
+
+    Returns
+    -------
+    dict
+        ``audio_sha256`` (a list) and ``truth_sha256`` (None without truth).
+    """
     from monitor.inference.base import file_sha256
 
-    return {"version": RESULTS_VERSION, "audio_sha256": [file_sha256(a) for a in item.audio],
-            "truth_sha256": file_sha256(item.truth) if item.truth else None,
-            "models": models}
+    return {"audio_sha256": [file_sha256(a) for a in item.audio],
+            "truth_sha256": file_sha256(item.truth) if item.truth else None}
 
 
 def up_to_date(out: Path, item: Item, fp: dict, n_models: int) -> bool:
@@ -284,12 +307,30 @@ def score_task(item: Item, models: tuple[ModelPlan, ...], out: str, fp: dict) ->
         jl.parent.mkdir(parents=True, exist_ok=True)
         atomic_write(jl, "".join(dumps(r) + "\n" for r in records).encode())
     _, meta = result_paths(Path(out), item)
-    atomic_write(meta, dumps({**fp, "key": item.key, "audio": list(item.audio),
+    atomic_write(meta, dumps({**fp, **content_sha256(item), "key": item.key, "audio": list(item.audio),
                               "truth": item.truth, "windows": summary["windows"],
                               "duration_s": summary["duration_s"]},
                              indent=2, sort_keys=True).encode())
     return {"key": item.key, "duration_s": summary["duration_s"], "seconds": seconds,
             "pid": os.getpid()}
+
+
+def _warm(models: tuple[ModelPlan, ...]) -> None:
+    """Load what `score_task` needs in this process before workers are forked from it.
+
+    Only for LiteRT models: a forked worker then scores its first input at once, where it
+    would otherwise import the chain and load the models itself (tens of milliseconds each,
+    on the clock of every worker). Other runtimes load in each worker, as before.
+    """
+    if not all(Path(m.path).suffix == ".tflite" and m.runtime in (None, "litert")
+               for m in models):
+        return
+    from monitor.assembly.assemble import load_model
+    from monitor.assembly.observers import Collector  # noqa: F401 - imported for the workers
+    from monitor.session.truth import load_truth  # noqa: F401
+
+    if models not in _LOADED:
+        _LOADED[models] = [load_model(m) for m in models]
 
 
 def _progress(done: int, total: int, audio_s: float, t0: float, stream=sys.stderr) -> None:
@@ -455,11 +496,7 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
     out.mkdir(parents=True, exist_ok=True)
     todo, skipped = [], 0
     n = workers or os.cpu_count() or 1
-    # the audio hashed on n threads (hashlib lets go of the GIL): a tenth of a second an
-    # hour of audio, before any worker starts; the threads are gone before a fork
-    with ThreadPoolExecutor(max_workers=n) as hashers:
-        fps = dict(zip([it.key for it in items],
-                       hashers.map(lambda it: fingerprint(it, described), items)))
+    fps = {it.key: fingerprint(it, described) for it in items}
     for it in items:
         fp = fps[it.key]
         if up_to_date(out, it, fp, len(models)):
@@ -495,8 +532,11 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
         # this process is one of the n workers (its imports, model and heap are warm): the
         # other n - 1 take inputs from the front, it takes from the back those no worker has
         # started (a future that can still be cancelled is one no worker will run)
+        context = _worker_context()
+        if context.get_start_method() == "fork":
+            _warm(models)  # the forked workers start with the modules and models loaded
         with ProcessPoolExecutor(max_workers=min(n, len(todo)) - 1,
-                                 mp_context=_worker_context(), initializer=die_with_parent,
+                                 mp_context=context, initializer=die_with_parent,
                                  initargs=(os.getpid(),)) as pool:
             futures = [(it, pool.submit(score_task, it, models, target, fps[it.key]))
                        for it in todo]

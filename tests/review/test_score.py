@@ -137,3 +137,28 @@ def test_interrupted_run_resumes(local_run, archive, tmp_path):
     for name, m in mtimes.items():  # what was done is not done again
         assert (out / "results" / name).stat().st_mtime_ns == m
     assert results(out) == results(out_local)
+
+
+def test_a_changed_file_is_scored_again_and_the_rest_skipped(tour, tmp_path):
+    # up to date by size and modification time (as make(1) decides); the sha256 of what was
+    # scored stays in the meta file
+    import hashlib
+
+    x, sr = sf.read(str(tour[0]), dtype="int16")
+    arch = tmp_path / "a"
+    arch.mkdir()
+    for k in range(3):
+        sf.write(str(arch / f"w{k}.wav"), x[k * sr:(k + 30) * sr], sr, subtype="PCM_16")
+    out = tmp_path / "r"
+    first = run_score(arch, str(MODELS / "demo.tflite"), out, workers=1, progress=False)
+    assert first["processed"] == 3
+    meta = json.loads(next((out / "results").glob("*w1*.meta.json")).read_text())
+    assert meta["audio_sha256"] == [hashlib.sha256((arch / "w1.wav").read_bytes()).hexdigest()]
+    again = run_score(arch, str(MODELS / "demo.tflite"), out, workers=1, progress=False)
+    assert (again["processed"], again["skipped_up_to_date"]) == (0, 3)
+    # the same length, other sound: a new size-and-time pair, scored again
+    sf.write(str(arch / "w1.wav"), x[40 * sr:70 * sr], sr, subtype="PCM_16")
+    third = run_score(arch, str(MODELS / "demo.tflite"), out, workers=1, progress=False)
+    assert (third["processed"], third["skipped_up_to_date"]) == (1, 2)
+    meta = json.loads(next((out / "results").glob("*w1*.meta.json")).read_text())
+    assert meta["audio_sha256"] == [hashlib.sha256((arch / "w1.wav").read_bytes()).hexdigest()]
