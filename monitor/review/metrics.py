@@ -222,9 +222,10 @@ def mcnemar_exact(b: int, c: int) -> float:
     return min(1.0, 2.0 * tail)
 
 
-def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
-    """Agreement of two models' decisions on the same windows, and McNemar's exact test on
-    the windows with truth where exactly one of them is right.
+def pair_counts(wa: list[dict], wb: list[dict]) -> list[int]:
+    """Counts of two models' decisions on the same windows, for `paired_summary`.
+
+    Counts of several files add up (element by element) to the counts of all their windows.
 
     Parameters
     ----------
@@ -233,9 +234,9 @@ def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
 
     Returns
     -------
-    dict
-        Windows compared, decision agreement, windows both, neither, only A and only B got
-        right, McNemar's p-value and a sentence saying it.
+    list of int
+        Windows compared, windows with the same decision, and of the windows with truth:
+        both right, neither right, only A right, only B right.
     """
     n = min(len(wa), len(wb))
     same = sum(1 for a, b in zip(wa[:n], wb[:n]) if a.get("decision") == b.get("decision"))
@@ -249,6 +250,42 @@ def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
         neither += not ra and not rb
         only_a += ra and not rb
         only_b += rb and not ra
+    return [n, same, both, neither, only_a, only_b]
+
+
+def paired(wa: list[dict], wb: list[dict]) -> dict[str, Any]:
+    """Agreement of two models' decisions on the same windows, and McNemar's exact test on
+    the windows with truth where exactly one of them is right.
+
+    Parameters
+    ----------
+    wa, wb : list of dict
+        Model A's and model B's window records of the same windows.
+
+    Returns
+    -------
+    dict
+        Windows compared, decision agreement, windows both, neither, only A and only B got
+        right, McNemar's p-value and a sentence saying it (`paired_summary`).
+    """
+    return paired_summary(pair_counts(wa, wb))
+
+
+def paired_summary(counts: list[int]) -> dict[str, Any]:
+    """`paired`'s figures from `pair_counts` (of one file, or added up over many).
+
+    Parameters
+    ----------
+    counts : list of int
+        `pair_counts`' six counts.
+
+    Returns
+    -------
+    dict
+        Windows compared, decision agreement, windows both, neither, only A and only B got
+        right, McNemar's p-value and a sentence saying it.
+    """
+    n, same, both, neither, only_a, only_b = counts
     p = mcnemar_exact(only_a, only_b)
     if only_a + only_b:
         sentence = (f"B is right on {only_b} windows where A is wrong, A on {only_a} where B is "

@@ -596,26 +596,29 @@ def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 
         aggregate.json's content.
     """
     from monitor.decisions.tally import Tally, tally_windows
-    from monitor.review.metrics import metrics_of_tally, paired
+    from monitor.review.metrics import metrics_of_tally, pair_counts, paired_summary
     from monitor.session.truth import load_truth
 
-    per_model: list[dict[str, Any]] = []
-    windows_of_item: list[list[list[dict]]] = []
+    # one file at a time: its windows are read, counted and let go (a thousand files do
+    # not all sit in memory at once)
+    hops = hops or [None] * n_models
+    totals = [Tally(classes, hop_s=hops[m]).finish() for m in range(n_models)]
+    per_files: list[list[dict]] = [[] for _ in range(n_models)]
+    pairs = [0] * 6
     for it in items:
-        windows_of_item.append([_read_results(result_paths(out, it, m)[0])
-                                for m in range(n_models)])
-    for m in range(n_models):
-        hop = (hops or [None] * n_models)[m]
-        total = Tally(classes, hop_s=hop).finish()
-        per_file = []
-        for it, ws in zip(items, windows_of_item):
-            spans = load_truth(it.truth).spans if it.truth else None
-            t = tally_windows(ws[m], classes, hop_s=hop, spans=spans)
-            total.merge(t)
-            per_file.append({"file": it.key, "windows": t.windows,
-                             "duration_s": round(t.duration_s, 3), "accuracy": t.accuracy,
-                             "switches_per_min": t.switches_per_min,
-                             "latency_s_median": t.latency_median})
+        ws = [_read_results(result_paths(out, it, m)[0]) for m in range(n_models)]
+        spans = load_truth(it.truth).spans if it.truth else None
+        for m in range(n_models):
+            t = tally_windows(ws[m], classes, hop_s=hops[m], spans=spans)
+            totals[m].merge(t)
+            per_files[m].append({"file": it.key, "windows": t.windows,
+                                 "duration_s": round(t.duration_s, 3), "accuracy": t.accuracy,
+                                 "switches_per_min": t.switches_per_min,
+                                 "latency_s_median": t.latency_median})
+        if n_models > 1:  # each file's windows paired with its own
+            pairs = [x + y for x, y in zip(pairs, pair_counts(ws[0], ws[1]))]
+    per_model: list[dict[str, Any]] = []
+    for total, per_file in zip(totals, per_files):
         overall = metrics_of_tally(total).to_dict() if total.windows else None
         scored = [f for f in per_file if f["accuracy"] is not None]
         worst = sorted(scored, key=lambda f: f["accuracy"])[:10]
@@ -625,9 +628,7 @@ def aggregate(out: Path, items: list[Item], classes: list[str], n_models: int = 
     agg = {"files": len(items), **per_model[0]}
     if n_models > 1:
         agg["b"] = per_model[1]
-        # the pairs of every file in one test (each file's windows paired with its own)
-        pairs = [(wa, wb) for ws in windows_of_item for wa, wb in zip(ws[0], ws[1])]
-        agg["a_vs_b"] = paired([a for a, _ in pairs], [b for _, b in pairs])
+        agg["a_vs_b"] = paired_summary(pairs)
     return agg
 
 
