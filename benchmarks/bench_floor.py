@@ -16,6 +16,7 @@ Against them, in the same run (`--repeat` repetitions each, the minimum of each)
   script's;
 - ``scenemon score`` with one worker and with two, on an archive of 8 tours, the whole
   command and the scoring alone (``aggregate.json``'s ``wall_s``);
+- peak memory of ``score`` (one worker) over 100 and over 1,000 files of 5 s;
 - live monitoring, headless and with the terminal UI in an 80x24 tmux pane, CPU share of
   one core at real-time pace from the audio server's default input while the tour plays
   into it (`--live-seconds`, after 10 s; needs PulseAudio, `tests/audio_server.sh start`,
@@ -55,6 +56,7 @@ from monitor.sound.samples import quantise_pcm16  # noqa: E402
 MODEL = ROOT / "models" / "demo.tflite"
 REPEAT = 3
 ARCHIVE_FILES = 8
+MANY_FILES = 1000
 
 
 def floor_seconds(x: np.ndarray, card) -> tuple[float, int]:
@@ -249,6 +251,20 @@ def main() -> int:
                                                       str(MODEL), "--fast", "--headless",
                                                       "--out", str(td / f"f{rep}-{_}")],
                                                repo)[0])
+    many = {}  # peak memory of score over 100 and 1,000 short files (flat: the same)
+    with tempfile.TemporaryDirectory() as td:
+        td = Path(td)
+        sf.write(str(td / "piece.wav"), x[: 5 * sr], sr, subtype="PCM_16")
+        for count in (100, MANY_FILES):
+            arch = td / f"many{count}"
+            arch.mkdir()
+            for k in range(count):
+                os.link(td / "piece.wav", arch / f"p{k:04d}.wav")
+            t = time.perf_counter()
+            peak = timed_stream(exe + ["score", str(arch), "--model", str(MODEL), "--out",
+                                       str(td / f"out{count}"), "--workers", "1"], repo,
+                                peak_memory=True)[2]
+            many[count] = (peak, time.perf_counter() - t)
     live = shot = None
     if not args.no_live:
         live = live_share(repo, args.live_seconds, screen=False)
@@ -287,6 +303,9 @@ def main() -> int:
                       ("rss_longer", f"fast replay of {4 * audio_s:.0f} s")):
         print(f"  {'peak memory: ' + what:<60} {m[key] * mb:6.1f} MB"
               f"  {m[key] / m['rss_min']:4.2f}x the minimal script")
+    for count, (peak, secs) in many.items():
+        print(f"  {f'peak memory: score of {count} files of 5 s, 1 worker':<60} "
+              f"{peak * mb:6.1f} MB  ({secs:.1f} s)")
     for name, share in (("live --headless", live), ("live, terminal UI at 80x24", shot)):
         if share is not None:
             print(f"  {name + ', CPU of one core at real-time pace':<60} {100 * share:6.2f} %")
