@@ -200,7 +200,7 @@ class Engine:
                     raise SourceFailed(f"audio source failed: {src.error!r}") from src.error
                 if src.finished.is_set() and ring.available() == 0:
                     break
-                time.sleep(self._idle_wait(poll))
+                stop.wait(self._idle_wait(poll))  # a stop ends the wait at once
         finally:
             src.stop()
         return self.summary()
@@ -236,11 +236,16 @@ class Engine:
         return summary
 
     def _idle_wait(self, poll: float) -> float:
-        """Sleep until the next window can be complete (at most 50 ms, at least `poll`)."""
+        """Seconds to wait until the next window can be complete (at least `poll`, at most
+        one second).
+
+        Live, the engine (and the session writer after it) wakes about once a window, not
+        every pump period: a hop's audio is read in one piece.
+        """
         if not self.source.realtime:
             return poll
         missing = self.windower.next_start + self.card.window_samples - self.windower.end
-        return min(0.05, max(poll, missing / self.card.sample_rate))
+        return min(1.0, max(poll, missing / self.card.sample_rate))
 
     def _features(self, fe: FrontEnd, wins: list[Window]) -> np.ndarray:
         # live as in fast replay, a frame shared by overlapping windows is computed once (the

@@ -349,7 +349,7 @@ class FileSource:
 # The microphone
 # --------------------------------------------------------------------------------------
 PREFERRED_LINUX_DEVICES = ("pipewire", "pulse", "default")
-PUMP_PERIOD_S = 0.05  # how often the pump moves raw frames on: latency against wake-ups
+PUMP_PERIOD_S = 0.1  # how often the pump moves raw frames on: latency against wake-ups
 
 
 def import_sounddevice():
