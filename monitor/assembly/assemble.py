@@ -38,7 +38,7 @@ from monitor.inference.base import Runner
 from monitor.inference.registry import load_runner
 from monitor.session.capture import CapturePolicy
 from monitor.session.truth import LiveTruth, TruthTrack, load_truth
-from monitor.session.writer import SessionWriter
+from monitor.session.writer import MAX_BACKLOG_BYTES, SessionWriter
 from monitor.sound.windower import windows_of
 
 
@@ -454,9 +454,12 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
     meta = describe_session(plan, models, decisions, source)
     target = session_dir(plan.output)
     existed = target.exists()
+    # a source that waits for the engine loses nothing by waiting for the disk too: its
+    # writer queues 1 MB of audio (16 s at 16 kHz), a live one minutes of it
     writer = SessionWriter(target, meta, sample_rate=cards[0].sample_rate,
                            audio=plan.output.audio, segment_s=plan.output.segment_s,
-                           truth_file=plan.truth)
+                           truth_file=plan.truth,
+                           max_backlog_bytes=MAX_BACKLOG_BYTES if source.realtime else 1 << 20)
     capture = None
     if plan.capture is not None:
         capture = CapturePolicy(plan.capture, classes=cards[0].classes,
