@@ -37,6 +37,7 @@ from monitor.features.card import DecisionSettings, ModelCard, card_for_model
 from monitor.inference.base import Runner
 from monitor.inference.registry import load_runner
 from monitor.session.capture import CapturePolicy
+from monitor.session.runfolder import clock_now
 from monitor.session.truth import LiveTruth, TruthTrack, load_truth
 from monitor.session.writer import MAX_BACKLOG_BYTES, SessionWriter
 from monitor.sound.windower import windows_of
@@ -166,7 +167,7 @@ def open_source(src: FileInput | MicInput | Source, card: ModelCard) -> Source:
 
         return FileSource(src.path, model_rate=card.sample_rate,
                           window_samples=card.window_samples, realtime=src.realtime,
-                          allow_upsample=src.allow_upsample)
+                          allow_upsample=src.allow_upsample, speed=src.speed)
     from monitor.sound.sources import MicSource
 
     return MicSource(src.device, model_rate=card.sample_rate,
@@ -360,6 +361,18 @@ class SessionHandle:
         """The session writer's failure in one sentence, or None while it writes."""
         return self._writer.error_text
 
+    def stop_audio(self, reason: str) -> None:
+        """Keep no more audio in this session (window lines go on); `reason` goes in the summary."""
+        self._writer.stop_audio(reason)
+
+    def audio_stopped(self) -> str | None:
+        """Why the session's audio stopped (a full disk, `stop_audio`), or None."""
+        return self._writer.audio_stopped
+
+    def records_audio(self) -> bool:
+        """True while the session writes audio."""
+        return self._writer.write_audio and self._writer.audio_stopped is None
+
 
 def describe_session(plan: SessionPlan, models: list[LoadedModel],
                      decisions: list[DecisionSettings], source: Source) -> dict[str, Any]:
@@ -385,6 +398,9 @@ def describe_session(plan: SessionPlan, models: list[LoadedModel],
     meta = {
         "tool": "scenemon", "version": __version__,
         "started_at": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        # both clocks: the wall clock may step (a board syncing its time after boot); the
+        # monotonic one does not, and is comparable within one boot
+        "clock": clock_now(),
         "source": source.describe(),
         "classes": list(a.card.classes),
         "card": a.card.settings_dict(),
@@ -495,6 +511,7 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
         if old is not None:
             signal.signal(signal.SIGINT, old)
     summary["session"] = str(writer.dir)
+    summary["clock_end"] = clock_now()
     if capture is not None:
         capture.close()
         summary["snippets"] = dict(capture.counts)

@@ -245,7 +245,8 @@ class Engine:
         if not self.source.realtime:
             return poll
         missing = self.windower.next_start + self.card.window_samples - self.windower.end
-        return min(1.0, max(poll, missing / self.card.sample_rate))
+        speed = getattr(self.source, "speed", 1.0)  # a file clocked faster than real time
+        return min(1.0 / speed, max(poll, missing / self.card.sample_rate / speed))
 
     def _features(self, fe: FrontEnd, wins: list[Window]) -> np.ndarray:
         # live as in fast replay, a frame shared by overlapping windows is computed once (the

@@ -12,6 +12,7 @@ from pathlib import Path
 from typing import Any
 
 from monitor.session.capture import CaptureSettings
+from monitor.session.runfolder import Keep
 
 DEFAULT_SEGMENT_S = 3600.0
 
@@ -50,11 +51,14 @@ class FileInput:
         Pace it at real time (else as fast as the CPU allows).
     allow_upsample : bool
         Accept a rate below the model's.
+    speed : float
+        With `realtime`, the pace's clock runs this many times faster (a simulated long run).
     """
 
     path: Path
     realtime: bool = True  # paced as a microphone; False: as fast as the CPU allows
     allow_upsample: bool = False
+    speed: float = 1.0
 
 
 @dataclass(frozen=True)
@@ -142,3 +146,37 @@ class SessionPlan:
     keep_features: bool = False  # each window's features travel to the observers
     prepare: Callable[[], None] | None = field(default=None, compare=False)
     prepare_note: str = "preparing the input …"  # shown while `prepare` runs
+
+
+@dataclass(frozen=True)
+class FieldPlan:
+    """An unattended run: sessions one after another in a run folder (`assembly.field`).
+
+    Attributes
+    ----------
+    run : Path
+        The run folder.
+    session : SessionPlan
+        Each session's plan (its output's folder is chosen by the run).
+    keep : Keep
+        The disk budget.
+    session_s : float
+        Seconds of audio per session before the next one starts (a live input).
+    status_every_s : float
+        Seconds between rewrites of ``status.json``.
+    reserve_bytes : int
+        Free space left to the rest of the disk: below it, audio stops (window lines go on).
+    max_backoff_s : float
+        The longest wait between attempts to reopen a lost input device.
+    sessions : int or None
+        Stop after this many sessions (None: until stopped); a test's or benchmark's bound.
+    """
+
+    run: Path
+    session: SessionPlan
+    keep: Keep = field(default_factory=Keep)
+    session_s: float = 86400.0
+    status_every_s: float = 5.0
+    reserve_bytes: int = 200 * 10**6
+    max_backoff_s: float = 60.0
+    sessions: int | None = None

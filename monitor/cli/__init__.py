@@ -24,9 +24,9 @@ from monitor.cli.flags import Parser, subcommand
 # every command, in the order `scenemon --help` lists them; each has its module here, which
 # owns its name, help, examples, flags (`add_arguments`) and handler (`run`). A run imports
 # only its own command's module (and what that needs), so start-up does not pay for the rest.
-COMMAND_NAMES = ("replay", "live", "devices", "demo", "report", "tune", "harvest", "relabel",
-                 "quantize", "compare", "vectors", "repair", "score", "bench", "profile",
-                 "budget", "card")
+COMMAND_NAMES = ("replay", "live", "field", "status", "devices", "demo", "report", "tune",
+                 "harvest", "relabel", "quantize", "compare", "vectors", "repair", "score",
+                 "bench", "profile", "budget", "card")
 
 
 def command_module(name: str) -> ModuleType:

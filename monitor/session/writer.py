@@ -15,10 +15,16 @@ happens, one ``write`` per record; ``windows.b.jsonl`` for a second model), ``tr
 ``audio.wav`` (PCM_16 at the model rate, header brought up to date about once a second so a
 killed process leaves a WAV any reader opens; later segments ``audio-0001.wav``...),
 ``snippets/``, and ``summary.json`` only at a clean stop.
+
+Audio alone can stop while the windows go on: `stop_audio(reason)` (a disk that another
+program is filling) or a full disk met while writing audio closes the audio file cleanly
+(its header up to date), and the summary says why under ``audio_stopped``; window lines and
+the rest are still written while they fit.
 """
 
 from __future__ import annotations
 
+import errno
 import os
 import queue
 import shutil
@@ -43,6 +49,7 @@ FSYNC_EVERY_S = 5.0
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
 MAX_BACKLOG_BYTES = 8 << 20  # queued audio (float32): about 2 minutes at 16 kHz
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
+ZERO_BLOCK = 1 << 16  # a gap's silence is written this many samples at a time (memory stays flat)
 
 
 def line_of(result: Any) -> str:
@@ -107,6 +114,13 @@ def prepare_dir(out: Path, *, truth_file: Path | None = None) -> Path:
 def _audio_bytes(snippet: dict[str, Any]) -> int:
     audio = snippet.get("audio")
     return int(getattr(audio, "nbytes", 0))
+
+
+def _disk_full(d: Path) -> bool:
+    try:
+        return shutil.disk_usage(d).free < 1 << 16
+    except OSError:
+        return False
 
 
 def _same_file(a: Path, b: Path) -> bool:
@@ -180,6 +194,7 @@ class SessionWriter(ObserverBase):
         self.segments: list[str] = ["audio.wav"] if audio else []
         self.windows_written = 0
         self.snippets_written: list[Path] = []
+        self.audio_stopped: str | None = None  # why the audio stopped while windows go on
         self._thread.start()
 
     # --- observer interface: called from the compute thread, never blocks ------------------
@@ -200,6 +215,16 @@ class SessionWriter(ObserverBase):
         """Queue a snippet from the capture policy (its "audio" is float32 at the model rate)."""
         self._reserve(_audio_bytes(snippet))
         self._q.put(("snippet", snippet))
+
+    def stop_audio(self, reason: str) -> None:
+        """Close the audio file cleanly and keep no more audio; windows go on (any thread).
+
+        Parameters
+        ----------
+        reason : str
+            One sentence for the summary's ``audio_stopped``.
+        """
+        self._q.put(("stop_audio", reason))
 
     def _reserve(self, nbytes: int) -> None:
         """Count `nbytes` of queued audio, first waiting while the backlog is full.
@@ -247,8 +272,13 @@ class SessionWriter(ObserverBase):
                 self._release(item[1].nbytes)
             elif op == "snippet":
                 self._release(_audio_bytes(item[1]))
+            if op == "stop_audio":
+                wav = self._stop_audio(wav, item[1])
+                continue
             if self.error is not None:  # after a write error (disk full): drop, never tear
                 self.dropped_items += 1
+                continue
+            if op == "audio" and wav is None:
                 continue
             try:
                 if op == "window":
@@ -272,8 +302,31 @@ class SessionWriter(ObserverBase):
                 if self._q.empty():  # window lines flushed as they happen (a burst at once)
                     for f in jl:
                         f.flush()
+            except OSError as exc:
+                if op == "audio" and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                    wav = self._stop_audio(wav, f"the disk is full ({exc.strerror}); audio "
+                                                f"stopped, window lines go on while they fit")
+                else:
+                    self._fail(exc)
             except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
-                self._fail(exc)
+                if op == "audio" and _disk_full(self.dir):  # libsndfile: "System error."
+                    wav = self._stop_audio(wav, "the disk is full; audio stopped, window lines "
+                                                "go on while they fit")
+                else:
+                    self._fail(exc)
+
+    def _stop_audio(self, wav, reason: str):
+        """Close the audio segment (header brought up to the frames written); keep no more."""
+        if self.audio_stopped is None:
+            self.audio_stopped = reason
+        if wav is not None:
+            try:
+                update_wav_header(wav)
+                wav.close()
+            except Exception:  # noqa: BLE001 - the disk is full: repair fixes the header
+                pass
+        self.write_audio = False
+        return None
 
     def _write_window(self, jl: list, result: Any) -> None:
         records = [result, *getattr(result, "others", ())]
@@ -291,9 +344,13 @@ class SessionWriter(ObserverBase):
         self.windows_written += 1
 
     def _write_audio(self, wav, chunk: np.ndarray, gap: int):
-        pcm = to_pcm16(chunk)
-        if gap:
-            pcm = np.concatenate((np.zeros(gap, np.int16), pcm))
+        while gap > 0:  # a device gap of hours: silence in bounded pieces
+            n = min(gap, ZERO_BLOCK)
+            wav = self._write_pcm(wav, np.zeros(n, np.int16))
+            gap -= n
+        return self._write_pcm(wav, to_pcm16(chunk))
+
+    def _write_pcm(self, wav, pcm: np.ndarray):
         while pcm.size:
             room = self.segment_frames - self._segment_used
             if room <= 0:  # next segment: close this one cleanly first
@@ -348,6 +405,7 @@ class SessionWriter(ObserverBase):
                 summary = {**summary, "audio_frames": self.audio_frames,
                            "audio_segments": list(self.segments),
                            "snippets_written": len(self.snippets_written),
+                           "audio_stopped": self.audio_stopped,
                            "write_error": self.error_text, "items_not_written": self.dropped_items}
                 if self.unserialisable:
                     summary["records_not_serialisable"] = self.unserialisable

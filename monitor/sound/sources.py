@@ -266,6 +266,9 @@ class FileSource:
         One window at the model rate (files shorter than this are refused).
     realtime : bool
         Pace the file at real time (as a microphone), or as fast as the consumer takes it.
+    speed : float
+        With `realtime`, how many times faster than real time the clock runs (a long field
+        run simulated through the live path); 1.0 is real time.
     """
 
     realtime: bool
@@ -273,7 +276,11 @@ class FileSource:
 
     def __init__(self, path, *, model_rate: int, window_samples: int,
                  realtime: bool = False, allow_upsample: bool = False,
-                 ring_seconds: float = 16.0, block_s: float | None = None) -> None:
+                 ring_seconds: float = 16.0, block_s: float | None = None,
+                 speed: float = 1.0) -> None:
+        if not speed > 0:
+            raise AudioError(f"speed={speed} must be above 0")
+        self.speed = float(speed)
         self.paths = [Path(p) for p in ([path] if isinstance(path, (str, Path)) else path)]
         self.path = self.paths[0]
         info, frames = check_audio_files(self.paths, model_rate=model_rate,
@@ -284,7 +291,7 @@ class FileSource:
         self.frames = frames
         self.model_rate = int(model_rate)
         self.realtime = realtime
-        self.block = int(self.native_rate * (block_s or (0.05 if realtime else 4.0)))
+        self.block = int(self.native_rate * (block_s or (0.05 * self.speed if realtime else 4.0)))
         cap = max(int(ring_seconds * model_rate), 4 * window_samples)
         self.ring = RingBuffer(cap)
         self.finished = threading.Event()
@@ -299,6 +306,8 @@ class FileSource:
         """
         d = {"origin": "file", "file": str(self.path), "native_rate": self.native_rate,
              "channels": self.channels, "pace": "realtime" if self.realtime else "fast"}
+        if self.realtime and self.speed != 1.0:
+            d["speed"] = self.speed
         if len(self.paths) > 1:
             d["files"] = [str(p) for p in self.paths]
         return d
@@ -334,7 +343,7 @@ class FileSource:
                     return
                 if self.realtime and frames:
                     # the block is due when its first frame would have arrived live
-                    delay = t_start + sent / self.native_rate - time.monotonic()
+                    delay = t_start + sent / self.native_rate / self.speed - time.monotonic()
                     if delay > 0:
                         time.sleep(delay)
                 sent += frames
@@ -350,6 +359,7 @@ class FileSource:
 # --------------------------------------------------------------------------------------
 PREFERRED_LINUX_DEVICES = ("pipewire", "pulse", "default")
 PUMP_PERIOD_S = 0.1  # how often the pump moves raw frames on: latency against wake-ups
+MAX_GAPS_KEPT = 1000  # gaps listed in summary.json; beyond them only counted (memory stays flat)
 
 
 def import_sounddevice():
@@ -556,6 +566,8 @@ class MicSource:
         self.callback_error: BaseException | None = None
         self.reopens = 0
         self.lost_s = 0.0
+        self.gaps: list[dict] = []  # {start_s, end_s, cause, wall_start, wall_end}, bounded
+        self.gaps_not_listed = 0
         self._stop = threading.Event()
         self._stream = None
         self._thread: threading.Thread | None = None
@@ -566,7 +578,19 @@ class MicSource:
         ``source_failure`` is the sentence that ended the source, None when it did not fail.
         """
         return {"reopens": self.reopens, "lost_s": round(self.lost_s, 3),
-                "source_failure": self.failure}
+                "source_failure": self.failure, "input_gaps": list(self.gaps),
+                "input_gaps_not_listed": self.gaps_not_listed}
+
+    def _record_gap(self, start_s: float, end_s: float | None, cause: str,
+                    wall_start: float, wall_end: float | None) -> None:
+        """One gap in the input: where on the session clock, when by the wall clock, why."""
+        if len(self.gaps) >= MAX_GAPS_KEPT:
+            self.gaps_not_listed += 1
+            return
+        self.gaps.append({"start_s": round(start_s, 3),
+                          "end_s": None if end_s is None else round(end_s, 3), "cause": cause,
+                          "wall_start": round(wall_start, 3),
+                          "wall_end": None if wall_end is None else round(wall_end, 3)})
 
     def describe(self) -> dict:
         """session.json's ``source`` entry: device, host API, rate, channels, blocksize, latency."""
@@ -696,13 +720,19 @@ class MicSource:
                     time.sleep(PUMP_PERIOD_S)
                     continue
                 t_lost = time.monotonic()
+                # the gap starts where the audio stopped: the ring's end on the session clock
+                start_s = self.ring.written / self.model_rate
+                wall_start = time.time() - (t_lost - last_frames_t)
                 if self.callback_error is None and self._reopen():
                     gap = time.monotonic() - last_frames_t
                     self.lost_s += gap
                     self.ring.skip(int(gap * self.model_rate))
+                    self._record_gap(start_s, self.ring.written / self.model_rate, problem,
+                                     wall_start, time.time())
                     last_frames_t = time.monotonic()
                     continue
                 self.lost_s += time.monotonic() - t_lost
+                self._record_gap(start_s, None, problem, wall_start, None)
                 self.failure = (f"input device {self.device['name']!r} was lost ({problem}) and "
                                 f"could not be reopened; the session was closed with everything "
                                 f"captured so far")
