@@ -269,6 +269,11 @@ class FileSource:
     speed : float
         With `realtime`, how many times faster than real time the clock runs (a long field
         run simulated through the live path); 1.0 is real time.
+
+    Raises
+    ------
+    AudioError
+        The file fails `check_audio_files`, or `speed` is not above 0.
     """
 
     realtime: bool
