@@ -22,7 +22,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p : argparse.ArgumentParser
         The command's own parser.
     """
-    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories")
+    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories or run folders (their sessions)")
     p.add_argument("--out", required=True, metavar="DIR", help="the retraining set folder")
     p.add_argument("--include", metavar="REASONS",
                    help="comma-separated reasons to take (default: all of disagreement, "

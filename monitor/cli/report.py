@@ -22,7 +22,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p : argparse.ArgumentParser
         The command's own parser.
     """
-    p.add_argument("session", metavar="SESSION", help="session directory")
+    p.add_argument("session", metavar="SESSION", help="session directory, or a run folder of scenemon field (its account)")
     p.add_argument("--html", metavar="OUT.html", help="also write the HTML report here")
     p.add_argument("--json", action="store_true", help="print the scores as JSON instead")
 

@@ -22,7 +22,7 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
     p : argparse.ArgumentParser
         The command's own parser.
     """
-    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories")
+    p.add_argument("sessions", nargs="+", metavar="SESSION", help="session directories or run folders (their sessions)")
     p.add_argument("--grid", metavar="SPEC",
                    help="e.g. 'smoothing=mean,ema;enter=0.5,0.7;confirm=1,2' (unnamed fields "
                         "keep the default grid)")

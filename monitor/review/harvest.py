@@ -182,7 +182,9 @@ def harvest(sessions: list[Path], out: Path, *, include: tuple[str, ...],
     _check_target(out)
     res = HarvestResult()
     loaded = []
-    for sp in sessions:
+    from monitor.session.runfolder import expand_runs
+
+    for sp in expand_runs(sessions):
         if not is_session(sp):
             res.not_sessions += 1
             continue

@@ -677,9 +677,9 @@ def run_report(session: Path, *, html: Path | None = None, as_json: bool = False
     Parameters
     ----------
     session : Path
-        The session directory.
+        The session directory, or a run folder (its account, session by session).
     html : Path, optional
-        Also write the HTML page here.
+        Also write the HTML page here (one session only).
     as_json : bool
         Print the figures as JSON instead of text.
 
@@ -693,6 +693,18 @@ def run_report(session: Path, *, html: Path | None = None, as_json: bool = False
     ScenemonError
         Not a readable session, a session without windows, or an HTML target that is not ours.
     """
+    from monitor.session.runfolder import is_run
+
+    if is_run(session):  # a run folder: the account of its sessions
+        if html is not None:
+            raise ScenemonError(f"{session}: is a run folder; --html takes one of its sessions "
+                                f"(scenemon report {session}/<session> --html OUT.html)")
+        from monitor.review.runreport import run_account, run_account_text
+
+        acc = run_account(session)
+        sys.stdout.write(json.dumps(acc, indent=2) + "\n" if as_json
+                         else terminal_safe(run_account_text(acc)))
+        return ExitCode.OK
     s = load_session(session)
     if not s.windows:
         raise ScenemonError(f"{session}: the session holds no windows")

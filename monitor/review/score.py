@@ -111,6 +111,15 @@ def key_of_results(name: str) -> str | None:
     return name.replace("%2F", "/").replace("%25", "%")
 
 
+def _audio_removed(d: Path) -> bool:
+    """True when a run's budget removed audio of session `d` (its summary says so)."""
+    try:
+        summary = json.loads((d / "summary.json").read_text(encoding="utf-8"))
+    except (OSError, ValueError):
+        return False
+    return isinstance(summary, dict) and bool(summary.get("audio_removed"))
+
+
 def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
     """Audio files (recursively) and session directories under `archive`.
 
@@ -124,7 +133,8 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
     Returns
     -------
     list of Item
-        Sessions first, then audio files outside sessions, each in path order.
+        Sessions first, then audio files outside sessions, each in path order; a session
+        whose audio a run's budget partly removed is left out (its times would shift).
 
     Raises
     ------
@@ -139,7 +149,7 @@ def discover(archive: Path, truth_glob: str | None = None) -> list[Item]:
         d = sj.parent
         sessions.add(d)
         segs = audio_segments(d)
-        if not segs:
+        if not segs or _audio_removed(d):  # the budget took part of it: times would shift
             continue
         truth = d / "truth.tsv"
         items.append(Item(d.relative_to(archive).as_posix(), tuple(str(s) for s in segs),

@@ -363,7 +363,7 @@ def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None =
     Parameters
     ----------
     paths : list of Path
-        Session directories with truth.
+        Session directories with truth, or run folders (their sessions).
     grid : str, optional
         The ``--grid`` value.
     apply : Path, optional
@@ -390,7 +390,14 @@ def run_tune(paths: list[Path], *, grid: str | None = None, apply: Path | None =
     import time
 
     stream = stream or sys.stdout
-    sessions = [load_session(p) for p in paths]
+    from monitor.session.runfolder import expand_runs, is_run
+
+    runs = [p for p in paths if is_run(p)]
+    sessions = [load_session(p) for p in expand_runs(paths)]
+    if runs:  # a run's sessions without windows (a device that never opened) are left out
+        sessions = [s for s in sessions if s.windows or s.dir.parent not in runs]
+    if not sessions:
+        raise ScenemonError(f"{paths[0]}: holds no sessions with windows")
     for s in sessions:
         if not s.windows:
             raise ScenemonError(f"{s.dir}: the session holds no windows")
