@@ -392,6 +392,7 @@ def run_field(plan: FieldPlan) -> int:
     """
     from monitor.assembly.assemble import card_of, run_session
 
+    card = card_of(plan.session.models[0])  # a bad card: exit 2 before anything is made
     run_dir = rf.make_run(plan.run)
     lock = SessionLock(run_dir)
     try:
@@ -400,7 +401,6 @@ def run_field(plan: FieldPlan) -> int:
         raise SessionError(f"{run_dir}: another process is running this folder "
                            f"({exc.strerror})") from None
     plan = dataclasses.replace(plan, run=run_dir)
-    card = card_of(plan.session.models[0])  # a bad card: exit 2 before anything runs
     stop = threading.Event()
     handlers = {}
     if threading.current_thread() is threading.main_thread():
@@ -497,6 +497,8 @@ def _loop(plan: FieldPlan, run: _Run, watch: FieldWatch, status: _StatusThread,
                     run.gap_count += 1
                     run.gap_s += g["end_s"] - g["start_s"]
         written = _summary_on_disk(d)
+        with run.lock:
+            run.audio_stopped = written.get("audio_stopped") or summary.get("audio_stopped")
         _log(run.dir, "session_end", session=d.name, windows=summary.get("windows"),
              duration_s=summary.get("duration_s"), audio_frames=written.get("audio_frames"),
              clean=summary.get("clean"), failure=summary.get("source_failure"),

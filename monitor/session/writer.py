@@ -17,9 +17,10 @@ killed process leaves a WAV any reader opens; later segments ``audio-0001.wav``.
 ``snippets/``, and ``summary.json`` only at a clean stop.
 
 Audio alone can stop while the windows go on: `stop_audio(reason)` (a disk that another
-program is filling) or a full disk met while writing audio closes the audio file cleanly
-(its header up to date), and the summary says why under ``audio_stopped``; window lines and
-the rest are still written while they fit.
+program is filling) or a full disk met while writing audio or a snippet closes the audio
+file cleanly (its header up to date), and the summary says why under ``audio_stopped``;
+snippets are audio too and stop with it (counted in ``snippets_not_written``); window lines,
+truth and the summary are still written while they fit.
 """
 
 from __future__ import annotations
@@ -195,6 +196,7 @@ class SessionWriter(ObserverBase):
         self.windows_written = 0
         self.snippets_written: list[Path] = []
         self.audio_stopped: str | None = None  # why the audio stopped while windows go on
+        self.snippets_not_written = 0  # snippets dropped after the audio stopped
         self._thread.start()
 
     # --- observer interface: called from the compute thread, never blocks ------------------
@@ -280,6 +282,9 @@ class SessionWriter(ObserverBase):
                 continue
             if op == "audio" and wav is None:
                 continue
+            if op == "snippet" and self.audio_stopped is not None:  # a full disk: no audio
+                self.snippets_not_written += 1
+                continue
             try:
                 if op == "window":
                     self._write_window(jl, item[1])
@@ -303,13 +308,13 @@ class SessionWriter(ObserverBase):
                     for f in jl:
                         f.flush()
             except OSError as exc:
-                if op == "audio" and exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                if op in ("audio", "snippet") and exc.errno in (errno.ENOSPC, errno.EDQUOT):
                     wav = self._stop_audio(wav, f"the disk is full ({exc.strerror}); audio "
                                                 f"stopped, window lines go on while they fit")
                 else:
                     self._fail(exc)
             except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
-                if op == "audio" and _disk_full(self.dir):  # libsndfile: "System error."
+                if op in ("audio", "snippet") and _disk_full(self.dir):  # libsndfile: "System error."
                     wav = self._stop_audio(wav, "the disk is full; audio stopped, window lines "
                                                 "go on while they fit")
                 else:
@@ -406,6 +411,7 @@ class SessionWriter(ObserverBase):
                            "audio_segments": list(self.segments),
                            "snippets_written": len(self.snippets_written),
                            "audio_stopped": self.audio_stopped,
+                           "snippets_not_written": self.snippets_not_written,
                            "write_error": self.error_text, "items_not_written": self.dropped_items}
                 if self.unserialisable:
                     summary["records_not_serialisable"] = self.unserialisable

@@ -360,15 +360,52 @@ def case_harvest_bad_reason(tmp_path):
             "--include", "unknown reason")
 
 
+def case_status_not_a_run(tmp_path):
+    (tmp_path / "plain").mkdir()
+    return ["status", tmp_path / "plain"], "plain", "not a run folder"
+
+
+def case_field_keep_not_a_budget(tmp_path):
+    return (["field", tmp_path / "run", "--model", MODELS / "demo.tflite", "--keep", "20XB"],
+            "--keep", "give a size")
+
+
+def case_field_keep_size_twice(tmp_path):
+    return (["field", tmp_path / "run", "--model", MODELS / "demo.tflite", "--keep", "1GB,2GB"],
+            "--keep", "given twice")
+
+
+def case_field_missing_model(tmp_path):
+    return ["field", tmp_path / "run", "--model", tmp_path / "nope.tflite"], "nope.tflite", \
+        "not found"
+
+
+def case_field_into_a_session(tmp_path):
+    s = tmp_path / "sess"
+    s.mkdir()
+    (s / "session.json").write_text("{}")
+    return (["field", s, "--model", MODELS / "demo.tflite"], "sess",
+            "is a session, not a run folder")
+
+
+def case_field_folder_of_other_files(tmp_path):
+    d = tmp_path / "photos"
+    d.mkdir()
+    (d / "a.jpg").write_bytes(b"x")
+    return (["field", d, "--model", MODELS / "demo.tflite"], "photos",
+            "holds other files and is not a run folder")
+
+
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("case_")]
 NO_MODEL = {"report", "harvest", "tune"}
+OWN_FLAGS = {"field", "status"}  # no --fast / --out: a run folder is their argument
 
 
 @pytest.mark.parametrize("case", CASES, ids=[c.__name__[5:] for c in CASES])
 def test_bad_input(tmp_path, case):
     args, names, problem = case(tmp_path)
     out = tmp_path / "session"
-    if args[0] not in NO_MODEL:
+    if args[0] not in NO_MODEL | OWN_FLAGS:
         if "--model" not in args:
             args = [*args, "--model", MODELS / "demo.tflite"]
         args = [*args, "--fast", "--out", out]
@@ -381,6 +418,7 @@ def test_bad_input(tmp_path, case):
     assert "Traceback" not in r.stderr
     assert not (out / "summary.json").exists()
     assert not out.exists()  # validation happens before anything is written
+    assert not (tmp_path / "run").exists()  # nor a run folder
 
 
 def test_debug_shows_traceback(tmp_path):
