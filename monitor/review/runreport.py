@@ -108,7 +108,9 @@ def run_account(run: Path) -> dict[str, Any]:
         "audio_captured_s": round(sum(x["audio_captured_s"] for x in sessions), 3),
         "audio_kept_s": round(sum(x["audio_kept_s"] for x in sessions), 3),
         "audio_removed_s": round(sum(x["audio_removed_s"] for x in sessions), 3),
-        "input_gaps": sum(len(x["input_gaps"]) for x in sessions) + len(gaps),
+        # a gap open at a session's end is the same gap the log records between sessions
+        "input_gaps": sum(1 for x in sessions for g in x["input_gaps"]
+                          if g.get("end_s") is not None) + len(gaps),
         "gap_s_between_sessions": round(sum(float(g.get("seconds") or 0.0) for g in gaps), 3),
         "repaired_sessions": sum(1 for x in sessions if x["end"].startswith("repaired")),
     }
@@ -137,11 +139,11 @@ def run_account_text(acc: dict[str, Any]) -> str:
     t = acc["totals"]
     lines = [f"run {acc['run']}: {t['sessions']} sessions, {acc['process_starts']} process "
              f"starts, {t['repaired_sessions']} sessions repaired after a kill or power cut",
-             f"{'session':<32} {'started':<21} {'windows':>8} {'audio s':>9} "
+             f"{'session':<32} {'started':<21} {'windows':>8} {'captured s':>10} "
              f"{'removed s':>9}  end"]
     for x in acc["sessions"]:
         lines.append(f"{x['session'][:32]:<32} {str(x['started_at'])[:21]:<21} "
-                     f"{x['windows']:>8} {x['audio_captured_s']:>9.1f} "
+                     f"{x['windows']:>8} {x['audio_captured_s']:>10.1f} "
                      f"{x['audio_removed_s']:>9.1f}  {x['end']}")
         for r in x["audio_removed"]:
             lines.append(f"    removed {r.get('file')} ({r.get('seconds')} s): {r.get('reason')}")
