@@ -98,7 +98,9 @@ def unit_text(argv: list[str], *, user: str | None, workdir: Path) -> str:
         The unit file's text.
     """
     exe = Path(sys.executable).absolute()
-    cmd = " ".join(shlex.quote(a) for a in [str(exe), "-m", "monitor", "field", *argv])
+    script = exe.parent / "scenemon"  # the installed entry point beside the interpreter
+    head = [str(script)] if script.is_file() else [str(exe), "-m", "monitor"]
+    cmd = " ".join(shlex.quote(a) for a in [*head, "field", *argv])
     lines = ["[Unit]",
              "Description=scenemon field run (audio classifier check)",
              "Wants=sound.target",
@@ -121,34 +123,24 @@ def unit_text(argv: list[str], *, user: str | None, workdir: Path) -> str:
 
 
 def _absolute_argv(args: argparse.Namespace) -> list[str]:
-    """The command line again with files made absolute (a service starts elsewhere)."""
+    """The command line again from the parsed flags, files made absolute (a service starts
+    in another folder); ``--print-unit`` and ``--debug`` left out."""
+    p = argparse.ArgumentParser(add_help=False)
+    add_arguments(p)
+    files = {"model", "card"}
     out = [str(Path(args.run).absolute())]
-    for m in args.model or []:
-        out += ["--model", str(Path(m).absolute())]
-    for c in args.card or []:
-        out += ["--card", str(Path(c).absolute())]
-    for r in args.runtime or []:
-        out += ["--runtime", r]
-    skip = {"--print-unit", "--debug"}
-    argv = sys.argv[1:]
-    k = argv.index("field") + 1 if "field" in argv else 0
-    rest = argv[k:]
-    i = 0
-    while i < len(rest):
-        a = rest[i]
-        key = a.split("=", 1)[0]
-        takes = key in ("--model", "--card", "--spec", "--runtime")
-        if key in skip:
-            i += 1
+    for a in p._actions:
+        if not a.option_strings or a.dest in ("print_unit", "debug", "help"):
             continue
-        if takes:
-            i += 1 if "=" in a else 2
+        v = getattr(args, a.dest, None)
+        if v is None or v == a.default or v is False or a.help == argparse.SUPPRESS:
             continue
-        if not a.startswith("-") and a == args.run:
-            i += 1
+        flag = a.option_strings[0]
+        if v is True:
+            out.append(flag)
             continue
-        out.append(a)
-        i += 1
+        for item in v if isinstance(v, list) else [v]:
+            out += [flag, str(Path(item).absolute()) if a.dest in files else str(item)]
     return out
 
 

@@ -5,6 +5,7 @@ another program fills (a real tmpfs, root only)."""
 
 import json
 import os
+import shutil
 import subprocess
 import threading
 import time
@@ -246,3 +247,27 @@ def test_a_disk_filled_by_another_program_stops_audio_and_windows_go_on(tmp_path
         assert rf.read_status(run)["audio"]["stopped"]
     finally:
         subprocess.run(["umount", "-l", str(disk)], check=False)
+
+
+def test_print_unit_writes_a_service_file_and_installs_nothing(tmp_path):
+    r = cli("field", "run-here", "--model", MODELS / "demo.tflite", "--keep", "20GB",
+            "--keep", "14d", "--input", "USB mic", "--print-unit", cwd=tmp_path)
+    assert r.returncode == 0, r.stderr
+    assert not (tmp_path / "run-here").exists()  # printing the unit makes no run folder
+    unit = tmp_path / "scenemon-field.service"
+    unit.write_text(r.stdout)
+    keys = dict(line.split("=", 1) for line in r.stdout.splitlines() if "=" in line)
+    # systemd.service(5): Restart=always restarts the service after a crash or a kill;
+    # ExecStart= needs an absolute path to the program
+    assert keys["Restart"] == "always" and keys["Type"] == "simple"
+    exec_start = keys["ExecStart"]
+    assert exec_start.startswith("/")
+    assert f"field {tmp_path / 'run-here'}" in exec_start
+    assert str(MODELS / "demo.tflite") in exec_start
+    assert "--keep 20GB --keep 14d" in exec_start and "'USB mic'" in exec_start
+    assert "--print-unit" not in exec_start
+    assert keys["WantedBy"] == "multi-user.target"
+    analyze = shutil.which("systemd-analyze")
+    if analyze:  # systemd's own check of the file, where systemd is installed
+        v = subprocess.run([analyze, "verify", str(unit)], capture_output=True, text=True)
+        assert v.returncode == 0, v.stderr
