@@ -2,7 +2,8 @@
 
 Owns: `truth` (truth files and the live truth), `snippets` (snippet files and sidecars),
 `capture` (when a snippet is taken), `writer` (every file of a session, on its own
-thread), `reader` (`load_session`) and `repair` (``scenemon repair``).
+thread), `reader` (`load_session`), `repair` (``scenemon repair``) and `runfolder` (a field
+run's folder: its sessions in order, log, status file and disk budget).
 May import: ``monitor.base``, ``monitor.sound``, ``monitor.features``,
 ``monitor.inference``, ``monitor.decisions``.
 """
