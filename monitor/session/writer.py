@@ -194,7 +194,7 @@ class SessionWriter(ObserverBase):
         self._segment_used = 0
         self.segments: list[str] = ["audio.wav"] if audio else []
         self.windows_written = 0
-        self.snippets_written: list[Path] = []
+        self.snippets_written = 0  # a count, not a list: a week of snippets keeps memory flat
         self.audio_stopped: str | None = None  # why the audio stopped while windows go on
         self.snippets_not_written = 0  # snippets dropped after the audio stopped
         self._thread.start()
@@ -300,10 +300,10 @@ class SessionWriter(ObserverBase):
                             os.fsync(f.fileno())
                         last_sync = now
                 elif op == "snippet":
-                    self.snippets_written.append(write_snippet(
-                        self.dir, item[1], session_id=self.meta["session_id"],
-                        model_sha256=self.meta.get("model", {}).get("sha256"),
-                        sample_rate=self.sample_rate))
+                    write_snippet(self.dir, item[1], session_id=self.meta["session_id"],
+                                  model_sha256=self.meta.get("model", {}).get("sha256"),
+                                  sample_rate=self.sample_rate)
+                    self.snippets_written += 1
                 if self._q.empty():  # window lines flushed as they happen (a burst at once)
                     for f in jl:
                         f.flush()
@@ -409,7 +409,7 @@ class SessionWriter(ObserverBase):
             if summary is not None:
                 summary = {**summary, "audio_frames": self.audio_frames,
                            "audio_segments": list(self.segments),
-                           "snippets_written": len(self.snippets_written),
+                           "snippets_written": self.snippets_written,
                            "audio_stopped": self.audio_stopped,
                            "snippets_not_written": self.snippets_not_written,
                            "write_error": self.error_text, "items_not_written": self.dropped_items}
