@@ -323,12 +323,12 @@ class _StatusThread:
         with run.lock:
             gap = dict(run.open_gap) if run.open_gap else None
             if gap is not None:
-                gap["since"] = rf._iso(gap["wall_start"])
+                gap["since"] = rf.iso_utc(gap["wall_start"])
             stopped = handle.audio_stopped() if handle is not None else run.audio_stopped
             status = {
                 "tool": "scenemon", "run": str(run.dir), "pid": _pid(),
-                "state": run.state, "state_since": rf._iso(run.state_since),
-                "written_at": rf._iso(now["wall"]), "written_wall": now["wall"],
+                "state": run.state, "state_since": rf.iso_utc(run.state_since),
+                "written_at": rf.iso_utc(now["wall"]), "written_wall": now["wall"],
                 "written_mono": now["mono"], "boot_id": now["boot"],
                 "interval_s": run.plan.status_every_s,
                 "session": run.session.name if run.session else None, "sessions": run.sessions,

@@ -19,6 +19,12 @@ from monitor.session.reader import load_session
 from monitor.session.repair import wav_layout
 
 
+def _n(v: Any) -> float:
+    """A number a file gave, or 0.0 (the run's files are read as untrusted)."""
+    x = rf.number(v)
+    return 0.0 if x is None else x
+
+
 def _audio_s(d: Path) -> float:
     total = 0.0
     for seg in audio_segments(d):
@@ -51,8 +57,12 @@ def session_account(d: Path) -> dict[str, Any]:
     """
     s = load_session(d)
     summary = s.summary or {}
+    if not isinstance(summary.get("audio_removed", []), list):
+        summary = {**summary, "audio_removed": []}
+    if not isinstance(summary.get("input_gaps", []), list):
+        summary = {**summary, "input_gaps": []}
     removed = [x for x in summary.get("audio_removed") or [] if isinstance(x, dict)]
-    removed_s = sum(float(x.get("seconds") or 0.0) for x in removed)
+    removed_s = sum(_n(x.get("seconds")) for x in removed)
     kept_s = _audio_s(d)
     if s.summary is None:
         end = "still being recorded" if session_is_live(d) else "not closed (repair it)"
@@ -111,7 +121,7 @@ def run_account(run: Path) -> dict[str, Any]:
         # a gap open at a session's end is the same gap the log records between sessions
         "input_gaps": sum(1 for x in sessions for g in x["input_gaps"]
                           if g.get("end_s") is not None) + len(gaps),
-        "gap_s_between_sessions": round(sum(float(g.get("seconds") or 0.0) for g in gaps), 3),
+        "gap_s_between_sessions": round(sum(_n(g.get("seconds")) for g in gaps), 3),
         "repaired_sessions": sum(1 for x in sessions if x["end"].startswith("repaired")),
     }
     return {"run": str(run), "sessions": sessions, "gaps": gaps, "clock_steps": steps,
@@ -120,7 +130,13 @@ def run_account(run: Path) -> dict[str, Any]:
 
 
 def _t(wall: Any) -> str:
-    return rf._iso(float(wall)) if isinstance(wall, (int, float)) else "?"
+    x = rf.number(wall)
+    if x is None:
+        return "?"
+    try:
+        return rf.iso_utc(x)
+    except (OverflowError, ValueError, OSError):  # a time no calendar holds
+        return "?"
 
 
 def run_account_text(acc: dict[str, Any]) -> str:

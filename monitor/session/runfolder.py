@@ -94,7 +94,7 @@ def make_run(path: Path) -> Path:
         d.mkdir(parents=True, exist_ok=True)
         atomic_write(d / RUN_MARK, dumps({"tool": "scenemon", "kind": "run",
                                           "version": __version__,
-                                          "created": _iso(time.time())}, indent=2).encode())
+                                          "created": iso_utc(time.time())}, indent=2).encode())
     except OSError as exc:
         raise SessionError(f"{d}: cannot create the run folder ({exc.strerror})") from None
     return d
@@ -192,7 +192,24 @@ def clock_now() -> dict[str, Any]:
     return {"wall": round(time.time(), 3), "mono": round(time.monotonic(), 3), "boot": boot_id()}
 
 
-def _iso(wall: float) -> str:
+def iso_utc(wall: float) -> str:
+    """A wall-clock time as ISO 8601 in UTC (``2026-12-04T06:00:00Z``).
+
+    Parameters
+    ----------
+    wall : float
+        Seconds since the epoch.
+
+    Returns
+    -------
+    str
+        The time.
+
+    Raises
+    ------
+    OverflowError, ValueError, OSError
+        A time beyond what the C library's calendar holds.
+    """
     return time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime(wall))
 
 
@@ -309,8 +326,30 @@ def read_status(path: Path) -> dict[str, Any]:
     return st
 
 
-def _num(v: Any) -> float | None:
-    return float(v) if isinstance(v, (int, float)) and not isinstance(v, bool) else None
+def number(v: Any) -> float | None:
+    """A finite JSON number as float, else None (a status file may come from anywhere).
+
+    Parameters
+    ----------
+    v : object
+        A value read from JSON.
+
+    Returns
+    -------
+    float or None
+        The number, or None for anything else (a boolean, text, NaN, beyond float64).
+    """
+    if isinstance(v, bool) or not isinstance(v, (int, float)):
+        return None
+    try:
+        f = float(v)
+    except OverflowError:
+        return None
+    return f if f == f and abs(f) != float("inf") else None
+
+
+def _obj(v: Any) -> dict[str, Any]:
+    return v if isinstance(v, dict) else {}
 
 
 def health(status: dict[str, Any], *, running: bool, now: dict[str, Any] | None = None,
@@ -341,10 +380,11 @@ def health(status: dict[str, Any], *, running: bool, now: dict[str, Any] | None 
     problems = []
     if not running:
         problems.append("no scenemon process is running this folder")
-    every = _num(status.get("interval_s")) or 5.0
+    every = min(max(number(status.get("interval_s")) or 5.0, 0.1), 3600.0)
     stale = stale_after_s if stale_after_s is not None else max(15.0, 3 * every)
-    mono, wall = _num(status.get("written_mono")), _num(status.get("written_wall"))
-    if status.get("boot_id") and status.get("boot_id") == now.get("boot") and mono is not None:
+    mono, wall = number(status.get("written_mono")), number(status.get("written_wall"))
+    if isinstance(status.get("boot_id"), str) and status.get("boot_id") == now.get("boot") \
+            and mono is not None:
         age = now["mono"] - mono
     else:
         age = now["wall"] - wall if wall is not None else None
@@ -354,11 +394,11 @@ def health(status: dict[str, Any], *, running: bool, now: dict[str, Any] | None 
     state = status.get("state")
     if running and state != "listening":
         problems.append(f"it is not listening: {state}")
-    last = status.get("last_window") or {}
-    lag = _num(last.get("age_s"))
+    last = _obj(status.get("last_window"))
+    lag = number(last.get("age_s"))
     if running and state == "listening" and (lag is None or lag > max(10.0, 2 * every)):
         problems.append("no window for " + (f"{lag:.0f} s" if lag is not None else "this session"))
-    audio = status.get("audio") or {}
+    audio = _obj(status.get("audio"))
     if running and audio.get("stopped"):
         problems.append(f"audio is not recorded: {audio['stopped']}")
     return problems
@@ -401,32 +441,33 @@ def status_text(status: dict[str, Any], problems: list[str]) -> str:
     str
         The lines.
     """
-    last = status.get("last_window") or {}
-    gaps = status.get("gaps") or {}
-    disk = status.get("disk") or {}
-    budget = status.get("budget") or {}
-    audio = status.get("audio") or {}
+    last = _obj(status.get("last_window"))
+    gaps = _obj(status.get("gaps"))
+    disk = _obj(status.get("disk"))
+    budget = _obj(status.get("budget"))
+    audio = _obj(status.get("audio"))
+    gap_open = _obj(gaps.get("open"))
     lines = [f"run       {status.get('run')}  ({'healthy' if not problems else 'NOT healthy'})",
              f"state     {status.get('state')} since {status.get('state_since', '?')}, "
              f"written {status.get('written_at', '?')}",
              f"session   {status.get('session')} ({status.get('sessions', 0)} in the run)",
              f"last      window ending {last.get('t1', '?')} s into the session, "
-             f"{_dur(_num(last.get('age_s')))} ago, decision {last.get('decision')}",
+             f"{_dur(number(last.get('age_s')))} ago, decision {last.get('decision')}",
              f"hour      {status.get('windows_last_hour', 0)} windows, "
              f"{status.get('decision_changes_last_hour', 0)} decision changes",
              f"losses    {status.get('overruns', 0)} overruns, {gaps.get('count', 0)} gaps "
-             f"({_dur(_num(gaps.get('seconds')) or 0.0)})"
-             + (f", one open since {gaps['open'].get('since')}: {gaps['open'].get('cause')}"
-                if gaps.get("open") else ""),
+             f"({_dur(number(gaps.get('seconds')) or 0.0)})"
+             + (f", one open since {gap_open.get('since')}: {gap_open.get('cause')}"
+                if gap_open else ""),
              f"clock     {status.get('clock_steps', 0)} wall-clock steps",
-             f"disk      {_size(_num(disk.get('free_bytes')))} free of "
-             f"{_size(_num(disk.get('total_bytes')))}",
-             f"budget    {_size(_num(budget.get('used_bytes')))} used"
-             + (f" of {_size(_num(budget.get('keep_bytes')))}" if budget.get("keep_bytes") else "")
-             + (f", audio kept {_dur(_num(budget.get('keep_s')))}" if budget.get("keep_s") else "")
+             f"disk      {_size(number(disk.get('free_bytes')))} free of "
+             f"{_size(number(disk.get('total_bytes')))}",
+             f"budget    {_size(number(budget.get('used_bytes')))} used"
+             + (f" of {_size(number(budget.get('keep_bytes')))}" if budget.get("keep_bytes") else "")
+             + (f", audio kept {_dur(number(budget.get('keep_s')))}" if budget.get("keep_s") else "")
              + f"; {budget.get('removed_files', 0)} audio files removed "
-               f"({_size(_num(budget.get('removed_bytes')) or 0)}, "
-               f"{_dur(_num(budget.get('removed_s')) or 0.0)})",
+               f"({_size(number(budget.get('removed_bytes')) or 0)}, "
+               f"{_dur(number(budget.get('removed_s')) or 0.0)})",
              f"audio     {'recording' if audio.get('recording') else 'not recording'}"
              + (f": {audio['stopped']}" if audio.get("stopped") else "")]
     if budget.get("over_budget"):
@@ -573,7 +614,7 @@ def _record_removal(session: Path, r: Removal) -> None:
     if any(isinstance(x, dict) and x.get("file") == r.file for x in removed):
         return
     removed.append({"file": r.file, "bytes": r.bytes, "seconds": round(r.seconds, 3),
-                    "reason": r.reason, "removed_at": _iso(time.time())})
+                    "reason": r.reason, "removed_at": iso_utc(time.time())})
     summary["audio_removed"] = removed
     atomic_write(sp, dumps(summary, indent=2).encode())
 

@@ -329,3 +329,43 @@ def test_an_audio_file_with_a_hostile_header_is_read_or_refused(tmp_path, fmt, f
         assert str(p) in str(exc)
         return
     assert x.dtype == np.float32 and x.ndim == 1 and np.all(np.isfinite(x))
+
+
+STATUS_KEYS = ["state", "written_wall", "written_mono", "boot_id", "interval_s", "last_window",
+               "gaps", "disk", "budget", "audio", "session", "sessions", "overruns",
+               "windows_last_hour", "clock_steps", "state_since"]
+
+
+@COMMANDS
+@given(changes=st.dictionaries(st.sampled_from(STATUS_KEYS), json_values, max_size=4),
+       whole=st.one_of(st.none(), json_values))
+def test_a_status_file_of_any_content_is_shown_or_refused(tmp_path, changes, whole):
+    from monitor.session.runfolder import make_run
+
+    run = make_run(tmp_path / f"run{len(list(tmp_path.iterdir()))}")
+    good = {"state": "listening", "written_wall": 1.0, "last_window": {"t1": 1.0, "age_s": 1.0},
+            "gaps": {"count": 0}, "disk": {"free_bytes": 1}, "budget": {}, "audio": {}}
+    body = {**good, **changes} if whole is None else whole
+    (run / "status.json").write_text(json.dumps(body))
+    for args in (("status", run), ("status", run, "--json")):
+        r = cli(*args)
+        assert r.returncode in (1, 2), r.stderr  # nobody runs it: never healthy
+        assert "Traceback" not in r.stderr and "--debug" not in r.stderr, r.stderr  # no crash
+
+
+@COMMANDS
+@given(lines=st.lists(st.one_of(json_values.map(json.dumps),
+                                st.dictionaries(st.sampled_from(["event", "cause", "seconds",
+                                                                 "wall_start", "wall_end",
+                                                                 "step_s", "wall_after"]),
+                                                json_values, max_size=5).map(json.dumps),
+                                st.text(max_size=30)), max_size=6))
+def test_a_run_log_of_any_content_is_accounted_or_refused(tmp_path, lines):
+    from monitor.session.runfolder import make_run
+
+    run = make_run(tmp_path / f"run{len(list(tmp_path.iterdir()))}")
+    (run / "run.jsonl").write_text("\n".join(lines))
+    for args in (("report", run), ("report", run, "--json")):
+        r = cli(*args)
+        assert r.returncode in (0, 2), r.stderr
+        assert "Traceback" not in r.stderr and "--debug" not in r.stderr, r.stderr
