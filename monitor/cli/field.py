@@ -170,7 +170,7 @@ def run(args: argparse.Namespace) -> int:
     from monitor.session.runfolder import parse_keep
 
     keep = parse_keep(args.keep)
-    reserve = parse_keep([args.reserve]).bytes
+    reserve = parse_keep([args.reserve], "--reserve").bytes
     if reserve is None:
         raise ScenemonError(f"--reserve {args.reserve!r}: give a size (200MB)")
     if args.print_unit:

@@ -166,6 +166,9 @@ def run_account_text(acc: dict[str, Any]) -> str:
         for g in x["input_gaps"]:
             lines.append(f"    input gap {g.get('start_s')}-{g.get('end_s') or 'end'} s: "
                          f"{g.get('cause')}")
+        if x["windows_after_gap"]:
+            lines.append(f"    {x['windows_after_gap']} windows after lost audio "
+                         f"({x['gap_samples']} samples in all; each window's gap field)")
         if x["audio_stopped"]:
             lines.append(f"    audio stopped: {x['audio_stopped']}")
         if x["failure"]:

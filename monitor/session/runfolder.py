@@ -497,7 +497,7 @@ class Keep:
         return {"keep_bytes": self.bytes, "keep_s": self.seconds}
 
 
-def parse_keep(values: list[str] | None) -> Keep:
+def parse_keep(values: list[str] | None, flag: str = "--keep") -> Keep:
     """The budget of ``--keep`` values: sizes (``20GB``, ``500MiB``) and ages (``14d``, ``12h``).
 
     kB, MB, GB, TB are powers of 1000, KiB, MiB, GiB, TiB powers of 1024 (IEC 80000-13).
@@ -507,6 +507,8 @@ def parse_keep(values: list[str] | None) -> Keep:
     ----------
     values : list of str or None
         The ``--keep`` values.
+    flag : str
+        The flag the values came from, for the message.
 
     Returns
     -------
@@ -524,18 +526,18 @@ def parse_keep(values: list[str] | None) -> Keep:
             text = part.strip().lower().replace(" ", "")
             m = re.fullmatch(r"(\d+(?:\.\d+)?)([a-z]+)", text)
             if not m or (m.group(2) not in _SIZE_UNITS and m.group(2) not in _AGE_UNITS):
-                raise ScenemonError(f"--keep {part.strip()!r}: give a size (20GB, 500MiB) or "
+                raise ScenemonError(f"{flag} {part.strip()!r}: give a size (20GB, 500MiB) or "
                                     f"an age (14d, 12h)")
             n = float(m.group(1))
             if not n > 0:
-                raise ScenemonError(f"--keep {part.strip()!r}: must be above zero")
+                raise ScenemonError(f"{flag} {part.strip()!r}: must be above zero")
             if m.group(2) in _SIZE_UNITS:
                 if size is not None:
-                    raise ScenemonError(f"--keep {part.strip()!r}: a size is given twice")
+                    raise ScenemonError(f"{flag} {part.strip()!r}: a size is given twice")
                 size = int(n * _SIZE_UNITS[m.group(2)])
             else:
                 if age is not None:
-                    raise ScenemonError(f"--keep {part.strip()!r}: an age is given twice")
+                    raise ScenemonError(f"{flag} {part.strip()!r}: an age is given twice")
                 age = n * _AGE_UNITS[m.group(2)]
     return Keep(size, age)
 

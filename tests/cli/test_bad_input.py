@@ -375,6 +375,16 @@ def case_field_keep_size_twice(tmp_path):
             "--keep", "given twice")
 
 
+def case_field_reserve_an_age(tmp_path):
+    return (["field", tmp_path / "run", "--model", MODELS / "demo.tflite", "--reserve", "3d"],
+            "--reserve", "give a size")
+
+
+def case_field_reserve_not_a_size(tmp_path):
+    return (["field", tmp_path / "run", "--model", MODELS / "demo.tflite", "--reserve", "lots"],
+            "--reserve", "give a size")
+
+
 def case_field_missing_model(tmp_path):
     return ["field", tmp_path / "run", "--model", tmp_path / "nope.tflite"], "nope.tflite", \
         "not found"
