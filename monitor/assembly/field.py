@@ -234,6 +234,7 @@ class _StatusThread:
         self.thread = threading.Thread(target=self._loop, name="field-status", daemon=True)
         self._offset = time.time() - time.monotonic()
         self._last_budget = -1e18
+        self._budget_lock = threading.Lock()
 
     def start(self) -> None:
         self.thread.start()
@@ -282,15 +283,16 @@ class _StatusThread:
         plan = self.run.plan
         if plan.keep.bytes is None and plan.keep.seconds is None:
             return
-        now = time.monotonic()
-        if not force and now - self._last_budget < BUDGET_EVERY_S:
-            return
-        self._last_budget = now
-        try:
-            removed = rf.enforce_budget(self.run.dir, plan.keep, current=current)
-        except OSError as exc:
-            _say(f"{self.run.dir}: the budget could not be kept ({exc})")
-            removed = []
+        with self._budget_lock:  # the session loop (at a start) and this thread both call it
+            now = time.monotonic()
+            if not force and now - self._last_budget < BUDGET_EVERY_S:
+                return
+            self._last_budget = now
+            try:
+                removed = rf.enforce_budget(self.run.dir, plan.keep, current=current)
+            except OSError as exc:
+                _say(f"{self.run.dir}: the budget could not be kept ({exc})")
+                removed = []
         for r in removed:
             _log(self.run.dir, "audio_removed", session=r.session, file=r.file, bytes=r.bytes,
                  seconds=round(r.seconds, 3), reason=r.reason)
