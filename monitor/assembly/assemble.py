@@ -172,7 +172,8 @@ def open_source(src: FileInput | MicInput | Source, card: ModelCard) -> Source:
 
     return MicSource(src.device, model_rate=card.sample_rate,
                      window_samples=card.window_samples, latency=src.latency,
-                     blocksize=src.blocksize, max_seconds=src.seconds)
+                     blocksize=src.blocksize, max_seconds=src.seconds,
+                     reopen_tries=src.reopen_tries, reopen_wait_s=src.reopen_wait_s)
 
 
 # --- where sessions go ---------------------------------------------------------------------

@@ -216,6 +216,7 @@ class Engine:
             "latency_ms_median": _r(percentile(self._latency, 50)),
             "latency_ms_p99": _r(percentile(self._latency, 99)),
             "overruns": ring.overruns, "dropped_samples": ring.dropped,
+            "device_gap_samples": ring.skipped,
             "input_overflows": ring.producer_overflows,
             "stopped_by_user": self.stopped_by_user,
         })

@@ -75,12 +75,18 @@ class MicInput:
         Frames per callback (None: about 50 ms; 0: PortAudio's choice).
     seconds : float or None
         Stop after this much audio.
+    reopen_tries : int
+        Tries to reopen a lost device by name before the session ends.
+    reopen_wait_s : float
+        The longest wait between two tries (they double from 1 s).
     """
 
     device: str | None = None  # an index or part of a name; None: the preferred default
     latency: str | float = "high"
     blocksize: int | None = None  # None: about 50 ms; 0: PortAudio's choice
     seconds: float | None = None  # stop after this much audio
+    reopen_tries: int = 3  # about 2 s; a field run waits longer within its session
+    reopen_wait_s: float = 1.0
 
 
 @dataclass(frozen=True)

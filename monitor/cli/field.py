@@ -17,6 +17,7 @@ from monitor.cli.flags import (
     blocksize,
     latency,
     positive,
+    positive_int,
     segment_minutes,
     session_plan,
 )
@@ -56,6 +57,10 @@ def add_arguments(p: argparse.ArgumentParser) -> None:
                    help="PortAudio latency: high (default), low, or seconds")
     g.add_argument("--blocksize", type=blocksize, default=None, metavar="FRAMES",
                    help="frames per callback (default: about 50 ms)")
+    g.add_argument("--reopen-tries", type=positive_int, default=10, metavar="N",
+                   help="tries to reopen a lost device inside the session, 0.2, 1, 2, 4, then "
+                        "8 s apart, before the session ends and the run waits for it "
+                        "(default 10: about a minute)")
     r = p.add_argument_group("the run")
     r.add_argument("--keep", action="append", metavar="BUDGET",
                    help="disk budget: a size (20GB, 500MiB) and/or an age (14d, 12h); the "
@@ -178,8 +183,11 @@ def run(args: argparse.Namespace) -> int:
         sys.stdout.write(unit_text(_absolute_argv(args), user=user, workdir=Path.cwd()))
         return 0
     args.out, args.headless = None, True
-    plan = session_plan(args, MicInput(args.input, args.latency, args.blocksize, None),
-                        name="field", live_truth=False)
+    # a device that comes back within about a minute (a sound server restarting, a cable
+    # replugged) is reopened inside the session: 0.2, 1, 2, 4, then 8 s between tries
+    mic = MicInput(args.input, args.latency, args.blocksize, None,
+                   reopen_tries=args.reopen_tries, reopen_wait_s=8.0)
+    plan = session_plan(args, mic, name="field", live_truth=False)
     from monitor.assembly.field import run_field
 
     return run_field(FieldPlan(Path(args.run), plan, keep, session_s=3600.0 * args.session_hours,

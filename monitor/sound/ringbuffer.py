@@ -14,6 +14,7 @@ knows where on the sample clock its samples sit, gaps included.
 from __future__ import annotations
 
 import time
+from collections import deque
 
 import numpy as np
 
@@ -44,6 +45,8 @@ class RingBuffer:
         self.overruns = 0  # consumer: reads that found lost audio
         self.dropped = 0  # consumer: samples lost in total
         self.producer_overflows = 0  # producer: input-overflow flags seen by the source
+        self.skipped = 0  # consumer: samples the producer skipped (device gaps), in total
+        self._skips: deque[tuple[int, int]] = deque()  # (where, how many): producer appends
 
     # producer side
     def write(self, block: np.ndarray) -> None:
@@ -64,8 +67,16 @@ class RingBuffer:
         self.last_write_t = time.monotonic()
 
     def skip(self, n: int) -> None:
-        """Producer: advance the clock by `n` samples that never arrived (a device gap)."""
-        self._claimed = self._written + int(n)
+        """Producer: advance the clock by `n` samples that never arrived (a device gap).
+
+        The consumer's `read` stops before them and reports them as the gap before the
+        samples that follow, so no window is cut across them.
+        """
+        n = int(n)
+        if n <= 0:
+            return
+        self._skips.append((self._written, n))  # before the count is published
+        self._claimed = self._written + n
         self._written = self._claimed
 
     def free(self) -> int:
@@ -91,6 +102,16 @@ class RingBuffer:
         """
         return self._written - self._read
 
+    def _jump_skips(self) -> int:
+        """Consumer: move past device gaps that start at or before the read position."""
+        skipped = 0
+        while self._skips and self._skips[0][0] <= self._read:
+            at, k = self._skips.popleft()
+            if at + k > self._read:
+                skipped += at + k - self._read
+                self._read = at + k
+        return skipped
+
     def read(self, max_samples: int | None = None) -> tuple[np.ndarray, int]:
         """Take the unread samples.
 
@@ -104,14 +125,19 @@ class RingBuffer:
         samples : numpy.ndarray
             1-D float32 copy, starting at the old read position plus `gap`.
         gap : int
-            Samples lost (overwritten before they could be read) just before `samples`.
+            Samples lost just before `samples`: overwritten before they could be read, or
+            skipped by the producer (a device gap).
         """
         w = self._written
         lost = 0
+        skipped = self._jump_skips()  # a device gap where the reader stands: not an overrun
         if w - self._read > self.capacity:
             lost = w - self.capacity - self._read
             self._read += lost
+            skipped += self._jump_skips()  # (a gap the overrun jumped over counts as lost)
         n = w - self._read
+        if self._skips:  # stop before the next device gap
+            n = min(n, self._skips[0][0] - self._read)
         if max_samples is not None:
             n = min(n, max_samples)
         start = self._read
@@ -131,4 +157,5 @@ class RingBuffer:
         if lost:
             self.overruns += 1
             self.dropped += lost
-        return out, lost
+        self.skipped += skipped
+        return out, lost + skipped

@@ -507,7 +507,8 @@ class MicSource:
     - "mic-pump" (own thread) down-mixes and resamples the raw frames to the model rate
       (soxr HQ, streaming) into `ring`, and keeps the watchdog: no frames for `watchdog_s`
       or an inactive stream means the input is lost. It then counts a gap, tries to reopen
-      the device by name (indices shift after a replug) `reopen_tries` times, and otherwise
+      the device by name (indices shift after a replug) `reopen_tries` times, waiting 0.2 s,
+      then 1, 2, 4 ... seconds (at most `reopen_wait_s`) between tries, and otherwise
       ends the source with `failure` set, so the session closes with its files intact.
 
     Parameters
@@ -528,6 +529,8 @@ class MicSource:
         Seconds without frames after which the device counts as lost.
     reopen_tries : int
         Times a lost device is reopened by name before the source gives up.
+    reopen_wait_s : float
+        The longest wait between two tries (the waits double from 1 s up to it).
     max_seconds : float, optional
         Stop after this many seconds of audio.
 
@@ -542,6 +545,7 @@ class MicSource:
     def __init__(self, device: str | int | None = None, *, model_rate: int,
                  window_samples: int, latency: str | float = "high", blocksize: int | None = None,
                  ring_seconds: float = 16.0, watchdog_s: float = 2.0, reopen_tries: int = 3,
+                 reopen_wait_s: float = 1.0,
                  max_seconds: float | None = None) -> None:
         self.sd = sd = import_sounddevice()
         dev = resolve_device(sd, device)
@@ -561,6 +565,7 @@ class MicSource:
         self.latency = latency
         self.blocksize = self.native_rate // 20 if blocksize is None else int(blocksize)
         self.watchdog_s, self.reopen_tries = watchdog_s, reopen_tries
+        self.reopen_wait_s = float(reopen_wait_s)
         self.max_seconds = max_seconds
         self.ring = RingBuffer(max(int(ring_seconds * model_rate), 4 * window_samples))
         # raw frames from the callback, interleaved; room for a few seconds
@@ -659,7 +664,8 @@ class MicSource:
         """Re-scan PortAudio's devices and reopen ours by name; True on success."""
         name = self.device["name"]
         for attempt in range(self.reopen_tries):
-            if self._stop.wait(1.0 if attempt else 0.2):
+            wait = 0.2 if attempt == 0 else min(self.reopen_wait_s, 2.0 ** (attempt - 1))
+            if self._stop.wait(wait):
                 return False
             self._close_stream()
             try:

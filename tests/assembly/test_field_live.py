@@ -70,12 +70,12 @@ def _load_sink() -> None:
     subprocess.run(["bash", str(SERVER), "start"], capture_output=True)
 
 
-def _start(run: Path, log: Path) -> subprocess.Popen:
+def _start(run: Path, log: Path, *extra: str) -> subprocess.Popen:
     with open(log, "ab") as err:
         return subprocess.Popen(
             [sys.executable, "-m", "monitor", "field", str(run), "--model",
              str(MODELS / "demo.tflite"), "--input", "pulse", "--status-every", "0.3",
-             "--session-hours", "0.002", "--keep", "400kB", "--reserve", "1MB"],
+             "--reserve", "1MB", *extra],
             cwd=ROOT, stdout=subprocess.DEVNULL, stderr=err)
 
 
@@ -107,8 +107,10 @@ def _listening_with(n: int):
 def test_killed_five_times_with_the_device_removed_and_the_budget_reached(pulse, tmp_path):
     run, log = tmp_path / "run", tmp_path / "field.log"
     kills = 0
+    # short sessions, a small budget, a device given up within the session after 3 tries
+    flags = ("--session-hours", "0.002", "--keep", "400kB", "--reopen-tries", "3")
     for k in range(5):
-        p = _start(run, log)
+        p = _start(run, log, *flags)
         p.run = run
         try:
             _wait(p, "windows", _listening_with(4))
@@ -132,7 +134,7 @@ def test_killed_five_times_with_the_device_removed_and_the_budget_reached(pulse,
             _load_sink()
     assert kills == 5
     # a last start repairs the fifth kill's session; then a clean stop (as systemd stops it)
-    p = _start(run, log)
+    p = _start(run, log, *flags)
     p.run = run
     try:
         _wait(p, "windows after the last start", _listening_with(2))
@@ -176,3 +178,39 @@ def test_killed_five_times_with_the_device_removed_and_the_budget_reached(pulse,
     # nobody runs the folder now: status says so, and exits 1
     r = cli("status", run)
     assert r.returncode == 1 and "no scenemon process is running" in r.stdout
+
+
+def test_a_device_back_within_the_session_leaves_a_recorded_gap_no_window_spans(pulse, tmp_path):
+    run, log = tmp_path / "run", tmp_path / "field.log"
+    p = _start(run, log)  # the default: about a minute of tries inside the session
+    p.run = run
+    try:
+        _wait(p, "windows", _listening_with(4))
+        module = _sink_module()
+        assert module is not None
+        subprocess.run(["pactl", "unload-module", module], check=True)
+        time.sleep(3.0)  # the device stays away a few seconds (a pause, not a measurement)
+        _load_sink()
+        _wait(p, "windows after the device came back", _listening_with(16))
+        p.send_signal(signal.SIGTERM)
+        assert p.wait(timeout=60) == 0, log.read_text()[-2000:]
+    finally:
+        if p.poll() is None:
+            p.kill()
+            p.wait()
+        _load_sink()
+    sessions = rf.run_sessions(run)
+    assert len(sessions) == 1, "the device came back within the session's tries"
+    summary = json.loads((sessions[0] / "summary.json").read_text())
+    gaps = summary["input_gaps"]
+    assert len(gaps) == 1 and summary["clean"] and summary["reopens"] == 1
+    g = gaps[0]
+    assert g["end_s"] > g["start_s"] and g["cause"] and g["wall_end"] > g["wall_start"]
+    windows = [json.loads(x) for x in (sessions[0] / "windows.jsonl").read_text().splitlines()]
+    assert any(w["t0"] >= g["end_s"] for w in windows)  # it went on after the gap
+    for w in windows:  # no window is made of audio on both sides of the gap
+        assert w["t1"] <= g["start_s"] + 1e-6 or w["t0"] >= g["end_s"] - 1e-6, (w["t0"], g)
+    after = [w for w in windows if w["t0"] >= g["end_s"] - 1e-6]
+    assert after[0]["gap"] > 0  # the first window after it carries the samples lost
+    r = cli("report", run)
+    assert r.returncode == 0 and "input gap" in r.stdout

@@ -71,3 +71,35 @@ def test_windower_gap_moves_times_forward_on_the_grid():
     assert wins[0].start == 12 and wins[0].gap == 5
     assert wins[0].samples.tolist() == [101, 102, 103, 104]
     assert all(x.gap == 0 for x in wins[1:])
+
+
+def test_a_device_gap_is_reported_as_a_gap_and_no_window_spans_it():
+    # the producer skips samples that never arrived (a device away and back): the reader
+    # must stop before them and report them as the gap, never hand out the ring's old bytes
+    r = RingBuffer(200)
+    w = Windower(20, 10)
+    r.write(np.ones(35, np.float32))
+    r.skip(30)
+    r.write(np.full(40, 2.0, np.float32))
+    out, gap = r.read()
+    assert gap == 0 and out.tolist() == [1.0] * 35  # up to the gap, not across it
+    wins = w.push(out, gap)
+    out, gap = r.read()
+    assert gap == 30 and out.tolist() == [2.0] * 40
+    wins += w.push(out, gap)
+    assert r.overruns == 0 and r.dropped == 0 and r.skipped == 30
+    for win in wins:  # each window holds one side only
+        assert set(win.samples.tolist()) in ({1.0}, {2.0})
+        assert win.start + 20 <= 35 or win.start >= 65
+    assert [win.gap for win in wins if win.start >= 65][0] == 30
+
+
+def test_a_device_gap_longer_than_the_ring_is_a_gap_not_an_overrun():
+    r = RingBuffer(100)
+    r.write(np.ones(10, np.float32))
+    out, gap = r.read()
+    r.skip(1000)  # gone for ten ring lengths
+    r.write(np.full(50, 2.0, np.float32))
+    out, gap = r.read()
+    assert gap == 1000 and out.tolist() == [2.0] * 50
+    assert r.overruns == 0 and r.skipped == 1000
