@@ -29,7 +29,7 @@ from pathlib import Path
 from typing import Any
 
 from monitor.assembly.plan import FieldPlan, MicInput, OutputPlan
-from monitor.base.errors import DeviceError, ExitCode, SessionError
+from monitor.base.errors import DeviceError, ExitCode, ScenemonError, SessionError
 from monitor.base.files import SessionLock, session_is_live
 from monitor.decisions.contract import EngineStatus, ObserverBase, WindowResult
 from monitor.session import runfolder as rf
@@ -395,6 +395,9 @@ def run_field(plan: FieldPlan) -> int:
     from monitor.assembly.assemble import card_of, run_session
 
     card = card_of(plan.session.models[0])  # a bad card: exit 2 before anything is made
+    if plan.session_s < 4 * card.window_s:
+        raise ScenemonError(f"--session-hours {plan.session_s / 3600:g}: a session must hold "
+                            f"at least four {card.window_s:g} s windows of {card.name}")
     run_dir = rf.make_run(plan.run)
     lock = SessionLock(run_dir)
     try:
@@ -499,6 +502,9 @@ def _loop(plan: FieldPlan, run: _Run, watch: FieldWatch, status: _StatusThread,
                     run.gap_count += 1
                     run.gap_s += g["end_s"] - g["start_s"]
         written = _summary_on_disk(d)
+        _say(f"{d.name}: {summary.get('windows')} windows over {summary.get('duration_s')} s"
+             + (f", audio stopped: {written['audio_stopped']}" if written.get("audio_stopped")
+                else ""))
         with run.lock:
             run.audio_stopped = written.get("audio_stopped") or summary.get("audio_stopped")
         _log(run.dir, "session_end", session=d.name, windows=summary.get("windows"),

@@ -385,6 +385,11 @@ def case_field_reserve_not_a_size(tmp_path):
             "--reserve", "give a size")
 
 
+def case_field_session_too_short(tmp_path):
+    return (["field", tmp_path / "run", "--model", MODELS / "demo.tflite", "--session-hours",
+             "0.0001"], "--session-hours", "at least four")
+
+
 def case_field_missing_model(tmp_path):
     return ["field", tmp_path / "run", "--model", tmp_path / "nope.tflite"], "nope.tflite", \
         "not found"
