@@ -111,7 +111,7 @@ def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
     fe = FrontEnd(card)
     feats, labels, groups, notes = [], [], [], []
     for k, src in enumerate(sources):
-        f = fe.batch(file_windows(src, card))
+        f = fe.batch_of_stream(file_windows(src, card))
         lab = None
         if is_session(src):
             s = load_session(src)
