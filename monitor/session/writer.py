@@ -165,6 +165,7 @@ class SessionWriter(ObserverBase):
                      "audio_segment_s": segment_s}
         atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
         self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self._windows: list = []  # this batch's results, handed over by `on_status`
         self.max_backlog_bytes = int(max_backlog_bytes)
         self.backlog_bytes = 0  # audio queued and not yet written (under `_room`)
         self.peak_backlog_bytes = 0
@@ -193,8 +194,18 @@ class SessionWriter(ObserverBase):
         self._q.put(("audio", chunk, gap))
 
     def on_window(self, result: Any) -> None:
-        """Queue a `WindowResult` (and its second model's, if any); serialised here."""
-        self._q.put(("window", result))
+        """Keep a `WindowResult` (and its second model's, if any) for this batch's hand-over."""
+        self._windows.append(result)
+
+    def on_status(self, status: Any) -> None:
+        """After each batch: hand its windows to the writer's thread in one queue item.
+
+        One hand-over per batch, not per window: a fast replay makes thousands of windows a
+        second, and each item woke the writer to contend for the interpreter lock.
+        """
+        if self._windows:
+            batch, self._windows = self._windows, []
+            self._q.put(("windows", batch))
 
     def on_snippet(self, snippet: dict[str, Any]) -> None:
         """Queue a snippet from the capture policy (its "audio" is float32 at the model rate)."""
@@ -221,6 +232,7 @@ class SessionWriter(ObserverBase):
 
     def close(self, summary: dict[str, Any] | None, truth: list[Span] | None = None) -> None:
         """Finish: write truth and (when given) summary.json, close files, join the thread."""
+        self.on_status(None)  # windows of a batch whose status never came
         self._q.put(("close", summary, truth))
         self._thread.join()
         self.lock.release()
@@ -248,11 +260,12 @@ class SessionWriter(ObserverBase):
             elif op == "snippet":
                 self._release(_audio_bytes(item[1]))
             if self.error is not None:  # after a write error (disk full): drop, never tear
-                self.dropped_items += 1
+                self.dropped_items += len(item[1]) if op == "windows" else 1
                 continue
             try:
-                if op == "window":
-                    self._write_window(jl, item[1])
+                if op == "windows":
+                    for result in item[1]:
+                        self._write_window(jl, result)
                 elif op == "audio" and wav is not None:
                     wav = self._write_audio(wav, item[1], item[2])
                     now = time.monotonic()
