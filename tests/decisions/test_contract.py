@@ -54,3 +54,4 @@ def test_a_usual_line_takes_the_quick_way():
         "smoothed": [0.6, 0.3, 0.1], "top": "voices", "decision": None, "truth": "traffic",
         "level_dbfs": -31.25, "clipped": 0.0, "gap": 0, "ms": 0.41, "novelty": 2.5,
         "unfamiliar": False}) + "\n"
+
