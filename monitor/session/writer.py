@@ -11,7 +11,7 @@ what it could not hold as dropped audio). The writing process holds the session'
 tell a session being written from one that was killed.
 
 Layout (the README's session directory): ``session.json``, ``windows.jsonl`` (one line per window, flushed as it
-happens, one ``write`` per record; ``windows.b.jsonl`` for a second model), ``truth.tsv``,
+happens, one ``write`` per batch of windows; ``windows.b.jsonl`` for a second model), ``truth.tsv``,
 ``audio.wav`` (PCM_16 at the model rate, header brought up to date about once a second so a
 killed process leaves a WAV any reader opens; later segments ``audio-0001.wav``...),
 ``snippets/``, and ``summary.json`` only at a clean stop.
@@ -264,8 +264,7 @@ class SessionWriter(ObserverBase):
                 continue
             try:
                 if op == "windows":
-                    for result in item[1]:
-                        self._write_window(jl, result)
+                    self._write_windows(jl, item[1])
                 elif op == "audio" and wav is not None:
                     wav = self._write_audio(wav, item[1], item[2])
                     now = time.monotonic()
@@ -288,20 +287,25 @@ class SessionWriter(ObserverBase):
             except Exception as exc:  # noqa: BLE001 - disk full, I/O error: stop writing
                 self._fail(exc)
 
-    def _write_window(self, jl: list, result: Any) -> None:
-        records = [result, *getattr(result, "others", ())]
-        lines = []
-        for r in records:
+    def _write_windows(self, jl: list, batch: list) -> None:
+        """A batch's window lines, one write per file (model A's and B's)."""
+        per_file: list[list[str]] = [[], []]
+        for result in batch:
+            records = [result, *getattr(result, "others", ())]
             try:
-                lines.append(line_of(r))
+                lines = [line_of(r) for r in records]
             except (TypeError, ValueError):  # a record that is not JSON: a bug, not the disk
                 self.unserialisable += 1
-                return
-        while len(jl) < len(lines):
-            jl.append(open(self.dir / WINDOW_FILES[len(jl)], "a", encoding="utf-8"))
-        for f, line in zip(jl, lines):
-            f.write(line)
-        self.windows_written += 1
+                continue
+            for k, line in enumerate(lines):
+                per_file[k].append(line)
+            self.windows_written += 1
+        for k, lines in enumerate(per_file):
+            if not lines:
+                continue
+            while len(jl) <= k:
+                jl.append(open(self.dir / WINDOW_FILES[len(jl)], "a", encoding="utf-8"))
+            jl[k].write("".join(lines))
 
     def _write_audio(self, wav, chunk: np.ndarray, gap: int):
         pcm = to_pcm16(chunk)
