@@ -134,10 +134,24 @@ def case_model_truncated(tmp_path):
 
 
 def case_model_extension(tmp_path):
+    m = tmp_path / "m.pt"
+    m.write_bytes(b"x" * 10)
+    (tmp_path / "m.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "m.pt", "unknown model type"
+
+
+def case_onnx_not_onnx(tmp_path):
     m = tmp_path / "m.onnx"
     m.write_bytes(b"x" * 10)
     (tmp_path / "m.toml").write_text(CARD)
-    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "unknown model type"
+    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "not an ONNX model file"
+
+
+def case_onnx_damaged(tmp_path):
+    m = tmp_path / "m.onnx"
+    m.write_bytes(b"\x08\x09" + b"\xff" * 64)  # an ir_version field, then nothing sensible
+    (tmp_path / "m.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "cannot be loaded as an ONNX"
 
 
 def case_truth_overlap(tmp_path):
