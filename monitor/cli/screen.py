@@ -19,7 +19,8 @@ def interactive() -> bool:
 
 
 def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
-    """The terminal UI, or without a terminal (or with --headless) printed lines.
+    """The terminal UI, or without a terminal (or with --headless) printed lines; with
+    ``--serve``, the stage server beside either, for the session's whole life.
 
     Parameters
     ----------
@@ -35,10 +36,23 @@ def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
     int
         The exit code.
     """
-    if args.headless or not interactive():
-        from monitor.assembly.run import run_printed
+    served = None
+    if getattr(args, "serve", None):  # before the session: a port in use is bad input
+        from monitor.web.server import StageServer
 
-        return run_printed(plan, json_lines=args.headless)
-    from monitor.ui.app import run_ui
+        host, port = args.serve
+        served = StageServer(host, port, heading=heading)
+        served.start()
+        served.announce(sys.stderr)
+    extra = dict(observers=[served.feed], on_ready=served.attach) if served else {}
+    try:
+        if args.headless or not interactive():
+            from monitor.assembly.run import run_printed
 
-    return run_ui(plan, heading=heading)
+            return run_printed(plan, json_lines=args.headless, **extra)
+        from monitor.ui.app import run_ui
+
+        return run_ui(plan, heading=heading, **extra)
+    finally:
+        if served is not None:
+            served.stop()
