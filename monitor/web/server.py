@@ -66,6 +66,7 @@ FILES = {
     "/stage.css": ("stage.css", "text/css; charset=utf-8", "viewer"),
     "/stage.js": ("stage.js", "text/javascript; charset=utf-8", "viewer"),
     "/present.js": ("present.js", "text/javascript; charset=utf-8", "presenter"),
+    "/icon.svg": ("icon.svg", "image/svg+xml", "viewer"),
 }
 POSTS = {"/truth", "/capture"}  # the presenter's requests
 STREAM = "/events"
@@ -105,11 +106,11 @@ def page_file(name: str) -> bytes:
     Returns
     -------
     bytes
-        Its content; in ``stage.css`` every ``{{NAME}}`` of `palette.UI_COLOURS` is replaced
+        Its content; in ``stage.css`` and ``icon.svg`` every ``{{NAME}}`` of `palette.UI_COLOURS` is replaced
         by its colour, so the page and the terminal share one palette.
     """
     body = resources.files("monitor.web").joinpath("page", name).read_bytes()
-    if name.endswith(".css"):
+    if name.endswith((".css", ".svg")):
         for k, v in P.UI_COLOURS.items():
             body = body.replace(("{{" + k + "}}").encode(), v.encode())
     return body

@@ -86,6 +86,16 @@
     $("waiting").hidden = true;
   }
 
+  // the largest size the stylesheet allows at which the decided word fits its lane
+  function fit(lane, word) {
+    word.style.removeProperty("--fit");
+    const room = lane.clientWidth - lane.querySelector(".key").offsetWidth - 24;
+    if (word.scrollWidth > room && room > 0) {
+      const size = parseFloat(getComputedStyle(word).fontSize) * room / word.scrollWidth;
+      word.style.setProperty("--fit", `${Math.floor(size)}px`);
+    }
+  }
+
   function laneUpdate(lane, fig, t) {
     if (!fig) return;
     if (fig.d !== lane.d) { lane.d = fig.d; lane.since = t; }
@@ -99,7 +109,13 @@
     const col = d == null ? UNKNOWN : colourOf(d);
     n.style.setProperty("--c", col);
     n.dataset.decision = d == null ? "" : d;
-    n.querySelector(".word").textContent = d == null ? "listening" : words(d);
+    const word = n.querySelector(".word");
+    const text = d == null ? "listening" : words(d);
+    if (word.textContent !== text || lane.fitWidth !== n.clientWidth) {
+      word.textContent = text;
+      fit(n, word);
+      lane.fitWidth = n.clientWidth;
+    }
     n.querySelector(".key").textContent = d == null ? "" : keyOf(d);
     n.querySelector(".key").hidden = d == null;
     const p = lane.p && d != null ? lane.p[s.classes.indexOf(d)] : (lane.p ? Math.max(...lane.p) : null);
@@ -119,7 +135,7 @@
     const s = state.session, host = $("strip");
     if (!s) return;
     const two = s.names.length > 1;
-    const cell = host.clientWidth < 500 ? 10 : 14;
+    const cell = host.clientWidth < 500 ? 10 : host.clientWidth > 1000 ? 18 : 14;
     const fit = Math.max(8, Math.floor((host.clientWidth - 64) / cell));
     const hist = state.history.slice(-fit);
     const rows = two ? [["A", (w) => w.a.d], ["B", (w) => (w.b ? w.b.d : null)]] : [["decision", (w) => w.a.d]];
