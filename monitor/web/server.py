@@ -328,7 +328,10 @@ class StageServer:
         app.router.add_get(STREAM, self._events, allow_head=False)
         app.router.add_post("/truth", self._truth)
         app.router.add_post("/capture", self._capture)
-        runner = web.AppRunner(app, access_log=None, handle_signals=False)
+        # handler_cancellation: a browser that leaves ends its stream's handler at once (its
+        # place among the viewers is free again), not at the next write
+        runner = web.AppRunner(app, access_log=None, handle_signals=False,
+                               handler_cancellation=True)
         await runner.setup()
         self._runner = runner
         site = web.TCPSite(runner, self.host, self.port, shutdown_timeout=1.0, backlog=64)
@@ -436,7 +439,7 @@ class StageServer:
                     await asyncio.wait_for(resp.write(data), WRITE_TIMEOUT_S)
                     if data.startswith(b"event: end"):
                         return resp
-        except (ConnectionError, asyncio.TimeoutError, asyncio.CancelledError, RuntimeError):
+        except (ConnectionError, asyncio.TimeoutError, RuntimeError):
             pass  # the browser left, or was stuck: drop it
         finally:
             self._streams.discard(me)
