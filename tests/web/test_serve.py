@@ -236,6 +236,7 @@ def test_viewers_are_limited_and_a_refusal_is_503(server):
             s.close()
 
 
+@pytest.mark.slow  # the stuck socket is let go after the server's write timeout (5 s)
 def test_a_stuck_viewer_is_dropped_and_the_others_get_every_window(server):
     stuck = open_stream(server, server.viewer_token, rcvbuf=4096)  # never read from again
     good = open_stream(server, server.viewer_token)

@@ -136,7 +136,7 @@
     if (!s) return;
     const two = s.names.length > 1;
     const cell = host.clientWidth < 500 ? 10 : host.clientWidth > 1000 ? 18 : 14;
-    const fit = Math.max(8, Math.floor((host.clientWidth - 64) / cell));
+    const fit = Math.max(8, Math.floor((host.clientWidth - 84) / cell));  // less the row's label
     const hist = state.history.slice(-fit);
     const rows = two ? [["A", (w) => w.a.d], ["B", (w) => (w.b ? w.b.d : null)]] : [["decision", (w) => w.a.d]];
     rows.push(["truth", (w) => w.truth]);
