@@ -18,6 +18,14 @@ def interactive() -> bool:
     return sys.stdin.isatty() and sys.stdout.isatty() and os.environ.get("TERM") != "dumb"
 
 
+def _wait_for_enter() -> None:
+    """Hold the links and the QR code on the terminal until Enter (the live view covers them)."""
+    sys.stderr.write("scenemon: press Enter to open the live view (the links work for the whole "
+                     "session)\n")
+    sys.stderr.flush()
+    sys.stdin.readline()
+
+
 def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
     """The terminal UI, or without a terminal (or with --headless) printed lines; with
     ``--serve``, the stage server beside either, for the session's whole life.
@@ -37,15 +45,18 @@ def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
         The exit code.
     """
     served = None
-    if getattr(args, "serve", None):  # before the session: a port in use is bad input
-        from monitor.web.server import StageServer
-
-        host, port = args.serve
-        served = StageServer(host, port, heading=heading)
-        served.start()
-        served.announce(sys.stderr)
-    extra = dict(observers=[served.feed], on_ready=served.attach) if served else {}
     try:
+        if getattr(args, "serve", None):  # before the session: a port in use is bad input
+            from monitor.web.server import StageServer
+
+            host, port = args.serve
+            server = StageServer(host, port, heading=heading)
+            server.start()
+            served = server
+            served.announce(sys.stderr)
+            if not args.headless and interactive():  # the screen would cover the links at once
+                _wait_for_enter()
+        extra = dict(observers=[served.feed], on_ready=served.attach) if served else {}
         if args.headless or not interactive():
             from monitor.assembly.run import run_printed
 

@@ -239,6 +239,7 @@ def stage_run(tour, tmp_path_factory):
     folder = tmp_path_factory.mktemp("stage")
     piece = cut(tour[0], folder, *PIECE)
     browser = Chrome(folder)  # before the session, so the page is open for its first decision
+    run = None
     seen: list[tuple[float, list]] = []
     said: dict[str, str] = {}
     shots: list[Path] = []
@@ -298,6 +299,9 @@ def stage_run(tour, tmp_path_factory):
         problems = viewer.problems() + presenter.problems()
     finally:
         browser.close()
+        if run is not None and run.proc.poll() is None:
+            run.proc.kill()
+            run.proc.wait(10)
     keep(shots)
     return {"run": run, "code": code, "seen": seen, "live_at": live_at, "said": said,
             "shots": shots, "attacks": attacks, "ended": ended, "problems": problems,
