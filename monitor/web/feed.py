@@ -1,11 +1,12 @@
 """From the compute thread to the browsers: one small message per window, never a wait.
 
 `StageFeed.on_window` runs on the engine's compute thread. It makes a dict of a few numbers
-(`window_message`) and hands it to the server's event loop with `post` (the server's
-``loop.call_soon_threadsafe``: it appends to the loop's queue and writes one byte to its
-wake-up pipe, ignoring a full pipe), so the compute thread never waits for a browser, a
-socket or the loop. Everything else (the JSON text, each viewer's bounded queue, dropping a
-stuck viewer) happens on the server's thread.
+(`window_message`) and keeps it; `on_status`, after each batch of windows, hands the batch
+to the server's event loop with `post` (the server's ``loop.call_soon_threadsafe``: it
+appends to the loop's queue and writes one byte to its wake-up pipe, ignoring a full pipe;
+once per batch, so a fast replay's thousands of windows a second are a few calls), so the
+compute thread never waits for a browser, a socket or the loop. Everything else (the JSON
+text, each viewer's bounded queue, dropping a stuck viewer) happens on the server's thread.
 """
 
 from __future__ import annotations
@@ -67,15 +68,23 @@ class StageFeed(ObserverBase):
     Parameters
     ----------
     post : callable
-        Called on the compute thread with each window's message; it must never block (the
-        server passes a function that schedules the message on its own event loop).
+        Called on the compute thread with a list of window messages after each batch; it
+        must never block (the server passes a function that schedules them on its own event
+        loop).
     """
 
-    def __init__(self, post: Callable[[dict[str, Any]], None]) -> None:
+    def __init__(self, post: Callable[[list[dict[str, Any]]], None]) -> None:
         self._post = post
-        self.posted = 0  # windows handed on (read by tests and the closing line)
+        self._batch: list[dict[str, Any]] = []
+        self.posted = 0  # windows handed on (read by tests)
 
     def on_window(self, result: WindowResult) -> None:
-        """Hand the window's message to the server; compute thread, never blocks."""
-        self._post(window_message(result))
-        self.posted += 1
+        """Keep the window's message for the end of the batch; compute thread, never blocks."""
+        self._batch.append(window_message(result))
+
+    def on_status(self, status) -> None:
+        """After each batch: hand its messages to the server at once; compute thread, never blocks."""
+        if self._batch:
+            batch, self._batch = self._batch, []
+            self._post(batch)
+            self.posted += len(batch)

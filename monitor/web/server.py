@@ -2,8 +2,8 @@
 
 Threads: ``stage-server`` runs an asyncio event loop with an aiohttp server on it; every
 request, stream and queue below lives on that thread. The compute thread only calls
-`StageFeed.on_window`, which schedules the window's message on the loop
-(``call_soon_threadsafe``) and returns; the caller's thread calls `start`, `attach` (the
+`StageFeed.on_window` and `on_status`, which schedule each batch's messages on the loop
+(``call_soon_threadsafe``) and return; the caller's thread calls `start`, `attach` (the
 session's `SessionHandle`, before the first window) and `stop`. The presenter's truth and
 capture requests call the handle's thread-safe `set_truth` and `capture_now` (the very
 calls the terminal UI's keys make) in a worker thread of the loop, so the loop never waits
@@ -296,9 +296,9 @@ class StageServer:
         except RuntimeError:  # the loop closed between the check and the call
             pass
 
-    def _post(self, message: dict) -> None:
+    def _post(self, messages: list[dict]) -> None:
         """The feed's hand-off (compute thread): schedule `_publish`, never wait."""
-        self._call(self._publish, message)
+        self._call(self._publish, messages)
 
     # --- the server's thread --------------------------------------------------------------
     def _run(self, ready: threading.Event) -> None:
@@ -445,11 +445,12 @@ class StageServer:
             self._streams.discard(me)
         return resp
 
-    def _publish(self, message: dict) -> None:
-        self._history.append(message)
-        data = sse_event("window", message)
-        for s in self._streams:
-            s.put(data)
+    def _publish(self, messages: list[dict]) -> None:
+        for message in messages:
+            self._history.append(message)
+            data = sse_event("window", message)
+            for s in self._streams:
+                s.put(data)
 
     def _set_session(self, info: dict) -> None:
         self._session = info

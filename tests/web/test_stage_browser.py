@@ -34,7 +34,7 @@ from monitor.web.server import MAX_VIEWERS
 pytestmark = [pytest.mark.slow, pytest.mark.system]
 
 PHONE, DESKTOP = (390, 844), (1280, 800)
-PIECE = (22.0, 74.0)  # of the tour: the quiet room, voices from 30 s, traffic from 65 s
+PIECE = (22.0, 80.0)  # of the tour: the quiet room, voices from 30 s, traffic from 65 s
 
 
 def cut(tour_wav: Path, folder: Path, a: float, b: float) -> Path:
@@ -232,7 +232,7 @@ def keep(paths: list[Path]) -> None:
 
 @pytest.fixture(scope="module")
 def stage_run(tour, tmp_path_factory):
-    """One real-time replay of a 52 s piece of the tour with the viewer page on a desktop-sized
+    """One real-time replay of a 58 s piece of the tour with the viewer page on a desktop-sized
     screen and the presenter page on a phone-sized one; what the test saw, by the clock."""
     from chrome import Chrome
 
@@ -255,7 +255,7 @@ def stage_run(tour, tmp_path_factory):
         live_at = time.monotonic()
         started = time.monotonic()
         steps = {12.0: "truth voices", 20.0: "capture", 26.0: "refusals", 32.0: "no truth",
-                 49.0: "screenshots"}
+                 50.0: "screenshots"}
         attacker = None
         while run.proc.poll() is None and time.monotonic() - started < 120:
             now = time.monotonic()
@@ -384,7 +384,7 @@ def test_screenshots_of_both_pages_at_phone_and_desktop_size(stage_run):
         img = imread(str(p))[..., :3]
         w, h = sizes[p.stem.rsplit("-", 1)[1]]
         assert img.shape[:2] == (h, w)
-        # the traffic class's colour is on the page at 49 s (the decision, and the strip)
+        # the traffic class's colour is on the page at 50 s (the decision, and the strip)
         from monitor.base.palette import CLASS_COLOURS
 
         rgb = np.array([int(CLASS_COLOURS[2][k:k + 2], 16) for k in (1, 3, 5)]) / 255
