@@ -1,11 +1,12 @@
 """What browsers cost a session: CPU share of one core of a real-time ``replay --headless
---serve`` with 0, 1 and 20 viewers (event-stream clients on 127.0.0.1).
+--serve`` with 0, 1 and 20 viewers (event-stream clients on 127.0.0.1), and of the same
+session without ``--serve`` for reference.
 
 Each run replays the demo tour at real-time pace with the stage server on, connects the
 viewers (raw sockets that ask for the event stream and read everything it sends, in this
 process, so their own cost is not the session's), waits 8 s for the steady state, then
 measures the session process's CPU time (utime + stime from /proc) over SECONDS of wall
-time. Rounds go 0, 1, 20, 0, 1, 20, ... so a drift of the shared machine touches every
+time. Rounds go (none), 0, 1, 20, (none), 0, 1, 20, ... so a drift of the shared machine touches every
 count alike; each count's figure is its median over the rounds. Traffic stays on the
 loopback address and ends with each run.
 Run: .venv/bin/python benchmarks/bench_serve.py [--seconds 30] [--rounds 2]
@@ -74,13 +75,15 @@ class Viewers:
             s.close()
 
 
-def one_run(wav: Path, model: str, n: int, seconds: float, folder: Path) -> dict:
+def one_run(wav: Path, model: str, n: int | None, seconds: float, folder: Path) -> dict:
+    """One session; `n` viewers (None: no --serve at all)."""
+    serve = ["--serve", "127.0.0.1:0"] if n is not None else []
     p = subprocess.Popen([sys.executable, "-m", "monitor", "replay", str(wav), "--model", model,
-                          "--headless", "--serve", "127.0.0.1:0", "--out",
+                          "--headless", *serve, "--out",
                           str(folder / f"s{n}-{time.monotonic_ns()}")],
                          cwd=ROOT, stdout=subprocess.DEVNULL, stderr=subprocess.PIPE, text=True)
     link = None
-    while link is None:
+    while link is None and n is not None:
         line = p.stderr.readline()
         if not line:
             raise SystemExit("the session ended before printing its link")
@@ -88,7 +91,7 @@ def one_run(wav: Path, model: str, n: int, seconds: float, folder: Path) -> dict
         if m:
             link = (int(m.group(1)), m.group(2))
     threading.Thread(target=p.stderr.read, daemon=True).start()  # keep the pipe drained
-    viewers = Viewers(*link, n)
+    viewers = Viewers(*link, n) if n is not None else Viewers(0, "", 0)
     try:
         time.sleep(8.0)  # start-up and the first windows are not the steady state
         got0 = list(viewers.windows)
@@ -117,7 +120,7 @@ def main() -> int:
     from monitor.demo.tour import ensure_tour
 
     wav, _ = ensure_tour(ROOT / "recordings" / "demo")
-    counts = (0, 1, 20)
+    counts = (None, 0, 1, 20)
     results: dict[int, list[dict]] = {n: [] for n in counts}
     with tempfile.TemporaryDirectory() as td:
         for r in range(args.rounds):
@@ -126,15 +129,17 @@ def main() -> int:
                 results[n].append(res)
                 each = res["windows_each"]
                 got = f", {each[0]}-{each[1]} windows per viewer" if each else ""
-                print(f"round {r + 1}: {n:2d} viewers: {100 * res['share']:.2f}% of one core"
-                      f"{got}", flush=True)
+                what = "no --serve" if n is None else f"{n:2d} viewers"
+                print(f"round {r + 1}: {what}: {100 * res['share']:.2f}% of one core{got}",
+                      flush=True)
     base = statistics.median(x["share"] for x in results[0])
     print(f"\n{args.seconds:g} s at real-time pace, median of {args.rounds} round(s):")
     print("| viewers | CPU, % of one core | added by the viewers |")
     print("|---|---|---|")
     for n in counts:
         share = statistics.median(x["share"] for x in results[n])
-        print(f"| {n} | {100 * share:.2f} | {100 * (share - base):+.2f} points |")
+        added = "" if n is None else f"{100 * (share - base):+.2f} points"
+        print(f"| {'no --serve' if n is None else n} | {100 * share:.2f} | {added} |")
     return 0
 
 

@@ -27,6 +27,7 @@ from __future__ import annotations
 
 import asyncio
 import collections
+import errno
 import hmac
 import json
 import secrets
@@ -203,9 +204,7 @@ class StageServer:
         if self._start_error is not None:
             self._thread.join(5.0)
             exc = self._start_error
-            where = f"{_link_host(self.host)[0]}:{self.port}"
-            import errno
-
+            where = f"[{self.host}]:{self.port}" if ":" in self.host else f"{self.host}:{self.port}"
             if isinstance(exc, OSError) and exc.errno == errno.EADDRINUSE:
                 why = "the port is in use by another program (pick another, or 0 for any free one)"
             elif isinstance(exc, OSError) and exc.errno in (errno.EACCES, errno.EPERM):
