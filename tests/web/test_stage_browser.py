@@ -373,6 +373,17 @@ def test_refusals_while_the_session_records_every_window(stage_run, demo_card):
     assert len(stage_run["run"].lines) == expected  # every window line was printed too
 
 
+def test_the_links_and_a_qr_code_are_printed(stage_run):
+    err = "".join(stage_run["run"].err)
+    run = stage_run["run"]
+    assert run.viewer in err and run.presenter in err
+    assert run.token("viewer") != run.token("presenter")
+    assert "anyone with this link sees the decisions; no audio is served" in err
+    # the QR code: a square of half-block characters (segno's compact terminal output)
+    qr = [line for line in err.splitlines() if line and set(line) <= set("█▀▄ ")]
+    assert len(qr) >= 15 and len({len(line) for line in qr}) == 1
+
+
 def test_screenshots_of_both_pages_at_phone_and_desktop_size(stage_run):
     from matplotlib.image import imread
 
@@ -418,6 +429,11 @@ def test_two_models_side_by_side_and_the_page_comes_back_after_the_network_drops
         relay.restore()
         viewer.wait("document.getElementById('link').dataset.state === 'live'", 15)
         viewer.wait(f"document.getElementById('clock').textContent > {json.dumps(lost_clock)}", 15)
+        # "capture this" with no truth told: the page asks what the sound is, as the key does
+        presenter.click("#capture")
+        presenter.wait("!document.getElementById('ask').hidden")
+        presenter.click('#ask-keys button[data-label="voices"]')
+        presenter.wait("document.getElementById('said').textContent.startsWith('captured')")
         viewer.wait("document.getElementById('clock').textContent >= '0:00:14'", 30)
         shots += [shoot(viewer, DESKTOP, tmp_path / "stage-ab-viewer-desktop.png", False),
                   shoot(presenter, PHONE, tmp_path / "stage-ab-presenter-phone.png", True)]
@@ -434,5 +450,8 @@ def test_two_models_side_by_side_and_the_page_comes_back_after_the_network_drops
     last_a = json.loads((out / "windows.jsonl").read_text().splitlines()[-1])["decision"]
     last_b = json.loads((out / "windows.b.jsonl").read_text().splitlines()[-1])["decision"]
     assert shown == [last_a or "", last_b or ""] and last_a == "voices"
+    manual = [json.loads(p.read_text()) for p in (out / "snippets").glob("*/*.json")]
+    manual = [m for m in manual if m["reason"] == "manual"]
+    assert [m["label"] for m in manual] == ["voices"] and not (out / "truth.tsv").read_text().strip()
     # while the network was down the browser logged failed connections; nothing else went wrong
     assert [p for p in problems if "net::ERR_" not in p] == [], problems
