@@ -330,3 +330,50 @@ def test_any_presenter_body_gets_an_answer_not_a_failure():
         assert request(s, "/", token=s.viewer_token)[0] == 200
     finally:
         s.stop()
+
+
+@pytest.mark.slow  # a real session of a few seconds at real-time pace
+def test_with_a_truth_file_the_truth_buttons_are_off_and_capture_takes_its_truth(tour, tmp_path):
+    # a real session in this process: `run_session` with the server's feed and ready hook, as
+    # `scenemon replay --truth ... --serve` wires them; the recording is 4 s of the tour
+    import threading
+
+    import soundfile as sf
+
+    from monitor.assembly.assemble import run_session
+    from monitor.assembly.plan import FileInput, ModelPlan, OutputPlan, SessionPlan
+
+    x, sr = sf.read(str(tour[0]), dtype="float32")
+    wav = write_wav(tmp_path / "four.wav", x[35 * sr:39 * sr], sr=sr)
+    truth = tmp_path / "four.tsv"
+    truth.write_text("0.000\t4.000\tvoices\n")
+    plan = SessionPlan(source=FileInput(wav, realtime=True), models=(ModelPlan(MODELS / "demo.tflite"),),
+                       output=OutputPlan(tmp_path / "s"), truth=truth, live_truth=True)
+    s = StageServer("127.0.0.1", 0)
+    s.start()
+    done = {}
+    t = threading.Thread(target=lambda: done.update(
+        summary=run_session(plan, observers=[s.feed], on_ready=s.attach)))
+    try:
+        t.start()
+        sock = open_stream(s, s.presenter_token)
+        assert status_of(sock) == 200
+        r = Reader(sock)
+        hello = r.next_of("hello")
+        info = hello["session"] or r.next_of("session")
+        assert info["truth"] == "file" and info["capture"] and info["keys"] == ["q", "v", "t", "m"]
+        r.next_of("window")
+        r.next_of("window")  # the windows carry the file's truth by now
+        p = s.presenter_token
+        status, _, body = request(s, "/truth", method="POST", body={"label": "traffic"}, token=p)
+        assert status == 409 and "truth file" in json.loads(body)["error"]
+        status, _, body = request(s, "/capture", method="POST", body={}, token=p)
+        assert status == 200 and json.loads(body)["captured"]["label"] == "voices"
+        sock.close()
+    finally:
+        t.join(30)
+        s.stop()
+    assert done["summary"]["windows"] == 7
+    assert (tmp_path / "s" / "truth.tsv").read_text() == truth.read_text()  # the file's, untouched
+    snips = [json.loads(p.read_text()) for p in (tmp_path / "s" / "snippets").glob("*/*.json")]
+    assert [(m["reason"], m["label"]) for m in snips if m["reason"] == "manual"] == [("manual", "voices")]
