@@ -20,7 +20,10 @@ A viewer never slows the session: each stream has a queue of at most `QUEUE` mes
 viewer that falls that far behind, or whose socket takes more than `WRITE_TIMEOUT_S` to take
 a message, is disconnected (its browser reconnects and starts again from a fresh snapshot).
 At most `MAX_VIEWERS` streams are open at once (and `MAX_PRESENTERS` presenter streams
-beside them); one more gets 503.
+beside them); one more gets 503. A flood of sockets is cut short: beyond `MAX_CONNECTIONS`
+open connections a new one is closed as soon as it is accepted, and a connection that asks
+for nothing for `IDLE_S` seconds is closed, so the session's own files always find a file
+descriptor.
 """
 
 from __future__ import annotations
@@ -49,6 +52,8 @@ HEARTBEAT_S = 15.0  # a comment line on a quiet stream, so proxies and phones ke
 WRITE_TIMEOUT_S = 5.0  # a socket that takes longer to take one message is a stuck viewer
 RETRY_MS = 1000  # how soon a browser reconnects (the event stream's ``retry`` field)
 MAX_BODY = 1024  # bytes of a presenter request
+MAX_CONNECTIONS = 64  # open sockets at once: the streams and room for page loads
+IDLE_S = 15.0  # a connection that asks for nothing this long is closed
 
 # security headers on every answer, the refusals included
 HEADERS = {
@@ -132,6 +137,13 @@ def _link_host(host: str) -> list[str]:
     return [f"[{host}]" if ":" in host else host]
 
 
+class _Refused(asyncio.Protocol):
+    """A connection beyond `MAX_CONNECTIONS`: closed as soon as it is accepted."""
+
+    def connection_made(self, transport) -> None:
+        transport.abort()
+
+
 class _Stream:
     """One open event stream: its bounded queue and its wake-up."""
 
@@ -171,6 +183,7 @@ class StageServer:
         self._loop: asyncio.AbstractEventLoop | None = None
         self._thread: threading.Thread | None = None
         self._runner = None
+        self._listener = None
         self._streams: set[_Stream] = set()
         self._history: collections.deque[dict] = collections.deque(maxlen=HISTORY)
         self._session: dict[str, Any] | None = None
@@ -314,6 +327,7 @@ class StageServer:
         try:
             loop.run_forever()
         finally:
+            self._listener.close()
             loop.run_until_complete(self._runner.cleanup())
             loop.close()
 
@@ -330,16 +344,25 @@ class StageServer:
         # handler_cancellation: a browser that leaves ends its stream's handler at once (its
         # place among the viewers is free again), not at the next write
         runner = web.AppRunner(app, access_log=None, handle_signals=False,
-                               handler_cancellation=True)
+                               handler_cancellation=True, keepalive_timeout=IDLE_S,
+                               shutdown_timeout=1.0)
         await runner.setup()
         self._runner = runner
-        site = web.TCPSite(runner, self.host, self.port, shutdown_timeout=1.0, backlog=64)
+        server = runner.server  # aiohttp's protocol factory ("low level server")
+
+        def protocol():
+            if len(server.connections) >= MAX_CONNECTIONS:
+                self.refused["closed"] += 1
+                return _Refused()
+            return server()
+
         try:
-            await site.start()
+            self._listener = await asyncio.get_running_loop().create_server(
+                protocol, self.host, self.port, backlog=64, reuse_address=True)
         except BaseException:
             await runner.cleanup()
             raise
-        self.port = runner.addresses[0][1]
+        self.port = self._listener.sockets[0].getsockname()[1]
 
     def _role(self, request) -> str | None:
         """"presenter", "viewer" or None, from the request's token (compared in constant time)."""

@@ -24,7 +24,15 @@ from monitor.base import palette as P
 from monitor.cli.flags import serve_address
 from monitor.decisions.contract import WindowResult
 from monitor.web.feed import window_message
-from monitor.web.server import FILES, MAX_PRESENTERS, MAX_VIEWERS, QUEUE, StageServer, sse_event
+from monitor.web.server import (
+    FILES,
+    MAX_CONNECTIONS,
+    MAX_PRESENTERS,
+    MAX_VIEWERS,
+    QUEUE,
+    StageServer,
+    sse_event,
+)
 
 SECURITY = {
     "X-Frame-Options": "DENY",
@@ -201,6 +209,35 @@ def test_the_stream_is_server_sent_events(server):
         sock.close()
     # one event: its type, one data line of JSON, a blank line (WHATWG HTML 9.2)
     assert sse_event("window", {"a": 1}) == b'event: window\ndata: {"a":1}\n\n'
+
+
+def test_open_connections_are_capped(server):
+    idle = []
+    try:
+        for _ in range(MAX_CONNECTIONS):  # sockets that ask for nothing
+            idle.append(socket.create_connection(("127.0.0.1", server.port), timeout=10))
+        deadline = time.monotonic() + 10
+        while server.refused["closed"] == 0 and time.monotonic() < deadline:
+            extra = socket.create_connection(("127.0.0.1", server.port), timeout=10)
+            try:
+                extra.sendall(f"GET /?k={server.viewer_token} HTTP/1.0\r\n\r\n".encode())
+                answer = extra.recv(64)
+            except ConnectionError:
+                answer = b""
+            extra.close()
+        assert server.refused["closed"] >= 1 and answer == b""  # closed, unanswered
+    finally:
+        for s in idle:
+            s.close()
+    # once they are gone the page opens again
+    deadline = time.monotonic() + 10
+    while time.monotonic() < deadline:
+        try:
+            if request(server, "/", token=server.viewer_token)[0] == 200:
+                break
+        except ConnectionError:
+            time.sleep(0.1)
+    assert request(server, "/", token=server.viewer_token)[0] == 200
 
 
 def test_a_window_message_carries_figures_not_sound():
