@@ -414,3 +414,16 @@ def test_with_a_truth_file_the_truth_buttons_are_off_and_capture_takes_its_truth
     assert (tmp_path / "s" / "truth.tsv").read_text() == truth.read_text()  # the file's, untouched
     snips = [json.loads(p.read_text()) for p in (tmp_path / "s" / "snippets").glob("*/*.json")]
     assert [(m["reason"], m["label"]) for m in snips if m["reason"] == "manual"] == [("manual", "voices")]
+
+
+def test_without_the_server_library_serve_says_what_to_install(tmp_path, monkeypatch):
+    # a fake, to inject what a real install cannot show on demand here: aiohttp missing
+    import sys
+
+    monkeypatch.setitem(sys.modules, "aiohttp", None)
+    wav = write_wav(tmp_path / "ok.wav", np.zeros(32000))
+    r = cli("replay", wav, "--model", MODELS / "demo.tflite", "--fast", "--headless",
+            "--serve", "0", "--out", tmp_path / "s")
+    assert r.returncode == 2 and "Traceback" not in r.stderr
+    assert "--serve needs the aiohttp package: pip install 'scenemon[serve]'" in r.stderr
+    assert not (tmp_path / "s").exists()
