@@ -86,12 +86,16 @@
     $("waiting").hidden = true;
   }
 
-  // the largest size the stylesheet allows at which the decided word fits its lane
+  // the largest size the stylesheet allows at which the key and the decided word fit the lane
+  // (text width is proportional to the font size, so one measurement gives the size)
   function fit(lane, word) {
     word.style.removeProperty("--fit");
-    const room = lane.clientWidth - lane.querySelector(".key").offsetWidth - 24;
-    if (word.scrollWidth > room && room > 0) {
-      const size = parseFloat(getComputedStyle(word).fontSize) * room / word.scrollWidth;
+    const row = lane.querySelector(".decided"), key = lane.querySelector(".key");
+    const gap = parseFloat(getComputedStyle(row).columnGap) || 0;
+    const room = lane.clientWidth - (key.hidden ? 0 : key.offsetWidth + gap) - 8;
+    const natural = word.offsetWidth;  // a flex item of unbreakable text is never narrower
+    if (natural > room && room > 0) {
+      const size = parseFloat(getComputedStyle(word).fontSize) * room / natural;
       word.style.setProperty("--fit", `${Math.floor(size)}px`);
     }
   }
@@ -109,6 +113,8 @@
     const col = d == null ? UNKNOWN : colourOf(d);
     n.style.setProperty("--c", col);
     n.dataset.decision = d == null ? "" : d;
+    n.querySelector(".key").textContent = d == null ? "" : keyOf(d);
+    n.querySelector(".key").hidden = d == null;
     const word = n.querySelector(".word");
     const text = d == null ? "listening" : words(d);
     if (word.textContent !== text || lane.fitWidth !== n.clientWidth) {
@@ -116,8 +122,6 @@
       fit(n, word);
       lane.fitWidth = n.clientWidth;
     }
-    n.querySelector(".key").textContent = d == null ? "" : keyOf(d);
-    n.querySelector(".key").hidden = d == null;
     const p = lane.p && d != null ? lane.p[s.classes.indexOf(d)] : (lane.p ? Math.max(...lane.p) : null);
     n.querySelector(".held").textContent = d == null ? "" : held(t - lane.since);
     n.querySelector(".bar-fill").style.width = `${Math.round((p || 0) * 100)}%`;
