@@ -178,7 +178,7 @@ class StageServer:
         self.viewer_token = secrets.token_urlsafe(18)
         self.presenter_token = secrets.token_urlsafe(18)
         self.feed = StageFeed(self._post)
-        self.refused = collections.Counter()  # refusals by status, for tests and the summary
+        self.refused = collections.Counter()  # refusals by status (and "closed"), read by tests
         self._files = {name: page_file(name) for name, _, _ in FILES.values()}
         self._loop: asyncio.AbstractEventLoop | None = None
         self._thread: threading.Thread | None = None
