@@ -374,6 +374,14 @@ def case_harvest_bad_reason(tmp_path):
             "--include", "unknown reason")
 
 
+def case_serve_port_out_of_range(tmp_path):
+    return ["replay", _good(tmp_path), "--serve", "70000"], "--serve", "from 0 to 65535"
+
+
+def case_serve_not_a_port(tmp_path):
+    return ["replay", _good(tmp_path), "--serve", "localhost:web"], "--serve", "is not [HOST:]PORT"
+
+
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("case_")]
 NO_MODEL = {"report", "harvest", "tune"}
 
