@@ -44,8 +44,9 @@ def file_sha256(path: str | Path) -> str:
 class Runner(Protocol):
     """What the engine and the tools need of a loaded model."""
 
-    model_kind: str  # "keras" | "tflite-float" | "tflite-int8" (session.json's model kind)
-    runtime: str  # "tensorflow" | "litert" | "micro"
+    # session.json's model kind: "keras", "tflite-float", "tflite-int8", "onnx-float", "onnx-int8"
+    model_kind: str
+    runtime: str  # "tensorflow" | "litert" | "micro" | "onnxruntime"
     path: Path
     sha256: str
     input_shape: tuple[int, ...]
