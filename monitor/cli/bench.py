@@ -87,7 +87,7 @@ def first_result_seconds(plan: ModelPlan, wav: Path) -> float:
         return dt
 
 
-def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> dict:
+def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=None) -> dict:
     """`scenemon bench`: measure one model on this machine and print a verdict.
 
     Parameters
@@ -97,7 +97,7 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
     seconds : float
         Seconds of tour audio to replay.
     stream : TextIO
-        Where the table goes.
+        Where the table goes (standard output by default).
 
     Returns
     -------
@@ -109,6 +109,7 @@ def run_bench(plan: ModelPlan, *, seconds: float = 240.0, stream=sys.stdout) -> 
     ScenemonError
         `seconds` not above 0, or a model or card that cannot be used.
     """
+    stream = stream or sys.stdout  # looked up now: a caller may have redirected it
     if not seconds > 0:
         raise ScenemonError(f"--seconds {seconds} must be above 0")
     import numpy as np
