@@ -215,3 +215,48 @@ def test_live_takes_an_onnx_model(trained, tmp_path):
     lines = (tmp_path / "s" / "windows.jsonl").read_text().splitlines()
     assert len(lines) >= 3
     assert all(abs(sum(json.loads(x)["probs"]) - 1.0) < 1e-5 for x in lines)  # a softmax
+
+
+def test_several_labels_from_logits_and_from_a_sigmoid(trained, tmp_path):
+    # the same network read as several labels: output = "sigmoid_logits" applies the
+    # logistic function to its outputs; output = "sigmoid" refuses them (they are not each
+    # from 0 to 1) with the key to set
+    d, _, scaled = trained
+    with torch.no_grad():
+        logits = trained_net(d)(torch.from_numpy(scaled)).numpy()
+    card = CARD.replace('output = "logits"', 'output = "sigmoid_logits"').replace(
+        '"scaler.npz"', f'"{d / "scaler.npz"}"')
+    (tmp_path / "w.toml").write_text(card)
+    r = cli("replay", d / "walk.wav", "--model", d / "walk.onnx", "--card", tmp_path / "w.toml",
+            "--fast", "--headless", "--out", tmp_path / "s")
+    assert r.returncode == 0, r.stderr
+    probs = np.array([json.loads(x)["probs"] for x in
+                      (tmp_path / "s" / "windows.jsonl").read_text().splitlines()])
+    np.testing.assert_allclose(probs, 1.0 / (1.0 + np.exp(-logits)), atol=1e-5)  # logistic
+    (tmp_path / "v.toml").write_text(card.replace('"sigmoid_logits"', '"sigmoid"'))
+    r = cli("replay", d / "walk.wav", "--model", d / "walk.onnx", "--card", tmp_path / "v.toml",
+            "--fast", "--headless", "--out", tmp_path / "t")
+    assert r.returncode == 2 and 'output = "sigmoid_logits"' in r.stderr
+
+
+def trained_net(d):
+    """The exported network back as PyTorch computes it (the reference for its logits)."""
+    import onnx
+    from onnx import numpy_helper
+
+    weights = [numpy_helper.to_array(t) for t in onnx.load(str(d / "walk.onnx")).graph.initializer]
+    (w1, b1, w2, b2) = [torch.from_numpy(w.copy()) for w in weights]
+    return lambda x: torch.relu(x.flatten(1) @ w1.T + b1) @ w2.T + b2
+
+
+def test_without_onnx_runtime_one_sentence(trained, tmp_path, monkeypatch):
+    # a fake for what cannot be arranged on demand here: ONNX Runtime missing
+    import sys
+
+    d, _, _ = trained
+    monkeypatch.setitem(sys.modules, "onnxruntime", None)
+    r = cli("replay", d / "walk.wav", "--model", d / "walk.onnx", "--card", d / "walk.toml",
+            "--fast", "--headless", "--out", tmp_path / "s")
+    assert r.returncode == 2
+    assert "walk.onnx" in r.stderr and "pip install onnxruntime" in r.stderr
+    assert not (tmp_path / "s").exists()
