@@ -26,7 +26,7 @@ LAYERS: list[tuple[str, ...]] = [
     ("decisions",),  # how probabilities become decisions: smoothing, hysteresis, tallies
     ("session",),  # what a session is on disk
     ("assembly",),  # the composition root that assembles one run
-    ("review", "device", "demo", "ui"),  # tools on top of the chain
+    ("review", "device", "demo", "ui", "web"),  # tools on top of the chain
     ("cli",),  # the command line collects the commands
 ]
 LAYER = {pkg: i for i, row in enumerate(LAYERS) for pkg in row}

@@ -41,7 +41,7 @@ def finish(summary: dict, stream=None) -> int:
     return ExitCode.OK
 
 
-def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
+def run_printed(plan: SessionPlan, *, json_lines: bool, observers=(), on_ready=None) -> int:
     """A session without a screen: one JSON object per window (`json_lines`) or one line per
     decision change on stdout, the summary on stderr.
 
@@ -51,6 +51,10 @@ def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
         The session.
     json_lines : bool
         JSON lines (``--headless``) instead of change lines.
+    observers : sequence of Observer
+        More observers of the session (the stage server's feed).
+    on_ready : callable, optional
+        Given the `SessionHandle` before the first window.
 
     Returns
     -------
@@ -62,7 +66,7 @@ def run_printed(plan: SessionPlan, *, json_lines: bool) -> int:
 
     stop = threading.Event()
     printer = HeadlessPrinter(stop=stop) if json_lines else ChangePrinter(stop=stop)
-    summary = run_session(plan, observers=[printer], stop=stop)
+    summary = run_session(plan, observers=[printer, *observers], stop=stop, on_ready=on_ready)
     if printer.closed:  # the reader went away (| head): the session is closed, end quietly
         return ExitCode.OK
     return finish(summary)
@@ -111,7 +115,7 @@ def run_profile(model: ModelPlan, sources: list[Path], *, out: Path | None,
     fe = FrontEnd(card)
     feats, labels, groups, notes = [], [], [], []
     for k, src in enumerate(sources):
-        f = fe.batch(file_windows(src, card))
+        f = fe.batch_of_stream(file_windows(src, card))
         lab = None
         if is_session(src):
             s = load_session(src)

@@ -67,6 +67,27 @@ def class_colour(classes, label) -> str:
     return UNKNOWN_COLOUR
 
 
+def class_keys(classes) -> dict[str, str]:
+    """One distinct character per class: its first unused letter, else a digit.
+
+    Parameters
+    ----------
+    classes : sequence of str
+        The model's classes.
+
+    Returns
+    -------
+    dict
+        Class to its character.
+    """
+    used, out = set(), {}
+    for i, c in enumerate(classes):
+        key = next((ch for ch in c.lower() if ch.isalnum() and ch not in used), str(i % 10))
+        used.add(key)
+        out[c] = key
+    return out
+
+
 def heat_index(frac: float) -> int:
     """The step of the heat ramp for `frac` in [0, 1] (clipped).
 

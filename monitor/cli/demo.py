@@ -21,7 +21,7 @@ from monitor.cli.screen import run_chain
 NAME = 'demo'
 HELP = 'the bundled demo model on the bundled scene tour'
 DESCRIPTION = 'Run the demo model on the demo scene tour (made on first use under recordings/demo/ in the current folder) and record a session.'
-EXAMPLES = 'examples:\n  make demo                 # sets up .venv and runs this\n  scenemon demo             # the bundled scene tour at real-time pace\n  scenemon demo --fast      # the same, as fast as the CPU allows\n  scenemon demo --mic       # the demo model on the microphone\n  scenemon demo --model models/demo.tflite --model models/demo-mfcc.tflite   # two models'
+EXAMPLES = 'examples:\n  make demo                 # sets up .venv and runs this\n  scenemon demo             # the bundled scene tour at real-time pace\n  scenemon demo --fast      # the same, as fast as the CPU allows\n  scenemon demo --mic       # the demo model on the microphone\n  scenemon demo --serve 8765   # also in browsers: links and a QR code on stderr\n  scenemon demo --model models/demo.tflite --model models/demo-mfcc.tflite   # two models'
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

@@ -247,6 +247,42 @@ def blocksize(text: str) -> int:
     return v
 
 
+def serve_address(text: str) -> tuple[str, int]:
+    """``--serve [HOST:]PORT``: where the stage server listens (HOST 127.0.0.1 when left out).
+
+    Raises
+    ------
+    argparse.ArgumentTypeError
+        No port, a port that is not an integer from 0 to 65535, or an empty host.
+
+    Parameters
+    ----------
+    text : str
+        The flag's value as typed: ``8765``, ``0.0.0.0:8765``, ``[::1]:8765``; port 0 takes
+        any free port.
+
+    Returns
+    -------
+    tuple of (str, int)
+        The host and the port.
+    """
+    host, sep, port = text.rpartition(":")
+    if not sep:
+        host = "127.0.0.1"
+    elif host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    if sep and not host:
+        raise argparse.ArgumentTypeError(f"{text!r} has an empty host; give HOST:PORT or PORT")
+    try:
+        number_ = int(port)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"{text!r} is not [HOST:]PORT with PORT a number "
+                                         f"from 0 to 65535") from None
+    if not 0 <= number_ <= 65535:
+        raise argparse.ArgumentTypeError(f"port {number_} is not from 0 to 65535")
+    return host, number_
+
+
 def subcommand(sub, name: str, help_: str, description: str, epilog: str | None = None):
     """Add the command `name` to the sub-parsers `sub`, with its examples as the epilog.
 
@@ -398,6 +434,11 @@ def add_session_flags(p: argparse.ArgumentParser) -> None:
     p.add_argument("--headless", action="store_true",
                    help="no screen: one JSON object per window on stdout (default: the "
                         "terminal UI when there is a terminal)")
+    p.add_argument("--serve", type=serve_address, metavar="[HOST:]PORT",
+                   help="also show the stage view to browsers at http://HOST:PORT (HOST "
+                        "127.0.0.1 unless given; 0.0.0.0 for phones on the network; PORT 0: "
+                        "any free one); the links, with their access tokens, and a QR code "
+                        "are printed on stderr; no audio is served")
 
 
 def add_capture_flags(p: argparse.ArgumentParser) -> None:

@@ -21,7 +21,7 @@ from monitor.cli.screen import run_chain
 NAME = 'live'
 HELP = 'run the model on a microphone and record a session'
 DESCRIPTION = "Open an input device at its own rate, down-mix, resample to the model's rate and run the chain until Ctrl-C."
-EXAMPLES = 'examples:\n  scenemon devices\n  scenemon live --model models/demo.tflite\n  scenemon live --model models/demo.int8.tflite --input "USB" --headless --out recordings/site-a\n  scenemon live --model m.tflite --runtime micro --no-audio --seconds 600'
+EXAMPLES = 'examples:\n  scenemon devices\n  scenemon live --model models/demo.tflite\n  scenemon live --model models/demo.int8.tflite --input "USB" --headless --out recordings/site-a\n  scenemon live --model m.tflite --runtime micro --no-audio --seconds 600\n  scenemon live --model models/demo.tflite --headless --serve 0.0.0.0:8765   # phones on the network'
 
 
 def add_arguments(p: argparse.ArgumentParser) -> None:

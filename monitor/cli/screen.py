@@ -18,8 +18,17 @@ def interactive() -> bool:
     return sys.stdin.isatty() and sys.stdout.isatty() and os.environ.get("TERM") != "dumb"
 
 
+def _wait_for_enter() -> None:
+    """Hold the links and the QR code on the terminal until Enter (the live view covers them)."""
+    sys.stderr.write("scenemon: press Enter to open the live view (the links work for the whole "
+                     "session)\n")
+    sys.stderr.flush()
+    sys.stdin.readline()
+
+
 def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
-    """The terminal UI, or without a terminal (or with --headless) printed lines.
+    """The terminal UI, or without a terminal (or with --headless) printed lines; with
+    ``--serve``, the stage server beside either, for the session's whole life.
 
     Parameters
     ----------
@@ -35,10 +44,26 @@ def run_chain(args: argparse.Namespace, plan, heading: str) -> int:
     int
         The exit code.
     """
-    if args.headless or not interactive():
-        from monitor.assembly.run import run_printed
+    served = None
+    try:
+        if getattr(args, "serve", None):  # before the session: a port in use is bad input
+            from monitor.web.server import StageServer
 
-        return run_printed(plan, json_lines=args.headless)
-    from monitor.ui.app import run_ui
+            host, port = args.serve
+            server = StageServer(host, port, heading=heading)
+            server.start()
+            served = server
+            served.announce(sys.stderr)
+            if not args.headless and interactive():  # the screen would cover the links at once
+                _wait_for_enter()
+        extra = dict(observers=[served.feed], on_ready=served.attach) if served else {}
+        if args.headless or not interactive():
+            from monitor.assembly.run import run_printed
 
-    return run_ui(plan, heading=heading)
+            return run_printed(plan, json_lines=args.headless, **extra)
+        from monitor.ui.app import run_ui
+
+        return run_ui(plan, heading=heading, **extra)
+    finally:
+        if served is not None:
+            served.stop()

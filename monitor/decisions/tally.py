@@ -47,7 +47,18 @@ def percentile(values: Iterable[float], q: float) -> float | None:
     v = np.asarray(list(values), dtype=np.float64)
     if not v.size:
         return None
-    p = float(np.percentile(v, q))
+    if not np.isfinite(v).all():  # NaN or infinity: numpy's own handling
+        p = float(np.percentile(v, q))
+        return p if math.isfinite(p) else None
+    # numpy's "linear" rule, step by step as numpy.percentile takes it (its _lerp), without
+    # the import of numpy.ma that numpy.percentile costs at a session's end (13 ms here)
+    v.sort()
+    h = (v.size - 1) * (q / 100.0)
+    lo = math.floor(h)
+    a, b = float(v[lo]), float(v[min(lo + 1, v.size - 1)])
+    t = h - lo
+    d = b - a
+    p = b - d * (1 - t) if t >= 0.5 else a + d * t
     return p if math.isfinite(p) else None
 
 

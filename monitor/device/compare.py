@@ -61,8 +61,8 @@ def compare(a, b, sources: list[Path]) -> dict:
     identical = steps = 0
     for src in sources:
         w = file_windows(src, card_a)
-        xa = fa.batch(w)
-        xb = xa if fb is fa else fb.batch(w)
+        xa = fa.batch_of_stream(w)
+        xb = xa if fb is fa else fb.batch_of_stream(w)
         pa.append(a.runner.predict(xa))
         pb.append(b.runner.predict(xb))
         if raw:

@@ -205,7 +205,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
     x_all = from_pcm16(pcm_all)  # what the device's microphone gives
     pick = np.arange(len(x_all))
     if count is not None and count < len(x_all):
-        top = np.argmax(runner.predict(fe.batch(x_all)), axis=1)
+        top = np.argmax(runner.predict(fe.batch_of_stream(x_all)), axis=1)
         pick = pick_windows(top, count, seed)
     pcm, x = pcm_all[pick], x_all[pick]
     feats = fe.batch(x)

@@ -4,6 +4,6 @@ Owns: `card` (the sidecar TOML read into a frozen `ModelCard`), `stages` (one sm
 per front-end stage with its config and card keys, and the registry of kinds), `dsp` (mel,
 window, DCT building blocks), `fft` (the real FFT, SciPy's pocketfft without importing
 ``scipy.fft``), `frontend` (`FrontEnd`: batch, single window, stream; the
-float64 reference) and `cardcheck` (``scenemon card check``).
+float64 reference), `cardcheck` (``scenemon card check``) and `fromcode` (``scenemon card write``).
 May import: ``monitor.base``, ``monitor.sound``.
 """

@@ -127,8 +127,13 @@ class ModelCard:
         ``[scaling]``: mean and std broadcastable to one window's model input, per_window.
     decision : DecisionSettings
         ``[decision]``.
-    output : {"probabilities", "logits"}
-        What the model's output is ("logits": scenemon applies a softmax).
+    output : {"probabilities", "logits", "sigmoid", "sigmoid_logits"}
+        What the model's output is: "probabilities" (one class, a softmax's output),
+        "logits" (one class, before the softmax: scenemon applies it), "sigmoid" (several
+        labels, each its own probability) or "sigmoid_logits" (several labels, before the
+        sigmoid: scenemon applies the logistic function).
+    input_name, output_name : str or None
+        The model's input and output tensor names, checked when the model has names (ONNX).
     """
 
     path: Path | None
@@ -137,9 +142,16 @@ class ModelCard:
     frontend: FrontendConfig
     scaling: ScalingConfig = field(default_factory=ScalingConfig)
     decision: DecisionSettings = field(default_factory=DecisionSettings)
-    output: Literal["probabilities", "logits"] = "probabilities"
+    output: Literal["probabilities", "logits", "sigmoid", "sigmoid_logits"] = "probabilities"
+    input_name: str | None = None
+    output_name: str | None = None
 
     # Derived values and the flat names kept for the code that reads them
+    @property
+    def model_names(self) -> tuple[str | None, str | None]:
+        """The input and output tensor names the card gives (None where it gives none)."""
+        return self.input_name, self.output_name
+
     @property
     def sample_rate(self) -> int:
         """Sample rate in Hz the model was trained on (``[audio]``)."""
@@ -246,6 +258,8 @@ class ModelCard:
         return {
             "classes": list(self.classes),
             "output": self.output,
+            **({"input_name": self.input_name} if self.input_name else {}),
+            **({"output_name": self.output_name} if self.output_name else {}),
             "audio": dataclasses.asdict(self.audio),
             "frontend": self.frontend.settings(),
             "scaling": {"mean": arr(self.mean), "std": arr(self.std),
@@ -353,7 +367,8 @@ FRONTEND_KEYS = ("kind", *dict.fromkeys(k for st in STAGES.values()
 _TABLES = {"audio": tuple(keys_of(AudioConfig)), "frontend": FRONTEND_KEYS,
            "scaling": SCALING_KEYS,
            "decision": tuple(f.name for f in dataclasses.fields(DecisionSettings))}
-_TOP = ("classes", "output", *_TABLES)
+OUTPUTS = ("probabilities", "logits", "sigmoid", "sigmoid_logits")  # the card's output kinds
+_TOP = ("classes", "output", "input_name", "output_name", *_TABLES)
 
 
 def card_beside(model_path: str | Path) -> Path:
@@ -485,8 +500,14 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
         dup = sorted({c for c in classes if classes.count(c) > 1})
         raise fail(f"classes lists {', '.join(dup)} more than once")
     output = raw.get("output", "probabilities")
-    if output not in ("probabilities", "logits"):
-        raise fail(f"output={output!r} must be one of probabilities, logits")
+    if output not in OUTPUTS:
+        raise fail(f"output={output!r} must be one of {', '.join(OUTPUTS)}")
+    names = {}
+    for key in ("input_name", "output_name"):
+        value = raw.get(key)
+        if value is not None and (not isinstance(value, str) or not value.strip()):
+            raise fail(f"{key}={value!r} must be the tensor's name, a non-empty string")
+        names[key] = value
 
     try:
         audio = audio_from_table(raw.get("audio", {}))
@@ -517,7 +538,7 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
     except ValueError as exc:
         raise fail(f"[decision] {exc}") from None
     return ModelCard(path=path, classes=tuple(classes), audio=audio, frontend=frontend,
-                     scaling=scaling, decision=decision, output=output)
+                     scaling=scaling, decision=decision, output=output, **names)
 
 
 

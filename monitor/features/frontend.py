@@ -198,6 +198,31 @@ class FrontEnd:
             raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
         return self._consecutive(signal, n, None)[0]
 
+    def batch_of_stream(self, windows: np.ndarray) -> np.ndarray:
+        """`batch` of windows that follow one another a hop apart (every window of a
+        recording, as `assemble.file_windows` gives them), each frame computed once; the same
+        numbers, byte for byte.
+
+        Parameters
+        ----------
+        windows : numpy.ndarray
+            ``(n, window_samples)``, window k starting k hops after window 0.
+
+        Returns
+        -------
+        numpy.ndarray
+            ``(n, *card.feature_shape)`` float32.
+        """
+        windows = self._check(windows)
+        if not self._shares(len(windows)):
+            return self.batch(windows)
+        stream = FrameStream(self)
+        hop, block = self.card.hop_samples, 64  # a few MB of arrays at a time
+        return np.concatenate([
+            stream.features([k * hop for k in range(a, min(a + block, len(windows)))],
+                            list(windows[a:a + block]))
+            for a in range(0, len(windows), block)])
+
     def _shares(self, n: int = 2) -> bool:
         return self.framing is not None and self.framing.share_step > 0 and n > 1
 

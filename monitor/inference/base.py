@@ -44,8 +44,9 @@ def file_sha256(path: str | Path) -> str:
 class Runner(Protocol):
     """What the engine and the tools need of a loaded model."""
 
-    model_kind: str  # "keras" | "tflite-float" | "tflite-int8" (session.json's model kind)
-    runtime: str  # "tensorflow" | "litert" | "micro"
+    # session.json's model kind: "keras", "tflite-float", "tflite-int8", "onnx-float", "onnx-int8"
+    model_kind: str
+    runtime: str  # "tensorflow" | "litert" | "micro" | "onnxruntime"
     path: Path
     sha256: str
     input_shape: tuple[int, ...]
@@ -83,6 +84,27 @@ def softmax(z: np.ndarray) -> np.ndarray:
     z = z - np.max(z, axis=-1, keepdims=True)
     e = np.exp(z)
     return (e / np.sum(e, axis=-1, keepdims=True)).astype(np.float32)
+
+
+def sigmoid(z: np.ndarray) -> np.ndarray:
+    """The logistic function of each value, as float32 (several labels, each its own
+    probability).
+
+    Computed as ``exp(min(z, 0)) / (1 + exp(-|z|))``, which neither overflows for large
+    negative nor for large positive logits.
+
+    Parameters
+    ----------
+    z : numpy.ndarray
+        Logits.
+
+    Returns
+    -------
+    numpy.ndarray
+        Values from 0 to 1, float32.
+    """
+    z = np.asarray(z, np.float64)
+    return (np.exp(np.minimum(z, 0.0)) / (1.0 + np.exp(-np.abs(z)))).astype(np.float32)
 
 
 class RunnerBase:
@@ -128,6 +150,8 @@ class RunnerBase:
     def _finish(self, out: np.ndarray) -> np.ndarray:
         if self.card.output == "logits":
             return softmax(out)
+        if self.card.output == "sigmoid_logits":
+            return sigmoid(out)
         return out.astype(np.float32)
 
     def check_outputs(self) -> None:
@@ -140,16 +164,25 @@ class RunnerBase:
         ------
         ModelError
             A "probabilities" model gave a negative value or a sum more than 0.05 from 1 on
-            a silent window: the sentence names the card key to set (``output = "logits"``).
+            a silent window, or a "sigmoid" model a value outside 0 to 1: the sentence names
+            the card key to set (``output = "logits"`` or ``"sigmoid_logits"``).
         """
         out = self.predict(np.zeros((1, *self.card.feature_shape), np.float32))
-        if self.card.output != "probabilities":
+        if self.card.output not in ("probabilities", "sigmoid"):
             return
         if not np.all(np.isfinite(out)):
             warnings.warn(f"{self.path}: a silent window gives a non-finite output; such "
                           f"windows are recorded as model faults", stacklevel=2)
             return
-        s, low = float(out.sum()), float(out.min())
+        low, high = float(out.min()), float(out.max())
+        if self.card.output == "sigmoid":  # several labels: each from 0 to 1, any sum
+            if low < -1e-3 or high > 1.0 + 1e-3:
+                raise ModelError(f"{self.path}: its outputs are not probabilities (on a silent "
+                                 f"window they run from {low:.3f} to {high:.3f}); if the "
+                                 f"model ends without its sigmoid, set output = "
+                                 f"\"sigmoid_logits\" in its card {self.card.name}")
+            return
+        s = float(out.sum())
         if low < -1e-3 or abs(s - 1.0) > 0.05:
             raise ModelError(f"{self.path}: its outputs are not probabilities (on a silent "
                              f"window they sum to {s:.3f}, the smallest is {low:.3f}); if the "

@@ -1,7 +1,7 @@
 """The runner registry: `load_runner` picks a runner for a model file.
 
-By extension (``.keras``, ``.h5``, ``.tflite``) and runtime (LiteRT or the microcontroller
-interpreter); the file's first bytes are checked before any interpreter sees it. Each
+By extension (``.keras``, ``.h5``, ``.tflite``, ``.onnx``) and runtime (LiteRT or the
+microcontroller interpreter for ``.tflite``; ONNX Runtime for ``.onnx``); the file's first bytes are checked before any interpreter sees it. Each
 runner keeps its heavy imports inside its constructor, so importing this module imports no
 TensorFlow.
 """
@@ -14,6 +14,7 @@ from monitor.base.errors import ModelError
 from monitor.features.card import ModelCard
 from monitor.inference.base import Runner
 from monitor.inference.micro import MicroRunner
+from monitor.inference.onnx import OnnxRunner
 from monitor.inference.runners import KerasRunner, TFLiteRunner
 
 RUNTIMES = ("litert", "micro")
@@ -30,6 +31,9 @@ def _check_magic(path: Path, ext: str) -> None:
         raise ModelError(f"{path}: not a Keras model file (a .keras file is a zip archive)")
     if ext == ".h5" and not head.startswith(b"\x89HDF\r\n\x1a\n"):
         raise ModelError(f"{path}: not a Keras model file (a .h5 file is HDF5)")
+    if ext == ".onnx" and (not head or head[0] != 0x08):  # field 1 (ir_version), a varint
+        raise ModelError(f"{path}: not an ONNX model file (it does not start with the "
+                         f"model's ir_version field)")
 
 
 def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
@@ -39,7 +43,7 @@ def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
     Parameters
     ----------
     path : str or Path
-        ``.keras``, ``.h5`` or ``.tflite``.
+        ``.keras``, ``.h5``, ``.tflite`` or ``.onnx``.
     card : ModelCard
         The card the model must fit (input shape, output size).
     trust_model : bool
@@ -71,9 +75,15 @@ def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
     if runtime not in RUNTIMES:
         raise ModelError(f"{path}: runtime {runtime!r} is not one of {', '.join(RUNTIMES)}")
     ext = path.suffix.lower()
-    if ext not in (".tflite", ".keras", ".h5"):
-        raise ModelError(f"{path}: unknown model type {ext!r} (use .keras, .h5 or .tflite)")
+    if ext not in (".tflite", ".keras", ".h5", ".onnx"):
+        raise ModelError(f"{path}: unknown model type {ext!r} (use .keras, .h5, .tflite or "
+                         f".onnx)")
     _check_magic(path, ext)
+    if ext == ".onnx":
+        if runtime == "micro":
+            raise ModelError(f"{path}: the microcontroller runtime runs .tflite models; an "
+                             f".onnx model runs in ONNX Runtime")
+        return OnnxRunner(path, card, threads=threads)
     if ext == ".tflite":
         if runtime == "micro":
             return MicroRunner(path, card)

@@ -11,7 +11,7 @@ what it could not hold as dropped audio). The writing process holds the session'
 tell a session being written from one that was killed.
 
 Layout (the README's session directory): ``session.json``, ``windows.jsonl`` (one line per window, flushed as it
-happens, one ``write`` per record; ``windows.b.jsonl`` for a second model), ``truth.tsv``,
+happens, one ``write`` per batch of windows; ``windows.b.jsonl`` for a second model), ``truth.tsv``,
 ``audio.wav`` (PCM_16 at the model rate, header brought up to date about once a second so a
 killed process leaves a WAV any reader opens; later segments ``audio-0001.wav``...),
 ``snippets/``, and ``summary.json`` only at a clean stop.
@@ -180,6 +180,7 @@ class SessionWriter(ObserverBase):
                      "audio_segment_s": segment_s}
         atomic_write(self.dir / "session.json", dumps(self.meta, indent=2).encode())
         self._q: queue.SimpleQueue = queue.SimpleQueue()
+        self._windows: list = []  # this batch's results, handed over by `on_status`
         self.max_backlog_bytes = int(max_backlog_bytes)
         self.backlog_bytes = 0  # audio queued and not yet written (under `_room`)
         self.peak_backlog_bytes = 0
@@ -210,8 +211,18 @@ class SessionWriter(ObserverBase):
         self._q.put(("audio", chunk, gap))
 
     def on_window(self, result: Any) -> None:
-        """Queue a `WindowResult` (and its second model's, if any); serialised here."""
-        self._q.put(("window", result))
+        """Keep a `WindowResult` (and its second model's, if any) for this batch's hand-over."""
+        self._windows.append(result)
+
+    def on_status(self, status: Any) -> None:
+        """After each batch: hand its windows to the writer's thread in one queue item.
+
+        One hand-over per batch, not per window: a fast replay makes thousands of windows a
+        second, and each item woke the writer to contend for the interpreter lock.
+        """
+        if self._windows:
+            batch, self._windows = self._windows, []
+            self._q.put(("windows", batch))
 
     def on_snippet(self, snippet: dict[str, Any]) -> None:
         """Queue a snippet from the capture policy (its "audio" is float32 at the model rate)."""
@@ -248,6 +259,7 @@ class SessionWriter(ObserverBase):
 
     def close(self, summary: dict[str, Any] | None, truth: list[Span] | None = None) -> None:
         """Finish: write truth and (when given) summary.json, close files, join the thread."""
+        self.on_status(None)  # windows of a batch whose status never came
         self._q.put(("close", summary, truth))
         self._thread.join()
         self.lock.release()
@@ -278,7 +290,7 @@ class SessionWriter(ObserverBase):
                 wav = self._stop_audio(wav, item[1])
                 continue
             if self.error is not None:  # after a write error (disk full): drop, never tear
-                self.dropped_items += 1
+                self.dropped_items += len(item[1]) if op == "windows" else 1
                 continue
             if op == "audio" and wav is None:
                 continue
@@ -286,8 +298,8 @@ class SessionWriter(ObserverBase):
                 self.snippets_not_written += 1
                 continue
             try:
-                if op == "window":
-                    self._write_window(jl, item[1])
+                if op == "windows":
+                    self._write_windows(jl, item[1])
                 elif op == "audio" and wav is not None:
                     wav = self._write_audio(wav, item[1], item[2])
                     now = time.monotonic()
@@ -333,20 +345,25 @@ class SessionWriter(ObserverBase):
         self.write_audio = False
         return None
 
-    def _write_window(self, jl: list, result: Any) -> None:
-        records = [result, *getattr(result, "others", ())]
-        lines = []
-        for r in records:
+    def _write_windows(self, jl: list, batch: list) -> None:
+        """A batch's window lines, one write per file (model A's and B's)."""
+        per_file: list[list[str]] = [[], []]
+        for result in batch:
+            records = [result, *getattr(result, "others", ())]
             try:
-                lines.append(line_of(r))
+                lines = [line_of(r) for r in records]
             except (TypeError, ValueError):  # a record that is not JSON: a bug, not the disk
                 self.unserialisable += 1
-                return
-        while len(jl) < len(lines):
-            jl.append(open(self.dir / WINDOW_FILES[len(jl)], "a", encoding="utf-8"))
-        for f, line in zip(jl, lines):
-            f.write(line)
-        self.windows_written += 1
+                continue
+            for k, line in enumerate(lines):
+                per_file[k].append(line)
+            self.windows_written += 1
+        for k, lines in enumerate(per_file):
+            if not lines:
+                continue
+            while len(jl) <= k:
+                jl.append(open(self.dir / WINDOW_FILES[len(jl)], "a", encoding="utf-8"))
+            jl[k].write("".join(lines))
 
     def _write_audio(self, wav, chunk: np.ndarray, gap: int):
         while gap > 0:  # a device gap of hours: silence in bounded pieces

@@ -676,7 +676,9 @@ class MonitorApp(App):
         """
         if self.handle is None or self.finished or not self.handle.can_capture:
             return
-        label = self.key_truth if self.handle.live_truth is not None else self.state.truth
+        # the truth told now, by this terminal's keys or the presenter page's buttons
+        label = self.handle.live_truth.current if self.handle.live_truth is not None \
+            else self.state.truth
         if label is not None:
             self._capture(label)
             return
@@ -878,7 +880,7 @@ class RelabelApp(App):
         self.push_screen(RelabelScreen(self.session_dir, self.class_names, standalone=True))
 
 
-def session_starter(plan) -> Callable[[SessionHooks], dict]:
+def session_starter(plan, *, observers=(), on_ready=None) -> Callable[[SessionHooks], dict]:
     """The function the UI's session worker runs: `assemble.run_session` with the UI's
     observer, stop event and ready callback.
 
@@ -886,6 +888,10 @@ def session_starter(plan) -> Callable[[SessionHooks], dict]:
     ----------
     plan : SessionPlan
         The session.
+    observers : sequence of Observer
+        More observers after the UI's bridge (the stage server's feed).
+    on_ready : callable, optional
+        Given the `SessionHandle` after the UI's own ready callback.
 
     Returns
     -------
@@ -897,13 +903,18 @@ def session_starter(plan) -> Callable[[SessionHooks], dict]:
     plan = dataclasses.replace(plan, keep_features=True, live_truth=True)
 
     def start(hooks: SessionHooks) -> dict:
-        return run_session(plan, observers=[hooks.bridge], stop=hooks.stop,
-                           on_ready=hooks.ready, notices=False, progress=hooks.say)
+        def ready(handle) -> None:
+            hooks.ready(handle)
+            if on_ready is not None:
+                on_ready(handle)
+
+        return run_session(plan, observers=[hooks.bridge, *observers], stop=hooks.stop,
+                           on_ready=ready, notices=False, progress=hooks.say)
 
     return start
 
 
-def run_ui(plan, *, heading: str) -> int:
+def run_ui(plan, *, heading: str, observers=(), on_ready=None) -> int:
     """The terminal UI around one session; returns the exit code.
 
     Parameters
@@ -912,6 +923,10 @@ def run_ui(plan, *, heading: str) -> int:
         The session.
     heading : str
         The title line.
+    observers : sequence of Observer
+        More observers of the session (the stage server's feed).
+    on_ready : callable, optional
+        Given the `SessionHandle` before the first window, after the UI has it.
 
     Returns
     -------
@@ -925,7 +940,8 @@ def run_ui(plan, *, heading: str) -> int:
 
     timed = isinstance(plan.source, MicInput) and plan.source.seconds is not None
     with screen_owns_the_terminal():
-        app = MonitorApp(session_starter(plan), heading=heading, exit_when_done=timed)
+        app = MonitorApp(session_starter(plan, observers=observers, on_ready=on_ready),
+                         heading=heading, exit_when_done=timed)
         code = app.run()
     if app.error is not None:
         sys.stderr.write(f"scenemon: {one_sentence(app.error)}\n")

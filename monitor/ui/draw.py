@@ -18,6 +18,7 @@ from rich.style import Style
 from rich.text import Text
 
 from monitor.base import palette as P
+from monitor.base.palette import class_keys  # noqa: F401  (the UI's name for it)
 
 SHADES = " .:-=+*#%@"  # intensity by glyph density, for NO_COLOR
 EIGHTHS = " ▏▎▍▌▋▊▉"
@@ -155,27 +156,6 @@ def fit(s: str, width: int) -> str:
 
 
 # --- classes --------------------------------------------------------------------------------
-def class_keys(classes) -> dict[str, str]:
-    """One distinct character per class: its first unused letter, else a digit.
-
-    Parameters
-    ----------
-    classes : sequence of str
-        The model's classes.
-
-    Returns
-    -------
-    dict
-        Class to its character.
-    """
-    used, out = set(), {}
-    for i, c in enumerate(classes):
-        key = next((ch for ch in c.lower() if ch.isalnum() and ch not in used), str(i % 10))
-        used.add(key)
-        out[c] = key
-    return out
-
-
 def colour(classes, c) -> str:
     """The class colour (`monitor.base.palette`, the same as the HTML report's).
 

@@ -134,10 +134,24 @@ def case_model_truncated(tmp_path):
 
 
 def case_model_extension(tmp_path):
+    m = tmp_path / "m.pt"
+    m.write_bytes(b"x" * 10)
+    (tmp_path / "m.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "m.pt", "unknown model type"
+
+
+def case_onnx_not_onnx(tmp_path):
     m = tmp_path / "m.onnx"
     m.write_bytes(b"x" * 10)
     (tmp_path / "m.toml").write_text(CARD)
-    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "unknown model type"
+    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "not an ONNX model file"
+
+
+def case_onnx_damaged(tmp_path):
+    m = tmp_path / "m.onnx"
+    m.write_bytes(b"\x08\x09" + b"\xff" * 64)  # an ir_version field, then nothing sensible
+    (tmp_path / "m.toml").write_text(CARD)
+    return ["replay", _good(tmp_path), "--model", m], "m.onnx", "cannot be loaded as an ONNX"
 
 
 def case_truth_overlap(tmp_path):
@@ -409,6 +423,14 @@ def case_field_folder_of_other_files(tmp_path):
     (d / "a.jpg").write_bytes(b"x")
     return (["field", d, "--model", MODELS / "demo.tflite"], "photos",
             "holds other files and is not a run folder")
+
+
+def case_serve_port_out_of_range(tmp_path):
+    return ["replay", _good(tmp_path), "--serve", "70000"], "--serve", "from 0 to 65535"
+
+
+def case_serve_not_a_port(tmp_path):
+    return ["replay", _good(tmp_path), "--serve", "localhost:web"], "--serve", "is not [HOST:]PORT"
 
 
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("case_")]

@@ -560,6 +560,7 @@ def test_stream_and_consecutive_equal_whole_windows(tour, name):
     live = np.concatenate([fe.stream.features([s], [w]) for s, w in zip(starts, wins)])
     np.testing.assert_array_equal(live, whole)
     np.testing.assert_array_equal(fe.batch_consecutive(x[:(n - 1) * hop + win], n), whole)
+    np.testing.assert_array_equal(fe.batch_of_stream(np.stack(wins)), whole)  # compare, vectors
     fe.stream.reset()
     keep = [i for i in range(n) if i % 7 not in (3, 4)]  # gaps, and runs of several windows
     runs = [keep[:10], keep[10:11], keep[11:30], keep[30:]]
