@@ -1,6 +1,8 @@
-"""From the compute thread to the UI: an observer that never blocks and never drops a result.
+"""From the compute thread to the UI: an observer that never blocks and drops no result the UI
+can still take.
 
-`UIBridge.on_window` (compute thread) appends each result to an unbounded deque and posts a
+`UIBridge.on_window` (compute thread) appends each result to a deque (bounded at
+`QUEUE_KEEP`, more than a day of windows, so a days-long run cannot grow it) and posts a
 `NewWindows` notification; `on_status` posts one `Status` snapshot per batch. Notifications
 of one kind replace each other in the UI's message queue (`can_replace`), so a slow UI skips
 stale redraw requests, never results: the UI thread drains the whole deque when it handles
@@ -63,6 +65,9 @@ class Status(Message):
         return isinstance(message, Status)
 
 
+QUEUE_KEEP = 200_000  # results waiting for the UI at most: more than a day at a 0.5 s hop
+
+
 class UIBridge(ObserverBase):
     """The engine observer that hands results and status to the UI (see module docstring).
 
@@ -74,7 +79,9 @@ class UIBridge(ObserverBase):
 
     def __init__(self, app) -> None:
         self.app = app
-        self._q: collections.deque[WindowResult] = collections.deque()
+        # bounded for days-long runs: a UI that took no results for a whole day (it drains
+        # them every frame) would lose the oldest from the screen, never from the session
+        self._q: collections.deque[WindowResult] = collections.deque(maxlen=QUEUE_KEEP)
         self.handle = None  # the session's handle, attached before the first window
 
     def attach(self, handle) -> None:
