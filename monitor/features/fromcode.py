@@ -61,6 +61,8 @@ class Call:
 
 _DATA = {"y", "S", "signals", "signal", "waveform", "x", "specgram", "input", "spectrogram",
          "stfts", "log_mel_spectrograms", "data", "tensor"}  # the data a call is given
+_RATES = ("sr", "sample_rate")  # a rate written as a name is taken from --sample-rate
+BY_NAME = object()  # the value of a rate written as a name
 _NAMED = {"max": "max", "amax": "max", "hann_window": "hann", "hamming_window": "hamming",
           "hann": "hann", "hamming": "hamming"}  # function names a keyword may carry
 
@@ -79,7 +81,7 @@ def _value(node: ast.AST, call: str, key: str) -> Any:
     if name in _NAMED:
         return _NAMED[name]
     raise ScenemonError(f"{call}: {key}={ast.unparse(node)} is not a value scenemon can read; "
-                        f"write the number or text itself (for example sr=16000)")
+                        f"write the number or text itself (for example n_mels=40)")
 
 
 def parse_call(text: str) -> Call:
@@ -119,6 +121,12 @@ def _call(node: ast.Call, text: str) -> Call:
             continue  # **kwargs: not ours to read
         if kw.arg in _DATA and not isinstance(kw.value, ast.Constant):
             continue  # the signal itself (y=y, S=mel)
+        if kw.arg in _RATES:
+            try:
+                out.kwargs[kw.arg] = ast.literal_eval(kw.value)
+            except ValueError:
+                out.kwargs[kw.arg] = BY_NAME  # sr=sr: --sample-rate says what it is
+            continue
         out.kwargs[kw.arg] = _value(kw.value, name, kw.arg)
     for arg in node.args:
         if isinstance(arg, ast.Call):
@@ -214,11 +222,26 @@ def _db(fe: dict, *, multiplier: float, ref: Any, amin: float, top_db: Any, call
                "top_db": 0.0 if top_db is None else float(top_db)})
 
 
+def _rate(value: Any, given: int | None, default: int, key: str) -> int:
+    """The sample rate: the call's literal, else --sample-rate, else the library's default;
+    a rate the call writes as a name needs --sample-rate."""
+    if value is BY_NAME:
+        if given is None:
+            raise ScenemonError(f"{key}= is written as a name in the call; give the rate with "
+                                f"--sample-rate")
+        return given
+    if value is not None:
+        if given is not None and int(value) != int(given):
+            raise ScenemonError(f"the call says {key}={value} but --sample-rate is {given}")
+        return int(value)
+    return given if given is not None else default
+
+
 def _librosa(by: dict[str, Call], fe: dict, sr: int | None) -> int | None:
     mf = by.get("mfcc")
     ms = by.get("melspectrogram")
     k = {**(ms.kwargs if ms else {}), **(mf.kwargs if mf else {})}
-    sr = k.get("sr", sr if sr is not None else 22050)  # librosa's default rate
+    sr = _rate(k.get("sr"), sr, 22050, "sr")  # 22050: librosa's default rate
     n_fft = k.get("n_fft", 2048)
     win = k.get("win_length") or n_fft
     hop = k.get("hop_length") or win // 4
@@ -256,7 +279,7 @@ def _torchaudio(by: dict[str, Call], fe: dict, sr: int | None) -> int | None:
     k = dict(ms.kwargs) if ms else {}
     if mf:
         k.update(mf.kwargs.get("melkwargs") or {})
-    sr = (mf.kwargs if mf else k).get("sample_rate", sr if sr is not None else 16000)
+    sr = _rate((mf.kwargs if mf else k).get("sample_rate"), sr, 16000, "sample_rate")
     n_fft = k.get("n_fft", 400)
     win = k.get("win_length") or n_fft
     hop = k.get("hop_length") or win // 2
@@ -301,7 +324,7 @@ def _tf_signal(by: dict[str, Call], fe: dict, sr: int | None) -> int | None:
     if mel is None:
         raise ScenemonError("stft: give the linear_to_mel_weight_matrix(...) call as well")
     m = mel.kwargs
-    sr = m.get("sample_rate", sr if sr is not None else 8000)
+    sr = _rate(m.get("sample_rate"), sr, 8000, "sample_rate")
     if k.get("pad_end", False):
         raise ScenemonError("stft: pad_end=True has no card key (frames stay inside the window)")
     fe["kind"] = "mfcc" if "mfccs_from_log_mel_spectrograms" in by else "logmel"

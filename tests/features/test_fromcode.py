@@ -132,7 +132,14 @@ def test_what_card_write_cannot_read_is_said_in_one_sentence(walk):
     d, _ = walk
     r = write(d, "bad.toml", "librosa.feature.melspectrogram(y=y, sr=sr, n_fft=512)",
               "librosa.power_to_db(S)")
-    assert r.returncode == 2 and "sr=sr is not a value" in r.stderr
+    assert r.returncode == 2 and "sr= is written as a name" in r.stderr
+    assert "--sample-rate" in r.stderr and not (d / "bad.toml").exists()
+    r = write(d, "named.toml", "librosa.feature.melspectrogram(y=y, sr=sr, n_fft=512)",
+              "librosa.power_to_db(S)", extra=["--sample-rate", "16000"])
+    assert r.returncode == 0 and "sample_rate = 16000" in (d / "named.toml").read_text()
+    r = write(d, "bad.toml", "librosa.feature.melspectrogram(y=y, sr=16000, n_mels=bands)",
+              "librosa.power_to_db(S)")
+    assert r.returncode == 2 and "n_mels=bands is not a value" in r.stderr
     r = write(d, "bad.toml", "my_features(y)")
     assert r.returncode == 2 and "my_features is not a feature call" not in r.stderr
     assert "none of my_features is a feature call" in r.stderr
