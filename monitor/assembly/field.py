@@ -319,6 +319,10 @@ class _StatusThread:
         disk = self.check_disk(handle)
         if not final:
             self.check_budget(handle.dir if handle is not None else None)
+        elif run.plan.keep.bytes is not None:  # the last word: what the folder holds now
+            used = rf.folder_bytes(run.dir)
+            with run.lock:
+                run.used_bytes = used
         snap = self.watch.snapshot()
         engine = self.watch.status
         now = rf.clock_now()
