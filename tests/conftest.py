@@ -11,6 +11,7 @@ import soundfile as sf
 
 ROOT = Path(__file__).resolve().parent.parent
 MODELS = ROOT / "models"
+AUDIO_SERVER = ROOT / "tests" / "audio_server.sh"
 os.environ.setdefault("TF_CPP_MIN_LOG_LEVEL", "2")
 
 
@@ -133,3 +134,26 @@ def compiler():
     if os.environ.get("SCENEMON_REQUIRE_CC") == "1":
         pytest.fail("SCENEMON_REQUIRE_CC=1 but no C compiler (gcc, cc) found")
     pytest.skip("no C compiler found")
+
+
+def need_audio_server() -> None:
+    """Start the suite's PulseAudio server (tests/audio_server.sh) for a live test; skip with
+    the reason where it cannot run, or fail when SCENEMON_REQUIRE_AUDIO=1 (set by .ci/run)."""
+    why = None
+    if not shutil.which("pactl") or not shutil.which("paplay"):
+        why = "pulseaudio-utils (pactl, paplay) not installed"
+    elif subprocess.run(["bash", str(AUDIO_SERVER), "start"], capture_output=True).returncode:
+        why = "no PulseAudio server could be started"
+    else:
+        try:
+            import sounddevice as sd
+        except OSError as exc:
+            why = f"PortAudio missing: {exc}"
+        else:
+            if not any(d["name"] == "pulse" and d["max_input_channels"] > 0
+                       for d in sd.query_devices()):
+                why = "PortAudio has no ALSA 'pulse' device (libasound2-plugins missing?)"
+    if why:
+        if os.environ.get("SCENEMON_REQUIRE_AUDIO") == "1":
+            pytest.fail(f"SCENEMON_REQUIRE_AUDIO=1 but {why}")
+        pytest.skip(why)

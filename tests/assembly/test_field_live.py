@@ -8,8 +8,6 @@ Skipped with a reason where no audio server runs; failing instead when
 SCENEMON_REQUIRE_AUDIO=1 (set by .ci/run)."""
 
 import json
-import os
-import shutil
 import signal
 import subprocess
 import sys
@@ -18,37 +16,18 @@ from pathlib import Path
 
 import pytest
 
-from conftest import MODELS, ROOT, cli
+from conftest import AUDIO_SERVER, MODELS, ROOT, cli, need_audio_server
 from monitor.session import runfolder as rf
 from monitor.session.repair import check_whole
 
 pytestmark = [pytest.mark.system, pytest.mark.slow]
-SERVER = Path(__file__).resolve().parent.parent / "audio_server.sh"
-REQUIRED = os.environ.get("SCENEMON_REQUIRE_AUDIO") == "1"
+SERVER = AUDIO_SERVER
 SINK = "scenemon_test"
-
-
-def _server_up() -> str | None:
-    if not shutil.which("pactl"):
-        return "pulseaudio-utils (pactl) not installed"
-    if subprocess.run(["bash", str(SERVER), "start"], capture_output=True).returncode != 0:
-        return "no PulseAudio server could be started"
-    try:
-        import sounddevice as sd
-    except OSError as exc:
-        return f"PortAudio missing: {exc}"
-    if not any(d["name"] == "pulse" and d["max_input_channels"] > 0 for d in sd.query_devices()):
-        return "PortAudio has no ALSA 'pulse' device (libasound2-plugins missing?)"
-    return None
 
 
 @pytest.fixture(scope="module")
 def pulse():
-    why = _server_up()
-    if why:
-        if REQUIRED:
-            pytest.fail(f"SCENEMON_REQUIRE_AUDIO=1 but {why}")
-        pytest.skip(why)
+    need_audio_server()
     yield
     _load_sink()
 

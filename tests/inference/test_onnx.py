@@ -200,14 +200,9 @@ def test_logits_under_a_probabilities_card_are_refused_by_name(trained, tmp_path
 @pytest.mark.slow
 def test_live_takes_an_onnx_model(trained, tmp_path):
     # a real PortAudio stream from the PulseAudio server the suite runs (tests/audio_server.sh)
-    import shutil
-    import subprocess
+    from conftest import need_audio_server, run_cli
 
-    from conftest import run_cli
-
-    if not shutil.which("pactl") or subprocess.run(["pactl", "info"],
-                                                   capture_output=True).returncode != 0:
-        pytest.skip("no PulseAudio server (tests/audio_server.sh start)")
+    need_audio_server()
     d, _, _ = trained
     r = run_cli("live", "--model", d / "walk.onnx", "--card", d / "walk.toml", "--input",
                 "pulse", "--headless", "--seconds", "3", "--out", tmp_path / "s")

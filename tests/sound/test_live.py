@@ -19,38 +19,19 @@ import numpy as np
 import pytest
 import soundfile as sf
 
-from conftest import MODELS, ROOT, run_cli
+from conftest import AUDIO_SERVER, MODELS, ROOT, need_audio_server, run_cli
 from monitor.assembly.engine import Engine, ObserverBase
 from monitor.features.frontend import mel_band_edges
 from monitor.inference.registry import load_runner
 from monitor.sound.sources import FileSource
 
 pytestmark = [pytest.mark.system, pytest.mark.slow]
-SERVER = Path(__file__).resolve().parent.parent / "audio_server.sh"
-REQUIRED = os.environ.get("SCENEMON_REQUIRE_AUDIO") == "1"
-
-
-def _server_up() -> str | None:
-    if not shutil.which("pactl") or not shutil.which("paplay"):
-        return "pulseaudio-utils (pactl, paplay) not installed"
-    if subprocess.run(["bash", str(SERVER), "start"], capture_output=True).returncode != 0:
-        return "no PulseAudio server could be started"
-    try:
-        import sounddevice as sd
-    except OSError as exc:
-        return f"PortAudio missing: {exc}"
-    if not any(d["name"] == "pulse" and d["max_input_channels"] > 0 for d in sd.query_devices()):
-        return "PortAudio has no ALSA 'pulse' device (libasound2-plugins missing?)"
-    return None
+SERVER = AUDIO_SERVER
 
 
 @pytest.fixture(scope="module")
 def pulse():
-    why = _server_up()
-    if why:
-        if REQUIRED:
-            pytest.fail(f"SCENEMON_REQUIRE_AUDIO=1 but {why}")
-        pytest.skip(why)
+    need_audio_server()
     yield
     subprocess.run(["bash", str(SERVER), "start"], capture_output=True)
 
