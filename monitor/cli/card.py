@@ -222,8 +222,8 @@ def run_write(args: argparse.Namespace) -> int:
     except ScenemonError:
         out.unlink()
         raise
-    print(f"card      {out} ({card.frontend.kind}, {card.feature_shape[0]} x "
-          f"{card.feature_shape[1] if len(card.feature_shape) > 1 else ''} a window)".rstrip())
+    shape = " x ".join(str(n) for n in card.feature_shape)
+    print(f"card      {out} ({card.frontend.kind}, {shape} a window)")
     if not args.check:
         print(f"next      scenemon card check {out} AUDIO FEATURES.npy")
         return 0

@@ -140,10 +140,6 @@ def _call(node: ast.Call, text: str) -> Call:
     return out
 
 
-def _bool(v: Any) -> bool:
-    return bool(v)
-
-
 def card_keys(calls: list[Call], *, sample_rate: int | None = None,
               mfcc: int | None = None) -> dict[str, Any]:
     """The ``[frontend]`` keys (and the sample rate) that the calls amount to.
@@ -247,7 +243,7 @@ def _librosa(by: dict[str, Call], fe: dict, sr: int | None) -> int | None:
     hop = k.get("hop_length") or win // 4
     fe["kind"] = "mfcc" if mf else "logmel"
     _mel(fe, n_fft=n_fft, win=win, hop=hop, window=k.get("window", "hann"), centre="centre",
-         center=_bool(k.get("center", True)), pad_mode=k.get("pad_mode", "constant"),
+         center=bool(k.get("center", True)), pad_mode=k.get("pad_mode", "constant"),
          n_mels=k.get("n_mels", 128), fmin=k.get("fmin", 0.0),
          fmax=k.get("fmax") or sr / 2, scale="htk" if k.get("htk", False) else "slaney",
          norm="slaney" if k.get("norm", "slaney") == "slaney" else "none", triangles="hz",
@@ -287,7 +283,7 @@ def _torchaudio(by: dict[str, Call], fe: dict, sr: int | None) -> int | None:
         raise ScenemonError("MelSpectrogram: normalized=True or pad > 0 has no card key")
     fe["kind"] = "mfcc" if mf else "logmel"
     _mel(fe, n_fft=n_fft, win=win, hop=hop, window=k.get("window_fn", "hann"),
-         centre="centre", center=_bool(k.get("center", True)),
+         centre="centre", center=bool(k.get("center", True)),
          pad_mode=k.get("pad_mode", "reflect"), n_mels=k.get("n_mels", 128),
          fmin=k.get("f_min", 0.0), fmax=k.get("f_max") or sr / 2,
          scale=k.get("mel_scale", "htk"), norm="slaney" if k.get("norm") == "slaney" else "none",
