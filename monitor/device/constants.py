@@ -24,6 +24,7 @@ from monitor.features.stages import (
     KINDS,
     STAGES,
     c_define,
+    c_ints,
     cfloat,
     show_value,
     sparse_bank,
@@ -99,13 +100,95 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
         "/* the stages that run (1) */",
         *[c_define(f"SM_HAS_{name.upper()}", name in running) for name in STAGES], "",
     ]
+    fixed = card.frontend.pcm.arithmetic == "q15"
     for s in stages:
+        if fixed and s.name not in FIXED_KEEPS:
+            continue  # its float tables: the q15 block below has the integer ones
         lines.append(f"/* stage: {s.name} */")
         lines += s.c_lines()
         lines.append("")
+    if fixed:
+        lines += fixed_lines(card)
     lines += [f"static const char *const sm_class_names[SM_N_CLASSES] = {{{names}}};", "",
               "#endif", ""]
     return "\n".join(lines)
+
+
+# the stages whose #defines the q15 front end uses as they are (no float tables among them)
+FIXED_KEEPS = ("pcm", "preemphasis", "centre", "framing", "spectrum", "layout")
+
+
+def fixed_tables(card: ModelCard) -> dict[str, tuple[str, np.ndarray]]:
+    """The q15 front end's constant tables: name to (C type, values), from the very arrays
+    `monitor.features.fixedpoint.FixedFrontEnd` computes with.
+
+    Parameters
+    ----------
+    card : ModelCard
+        A card with ``arithmetic = "q15"``.
+
+    Returns
+    -------
+    dict
+        Table name to its element type and flat values.
+    """
+    from monitor.features.fixedpoint import FixedFrontEnd
+
+    fx = FixedFrontEnd(card)
+    first, length, packed = sparse_bank(fx.mel)
+    mode = card.stages()[-1].tables()[0]  # type: ignore[attr-defined]
+    shape = card.feature_shape
+    if mode == 0:
+        mean, mul = fx.mean_q.reshape(-1)[:1], fx.mul_q.reshape(-1)[:1]
+    elif mode == 1:
+        mean, mul = fx.mean_q.reshape(-1), fx.mul_q.reshape(-1)
+    else:
+        mean = np.broadcast_to(fx.mean_q, shape).reshape(-1)
+        mul = np.broadcast_to(fx.mul_q, shape).reshape(-1)
+    out = {"sm_window_q31": ("int32_t", fx.window),
+           "sm_twiddle_re": ("int32_t", fx.tw_re), "sm_twiddle_im": ("int32_t", fx.tw_im),
+           "sm_bitrev": ("uint16_t", fx.bitrev),
+           "sm_mel_first_bin": ("int16_t", np.array(first)),
+           "sm_mel_length": ("int16_t", np.array(length)),
+           "sm_mel_q15": ("uint16_t", np.asarray(packed, np.int64)),
+           "sm_offset_q": ("int64_t", fx.offset_q), "sm_floor_q": ("int64_t", fx.floor_q),
+           "sm_offset_bits": ("uint8_t", fx.offset_bits),
+           "sm_log_const": ("int32_t", fx.log_const), "sm_log2_q24": ("int32_t", fx.table),
+           "sm_scale_mean_q": ("int32_t", mean), "sm_scale_mul": ("int32_t", mul)}
+    if fx.dct is not None:
+        out["sm_dct_q30"] = ("int32_t", fx.dct.reshape(-1))
+    return out
+
+
+_C_BYTES = {"int16_t": 2, "uint16_t": 2, "int32_t": 4, "int64_t": 8, "uint8_t": 1}
+
+
+def fixed_lines(card: ModelCard) -> list[str]:
+    """The q15 block of ``frontend_constants.h`` (`fixed_tables` and the switches)."""
+    from monitor.features.fixedpoint import FixedFrontEnd
+
+    fx = FixedFrontEnd(card)
+    lines = ["/* the q15 front end (frontend_q15.c): integer tables, formats in its comment */",
+             c_define("SM_ARITHMETIC_Q15", 1),
+             c_define("SM_FFT_BITS", fx.bits),
+             c_define("SM_MEL_BANDS", fx.bands),
+             c_define("SM_MEL_COEFFS", int(sum(sparse_bank(fx.mel)[1]))),
+             c_define("SM_MFCC", 0 if fx.dct is None else fx.dct.shape[0]),
+             c_define("SM_LOG_FACTOR", fx.factor, "log2 to feature units, q28"),
+             c_define("SM_DB_MAX", fx.db_max, "1: minus the window's maximum"),
+             c_define("SM_TOP_DB_Q", fx.top_db, "top_db in q16 (0: none)"),
+             c_define("SM_SCALE_MODE", card.stages()[-1].tables()[0],  # type: ignore[attr-defined]
+                      "0 one value, 1 per band, 2 full shape"),
+             c_define("SM_SCALE_BITS", fx.scale_bits, "scaling multiplier's fraction bits")]
+    for name, (ctype, values) in fixed_tables(card).items():
+        vals = [int(v) for v in np.asarray(values).reshape(-1)]
+        if ctype == "int64_t":
+            vals_txt = [f"INT64_C({v})" for v in vals]
+            body = ",\n".join("    " + ", ".join(vals_txt[i:i + 6]) for i in range(0, len(vals), 6))
+            lines.append(f"static const int64_t {name}[{len(vals)}] = {{\n{body}\n}};")
+        else:
+            lines.append(c_ints(name, ctype, vals))
+    return lines + [""]
 
 
 def c_buffers(card: ModelCard) -> dict[str, int]:
@@ -122,6 +205,12 @@ def c_buffers(card: ModelCard) -> dict[str, int]:
         Buffer name to bytes.
     """
     out: dict[str, int] = {}
+    if card.frontend.pcm.arithmetic == "q15":  # frontend_q15.c's static arrays
+        n, frames = card.frontend.framing.fft_length, card.frames_per_window
+        hist = card.stages()[0].history  # type: ignore[attr-defined]
+        return {"sm_hist": 2 * hist, "sm_filled": 4, "sm_re": 4 * n, "sm_im": 4 * n,
+                "sm_frames": 4 * frames * card.frontend.mel.mel_bands,
+                "sm_out_q": 4 * int(np.prod(card.feature_shape))}
     for s in card.stages():
         out.update(s.c_buffers())
     return out
@@ -141,6 +230,9 @@ def c_tables(card: ModelCard) -> dict[str, int]:
     dict
         Table name to bytes.
     """
+    if card.frontend.pcm.arithmetic == "q15":
+        return {name: _C_BYTES[ctype] * int(np.asarray(values).size)
+                for name, (ctype, values) in fixed_tables(card).items()}
     out: dict[str, int] = {}
     for s in card.stages():
         out.update(s.c_tables())

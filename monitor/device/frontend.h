@@ -54,6 +54,11 @@ int sm_push_hop(const int16_t *pcm_hop, float *out);
 /* The same for float PCM (quantised to int16 first when the card says pcm_bits = 16). */
 int sm_push_hop_f32(const float *pcm_hop, float *out);
 
+/* The q15 front end only (frontend_q15.c, card arithmetic = "q15"): the model input in q16
+ * integers (value / 65536), the very numbers the float calls above convert at the end. */
+int sm_features_q16(const int16_t *pcm, int32_t *out);
+int sm_push_hop_q16(const int16_t *pcm_hop, int32_t *out);
+
 /* Forget the stream (the next window needs SM_HIST_SAMPLES new samples). */
 void sm_stream_reset(void);
 

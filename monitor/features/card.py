@@ -520,6 +520,9 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
 
     shape = frontend.shape(audio)
     scaling = _scaling(raw.get("scaling", {}), frontend, shape, path, fail)
+    if frontend.pcm.arithmetic == "q15" and scaling.per_window != "none":
+        raise fail('frontend.arithmetic="q15" computes no per-window standardisation; set '
+                   '[scaling] per_window = "none" or arithmetic = "float32"')
 
     dec = raw.get("decision", {})
     dkw = {}

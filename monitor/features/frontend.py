@@ -84,6 +84,11 @@ class FrontEnd:
         scaling = by["scaling"]
         self.mean, self.inv_std = scaling.mean, scaling.inv_std  # type: ignore[attr-defined]
         self.stream = FrameStream(self)
+        self.fixed = None  # the q15 front end (`monitor.features.fixedpoint`) when the card says
+        if card.frontend.pcm.arithmetic == "q15":
+            from monitor.features.fixedpoint import FixedFrontEnd
+
+            self.fixed = FixedFrontEnd(card)
 
     # --- the parts ----------------------------------------------------------------------
     def _run(self, stages: Sequence[Stage], x: np.ndarray) -> np.ndarray:
@@ -145,6 +150,13 @@ class FrontEnd:
             frames), or with `model_order` in the card's layout (the model's input order).
         """
         windows = self._check(windows)
+        if self.fixed is not None:
+            from monitor.features.fixedpoint import as_float, to_pcm16
+
+            u = self.fixed.unscaled_q(to_pcm16(windows))
+            if model_order and self.fixed.layout.active:
+                u = self.fixed.layout.run(u)
+            return np.ascontiguousarray(as_float(u))
         if self.framing is None:
             x = self._run(self._samples, windows)
         else:
@@ -159,6 +171,11 @@ class FrontEnd:
 
     def scale(self, unscaled: np.ndarray) -> np.ndarray:
         """Layout and scaling of time-major unscaled features: the model input."""
+        if self.fixed is not None:  # q16 values as floats: exact, so back to the integers
+            from monitor.features.fixedpoint import FEATURE_Q, as_float
+
+            u = np.round(np.asarray(unscaled, np.float64) * (1 << FEATURE_Q)).astype(np.int64)
+            return as_float(self.fixed.scaled_q(u))
         return self._run(self._output, np.asarray(unscaled, np.float32))
 
     def batch(self, windows: np.ndarray) -> np.ndarray:
@@ -175,6 +192,10 @@ class FrontEnd:
             Shape ``(n, *card.feature_shape)``, float32, in the card's layout (no channel).
         """
         windows = self._check(windows)
+        if self.fixed is not None:
+            from monitor.features.fixedpoint import as_float, to_pcm16
+
+            return as_float(self.fixed.scaled_q(self.fixed.unscaled_q(to_pcm16(windows))))
         if self.framing is None:
             return self._run(self._output, self._run(self._samples, windows))
         return self._finish(self._spectra(windows))
@@ -196,7 +217,14 @@ class FrontEnd:
         signal = np.asarray(signal, dtype=np.float32)
         if signal.shape != ((n - 1) * c.hop_samples + c.window_samples,):
             raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
+        if self.fixed is not None:
+            return self._fixed_stream(signal, n)
         return self._consecutive(signal, n, None)[0]
+
+    def _fixed_stream(self, signal: np.ndarray, n: int) -> np.ndarray:
+        from monitor.features.fixedpoint import as_float, to_pcm16
+
+        return as_float(self.fixed.scaled_q(self.fixed.stream_q(to_pcm16(signal), n)))
 
     def batch_of_stream(self, windows: np.ndarray) -> np.ndarray:
         """`batch` of windows that follow one another a hop apart (every window of a
@@ -214,6 +242,11 @@ class FrontEnd:
             ``(n, *card.feature_shape)`` float32.
         """
         windows = self._check(windows)
+        hop = self.card.hop_samples
+        if self.fixed is not None and len(windows) > 1 and hop <= self.card.window_samples:
+            signal = np.concatenate([windows[0], windows[1:, -hop:].reshape(-1)])
+            return np.concatenate([self._fixed_stream(signal[a * hop:(b - 1) * hop + windows.shape[1]], b - a)
+                                   for a, b in _blocks(len(windows), 256)])
         if not self._shares(len(windows)):
             return self.batch(windows)
         stream = FrameStream(self)
@@ -224,7 +257,8 @@ class FrontEnd:
             for a in range(0, len(windows), block)])
 
     def _shares(self, n: int = 2) -> bool:
-        return self.framing is not None and self.framing.share_step > 0 and n > 1
+        return (self.fixed is None and self.framing is not None and self.framing.share_step > 0
+                and n > 1)
 
     def _consecutive(self, signal: np.ndarray, n: int,
                      known: tuple[int, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray | None]:
@@ -282,6 +316,11 @@ class FrontEnd:
         return (fe.framing.fft_length // 2 + 1,)
 
 
+def _blocks(n: int, size: int) -> list[tuple[int, int]]:
+    """``(a, b)`` pieces of ``range(n)`` of at most `size`."""
+    return [(a, min(a + size, n)) for a in range(0, n, size)]
+
+
 class FrameStream:
     """The live path: windows as they arrive, each shared frame computed once.
 
@@ -319,9 +358,9 @@ class FrameStream:
             ``(n, *card.feature_shape)`` float32.
         """
         fe, c = self.fe, self.fe.card
-        if not fe._shares(2):
+        if not fe._shares(2) and (fe.fixed is None or c.hop_samples > c.window_samples):
             return fe.batch(np.stack(windows))
-        hop, step = c.hop_samples, fe.framing.cfg.frame_step
+        hop = c.hop_samples
         out = []
         i = 0
         while i < len(windows):  # runs of windows one hop apart
@@ -330,6 +369,11 @@ class FrameStream:
                 j += 1
             signal = np.concatenate([windows[i]] + [w[-hop:] for w in windows[i + 1:j]]) \
                 if j - i > 1 else np.asarray(windows[i], np.float32)
+            if fe.fixed is not None:  # integers: frames shared within a run, none kept
+                out.append(fe._fixed_stream(np.asarray(signal, np.float32), j - i))
+                i = j
+                continue
+            step = fe.framing.cfg.frame_step
             known = None
             if self._start is not None:
                 d = starts[i] - self._start

@@ -3,12 +3,13 @@
 from __future__ import annotations
 
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
 from monitor.features.stages.base import Stage
 from monitor.features.stages.ctext import c_define
-from monitor.features.stages.keys import key
+from monitor.features.stages.keys import CardProblem, key
 from monitor.sound.samples import quantise_pcm16
 
 
@@ -21,9 +22,36 @@ class PcmConfig:
     pcm_bits : int
         16: quantise the input to int16 first, as the device's microphone path does; 0: keep
         float.
+    arithmetic : {"float32", "q15"}
+        "q15": the front end in fixed point from int16 samples, as a board without a
+        floating-point unit computes it (`monitor.features.fixedpoint`); "float32": float.
     """
     pcm_bits: int = key(int, "16: quantise the input to int16 first, as the device's "
                         "microphone path does; 0: keep float", choices=(0, 16), default=0, off=0)
+    arithmetic: str = key(str, "\"float32\" or \"q15\": the front end in fixed point from "
+                          "int16 samples (kinds logmel and mfcc)", choices=("float32", "q15"),
+                          default="float32", off="float32")
+
+    def check(self, fe: Any, audio: Any) -> None:
+        """CardProblem when ``arithmetic = "q15"`` meets a kind or key it does not compute."""
+        if self.arithmetic != "q15":
+            return
+        if fe.kind not in ("logmel", "mfcc"):
+            raise CardProblem(f'frontend.arithmetic="q15" computes the kinds "logmel" and '
+                              f'"mfcc", not kind = "{fe.kind}"; set arithmetic = "float32"')
+        if self.pcm_bits != 16:
+            raise CardProblem('frontend.arithmetic="q15" takes int16 samples: set '
+                              'pcm_bits = 16')
+        if fe.preemphasis.preemphasis > 0:
+            raise CardProblem('frontend.arithmetic="q15" computes no pre-emphasis; set '
+                              'preemphasis = 0 or arithmetic = "float32"')
+        n, p = fe.framing.fft_length, fe.spectrum.power
+        units = 2.0 ** (61 if p == 2 else 56) / float(n) ** p
+        big = max(fe.log.log_offset, fe.log.log_floor) * units / _smallest_gain(audio, fe)
+        if big >= 2.0 ** 62:
+            raise CardProblem(f"frontend.log_offset={fe.log.log_offset:g} (or log_floor) is too "
+                              f"large for the q15 front end's 64-bit sums; use a smaller "
+                              f"value or arithmetic = \"float32\"")
 
 
 class PcmStage(Stage):
@@ -58,3 +86,14 @@ class PcmStage(Stage):
     def c_buffers(self) -> dict[str, int]:
         """The stream's history ``sm_hist`` (float32) and its int32 fill count ``sm_filled``."""
         return {"sm_hist": 4 * self.history, "sm_filled": 4}
+
+
+def _smallest_gain(audio: Any, fe: Any) -> float:
+    """The smallest peak weight of a mel band (the q15 front end divides the offset by it)."""
+    from monitor.features.dsp import mel_filterbank
+
+    m = fe.mel
+    w = mel_filterbank(sample_rate=audio.sample_rate, fft_length=fe.framing.fft_length,
+                       mel_bands=m.mel_bands, fmin=m.fmin, fmax=m.fmax, scale=m.mel_scale,
+                       norm=m.mel_norm, triangles=m.mel_triangles).max(axis=1)
+    return float(w[w > 0].min()) if np.any(w > 0) else 1.0

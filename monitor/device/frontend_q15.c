@@ -1,0 +1,329 @@
+/* scenemon fixed-point front end (card arithmetic = "q15"); see frontend.h.
+ *
+ * Integers only from the int16 samples to the q16 features: no FPU, no libm. The float
+ * calls (sm_features_i16 and the others with float output) convert the q16 result at the
+ * very end, exactly. Bit for bit what scenemon's Python model computes
+ * (monitor/features/fixedpoint.py, whose docstring gives every stage's format); every table
+ * comes from frontend_constants.h. Needs a compiler whose >> on a negative signed value is
+ * an arithmetic shift (gcc and clang for Arm and x86 are; ISO C leaves it to the
+ * implementation, C99 6.5.7) and 64-bit integer products (SMULL on Cortex-M3 and later).
+ *
+ * Per frame: headroom shift, window (q31), radix-2 FFT in q31 halved each stage, |X|^2 (q46)
+ * or |X| (q41), mel sums (int64), offset and log2 (q24), feature units (q16). Per window:
+ * dB reference and top_db, DCT (q30 coefficients), layout, scaling (one integer multiply). */
+#include <stdint.h>
+
+#include "frontend_constants.h"
+#include "frontend.h"
+
+#define SM_CHECK(name, cond) typedef char sm_check_##name[(cond) ? 1 : -1]
+
+SM_CHECK(q15, SM_ARITHMETIC_Q15 == 1);
+SM_CHECK(history, SM_HIST_SAMPLES >= SM_WINDOW_SAMPLES && SM_HIST_SAMPLES % SM_HOP_SAMPLES == 0
+                  && SM_HIST_SAMPLES - SM_HOP_SAMPLES < SM_WINDOW_SAMPLES);
+SM_CHECK(fft, SM_FFT_LENGTH == (1 << SM_FFT_BITS) && SM_FFT_BITS >= 4 && SM_FFT_BITS <= 15);
+SM_CHECK(frames, SM_FRAMES >= 1 && SM_FEATURES == SM_FRAMES * SM_CHANNELS
+                 && SM_FRAME_OFFSET + SM_FRAME_LENGTH <= SM_FFT_LENGTH);
+SM_CHECK(pad, SM_PAD >= 0 && (!SM_PAD_REFLECT || SM_PAD < SM_WINDOW_SAMPLES));
+SM_CHECK(tables, sizeof(sm_window_q31) == 4 * SM_FRAME_LENGTH
+                 && sizeof(sm_twiddle_re) == 4 * (SM_FFT_LENGTH / 2)
+                 && sizeof(sm_mel_q15) == 2 * SM_MEL_COEFFS
+                 && sizeof(sm_log2_q24) == 4 * 257);
+SM_CHECK(shared, SM_SHARE_STEP == 0 || (SM_SHARED_FIRST >= 0 && SM_SHARED_LAST < SM_FRAMES
+                                        && SM_SHARE_STEP * SM_FRAME_STEP == SM_HOP_SAMPLES));
+
+static int16_t sm_hist[SM_HIST_SAMPLES]; /* the newest samples; the window is sm_hist[0..W) */
+static int32_t sm_filled;
+static int32_t sm_re[SM_FFT_LENGTH];
+static int32_t sm_im[SM_FFT_LENGTH];
+static int32_t sm_frames[SM_FRAMES * SM_MEL_BANDS]; /* q16 log values, frame after frame */
+static int32_t sm_out_q[SM_FEATURES];
+
+/* sample j (0 <= j < W + 2 pad) of the window x with its centre padding */
+static int32_t sm_padded(const int16_t *x, int j) {
+    j -= SM_PAD;
+#if SM_PAD > 0
+    if (j < 0 || j >= SM_WINDOW_SAMPLES) {
+#if SM_PAD_REFLECT
+        j = j < 0 ? -j : 2 * (SM_WINDOW_SAMPLES - 1) - j;
+#else
+        return 0;
+#endif
+    }
+#endif
+    return x[j];
+}
+
+static int sm_bit_length(uint64_t v) {
+    int n = 0;
+    while (v) {
+        v >>= 1;
+        n++;
+    }
+    return n;
+}
+
+/* log2(v) in q24 for v >= 1: bit length, then the table between its two nearest points */
+static int64_t sm_log2(int64_t v) {
+    const int e = sm_bit_length((uint64_t)v) - 1;
+    const int64_t mant = e >= 30 ? v >> (e - 30) : v << (30 - e); /* q30 in [1, 2) */
+    const int low = 30 - 8;
+    const int i = (int)((mant >> low) - 256);
+    const int64_t frac = mant & ((1 << low) - 1);
+    const int64_t t0 = sm_log2_q24[i], t1 = sm_log2_q24[i + 1];
+    return ((int64_t)e << 24) + t0 + (((t1 - t0) * frac + (1 << (low - 1))) >> low);
+}
+
+#if SM_POWER == 1
+static uint32_t sm_isqrt(uint64_t v) { /* floor(sqrt(v)), bit by bit */
+    uint64_t r = 0, bit = (uint64_t)1 << 62;
+    while (bit > v) bit >>= 2;
+    while (bit) {
+        if (v >= r + bit) {
+            v -= r + bit;
+            r = (r >> 1) + bit;
+        } else {
+            r >>= 1;
+        }
+        bit >>= 2;
+    }
+    return (uint32_t)r;
+}
+#endif
+
+/* radix-2 decimation in time on q31, each stage halved with rounding: X / N */
+static void sm_fft(void) {
+    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+        int j = sm_bitrev[i];
+        if (j > i) {
+            int32_t t = sm_re[i]; sm_re[i] = sm_re[j]; sm_re[j] = t;
+            t = sm_im[i]; sm_im[i] = sm_im[j]; sm_im[j] = t;
+        }
+    }
+    for (int size = 2; size <= SM_FFT_LENGTH; size <<= 1) {
+        const int half = size >> 1, stride = SM_FFT_LENGTH / size;
+        for (int start = 0; start < SM_FFT_LENGTH; start += size) {
+            for (int k = 0; k < half; k++) {
+                const int64_t wr = sm_twiddle_re[k * stride], wi = sm_twiddle_im[k * stride];
+                const int a = start + k, b = a + half;
+                const int64_t br = sm_re[b], bi = sm_im[b], ar = sm_re[a], ai = sm_im[a];
+                const int64_t tr = (br * wr - bi * wi + ((int64_t)1 << 30)) >> 31;
+                const int64_t ti = (br * wi + bi * wr + ((int64_t)1 << 30)) >> 31;
+                sm_re[a] = (int32_t)((ar + tr + 1) >> 1);
+                sm_im[a] = (int32_t)((ai + ti + 1) >> 1);
+                sm_re[b] = (int32_t)((ar - tr + 1) >> 1);
+                sm_im[b] = (int32_t)((ai - ti + 1) >> 1);
+            }
+        }
+    }
+}
+
+/* frame t of the window x -> sm_frames row t (q16 log values) */
+static void sm_frame(const int16_t *x, int t) {
+    const int base = t * SM_FRAME_STEP + SM_FRAME_OFFSET;
+    int32_t peak = 0;
+    for (int i = 0; i < SM_FRAME_LENGTH; i++) {
+        int32_t v = sm_padded(x, base + i);
+        if (v < 0) v = -v;
+        if (v > peak) peak = v;
+    }
+    int s = 0; /* headroom: the most bits the frame can go up by within int16 */
+    while (peak > 0 && s < 14 && (peak << (s + 1)) <= 32767) s++;
+    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+        sm_re[i] = 0;
+        sm_im[i] = 0;
+    }
+    for (int i = 0; i < SM_FRAME_LENGTH; i++) {
+        const int64_t v = (int64_t)sm_padded(x, base + i) * ((int64_t)1 << s) * sm_window_q31[i];
+        sm_re[SM_FRAME_OFFSET + i] = (int32_t)((v + (1 << 14)) >> 15);
+    }
+    sm_fft();
+    /* the spectrum, in place in sm_re as int64 pairs would not fit: one bin at a time */
+    int32_t *row = sm_frames + t * SM_MEL_BANDS;
+    int c = 0;
+    const int ps = SM_POWER * s;
+    for (int m = 0; m < SM_MEL_BANDS; m++) {
+        int64_t acc = 0;
+        for (int k = 0; k < sm_mel_length[m]; k++) {
+            const int bin = sm_mel_first_bin[m] + k;
+            const int64_t re = sm_re[bin], im = sm_im[bin];
+            const int64_t p2 = re * re + im * im; /* q62 */
+#if SM_POWER == 2
+            const int64_t p = (p2 + (1 << 15)) >> 16; /* q46 */
+#else
+            const int64_t p = (int64_t)sm_isqrt((uint64_t)p2) << 10; /* q41 */
+#endif
+            acc += (int64_t)sm_mel_q15[c + k] * p;
+        }
+        c += sm_mel_length[m];
+        int d = sm_offset_bits[m] + ps - 62;
+        if (d < 0) d = 0;
+        int64_t v = (acc >> d) + (sm_offset_q[m] << (ps - d));
+        const int64_t floor_v = sm_floor_q[m] << (ps - d);
+        if (v < floor_v) v = floor_v;
+        if (v < 1) v = 1;
+        const int64_t l2 = sm_log2(v) + sm_log_const[m] + (int64_t)(d - ps) * ((int64_t)1 << 24);
+        row[m] = (int32_t)((l2 * SM_LOG_FACTOR + ((int64_t)1 << 35)) >> 36);
+    }
+}
+
+void sm_frontend_init(void) { sm_filled = 0; }
+
+/* per window: dB reference, top_db, DCT, layout and scaling -> sm_out_q (q16) */
+static void sm_finish(void) {
+#if SM_DB_MAX || SM_TOP_DB_Q
+    int32_t peak = sm_frames[0];
+    for (int i = 1; i < SM_FRAMES * SM_MEL_BANDS; i++)
+        if (sm_frames[i] > peak) peak = sm_frames[i];
+#if SM_DB_MAX
+    const int32_t ref = peak;
+#else
+    const int32_t ref = 0;
+#endif
+    const int32_t low = peak - ref - SM_TOP_DB_Q;
+#endif
+    for (int t = 0; t < SM_FRAMES; t++) {
+        const int32_t *row = sm_frames + t * SM_MEL_BANDS;
+        int32_t u[SM_MEL_BANDS];
+        for (int m = 0; m < SM_MEL_BANDS; m++) {
+            int32_t v = row[m];
+#if SM_DB_MAX || SM_TOP_DB_Q
+            v -= ref;
+#if SM_TOP_DB_Q
+            if (v < low) v = low;
+#endif
+#endif
+            u[m] = v;
+        }
+        for (int ch = 0; ch < SM_CHANNELS; ch++) {
+#if SM_MFCC > 0
+            int64_t acc = 0;
+            for (int m = 0; m < SM_MEL_BANDS; m++) acc += (int64_t)sm_dct_q30[ch * SM_MEL_BANDS + m] * u[m];
+            const int64_t v = (acc + ((int64_t)1 << 29)) >> 30;
+#else
+            const int64_t v = u[ch];
+#endif
+#if SM_LAYOUT_MEL_TIME
+            const int i = ch * SM_FRAMES + t;
+#else
+            const int i = t * SM_CHANNELS + ch;
+#endif
+#if SM_SCALE_MODE == 0
+            const int sidx = 0;
+#elif SM_SCALE_MODE == 1
+            const int sidx = ch;
+#else
+            const int sidx = i;
+#endif
+            const int64_t y = ((v - sm_scale_mean_q[sidx]) * sm_scale_mul[sidx]
+                               + ((int64_t)1 << (SM_SCALE_BITS - 1))) >> SM_SCALE_BITS;
+            sm_out_q[i] = (int32_t)y;
+        }
+    }
+}
+
+static void sm_frames_all(const int16_t *x) {
+    for (int t = 0; t < SM_FRAMES; t++) sm_frame(x, t);
+}
+
+static void sm_to_float(float *out) {
+    for (int i = 0; i < SM_FEATURES; i++) out[i] = (float)(double)sm_out_q[i] * (1.0f / 65536.0f);
+}
+
+static void sm_copy_q(int32_t *out) {
+    for (int i = 0; i < SM_FEATURES; i++) out[i] = sm_out_q[i];
+}
+
+/* int16 of a float sample as the pcm stage rounds it: half to even, saturated */
+static int16_t sm_pcm16(float x) {
+    float v = x * 32768.0f;
+    if (v >= 32767.0f) return 32767;
+    if (v <= -32768.0f) return -32768;
+    int i = (int)v; /* toward zero */
+    float f = v - (float)i;
+    if (f > 0.5f || (f == 0.5f && (i & 1))) i += 1;
+    else if (f < -0.5f || (f == -0.5f && (i & 1))) i -= 1;
+    return (int16_t)i;
+}
+
+static void sm_window_q(void) {
+    sm_filled = 0; /* sm_hist holds this window, not the stream: the stream restarts */
+    sm_frames_all(sm_hist);
+    sm_finish();
+}
+
+int sm_features_q16(const int16_t *pcm, int32_t *out) {
+    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_hist[i] = pcm[i];
+    sm_window_q();
+    sm_copy_q(out);
+    return 0;
+}
+
+int sm_features_i16(const int16_t *pcm, float *out) {
+    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_hist[i] = pcm[i];
+    sm_window_q();
+    sm_to_float(out);
+    return 0;
+}
+
+int sm_features_f32(const float *pcm, float *out) {
+    for (int i = 0; i < SM_WINDOW_SAMPLES; i++) sm_hist[i] = sm_pcm16(pcm[i]);
+    sm_window_q();
+    sm_to_float(out);
+    return 0;
+}
+
+/* the stream: one hop at a time, the frames a window shares with the one before kept */
+static int sm_stream(void) {
+    const int was_full = sm_filled == SM_HIST_SAMPLES;
+    sm_filled += SM_HOP_SAMPLES;
+    if (sm_filled > SM_HIST_SAMPLES) sm_filled = SM_HIST_SAMPLES;
+    if (sm_filled < SM_HIST_SAMPLES) return 0;
+#if SM_SHARE_STEP > 0
+    if (was_full) {
+        for (int t = SM_SHARED_FIRST; t <= SM_SHARED_LAST - SM_SHARE_STEP; t++)
+            for (int m = 0; m < SM_MEL_BANDS; m++)
+                sm_frames[t * SM_MEL_BANDS + m] = sm_frames[(t + SM_SHARE_STEP) * SM_MEL_BANDS + m];
+        for (int t = 0; t < SM_FRAMES; t++)
+            if (t < SM_SHARED_FIRST || t > SM_SHARED_LAST - SM_SHARE_STEP) sm_frame(sm_hist, t);
+    } else {
+        sm_frames_all(sm_hist);
+    }
+#else
+    (void)was_full;
+    sm_frames_all(sm_hist);
+#endif
+    sm_finish();
+    return 1;
+}
+
+static void sm_shift_history(void) {
+    for (int i = 0; i < SM_HIST_SAMPLES - SM_HOP_SAMPLES; i++) sm_hist[i] = sm_hist[i + SM_HOP_SAMPLES];
+}
+
+int sm_push_hop_q16(const int16_t *pcm_hop, int32_t *out) {
+    sm_shift_history();
+    for (int i = 0; i < SM_HOP_SAMPLES; i++) sm_hist[SM_HIST_SAMPLES - SM_HOP_SAMPLES + i] = pcm_hop[i];
+    if (!sm_stream()) return 0;
+    sm_copy_q(out);
+    return 1;
+}
+
+int sm_push_hop(const int16_t *pcm_hop, float *out) {
+    sm_shift_history();
+    for (int i = 0; i < SM_HOP_SAMPLES; i++) sm_hist[SM_HIST_SAMPLES - SM_HOP_SAMPLES + i] = pcm_hop[i];
+    if (!sm_stream()) return 0;
+    sm_to_float(out);
+    return 1;
+}
+
+int sm_push_hop_f32(const float *pcm_hop, float *out) {
+    sm_shift_history();
+    for (int i = 0; i < SM_HOP_SAMPLES; i++)
+        sm_hist[SM_HIST_SAMPLES - SM_HOP_SAMPLES + i] = sm_pcm16(pcm_hop[i]);
+    if (!sm_stream()) return 0;
+    sm_to_float(out);
+    return 1;
+}
+
+void sm_stream_reset(void) { sm_filled = 0; }

@@ -1,0 +1,307 @@
+"""The fixed-point front end (card ``arithmetic = "q15"``): a bit-exact model of
+``frontend_q15.c``, the integer front end a board without a floating-point unit runs.
+
+Every step is integer arithmetic on int64 arrays, each the very operation the C does (the
+same rounding, the same shifts, the same tables, which this module computes and the C
+receives in ``frontend_constants.h``), so the laptop computes what the board computes, bit
+for bit. The formats, per frame of ``frame_length`` int16 samples:
+
+1. headroom: the frame is shifted up by ``s`` bits, the most that keeps its largest sample
+   within int16 (``s = 0`` for a frame that reaches half of full scale, up to 14), so that a
+   quiet room keeps the precision of a loud one; ``s`` is undone in the log;
+2. window: ``(x << s) * w >> 15`` rounded, window coefficients in q31: the windowed sample in
+   q31 (a q15 product would put a noise floor 96 dB under the frame's peak);
+3. FFT: radix-2 decimation in time on q31 values, twiddles
+   in q31, each product rounded to q31, each stage halved with rounding: the spectrum is
+   ``X / N`` in q31 (no stage can overflow: a value never exceeds the frame's largest sample);
+4. spectrum: ``re^2 + im^2`` in int64 (q62), to q46 with rounding for power 2; the integer
+   square root (floor) in q31, then ``<< 10`` (q41), for magnitude;
+5. mel: band weights in unsigned q15, each band scaled to a peak of 1 (its gain ``g`` is added
+   back as ``log2 g`` in the log), summed in int64 (a band's sum stays below 2^61: Parseval);
+6. log: the offset (and floor) converted to the sum's units for this frame's shift, added
+   (the sum shifted right by ``d`` bits first where the shifted offset would pass 2^62);
+   ``log2`` from the bit length and a table of 257 q24 values of ``log2(1 + i/256)`` with
+   linear interpolation (error below 3e-6 in log2 units); the constants ``log2 g``,
+   ``-E + power * log2(N)``, ``-power * s`` and ``d`` added in q24; times ln 2, log10 2 or the dB
+   factor times log10 2 (q28) to the feature's units in q16 (int32);
+7. per window: dB reference ("max") and ``top_db`` on the q16 values; the DCT (mfcc) with q30
+   coefficients (the lifter folded in), rounded to q16;
+8. scaling folded into one integer multiply: ``((u - mean_q16) * A + 2^(a-1)) >> a`` with
+   ``A = round(2^a / std)``, q16; the model input is that integer times 2^-16 (float32,
+   exact below 256 in magnitude).
+
+Where precision goes: the window's q31 coefficients, the FFT's
+rounding (about half a q31 step per stage, relative to a frame that headroom keeps near full
+scale), q46 power (bins 138 dB below full scale), the q15 mel weights relative to each band's
+peak (2^-16), the log table (3e-6 log2), and the q16 output (1.5e-5 in feature units).
+
+References
+----------
+.. [1] Oppenheim, A. V. and Schafer, R. W. Discrete-Time Signal Processing, 3rd ed., 9.3
+       (decimation-in-time FFT) and 6.9 (scaling against overflow in fixed-point FFTs).
+.. [2] Arm Ltd. CMSIS-DSP, ``arm_mfcc_q15`` (q15 samples, q15 mel and DCT coefficients,
+       q8.7 output): the library the tests compare with.
+"""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+
+from monitor.features.stages.keys import CardProblem
+
+FEATURE_Q = 16  # fraction bits of a feature value (int32)
+LOG_Q = 24  # fraction bits of a log2 value
+LOG_TABLE_BITS = 8  # 256 segments of the log2 table
+FACTOR_Q = 28  # fraction bits of the log2 -> feature units factor
+DCT_Q = 30
+SUM_LIMIT_BITS = 62  # the offset's shifted value stays below 2^62
+
+
+def log2_table() -> np.ndarray:
+    """``round(log2(1 + i / 256) * 2^24)`` for i = 0 .. 256, int64."""
+    i = np.arange((1 << LOG_TABLE_BITS) + 1, dtype=np.float64)
+    return np.round(np.log2(1.0 + i / (1 << LOG_TABLE_BITS)) * (1 << LOG_Q)).astype(np.int64)
+
+
+def bit_length(v: np.ndarray) -> np.ndarray:
+    """Bits of each positive int64 (``int.bit_length``), exactly (float64 only as a guess)."""
+    v = np.asarray(v, np.int64)
+    e = np.frexp(v.astype(np.float64))[1].astype(np.int64)  # rounding may say one too many
+    e -= (np.right_shift(v, np.maximum(e - 1, 0)) == 0).astype(np.int64)
+    e += (np.right_shift(v, np.minimum(e, 63)) > 0).astype(np.int64)
+    return e
+
+
+def log2_q24(v: np.ndarray, table: np.ndarray) -> np.ndarray:
+    """``log2(v)`` in q24 for int64 ``v >= 1``: the bit length and the interpolated table.
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        int64, every value >= 1.
+    table : numpy.ndarray
+        `log2_table()`.
+
+    Returns
+    -------
+    numpy.ndarray
+        int64, q24.
+    """
+    e = bit_length(v) - 1
+    mant = np.where(e >= 30, np.right_shift(v, np.maximum(e - 30, 0)),
+                    np.left_shift(v, np.maximum(30 - e, 0)))  # q30 in [1, 2)
+    low = 30 - LOG_TABLE_BITS
+    i = np.right_shift(mant, low) - (1 << LOG_TABLE_BITS)
+    frac = mant & ((1 << low) - 1)
+    t0, t1 = table[i], table[i + 1]
+    return (e << LOG_Q) + t0 + np.right_shift((t1 - t0) * frac + (1 << (low - 1)), low)
+
+
+def isqrt64(v: np.ndarray) -> np.ndarray:
+    """``floor(sqrt(v))`` of int64 values ``0 <= v < 2^63``, exactly."""
+    r = np.floor(np.sqrt(v.astype(np.float64))).astype(np.int64)
+    r -= (r * r > v).astype(np.int64)  # float64 may round up near a square
+    r -= (r * r > v).astype(np.int64)
+    r += ((r + 1) * (r + 1) <= v).astype(np.int64)
+    return r
+
+
+def q_round(x: np.ndarray, bits: int, *, limit: int | None = None) -> np.ndarray:
+    """``round(x * 2^bits)`` as int64 (half away from zero, as the tables are written),
+    clipped to ``[-limit - 1, limit]`` when given."""
+    q = np.round(np.asarray(x, np.float64) * (1 << bits)).astype(np.int64)
+    return q if limit is None else np.clip(q, -limit - 1, limit)
+
+
+def headroom(frames: np.ndarray) -> np.ndarray:
+    """Bits each int16 frame ``(..., n)`` can be shifted up by with its largest magnitude
+    staying within 32767 (0 for an all-zero frame or one at half scale or more; at most 14)."""
+    m = np.max(np.abs(frames.astype(np.int64)), axis=-1)
+    s = np.zeros(m.shape, np.int64)
+    for k in range(1, 15):
+        s += ((m > 0) & (np.left_shift(m, k) <= 32767)).astype(np.int64)
+    return s
+
+
+class FixedFrontEnd:
+    """The q15 front end of one card: tables built once, windows computed in integers.
+
+    Parameters
+    ----------
+    card : ModelCard
+        A card with ``arithmetic = "q15"`` (kind "logmel" or "mfcc").
+
+    Attributes
+    ----------
+    tables : dict of str to numpy.ndarray
+        The integer tables the C receives (window, twiddles, mel, log, DCT, scaling).
+    """
+
+    def __init__(self, card) -> None:
+        self.card = card
+        fe = card.frontend
+        by = {s.name: s for s in card.stages()}
+        self.framing, self.centre, self.layout = by["framing"], by["centre"], by["layout"]
+        f = fe.framing
+        self.n, self.length, self.offset, self.step = (f.fft_length, f.frame_length,
+                                                       f.offset, f.frame_step)
+        self.frames = self.framing.frames
+        self.power = int(fe.spectrum.power)
+        self.bits = int(math.log2(self.n))
+        from monitor.features.dsp import window_coefficients
+
+        w = window_coefficients(f.frame_length, kind=fe.window.window,
+                                symmetric=fe.window.window_symmetric, dtype=np.float64)
+        self.window = q_round(w, 31, limit=(1 << 31) - 1)
+        k = np.arange(self.n // 2)
+        self.tw_re = q_round(np.cos(2 * np.pi * k / self.n), 31, limit=(1 << 31) - 1)
+        self.tw_im = q_round(-np.sin(2 * np.pi * k / self.n), 31, limit=(1 << 31) - 1)
+        rev = np.zeros(self.n, np.int64)
+        for b in range(self.bits):
+            rev |= ((np.arange(self.n) >> b) & 1) << (self.bits - 1 - b)
+        self.bitrev = rev
+        weights = np.asarray(by["mel"].weights, np.float64)  # (bands, bins)
+        gain = weights.max(axis=1)
+        gain[gain <= 0] = 1.0
+        self.gain = gain
+        self.mel = np.round(weights / gain[:, None] * 32768.0).astype(np.int64)  # uint16 in C
+        self.bands = weights.shape[0]
+        log = fe.log
+        self.sum_bits = 61 if self.power == 2 else 56  # the mel sum's fraction bits E
+        units = (1 << self.sum_bits) / float(self.n) ** self.power
+        self.offset_q = np.round(log.log_offset * units / gain).astype(np.int64)
+        self.floor_q = np.round(log.log_floor * units / gain).astype(np.int64)
+        big = np.maximum(self.offset_q, self.floor_q)
+        self.offset_bits = np.where(big > 0, bit_length(np.maximum(big, 1)), 0)
+        self.log_const = (q_round(np.log2(gain), LOG_Q)
+                          - ((self.sum_bits - self.power * self.bits) << LOG_Q))
+        self.table = log2_table()
+        per_log2 = {"ln": math.log(2.0), "log10": math.log10(2.0)}.get(
+            log.log, log.factor(fe) * math.log10(2.0))
+        self.factor = int(round(per_log2 * (1 << FACTOR_Q)))
+        self.db_max = log.log == "db" and log.db_ref == "max"
+        self.top_db = (int(q_round(log.top_db, FEATURE_Q)) if log.log == "db" and log.top_db > 0
+                       else 0)
+        self.dct = (q_round(by["dct"].matrix, DCT_Q) if fe.kind == "mfcc" else None)
+        sc = by["scaling"]
+        if sc.cfg.per_window != "none":
+            raise CardProblem('frontend.arithmetic="q15" computes no per-window '
+                              'standardisation; set [scaling] per_window = "none"')
+        mean = np.asarray(sc.cfg.mean, np.float64)
+        inv = 1.0 / np.asarray(sc.cfg.std, np.float64)
+        self.scale_bits = int(min(40, max(8, 30 - math.ceil(math.log2(max(float(inv.max()),
+                                                                               1e-9))))))
+        self.mean_q = q_round(mean, FEATURE_Q)
+        self.mul_q = np.round(inv * (1 << self.scale_bits)).astype(np.int64)
+
+    # --- per frame --------------------------------------------------------------------
+    def fft(self, re: np.ndarray, im: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """In-place order radix-2 FFT of q31 rows ``(..., N)``, halved each stage: ``X / N``."""
+        re, im = re[..., self.bitrev], im[..., self.bitrev]
+        lead = re.shape[:-1]
+        size = 2
+        while size <= self.n:
+            half, stride = size // 2, self.n // size
+            wr, wi = self.tw_re[::stride][:half], self.tw_im[::stride][:half]
+            r = re.reshape(*lead, self.n // size, size)
+            i = im.reshape(*lead, self.n // size, size)
+            ar, ai, br, bi = r[..., :half], i[..., :half], r[..., half:], i[..., half:]
+            tr = np.right_shift(br * wr - bi * wi + (1 << 30), 31)
+            ti = np.right_shift(br * wi + bi * wr + (1 << 30), 31)
+            re = np.concatenate([np.right_shift(ar + tr + 1, 1), np.right_shift(ar - tr + 1, 1)],
+                                axis=-1).reshape(*lead, self.n)
+            im = np.concatenate([np.right_shift(ai + ti + 1, 1), np.right_shift(ai - ti + 1, 1)],
+                                axis=-1).reshape(*lead, self.n)
+            size *= 2
+        return re, im
+
+    def frame_values(self, frames: np.ndarray) -> np.ndarray:
+        """Log values in q16 of int16 frames ``(..., frame_length)``: ``(..., bands)`` int64."""
+        x = np.asarray(frames, np.int64)
+        s = headroom(x)
+        y = np.right_shift(np.left_shift(x, s[..., None]) * self.window + (1 << 14), 15)
+        re = np.zeros((*x.shape[:-1], self.n), np.int64)
+        re[..., self.offset:self.offset + self.length] = y
+        re, im = self.fft(re, np.zeros_like(re))
+        bins = self.n // 2 + 1
+        p = re[..., :bins] * re[..., :bins] + im[..., :bins] * im[..., :bins]  # q62
+        if self.power == 2:
+            p = np.right_shift(p + (1 << 15), 16)  # q46
+        else:
+            p = np.left_shift(isqrt64(p), 10)  # q41
+        acc = p @ self.mel.T  # (..., bands), below 2^61
+        ps = (self.power * s)[..., None]
+        d = np.maximum(self.offset_bits + ps - SUM_LIMIT_BITS, 0)
+        v = np.right_shift(acc, d) + np.left_shift(self.offset_q, ps - d)
+        v = np.maximum(v, np.left_shift(self.floor_q, ps - d))
+        v = np.maximum(v, 1)
+        l2 = log2_q24(v, self.table) + self.log_const + np.left_shift(d - ps, LOG_Q)
+        return np.right_shift(l2 * self.factor + (1 << (LOG_Q + FACTOR_Q - FEATURE_Q - 1)),
+                              LOG_Q + FACTOR_Q - FEATURE_Q)
+
+    # --- per window -------------------------------------------------------------------
+    def window_frames(self, pcm: np.ndarray) -> np.ndarray:
+        """The int16 frames ``(n, frames, frame_length)`` of int16 windows ``(n, W)``."""
+        x = self.centre.run(pcm) if self.centre.active else pcm
+        return np.asarray(self.framing.run(x))
+
+    def finish(self, u: np.ndarray) -> np.ndarray:
+        """Per-window steps of q16 frame values ``(n, frames, bands)``: dB reference,
+        ``top_db``, DCT; time-major q16 int64."""
+        if self.db_max or self.top_db:
+            peak = u.max(axis=(-2, -1), keepdims=True)
+            if self.db_max:
+                u = u - peak
+                peak = np.zeros_like(peak)
+            if self.top_db:
+                u = np.maximum(u, peak - self.top_db)
+        if self.dct is not None:
+            u = np.right_shift(u @ self.dct.T + (1 << (DCT_Q - 1)), DCT_Q)
+        return u
+
+    def scaled_q(self, u: np.ndarray) -> np.ndarray:
+        """The model input in q16 (int64) from time-major q16 features: layout, then the
+        folded scaling."""
+        x = self.layout.run(u) if self.layout.active else u
+        a = self.scale_bits
+        return np.right_shift((x - self.mean_q) * self.mul_q + (1 << (a - 1)), a)
+
+    def unscaled_q(self, pcm: np.ndarray) -> np.ndarray:
+        """Time-major q16 features ``(n, frames, values)`` of int16 windows ``(n, W)``."""
+        return self.finish(self.frame_values(self.window_frames(pcm)))
+
+    def stream_q(self, signal: np.ndarray, n: int) -> np.ndarray:
+        """`unscaled_q` of `n` windows one hop apart in int16 `signal`, each frame computed
+        once (integers: the same numbers as window by window)."""
+        hop, step = self.card.hop_samples, self.step
+        if self.centre.active or hop % step:
+            w = np.lib.stride_tricks.sliding_window_view(signal, self.card.window_samples)
+            return self.unscaled_q(w[::hop][:n])
+        r = hop // step
+        total = (n - 1) * r + self.frames
+        view = np.lib.stride_tricks.sliding_window_view(signal, self.length)
+        frames = view[self.offset_in_window()::step][:total]
+        vals = np.concatenate([self.frame_values(frames[a:a + 512])
+                               for a in range(0, total, 512)])
+        idx = (np.arange(n) * r)[:, None] + np.arange(self.frames)[None, :]
+        return self.finish(vals[idx])
+
+    def offset_in_window(self) -> int:
+        """The window sample where frame 0's samples start (no centre padding)."""
+        return self.framing.cfg.offset if self.framing.cfg.window_in_frame == "centre" else 0
+
+
+def to_pcm16(windows: np.ndarray) -> np.ndarray:
+    """float32 samples to int16 steps as int64 (``pcm_bits = 16``'s rounding: half to even,
+    clipped), the fixed front end's input."""
+    from monitor.sound.samples import to_pcm16 as pcm
+
+    return pcm(np.asarray(windows, np.float32)).astype(np.int64)
+
+
+def as_float(q: np.ndarray) -> np.ndarray:
+    """q16 integers as float32: through float64 (exact), then rounded once to float32 (exact
+    below 2^24 in magnitude), times 2^-16 (exact): the C's ``(float)(double)q / 65536``."""
+    return np.asarray(q).astype(np.float64).astype(np.float32) * np.float32(2.0 ** -FEATURE_Q)
