@@ -9,3 +9,12 @@ May import: the flow below (base to assembly); not the other tools (review, demo
 from pathlib import Path
 
 C_SOURCES = (Path(__file__).with_name("frontend.c"), Path(__file__).with_name("frontend.h"))
+Q15_SOURCE = Path(__file__).with_name("frontend_q15.c")  # the fixed-point front end
+
+
+def c_sources(card) -> tuple[Path, ...]:
+    """The C front end's files for `card`: ``frontend_q15.c`` in place of ``frontend.c`` when
+    the card's arithmetic is "q15"."""
+    if card.frontend.pcm.arithmetic == "q15":
+        return (Q15_SOURCE, C_SOURCES[1])
+    return C_SOURCES

@@ -9,7 +9,9 @@
  * quantisation q = round(x / scale) + zero_point (half to even, saturated), as the model's
  * input tensor has it. Exit 0 when every window is within tolerance: every feature finite
  * (here and in features.csv), within SM_CHECK_FEATURE_TOL, and int8 inputs within
- * SM_CHECK_INT8_STEPS steps.
+ * SM_CHECK_INT8_STEPS steps. For the q15 front end (SM_ARITHMETIC_Q15) the check is exact: it
+ * also reads features_q16.csv (the model input in q16 integers) and every integer, every
+ * float and every int8 input must equal scenemon's (tolerances 0).
  *
  * C99; reads files with stdio, so it runs on the host (or a board with semihosting). */
 #include <math.h>
@@ -25,6 +27,19 @@ static float feats[SM_FEATURES];
 static float want[SM_FEATURES];
 #if SM_CHECK_INT8
 static int want_q[SM_FEATURES];
+#endif
+#ifdef SM_ARITHMETIC_Q15
+static int32_t got_q16[SM_FEATURES];
+static int32_t want_q16[SM_FEATURES];
+
+static int read_i32(FILE *f, int32_t *dst, int n) {
+    for (int i = 0; i < n; i++) {
+        long v;
+        if (fscanf(f, " %ld%*[,\n\r]", &v) != 1) return 0;
+        dst[i] = (int32_t)v;
+    }
+    return 1;
+}
 #endif
 
 static int read_ints(FILE *f, int16_t *dst, int n) {
@@ -51,11 +66,11 @@ static int read_q(FILE *f, int *dst, int n) {
     return 1;
 }
 
-/* round half to even, then add the zero point and saturate to int8 */
+/* x / scale in float (as the runtimes' input quantisation), rounded half to even, then the
+ * zero point added and saturated to int8 */
 static int quantise(float x) {
     float v = x / SM_INPUT_SCALE;
-    float r = floorf(v + 0.5f);
-    if (r - v == 0.5f && fmodf(r, 2.0f) != 0.0f) r -= 1.0f;
+    float r = rintf(v); /* the default rounding mode: to nearest, ties to even (C99 7.12.9.4) */
     int q = (int)r + SM_INPUT_ZERO_POINT;
     if (q < -128) q = -128;
     if (q > 127) q = 127;
@@ -78,6 +93,10 @@ int main(void) {
 #if SM_CHECK_INT8
     FILE *fq = open_or_die("input_int8.csv");
 #endif
+#ifdef SM_ARITHMETIC_Q15
+    FILE *f16 = open_or_die("features_q16.csv");
+    int q16_off = 0;
+#endif
     int windows = 0, bad = 0;
     float worst = 0.0f;
     int worst_steps = 0, values_off = 0, nonfinite_all = 0;
@@ -88,6 +107,16 @@ int main(void) {
             return 2;
         }
         sm_features_i16(pcm, feats);
+#ifdef SM_ARITHMETIC_Q15
+        if (!read_i32(f16, want_q16, SM_FEATURES)) {
+            fprintf(stderr, "check: features_q16.csv has fewer rows than pcm.csv\n");
+            return 2;
+        }
+        sm_features_q16(pcm, got_q16);
+        int q16_window = 0;
+        for (int i = 0; i < SM_FEATURES; i++) q16_window += got_q16[i] != want_q16[i];
+        q16_off += q16_window;
+#endif
         /* a NaN compares false with everything, so it would pass a "d > diff" test: values
          * that are not finite (ours or the file's) are counted apart and fail the window */
         float diff = 0.0f;
@@ -117,12 +146,18 @@ int main(void) {
         }
 #endif
         int ok = nonfinite == 0 && diff <= SM_CHECK_FEATURE_TOL && steps <= SM_CHECK_INT8_STEPS;
+#ifdef SM_ARITHMETIC_Q15
+        ok = ok && q16_window == 0;
+#endif
         if (!ok) bad++;
         if (diff > worst) worst = diff;
         if (steps > worst_steps) worst_steps = steps;
         values_off += off;
         nonfinite_all += nonfinite;
         printf("window %4d  features max abs diff %.3g", windows, (double)diff);
+#ifdef SM_ARITHMETIC_Q15
+        printf(", q16 values that differ: %d", q16_window);
+#endif
         if (nonfinite) printf(", %d not finite", nonfinite);
 #if SM_CHECK_INT8 /* a float model: there is no int8 input to compare, so nothing is said */
         printf("  int8 inputs %s (%d of %d differ, largest %d step%s)",
@@ -138,6 +173,9 @@ int main(void) {
            values_off, worst_steps, worst_steps == 1 ? "" : "s", SM_CHECK_INT8_STEPS);
 #else
     printf("; a float model: no int8 input compared");
+#endif
+#ifdef SM_ARITHMETIC_Q15
+    printf("; q16 values that differ: %d (exact check)", q16_off);
 #endif
     printf("; %s\n", bad ? "FAILED" : "passed");
     if (windows != SM_CHECK_WINDOWS) {

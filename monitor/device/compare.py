@@ -3,8 +3,9 @@
 Windows come from real recordings or sessions through each card's front end (computed once
 when the two are equal). Reported: top-1 agreement overall and per class, mean / max
 probability difference, the A-vs-B table, decision agreement after smoothing and
-hysteresis (A's decision settings for both), the front end's float32 error against a float64
-computation of the same card; and for two int8 runs of one model (LiteRT against the
+hysteresis (A's decision settings for both), A's front end's error against a float64
+computation of the same card, the largest difference between the two front ends' features
+when they differ (B in fixed point against A in float32, say) and have the same shape; and for two int8 runs of one model (LiteRT against the
 microcontroller runtime): how many windows are bit-identical and the largest difference in
 int8 output steps.
 """
@@ -58,6 +59,8 @@ def compare(a, b, sources: list[Path]) -> dict:
     raw = a.runner.model_kind == b.runner.model_kind == "tflite-int8"
     pa, pb, t1 = [], [], []
     fe_err = fe_err_scaled = 0.0
+    same_shape = fb is not fa and card_a.feature_shape == card_b.feature_shape
+    ab_unscaled = ab_scaled = 0.0
     identical = steps = 0
     for src in sources:
         w = file_windows(src, card_a)
@@ -76,6 +79,11 @@ def compare(a, b, sources: list[Path]) -> dict:
         ref, ref_scaled = reference_features(card_a, w)
         fe_err = max(fe_err, float(np.max(np.abs(fa.unscaled(w) - ref))))
         fe_err_scaled = max(fe_err_scaled, float(np.max(np.abs(xa - ref_scaled))))
+        if same_shape:
+            for k in range(0, len(w), 256):  # a few MB at a time
+                ab_unscaled = max(ab_unscaled, float(np.max(np.abs(
+                    fb.unscaled(w[k:k + 256]) - fa.unscaled(w[k:k + 256])))))
+            ab_scaled = max(ab_scaled, float(np.max(np.abs(xb - xa))))
     classes = list(card_a.classes)
     top_a = np.concatenate([np.argmax(p, 1) for p in pa])
     top_b = np.concatenate([np.argmax(p, 1) for p in pb])
@@ -96,9 +104,9 @@ def compare(a, b, sources: list[Path]) -> dict:
         dec_n += len(da)
     res = {
         "a": {"model": a.runner.path.name, "runtime": a.runner.runtime,
-              "kind": a.runner.model_kind},
+              "kind": a.runner.model_kind, "arithmetic": card_a.frontend.pcm.arithmetic},
         "b": {"model": b.runner.path.name, "runtime": b.runner.runtime,
-              "kind": b.runner.model_kind},
+              "kind": b.runner.model_kind, "arithmetic": card_b.frontend.pcm.arithmetic},
         "windows": int(top_a.size), "classes": classes,
         "top1_agreement": float(np.mean(top_a == top_b)),
         "per_class": per_class,
@@ -108,6 +116,9 @@ def compare(a, b, sources: list[Path]) -> dict:
         "frontend_float32_vs_float64_max_abs": fe_err,
         "frontend_scaled_max_abs": fe_err_scaled,
     }
+    if same_shape:
+        res["frontends_b_vs_a_max_abs"] = ab_unscaled
+        res["frontends_b_vs_a_scaled_max_abs"] = ab_scaled
     if raw:
         res["int8_windows_identical"] = identical
         res["int8_max_step_difference"] = steps
@@ -131,8 +142,8 @@ def compare_text(res: dict) -> str:
         The lines.
     """
     a, b = res["a"], res["b"]
-    lines = [f"A = {a['model']} ({a['kind']}, {a['runtime']})",
-             f"B = {b['model']} ({b['kind']}, {b['runtime']})",
+    lines = [f"A = {a['model']} ({a['kind']}, {a['runtime']}, front end {a['arithmetic']})",
+             f"B = {b['model']} ({b['kind']}, {b['runtime']}, front end {b['arithmetic']})",
              f"windows            {res['windows']}",
              f"top-1 agreement    {res['top1_agreement']:.2%}",
              f"decision agreement {res['decision_agreement']:.2%} (after smoothing and hysteresis, "
@@ -142,9 +153,14 @@ def compare_text(res: dict) -> str:
         lines.append(f"int8 outputs       {res['int8_windows_identical']} of {res['windows']} "
                      f"windows bit-identical, largest difference "
                      f"{res['int8_max_step_difference']} step(s)")
-    lines += [f"front end          float32 vs float64 max abs error "
+    lines += [f"front end A        {a['arithmetic']} vs float64 max abs error "
               f"{res['frontend_float32_vs_float64_max_abs']:.2e} (scaled "
-              f"{res['frontend_scaled_max_abs']:.2e})", "", "  per class (by A's top class)"]
+              f"{res['frontend_scaled_max_abs']:.2e})"]
+    if "frontends_b_vs_a_max_abs" in res:
+        lines.append(f"front ends B vs A  largest feature difference "
+                     f"{res['frontends_b_vs_a_max_abs']:.2e} (scaled "
+                     f"{res['frontends_b_vs_a_scaled_max_abs']:.2e})")
+    lines += ["", "  per class (by A's top class)"]
     for c, m in res["per_class"].items():
         ag = "-" if m["agreement"] is None else f"{m['agreement']:.2%}"
         lines.append(f"    {c:<16} {m['windows']:>6} windows  agreement {ag}")
@@ -158,7 +174,7 @@ def compare_text(res: dict) -> str:
 
 
 def run_compare(plans: tuple[ModelPlan, ...], sources: list[Path], *,
-                min_agree: float | None, as_json: bool) -> int:
+                min_agree: float | None, as_json: bool, b_arithmetic: str | None = None) -> int:
     """`scenemon compare`; exit 1 when the top-1 agreement is below `min_agree`.
 
     Parameters
@@ -171,6 +187,8 @@ def run_compare(plans: tuple[ModelPlan, ...], sources: list[Path], *,
         The top-1 agreement below which the exit code is 1.
     as_json : bool
         Print JSON.
+    b_arithmetic : {"float32", "q15"}, optional
+        B's front end in this arithmetic, whatever its card says (`card.with_arithmetic`).
 
     Returns
     -------
@@ -180,6 +198,12 @@ def run_compare(plans: tuple[ModelPlan, ...], sources: list[Path], *,
     from monitor.assembly.assemble import load_model
 
     a, b = (load_model(p) for p in plans)
+    if b_arithmetic is not None:
+        import dataclasses
+
+        from monitor.features.card import with_arithmetic
+
+        b = dataclasses.replace(b, card=with_arithmetic(b.card, b_arithmetic))
     res = compare(a, b, sources)
     sys.stdout.write(json.dumps(res, indent=2) + "\n" if as_json else compare_text(res))
     if min_agree is not None and res["top1_agreement"] < min_agree:

@@ -132,7 +132,7 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
     Parameters
     ----------
     card : ModelCard
-        The card (the header's text does not depend on it).
+        The card: a q15 front end is checked exactly (tolerances 0).
     runner : Runner
         An int8 model also gives the input tensor's scale and zero point, so the check can
         quantise the C front end's features itself.
@@ -150,12 +150,14 @@ def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) ->
 
     span = float(features.max() - features.min()) if features.size else 1.0
     int8 = getattr(runner, "in_dtype", None) == np.int8
+    exact = card.frontend.pcm.arithmetic == "q15"  # integers: the C must equal Python exactly
     lines = ["/* check_params.h: written by `scenemon vectors` for check.c */",
              "#ifndef SCENEMON_CHECK_PARAMS_H", "#define SCENEMON_CHECK_PARAMS_H",
              f"#define SM_CHECK_WINDOWS {windows}",
              f"#define SM_CHECK_INT8 {int(int8)}",
-             f"#define SM_CHECK_FEATURE_TOL {cfloat(FEATURE_TOL_OF_RANGE * max(span, 1e-6))}",
-             f"#define SM_CHECK_INT8_STEPS {INT8_TOL_STEPS}"]
+             f"#define SM_CHECK_FEATURE_TOL "
+             f"{cfloat(0.0 if exact else FEATURE_TOL_OF_RANGE * max(span, 1e-6))}",
+             f"#define SM_CHECK_INT8_STEPS {0 if exact else INT8_TOL_STEPS}"]
     if int8:
         lines += [f"#define SM_INPUT_SCALE {cfloat(runner.in_scale)}",
                   f"#define SM_INPUT_ZERO_POINT {int(runner.in_zero)}"]
@@ -193,7 +195,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
     """
     from monitor.assembly.assemble import file_windows
     from monitor.base.files import atomic_write, dumps
-    from monitor.device import C_SOURCES
+    from monitor.device import c_sources
     from monitor.device.constants import header
     from monitor.features.frontend import FrontEnd
     from monitor.sound.samples import from_pcm16, to_pcm16
@@ -239,8 +241,15 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
         meta["files"]["output_int8.csv"] = (f"the int8 output tensor, one window per row "
                                             f"({runner.runtime} runtime)")
     _put(out / "frontend_constants.h", header(card, model_sha256=runner.sha256).encode())
-    for src in C_SOURCES:
+    for src in c_sources(card):
         _put(out / src.name, src.read_bytes())
+    if fe.fixed is not None:
+        from monitor.features.fixedpoint import to_pcm16 as pcm64
+
+        q16 = fe.fixed.scaled_q(fe.fixed.unscaled_q(pcm64(x)))
+        _csv(out / "features_q16.csv", q16, "%d")
+        meta["files"]["features_q16.csv"] = ("the model input in q16 integers (value / 65536), "
+                                             "one window per row: the q15 front end's exact output")
     _put(out / "check.c", CHECK_SOURCES[0].read_bytes())
     _put(out / "Makefile", CHECK_SOURCES[1].read_bytes())
     _put(out / "check_params.h", check_params(card, runner, len(pick), feats).encode())

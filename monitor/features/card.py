@@ -546,6 +546,42 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
 
 
 
+def with_arithmetic(card: ModelCard, arithmetic: str) -> ModelCard:
+    """The card with its front end computed in `arithmetic` ("float32" or "q15"; q15 takes
+    int16 samples, so ``pcm_bits`` becomes 16).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+    arithmetic : {"float32", "q15"}
+        The arithmetic wanted.
+
+    Returns
+    -------
+    ModelCard
+        A copy, checked as a card with that key would be.
+
+    Raises
+    ------
+    CardError
+        The card's kind or keys are not computed in that arithmetic (the message names the
+        card and the key to change).
+    """
+    fe = card.frontend
+    bits = 16 if arithmetic == "q15" else fe.pcm.pcm_bits
+    pcm = dataclasses.replace(fe.pcm, arithmetic=arithmetic, pcm_bits=bits)
+    new = dataclasses.replace(fe, pcm=pcm)
+    try:
+        pcm.check(new, card.audio)
+    except CardProblem as exc:
+        raise CardError(f"{card.name}: {exc}") from None
+    if arithmetic == "q15" and card.scaling.per_window != "none":
+        raise CardError(f'{card.name}: frontend.arithmetic="q15" computes no per-window '
+                        f'standardisation ([scaling] per_window = "none" is needed)')
+    return dataclasses.replace(card, frontend=new)
+
+
 def _scaling(table: dict[str, Any], fe: FrontendConfig, shape: tuple[int, ...],
              path: Path | None, fail: Any) -> ScalingConfig:
     """Mean and std as float32 arrays broadcastable to one window's model input."""
