@@ -174,6 +174,7 @@ def fixed_lines(card: ModelCard) -> list[str]:
              c_define("SM_MEL_BANDS", fx.bands),
              c_define("SM_MEL_COEFFS", int(sum(sparse_bank(fx.mel)[1]))),
              c_define("SM_MFCC", 0 if fx.dct is None else fx.dct.shape[0]),
+             c_define("SM_DCT_BITS", fx.dct_bits, "fraction bits of the DCT table"),
              c_define("SM_LOG_FACTOR", fx.factor, "log2 to feature units, q28"),
              c_define("SM_DB_MAX", fx.db_max, "1: minus the window's maximum"),
              c_define("SM_TOP_DB_Q", fx.top_db, "top_db in q16 (0: none)"),

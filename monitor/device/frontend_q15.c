@@ -199,7 +199,7 @@ static void sm_finish(void) {
 #if SM_MFCC > 0
             int64_t acc = 0;
             for (int m = 0; m < SM_MEL_BANDS; m++) acc += (int64_t)sm_dct_q30[ch * SM_MEL_BANDS + m] * u[m];
-            const int64_t v = (acc + ((int64_t)1 << 29)) >> 30;
+            const int64_t v = (acc + ((int64_t)1 << (SM_DCT_BITS - 1))) >> SM_DCT_BITS;
 #else
             const int64_t v = u[ch];
 #endif

@@ -100,7 +100,7 @@ def log2_q24(v: np.ndarray, table: np.ndarray) -> np.ndarray:
 
 
 def isqrt64(v: np.ndarray) -> np.ndarray:
-    """``floor(sqrt(v))`` of int64 values ``0 <= v < 2^63``, exactly."""
+    """``floor(sqrt(v))`` of int64 values ``0 <= v <= 2^62`` (a q62 power), exactly."""
     r = np.floor(np.sqrt(v.astype(np.float64))).astype(np.int64)
     r -= (r * r > v).astype(np.int64)  # float64 may round up near a square
     r -= (r * r > v).astype(np.int64)
@@ -184,7 +184,11 @@ class FixedFrontEnd:
         self.db_max = log.log == "db" and log.db_ref == "max"
         self.top_db = (int(q_round(log.top_db, FEATURE_Q)) if log.log == "db" and log.top_db > 0
                        else 0)
-        self.dct = (q_round(by["dct"].matrix, DCT_Q) if fe.kind == "mfcc" else None)
+        self.dct, self.dct_bits = None, DCT_Q
+        if fe.kind == "mfcc":  # q30, fewer bits where a lifter makes coefficients above 1
+            big = float(np.max(np.abs(by["dct"].matrix)))
+            self.dct_bits = DCT_Q - max(0, math.ceil(math.log2(big)) if big > 0 else 0)
+            self.dct = q_round(by["dct"].matrix, self.dct_bits, limit=(1 << 31) - 1)
         sc = by["scaling"]
         if sc.cfg.per_window != "none":
             raise CardProblem('frontend.arithmetic="q15" computes no per-window '
@@ -258,7 +262,7 @@ class FixedFrontEnd:
             if self.top_db:
                 u = np.maximum(u, peak - self.top_db)
         if self.dct is not None:
-            u = np.right_shift(u @ self.dct.T + (1 << (DCT_Q - 1)), DCT_Q)
+            u = np.right_shift(u @ self.dct.T + (1 << (self.dct_bits - 1)), self.dct_bits)
         return u
 
     def scaled_q(self, u: np.ndarray) -> np.ndarray:
