@@ -14,7 +14,18 @@ Q15_SOURCE = Path(__file__).with_name("frontend_q15.c")  # the fixed-point front
 
 def c_sources(card) -> tuple[Path, ...]:
     """The C front end's files for `card`: ``frontend_q15.c`` in place of ``frontend.c`` when
-    the card's arithmetic is "q15"."""
+    the card's arithmetic is "q15".
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card.
+
+    Returns
+    -------
+    tuple of Path
+        The source and the header.
+    """
     if card.frontend.pcm.arithmetic == "q15":
         return (Q15_SOURCE, C_SOURCES[1])
     return C_SOURCES

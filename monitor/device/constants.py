@@ -164,7 +164,18 @@ _C_BYTES = {"int16_t": 2, "uint16_t": 2, "int32_t": 4, "int64_t": 8, "uint8_t": 
 
 
 def fixed_lines(card: ModelCard) -> list[str]:
-    """The q15 block of ``frontend_constants.h`` (`fixed_tables` and the switches)."""
+    """The q15 block of ``frontend_constants.h`` (`fixed_tables` and the switches).
+
+    Parameters
+    ----------
+    card : ModelCard
+        A card with ``arithmetic = "q15"``.
+
+    Returns
+    -------
+    list of str
+        The lines.
+    """
     from monitor.features.fixedpoint import FixedFrontEnd
 
     fx = FixedFrontEnd(card)

@@ -60,13 +60,30 @@ SUM_LIMIT_BITS = 62  # the offset's shifted value stays below 2^62
 
 
 def log2_table() -> np.ndarray:
-    """``round(log2(1 + i / 256) * 2^24)`` for i = 0 .. 256, int64."""
+    """The log2 table: ``round(log2(1 + i / 256) * 2^24)`` for i = 0 .. 256.
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(257,)`` int64, q24.
+    """
     i = np.arange((1 << LOG_TABLE_BITS) + 1, dtype=np.float64)
     return np.round(np.log2(1.0 + i / (1 << LOG_TABLE_BITS)) * (1 << LOG_Q)).astype(np.int64)
 
 
 def bit_length(v: np.ndarray) -> np.ndarray:
-    """Bits of each positive int64 (``int.bit_length``), exactly (float64 only as a guess)."""
+    """Bits of each positive int64 (``int.bit_length``), exactly (float64 only as a guess).
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        int64 values >= 1.
+
+    Returns
+    -------
+    numpy.ndarray
+        int64, the same shape.
+    """
     v = np.asarray(v, np.int64)
     e = np.frexp(v.astype(np.float64))[1].astype(np.int64)  # rounding may say one too many
     e -= (np.right_shift(v, np.maximum(e - 1, 0)) == 0).astype(np.int64)
@@ -100,7 +117,18 @@ def log2_q24(v: np.ndarray, table: np.ndarray) -> np.ndarray:
 
 
 def isqrt64(v: np.ndarray) -> np.ndarray:
-    """``floor(sqrt(v))`` of int64 values ``0 <= v <= 2^62`` (a q62 power), exactly."""
+    """``floor(sqrt(v))`` of int64 values ``0 <= v <= 2^62`` (a q62 power), exactly.
+
+    Parameters
+    ----------
+    v : numpy.ndarray
+        int64 values from 0 to 2^62.
+
+    Returns
+    -------
+    numpy.ndarray
+        int64, the same shape.
+    """
     r = np.floor(np.sqrt(v.astype(np.float64))).astype(np.int64)
     r -= (r * r > v).astype(np.int64)  # float64 may round up near a square
     r -= (r * r > v).astype(np.int64)
@@ -109,15 +137,41 @@ def isqrt64(v: np.ndarray) -> np.ndarray:
 
 
 def q_round(x: np.ndarray, bits: int, *, limit: int | None = None) -> np.ndarray:
-    """``round(x * 2^bits)`` as int64 (half away from zero, as the tables are written),
-    clipped to ``[-limit - 1, limit]`` when given."""
+    """``round(x * 2^bits)`` as int64 (numpy's rounding, half to even), clipped to
+    ``[-limit - 1, limit]`` when given: how every table of the q15 front end is made.
+
+    Parameters
+    ----------
+    x : array_like
+        float64 values.
+    bits : int
+        Fraction bits.
+    limit : int, optional
+        The largest value kept.
+
+    Returns
+    -------
+    numpy.ndarray
+        int64.
+    """
     q = np.round(np.asarray(x, np.float64) * (1 << bits)).astype(np.int64)
     return q if limit is None else np.clip(q, -limit - 1, limit)
 
 
 def headroom(frames: np.ndarray) -> np.ndarray:
-    """Bits each int16 frame ``(..., n)`` can be shifted up by with its largest magnitude
-    staying within 32767 (0 for an all-zero frame or one at half scale or more; at most 14)."""
+    """Bits each int16 frame can be shifted up by with its largest magnitude staying within
+    32767 (0 for an all-zero frame or one at half scale or more; at most 14).
+
+    Parameters
+    ----------
+    frames : numpy.ndarray
+        ``(..., n)`` int16 samples (any integer type).
+
+    Returns
+    -------
+    numpy.ndarray
+        ``(...)`` int64 shifts.
+    """
     m = np.max(np.abs(frames.astype(np.int64)), axis=-1)
     s = np.zeros(m.shape, np.int64)
     for k in range(1, 15):
@@ -135,8 +189,14 @@ class FixedFrontEnd:
 
     Attributes
     ----------
-    tables : dict of str to numpy.ndarray
-        The integer tables the C receives (window, twiddles, mel, log, DCT, scaling).
+    window, tw_re, tw_im, mel, offset_q, floor_q, log_const, table, dct, mean_q, mul_q :
+        numpy.ndarray
+        The integer tables the C receives (`monitor.device.constants.fixed_tables`).
+
+    Raises
+    ------
+    CardProblem
+        The card standardises each window (the q15 front end does not).
     """
 
     def __init__(self, card) -> None:
@@ -298,8 +358,19 @@ class FixedFrontEnd:
 
 
 def to_pcm16(windows: np.ndarray) -> np.ndarray:
-    """float32 samples to int16 steps as int64 (``pcm_bits = 16``'s rounding: half to even,
-    clipped), the fixed front end's input."""
+    """float32 samples to int16 steps (``pcm_bits = 16``'s rounding: half to even, clipped),
+    the fixed front end's input.
+
+    Parameters
+    ----------
+    windows : numpy.ndarray
+        Float samples in [-1, 1].
+
+    Returns
+    -------
+    numpy.ndarray
+        int64 values of int16 range, the same shape.
+    """
     from monitor.sound.samples import to_pcm16 as pcm
 
     return pcm(np.asarray(windows, np.float32)).astype(np.int64)
@@ -307,5 +378,16 @@ def to_pcm16(windows: np.ndarray) -> np.ndarray:
 
 def as_float(q: np.ndarray) -> np.ndarray:
     """q16 integers as float32: through float64 (exact), then rounded once to float32 (exact
-    below 2^24 in magnitude), times 2^-16 (exact): the C's ``(float)(double)q / 65536``."""
+    below 2^24 in magnitude), times 2^-16 (exact): the C's ``(float)(double)q / 65536``.
+
+    Parameters
+    ----------
+    q : numpy.ndarray
+        q16 integers.
+
+    Returns
+    -------
+    numpy.ndarray
+        float32, the same shape.
+    """
     return np.asarray(q).astype(np.float64).astype(np.float32) * np.float32(2.0 ** -FEATURE_Q)

@@ -13,7 +13,7 @@ from monitor.features.stages import KINDS, NO_OFF, REQUIRED, STAGES, keys_of
 
 # the switches that are off by default, and only they, may be left out (issue 12)
 OPTIONAL = {"preemphasis", "center", "pad_mode", "window_in_frame", "log_floor", "db_ref",
-            "top_db", "lifter", "window_symmetric", "pcm_bits"}
+            "top_db", "lifter", "window_symmetric", "pcm_bits", "arithmetic"}
 
 
 def test_card_tables_are_nested_frozen_configs(demo_card):
