@@ -102,3 +102,23 @@ def test_golden_vectors_of_a_q15_card_check_exactly(tmp_path, tour, model):
     assert "features max abs diff 0 (tolerance 0)" in last
     assert "int8 input values that differ: 0, by at most 0 steps (tolerance 0)" in last
     assert "q16 values that differ: 0 (exact check)" in last and last.endswith("passed")
+
+
+@pytest.mark.system
+@pytest.mark.parametrize("name", ["logmel htk mel (demo)", "mfcc 13 ortho, lifter 22"])
+def test_q15_budget_figures_are_the_object_files_symbols(tmp_path, name):
+    # c_buffers (RAM) and c_tables (flash) of a q15 card, which `scenemon budget` reports, are
+    # exactly the static arrays of the compiled frontend_q15.c (nm -S), class names aside
+    from test_device import _symbols
+
+    from monitor.device.constants import c_buffers, c_tables
+
+    card = q15_case(Q15_CASES[name])
+    (tmp_path / "frontend_constants.h").write_text(header(card))
+    obj = tmp_path / "fe.o"
+    r = subprocess.run([compiler(), "-std=c99", "-O0", "-Wall", "-Wextra", "-Werror",
+                        "-pedantic", f"-I{tmp_path}", "-c", str(Q15_SOURCE), "-o", str(obj)],
+                       capture_output=True, text=True)
+    assert r.returncode == 0, r.stderr
+    syms = {k: v for k, v in _symbols(obj).items() if k != "sm_class_names"}
+    assert syms == {**c_buffers(card), **c_tables(card)}
