@@ -11,10 +11,15 @@
  * (here and in features.csv), within SM_CHECK_FEATURE_TOL, and int8 inputs within
  * SM_CHECK_INT8_STEPS steps.
  *
+ * The last line is a digest of every feature value computed, in order (see below): equal
+ * digests from two builds (the laptop's and the board's) mean bit-identical features.
+ *
  * C99; reads files with stdio, so it runs on the host (or a board with semihosting). */
 #include <math.h>
+#include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
+#include <string.h>
 
 #include "frontend_constants.h"
 #include "frontend.h"
@@ -63,6 +68,22 @@ static int quantise(float x) {
 }
 #endif
 
+/* --- the digest: 64-bit FNV-1a over the bytes of each float32 feature value (its IEEE 754
+ * bits, least significant byte first, whatever the machine's byte order), in the order
+ * computed; offset basis and prime from the FNV specification (Fowler, Noll, Vo). */
+static uint64_t digest = 14695981039346656037u;
+
+static void digest_features(const float *v, int n) {
+    for (int i = 0; i < n; i++) {
+        uint32_t bits;
+        memcpy(&bits, &v[i], sizeof bits);
+        for (int b = 0; b < 4; b++) {
+            digest ^= (bits >> (8 * b)) & 0xffu;
+            digest *= 1099511628211u;
+        }
+    }
+}
+
 static FILE *open_or_die(const char *name) {
     FILE *f = fopen(name, "r");
     if (!f) {
@@ -88,6 +109,7 @@ int main(void) {
             return 2;
         }
         sm_features_i16(pcm, feats);
+        digest_features(feats, SM_FEATURES);
         /* a NaN compares false with everything, so it would pass a "d > diff" test: values
          * that are not finite (ours or the file's) are counted apart and fail the window */
         float diff = 0.0f;
@@ -140,6 +162,8 @@ int main(void) {
     printf("; a float model: no int8 input compared");
 #endif
     printf("; %s\n", bad ? "FAILED" : "passed");
+    printf("features digest (FNV-1a 64 of their float32 bytes): %08lx%08lx\n",
+           (unsigned long)(digest >> 32), (unsigned long)(digest & 0xffffffffu));
     if (windows != SM_CHECK_WINDOWS) {
         fprintf(stderr, "check: read %d windows, expected %d\n", windows, SM_CHECK_WINDOWS);
         return 1;
