@@ -185,7 +185,8 @@ def count_folder(folder: Path, core: Core, *, work: Path, toolchain: Toolchain,
     """
     from monitor.device import C_SOURCES
 
-    elf = build(core=core, sources=[C_SOURCES[0], COUNT_SOURCE], include=[folder],
+    elf = build(core=core, sources=[C_SOURCES[0], COUNT_SOURCE],
+                include=[folder, C_SOURCES[0].parent],
                 out=work / f"count-{core.name}.elf", toolchain=toolchain,
                 defines=(f"SM_COUNT_ROWS={ROWS}",))
     r = run(elf=elf, core=core, cwd=folder, toolchain=toolchain, timeout=timeout, icount=True)
