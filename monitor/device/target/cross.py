@@ -349,7 +349,18 @@ def run_check(vectors: Path, core: Core, *, work: Path, toolchain: Toolchain,
 
 
 def check_digest(stdout: str) -> str | None:
-    """The features digest on the check program's last line (16 hex digits), or None."""
+    """The features digest the check program prints last.
+
+    Parameters
+    ----------
+    stdout : str
+        The check's standard output.
+
+    Returns
+    -------
+    str or None
+        16 hex digits, or None when there is no digest line.
+    """
     found = DIGEST.findall(stdout)
     return found[-1] if found else None
 
