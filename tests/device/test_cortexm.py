@@ -283,3 +283,39 @@ def test_missing_toolchain_says_which_package(monkeypatch):
     assert r.returncode == 2
     err = [x for x in r.stderr.splitlines() if x.strip()]
     assert len(err) == 1 and "gcc-arm-none-eabi" in err[0] and "Traceback" not in r.stderr
+
+
+def test_emulate_runs_the_folders_check_on_the_cores(tmp_path, float_vectors, toolchain):
+    # `scenemon emulate`: the laptop's run and each core's, every digest the laptop's
+    out, host = float_vectors
+    r = cli("emulate", out, "--target", ",".join(THREE), "--json")
+    assert r.returncode == 0, r.stdout + r.stderr
+    d = json.loads(r.stdout)
+    assert [x["where"] for x in d["runs"]] == ["laptop", *THREE]
+    assert all(x["passed"] and x["digest"] == host and x["same_bits"] for x in d["runs"])
+    text = cli("emulate", out, "--target", "cortex-m4").stdout
+    assert all(len(line) <= 80 for line in text.splitlines())
+    assert "same bits" in text and host in text
+
+
+def test_emulate_fails_a_check_out_of_tolerance(tmp_path, float_vectors, toolchain):
+    # a fault injected: one value of features.csv moved by 1.0, far beyond the tolerance;
+    # the check fails on the core and on the laptop, and emulate exits 1
+    out, _ = float_vectors
+    bad = tmp_path / "bad"
+    shutil.copytree(out, bad)
+    rows = (bad / "features.csv").read_text().splitlines()
+    first = rows[0].split(",")
+    first[3] = repr(float(first[3]) + 1.0)
+    (bad / "features.csv").write_text("\n".join([",".join(first), *rows[1:]]) + "\n")
+    r = cli("emulate", bad, "--target", "cortex-m4")
+    assert r.returncode == 1
+    assert "FAILED" in r.stdout
+
+
+def test_emulate_refuses_a_folder_without_a_check(tmp_path, toolchain):
+    (tmp_path / "pcm.csv").write_text("0\n")
+    r = cli("emulate", tmp_path, "--target", "cortex-m4")
+    assert r.returncode == 2
+    err = [x for x in r.stderr.splitlines() if x.strip()]
+    assert len(err) == 1 and str(tmp_path) in err[0] and "check.c is missing" in err[0]

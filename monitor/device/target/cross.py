@@ -31,7 +31,7 @@ from monitor.base.errors import ScenemonError
 from monitor.device.target.cores import Core
 
 __all__ = ["Toolchain", "EmulationFailed", "Run", "Sections", "find_toolchain", "build",
-           "compile_object", "run", "build_check", "run_check", "check_digest",
+           "compile_object", "run", "require_check_folder", "build_check", "run_check", "check_digest",
            "object_sizes", "STARTUP", "LINKER_SCRIPT", "COUNT_SOURCE", "CFLAGS"]
 
 HERE = Path(__file__).parent
@@ -279,6 +279,30 @@ def run(*, elf: Path, core: Core, cwd: Path, toolchain: Toolchain, timeout: floa
     return Run(core=core.name, returncode=r.returncode, stdout=r.stdout, stderr=r.stderr)
 
 
+def require_check_folder(vectors: Path) -> None:
+    """Refuse a folder that is not a vectors folder with its check program.
+
+    Parameters
+    ----------
+    vectors : Path
+        The folder.
+
+    Raises
+    ------
+    ScenemonError
+        It is no folder, or a file of the check is missing (the first is named).
+    """
+    if not vectors.is_dir():
+        raise ScenemonError(f"{vectors}: is not a folder; give the folder scenemon vectors "
+                            f"wrote")
+    missing = [n for n in ("check.c", "frontend.c", "frontend.h", "frontend_constants.h",
+                           "check_params.h", "pcm.csv", "features.csv")
+               if not (vectors / n).is_file()]
+    if missing:
+        raise ScenemonError(f"{vectors}: is not a vectors folder with a check program "
+                            f"({missing[0]} is missing); write one with scenemon vectors")
+
+
 def build_check(vectors: Path, core: Core, *, out: Path, toolchain: Toolchain,
                 contract: str = "off") -> Path:
     """Build a vectors folder's check program (its own ``check.c`` and ``frontend.c``,
@@ -309,11 +333,7 @@ def build_check(vectors: Path, core: Core, *, out: Path, toolchain: Toolchain,
     EmulationFailed
         It did not build.
     """
-    missing = [n for n in ("check.c", "frontend.c", "frontend.h", "frontend_constants.h",
-                           "check_params.h", "pcm.csv") if not (vectors / n).is_file()]
-    if missing:
-        raise ScenemonError(f"{vectors}: is not a vectors folder with a check program "
-                            f"({missing[0]} is missing); write one with scenemon vectors")
+    require_check_folder(vectors)
     return build(core=core, sources=[vectors / "frontend.c", vectors / "check.c"],
                  include=[vectors], out=out, toolchain=toolchain, contract=contract)
 
