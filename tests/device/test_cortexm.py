@@ -112,6 +112,61 @@ def test_check_runs_on_the_core_bit_exact_with_the_laptop(tmp_path, float_vector
     assert check_digest(r.stdout) == host, (core, r.stdout.splitlines()[-2:])
 
 
+@pytest.fixture(scope="module")
+def kind_folders(tmp_path_factory, tour):
+    """For every kind and option of the C front end (test_device.C_CASES): a folder with the
+    check's sources, that card's header and six windows of the tour; features.csv holds
+    zeros and the tolerance is unbounded, because the subject here is bit-identity between
+    builds (the tolerance against Python is test_device's), and the laptop's digest."""
+    import io
+
+    from test_device import C_CASES, c_case
+
+    x, _ = sf.read(str(tour[0]), dtype="int16")
+    root = tmp_path_factory.mktemp("kinds")
+    out = {}
+    for i, name in enumerate(C_CASES):
+        card = c_case(name)
+        d = root / f"case{i}"
+        d.mkdir()
+        (d / "frontend_constants.h").write_text(header(card))
+        for src in (*C_SOURCES, C_SOURCES[0].with_name("check.c")):
+            (d / src.name).write_bytes(src.read_bytes())
+        w = card.window_samples
+        pcm = np.stack([x[s:s + w] for s in np.linspace(0, len(x) - w, 6).astype(int)])
+        buf = io.BytesIO()
+        np.savetxt(buf, pcm, fmt="%d", delimiter=",")
+        (d / "pcm.csv").write_bytes(buf.getvalue())
+        zeros = np.zeros((6, int(np.prod(card.feature_shape))))
+        buf = io.BytesIO()
+        np.savetxt(buf, zeros, fmt="%g", delimiter=",")
+        (d / "features.csv").write_bytes(buf.getvalue())
+        (d / "check_params.h").write_text("#define SM_CHECK_WINDOWS 6\n#define SM_CHECK_INT8 0\n"
+                                          "#define SM_CHECK_FEATURE_TOL 1e30f\n"
+                                          "#define SM_CHECK_INT8_STEPS 1\n")
+        subprocess.run([compiler(), "-std=c99", "-O2", f"-I{d}", str(d / "frontend.c"),
+                        str(d / "check.c"), "-o", str(d / "host"), "-lm"], check=True)
+        r = subprocess.run([str(d / "host")], cwd=d, capture_output=True, text=True)
+        assert r.returncode == 0, r.stdout[-500:]
+        out[name] = (d, check_digest(r.stdout))
+    return out
+
+
+@pytest.mark.parametrize("core", ["cortex-m3", "cortex-m4"])
+def test_every_kind_and_option_is_bit_exact_on_the_core(tmp_path, kind_folders, toolchain,
+                                                          core):
+    # every kind (log-mel, MFCC, spectrogram, waveform) and option of the front end (log10,
+    # dB, top_db, centre padding, pre-emphasis, per-window standardisation, ...), in software
+    # float (M3) and on an FPU with fused multiply-add (M4): the same bits as the laptop
+    differ = []
+    for name, (d, host) in kind_folders.items():
+        r = run_check(d, CORES[core], work=tmp_path / d.name, toolchain=toolchain)
+        assert r.returncode == 0, (name, r.stdout[-500:])
+        if check_digest(r.stdout) != host:
+            differ.append(name)
+    assert differ == []
+
+
 def test_contraction_to_fma_changes_the_bits_on_an_fma_core(tmp_path, float_vectors, toolchain):
     # the Cortex-M4's FPv4-SP has VFMA (Armv7-M Architecture Reference Manual, the
     # floating-point extension's instructions); built with -ffp-contract=fast gcc fuses
