@@ -205,10 +205,10 @@ class TargetFigures:
     flash, ram : int
         Bytes of the cross-compiled ``frontend.o``: text and data (flash), data and bss
         (static RAM), measured from its sections.
-    hop_instructions : float or None
+    hop_instructions : int or None
         Instructions of a steady `sm_push_hop` (one after the first window), counted in
         emulation; None when the counted samples hold fewer than two windows of the stream.
-    window_instructions : float
+    window_instructions : int
         Instructions of `sm_features_i16` on one window, counted.
     resolution : float
         The counts are good to about this many instructions (one SysTick tick).
@@ -217,8 +217,8 @@ class TargetFigures:
     core: Core
     flash: int
     ram: int
-    hop_instructions: float | None
-    window_instructions: float
+    hop_instructions: int | None
+    window_instructions: int
     resolution: float
 
     @property
@@ -326,10 +326,11 @@ def target_figures(card: ModelCard, cores: list[Core], *, work: Path | None = No
                                  out=root / core.name / "frontend.o", toolchain=tc)
             sec = object_sizes(obj)
             counts = count_card(card, core, work=root / core.name, toolchain=tc)
+            hop = None if counts.hop is None else round(counts.hop)
             out.append(TargetFigures(core=core, flash=sec.flash, ram=sec.ram,
-                                     hop_instructions=counts.hop,
-                                     window_instructions=counts.window,
-                                     resolution=counts.per_tick))
+                                     hop_instructions=hop,
+                                     window_instructions=round(counts.window),
+                                     resolution=round(counts.per_tick, 2)))
         return out
 
 
