@@ -25,7 +25,7 @@ from monitor.cli.flags import Parser, subcommand
 # owns its name, help, examples, flags (`add_arguments`) and handler (`run`). A run imports
 # only its own command's module (and what that needs), so start-up does not pay for the rest.
 COMMAND_NAMES = ("replay", "live", "field", "status", "devices", "demo", "report", "tune",
-                 "harvest", "relabel", "quantize", "compare", "vectors", "repair", "score",
+                 "harvest", "relabel", "quantize", "compare", "vectors", "emulate", "repair", "score",
                  "bench", "profile", "budget", "card")
 
 

@@ -29,3 +29,20 @@ def c_sources(card) -> tuple[Path, ...]:
     if card.frontend.pcm.arithmetic == "q15":
         return (Q15_SOURCE, C_SOURCES[1])
     return C_SOURCES
+
+
+def source_for_header(text: str) -> Path:
+    """The front end's C source a ``frontend_constants.h`` of that text is for:
+    ``frontend_q15.c`` when it is a q15 card's (``SM_ARITHMETIC_Q15``), else ``frontend.c``.
+
+    Parameters
+    ----------
+    text : str
+        The header's text.
+
+    Returns
+    -------
+    Path
+        The package's source file.
+    """
+    return Q15_SOURCE if "#define SM_ARITHMETIC_Q15 1" in text else C_SOURCES[0]

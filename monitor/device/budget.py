@@ -14,6 +14,11 @@ where it comes from.
   and mean layers: their comparisons or additions, listed but not MACs), and the front end's
   operations per hop (FFT butterflies, mel weights, logs). With a clock, a duty-cycle
   estimate from a cycles-per-operation figure that is an assumption, not a measurement.
+- per core (``--target``, `target_figures`): the front end cross-compiled for each Cortex-M
+  core (``monitor.device.target``): its object's flash and RAM (measured: the object's
+  sections), its instructions per hop and per window (counted in emulation: instructions,
+  not cycles), and the model's cycles from per-kernel figures per core (recalled, each
+  saying so); with a clock a duty-cycle table per core, beside the estimate above.
 """
 
 from __future__ import annotations
@@ -31,6 +36,7 @@ import numpy as np
 
 from monitor.assembly.plan import ModelPlan
 from monitor.base.errors import ExitCode, ModelError, ScenemonError
+from monitor.device.target.cores import Core
 from monitor.features.card import ModelCard
 from monitor.inference.base import Runner, RunnerBase
 
@@ -39,6 +45,10 @@ from monitor.inference.base import Runner, RunnerBase
 CYCLES_PER_INT8_MAC = 1.0
 CYCLES_PER_FLOAT_MAC = 2.0
 CYCLES_PER_FRONTEND_OP = 2.0
+# per core: cycles per counted instruction (assumed, common practice for a single-issue
+# Cortex-M pipeline: most instructions take one cycle, loads, divides and taken branches
+# more, the M7's dual issue less)
+CYCLES_PER_INSTRUCTION = 1.0
 WIDTH = 80  # columns of the printed budget: every line fits a standard terminal
 
 
@@ -106,6 +116,8 @@ class Budget:
         The model's input is int8.
     notes : list of str
         What the figures rest on.
+    targets : list of TargetFigures
+        Per core, with ``--target``.
     """
 
     model: str
@@ -121,6 +133,7 @@ class Budget:
     hop_s: float
     int8: bool
     notes: list[str] = field(default_factory=list)
+    targets: list[TargetFigures] = field(default_factory=list)
 
     @property
     def macs(self) -> int:
@@ -176,7 +189,149 @@ class Budget:
              "layers": [vars(x) for x in self.layers], "notes": self.notes}
         if clock_mhz:
             d["estimate"] = self.duty_cycle(clock_mhz)
+        if self.targets:
+            d["targets"] = [t.to_dict(self, clock_mhz) for t in self.targets]
         return d
+
+
+@dataclass(frozen=True, kw_only=True)
+class TargetFigures:
+    """The front end on one Cortex-M core: measured flash and RAM, counted instructions.
+
+    Attributes
+    ----------
+    core : Core
+        The core (its board, FPU and per-kernel figures).
+    flash, ram : int
+        Bytes of the cross-compiled ``frontend.o``: text and data (flash), data and bss
+        (static RAM), measured from its sections.
+    hop_instructions : int or None
+        Instructions of a steady `sm_push_hop` (one after the first window), counted in
+        emulation; None when the counted samples hold fewer than two windows of the stream.
+    window_instructions : int
+        Instructions of `sm_features_i16` on one window, counted.
+    resolution : float
+        The counts are good to about this many instructions (one SysTick tick).
+    """
+
+    core: Core
+    flash: int
+    ram: int
+    hop_instructions: int | None
+    window_instructions: int
+    resolution: float
+
+    @property
+    def per_hop(self) -> float:
+        """Counted instructions per hop: a steady hop, or a whole window without one."""
+        return self.hop_instructions if self.hop_instructions is not None \
+            else self.window_instructions
+
+    def duty_cycle(self, b: Budget, clock_mhz: float) -> dict[str, float]:
+        """Front end and model per hop on this core at `clock_mhz`, against the hop's cycles.
+
+        Front end: counted instructions x `CYCLES_PER_INSTRUCTION` (assumed); model: the
+        model's MACs x the core's cycles per MAC (recalled).
+
+        Parameters
+        ----------
+        b : Budget
+            The model's figures (MACs, int8 or float, hop).
+        clock_mhz : float
+            The core clock in MHz, > 0.
+
+        Returns
+        -------
+        dict
+            ``frontend_cycles``, ``model_cycles``, ``cycles_per_hop`` (available) and
+            ``duty_cycle`` (a fraction; above 1 the core cannot keep up).
+        """
+        cpm = self.core.int8_cycles_per_mac if b.int8 else self.core.float_cycles_per_mac
+        fe = self.per_hop * CYCLES_PER_INSTRUCTION
+        model = b.macs * cpm
+        avail = clock_mhz * 1e6 * b.hop_s
+        return {"clock_mhz": clock_mhz, "frontend_cycles": fe, "model_cycles": model,
+                "cycles_per_mac_from_memory": cpm,
+                "cycles_per_instruction_assumed": CYCLES_PER_INSTRUCTION,
+                "cycles_per_hop": avail, "duty_cycle": (fe + model) / avail}
+
+    def to_dict(self, b: Budget, clock_mhz: float | None = None) -> dict[str, Any]:
+        """JSON-ready figures, each with how it was obtained; with a clock, the duty cycle."""
+        c = self.core
+        d: dict[str, Any] = {
+            "core": c.name, "machine": c.machine, "fpu": c.fpu,
+            "frontend_flash_bytes": self.flash, "frontend_ram_bytes": self.ram,
+            "flash_bytes": b.model_bytes + self.flash,
+            "ram_bytes": (b.arena_bytes or 0) + self.ram + b.frontend_ram.get(
+                "one window of int16 PCM", 0) + b.frontend_ram.get("feature tensor (float32)", 0),
+            "hop_instructions": self.hop_instructions,
+            "window_instructions": self.window_instructions,
+            "instructions_resolution": self.resolution,
+            "int8_cycles_per_mac": c.int8_cycles_per_mac,
+            "float_cycles_per_mac": c.float_cycles_per_mac,
+            "how": {"frontend_flash_bytes": "measured: frontend.o's sections",
+                    "frontend_ram_bytes": "measured: frontend.o's sections",
+                    "arena_bytes": "recorded by the microcontroller runtime",
+                    "hop_instructions": "counted in emulation (instructions, not cycles)",
+                    "window_instructions": "counted in emulation (instructions, not cycles)",
+                    "cycles_per_mac": c.mac_source,
+                    "cycles_per_instruction": "assumed (common practice)"}}
+        if clock_mhz:
+            d["estimate"] = self.duty_cycle(b, clock_mhz)
+        return d
+
+
+def target_figures(card: ModelCard, cores: list[Core], *, work: Path | None = None
+                   ) -> list[TargetFigures]:
+    """Cross-compile `card`'s front end for each core: flash and RAM of its object, and its
+    instructions counted in emulation (`monitor.device.target`).
+
+    Parameters
+    ----------
+    card : ModelCard
+        The card (its ``frontend_constants.h`` is written for the build).
+    cores : list of Core
+        The cores.
+    work : Path, optional
+        A folder for the builds (a temporary one by default).
+
+    Returns
+    -------
+    list of TargetFigures
+        One per core, in order.
+
+    Raises
+    ------
+    ScenemonError
+        The toolchain or QEMU is missing (one sentence naming the package to install).
+    EmulationFailed
+        A build, a run or a count failed.
+    """
+    import tempfile
+
+    from monitor.device.constants import header
+    from monitor.device.target.count import count_card
+    from monitor.device.target.cross import compile_object, find_toolchain, object_sizes
+
+    tc = find_toolchain()
+    with tempfile.TemporaryDirectory(prefix="scenemon-target-") as tmp:
+        root = Path(work) if work is not None else Path(tmp)
+        root.mkdir(parents=True, exist_ok=True)
+        (root / "frontend_constants.h").write_text(header(card))
+        from monitor.device import c_sources
+
+        out = []
+        for core in cores:
+            obj = compile_object(core=core, source=c_sources(card)[0], include=[root],
+                                 out=root / core.name / "frontend.o", toolchain=tc)
+            sec = object_sizes(obj)
+            counts = count_card(card, core, work=root / core.name, toolchain=tc)
+            hop = None if counts.hop is None else round(counts.hop)
+            out.append(TargetFigures(core=core, flash=sec.flash, ram=sec.ram,
+                                     hop_instructions=hop,
+                                     window_instructions=round(counts.window),
+                                     resolution=round(counts.per_tick, 2)))
+        return out
 
 
 def layers_of(path: Path) -> list[Layer]:
@@ -423,10 +578,84 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
                   f"{_cycles(d['cycles_per_frontend_op_assumed'])} per front-end operation",
                   f"  {d['model_cycles'] + d['frontend_cycles']:,.0f} cycles per hop of "
                   f"{b.hop_s * 1000:g} ms: about {d['duty_cycle']:.1%} of the core"]
+    if b.targets:
+        lines += ["", *target_text(b, clock_mhz)]
     return "\n".join(lines) + "\n"
 
 
-def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> int:
+def _m(n: float) -> str:
+    """A count in millions (or thousands) to three figures."""
+    return f"{n / 1e6:.3g} M" if n >= 1e5 else f"{n / 1e3:.3g} k"
+
+
+def target_text(b: Budget, clock_mhz: float | None = None) -> list[str]:
+    """The per-core tables of ``budget --target`` (each line at most `WIDTH` columns).
+
+    Parameters
+    ----------
+    b : Budget
+        The figures, with ``targets``.
+    clock_mhz : float, optional
+        The clock of the duty-cycle table.
+
+    Returns
+    -------
+    list of str
+        The lines.
+    """
+    lines = _wrapped("per core: the front end cross-compiled (arm-none-eabi-gcc -O2 "
+                     "-ffp-contract=off) and run in QEMU", "", "  ")
+    head = f"{'core':<11} {'board':<11} {'flash':>8} {'RAM':>8} {'per hop':>14} {'per window':>12}"
+    lines += ["", f"{'':<24}{'front end (measured)':>17}   {'instructions (counted)':>27}", head]
+    for t in b.targets:
+        hop = "-" if t.hop_instructions is None else f"{t.hop_instructions:,.0f}"
+        lines.append(f"{t.core.name:<11} {t.core.machine:<11} {t.flash:>8,} {t.ram:>8,} "
+                     f"{hop:>14} {t.window_instructions:>12,.0f}")
+    res = max(t.resolution for t in b.targets)
+    lines += _wrapped(f"bytes of frontend.o's sections: flash = text + data, RAM = data + "
+                      f"bss; instructions, not cycles, counted with QEMU's instruction "
+                      f"counter, each within {res:.0f}; a hop after the first window reuses "
+                      f"the frames it shares", "  ", "  ")
+    caller = b.frontend_ram.get("one window of int16 PCM", 0) + b.frontend_ram.get(
+        "feature tensor (float32)", 0)
+    arena = "-" if b.arena_bytes is None else f"{b.arena_bytes:,} (recorded)"
+    lines += ["", f"{'core':<11} {'RAM in all':>12} {'flash in all':>13}"]
+    for t in b.targets:
+        lines.append(f"{t.core.name:<11} {(b.arena_bytes or 0) + t.ram + caller:>12,} "
+                     f"{b.model_bytes + t.flash:>13,}")
+    lines += _wrapped(f"RAM = interpreter arena {arena} + front end (measured) + "
+                      f"{caller:,} (the caller's window of PCM and features); flash = model "
+                      f"{b.model_bytes:,} (the file) + front end (measured)", "  ", "  ")
+    if clock_mhz:
+        mac = "int8 MAC" if b.int8 else "float MAC"
+        lines += ["", f"duty cycle at {clock_mhz:g} MHz, per hop of {b.hop_s * 1000:g} ms "
+                      f"({clock_mhz * 1e6 * b.hop_s:,.0f} cycles)",
+                  f"{'core':<11} {'front end':>10} {'model':>11}   {'cycles per':>10} "
+                  f"{'total':>12} {'share':>8}",
+                  f"{'':<11} {'cycles (1)':>10} {'cycles (2)':>11}   {mac:>10} "
+                  f"{'cycles':>12} {'of core':>8}"]
+        for t in b.targets:
+            d = t.duty_cycle(b, clock_mhz)
+            lines.append(f"{t.core.name:<11} {_m(d['frontend_cycles']):>10} "
+                         f"{_m(d['model_cycles']):>11}   {d['cycles_per_mac_from_memory']:>10g} "
+                         f"{_m(d['frontend_cycles'] + d['model_cycles']):>12} "
+                         f"{d['duty_cycle']:>8.1%}")
+        lines += _wrapped(f"(1) counted instructions x {CYCLES_PER_INSTRUCTION:g} cycle each "
+                          f"(assumed); (2) {b.macs:,} MACs x the core's cycles per {mac} "
+                          f"(from memory, below)", "  ", "      ")
+        for t in b.targets:
+            lines += _wrapped(t.core.mac_source, f"  {t.core.name}: ", "      ")
+        old = b.duty_cycle(clock_mhz)["duty_cycle"]
+        lines += [""] + _wrapped(
+            f"the single-figure estimate above (one assumed cost per operation for every core) "
+            f"says {old:.1%}; per core, from counted instructions, "
+            + ", ".join(f"{t.core.name} {t.duty_cycle(b, clock_mhz)['duty_cycle']:.1%}"
+                        for t in b.targets) + ".", "", "")
+    return lines
+
+
+def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool,
+               targets: str | None = None) -> int:
     """`scenemon budget`; exit 1 when the model cannot run in the microcontroller runtime.
 
     Parameters
@@ -437,6 +666,8 @@ def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> in
         The target's clock in MHz.
     as_json : bool
         Print JSON.
+    targets : str, optional
+        ``--target``: Cortex-M cores, comma-separated (see `target_figures`).
 
     Returns
     -------
@@ -446,14 +677,24 @@ def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool) -> in
     Raises
     ------
     ScenemonError
-        A clock that is not above 0, or a model or card that cannot be used.
+        A clock that is not above 0, an unknown core, the toolchain or QEMU missing, or a
+        model or card that cannot be used.
     """
     from monitor.assembly.assemble import card_of
 
+    cores = None
+    if targets is not None:
+        from monitor.device.target.cores import cores_of
+        from monitor.device.target.cross import find_toolchain
+
+        cores = cores_of(targets)
+        find_toolchain()  # before the model loads: a missing part is said at once
     card = card_of(plan)
     if clock_mhz is not None and not clock_mhz > 0:
         raise ScenemonError(f"--clock-mhz {clock_mhz} must be above 0")
     b = budget(plan, card)
+    if cores:
+        b.targets.extend(target_figures(card, cores))
     sys.stdout.write(json.dumps(b.to_dict(clock_mhz), indent=2) + "\n" if as_json
                      else budget_text(b, clock_mhz))
     if b.unsupported_ops:

@@ -13,10 +13,15 @@
  * also reads features_q16.csv (the model input in q16 integers) and every integer, every
  * float and every int8 input must equal scenemon's (tolerances 0).
  *
+ * The last line is a digest of every feature value computed, in order (see below): equal
+ * digests from two builds (the laptop's and the board's) mean bit-identical features.
+ *
  * C99; reads files with stdio, so it runs on the host (or a board with semihosting). */
 #include <math.h>
+#include <stdint.h>
 #include <stdio.h>
 #include <stdlib.h>
+#include <string.h>
 
 #include "frontend_constants.h"
 #include "frontend.h"
@@ -78,6 +83,22 @@ static int quantise(float x) {
 }
 #endif
 
+/* --- the digest: 64-bit FNV-1a over the bytes of each float32 feature value (its IEEE 754
+ * bits, least significant byte first, whatever the machine's byte order), in the order
+ * computed; offset basis and prime from the FNV specification (Fowler, Noll, Vo). */
+static uint64_t digest = 14695981039346656037u;
+
+static void digest_features(const float *v, int n) {
+    for (int i = 0; i < n; i++) {
+        uint32_t bits;
+        memcpy(&bits, &v[i], sizeof bits);
+        for (int b = 0; b < 4; b++) {
+            digest ^= (bits >> (8 * b)) & 0xffu;
+            digest *= 1099511628211u;
+        }
+    }
+}
+
 static FILE *open_or_die(const char *name) {
     FILE *f = fopen(name, "r");
     if (!f) {
@@ -107,6 +128,7 @@ int main(void) {
             return 2;
         }
         sm_features_i16(pcm, feats);
+        digest_features(feats, SM_FEATURES);
 #ifdef SM_ARITHMETIC_Q15
         if (!read_i32(f16, want_q16, SM_FEATURES)) {
             fprintf(stderr, "check: features_q16.csv has fewer rows than pcm.csv\n");
@@ -178,6 +200,8 @@ int main(void) {
     printf("; q16 values that differ: %d (exact check)", q16_off);
 #endif
     printf("; %s\n", bad ? "FAILED" : "passed");
+    printf("features digest (FNV-1a 64 of their float32 bytes): %08lx%08lx\n",
+           (unsigned long)(digest >> 32), (unsigned long)(digest & 0xffffffffu));
     if (windows != SM_CHECK_WINDOWS) {
         fprintf(stderr, "check: read %d windows, expected %d\n", windows, SM_CHECK_WINDOWS);
         return 1;

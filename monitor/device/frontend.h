@@ -1,7 +1,8 @@
 /*
  * scenemon portable front end: scaled features from PCM, as the model card says.
  *
- * C99, no dynamic allocation, no libm beyond logf / log10f / sqrtf / cosf. Every size, switch
+ * C99, no dynamic allocation, no libm beyond sqrtf (the log and the FFT's cosines are its own,
+ * so every IEEE 754 target gives the same bits). Every size, switch
  * and table comes from frontend_constants.h, which `scenemon vectors` writes for one model
  * card; sizes the code cannot work with stop the build (a negative array size).
  *

@@ -433,8 +433,19 @@ def case_serve_not_a_port(tmp_path):
     return ["replay", _good(tmp_path), "--serve", "localhost:web"], "--serve", "is not [HOST:]PORT"
 
 
+def case_emulate_not_a_vectors_folder(tmp_path):
+    (tmp_path / "golden").mkdir()
+    return (["emulate", tmp_path / "golden", "--target", "cortex-m4"], "golden",
+            "check.c is missing")
+
+
+def case_emulate_unknown_core(tmp_path):
+    return (["emulate", tmp_path, "--target", "cortex-m4,arm7"], "arm7",
+            "not a core scenemon knows")
+
+
 CASES = [v for k, v in sorted(globals().items()) if k.startswith("case_")]
-NO_MODEL = {"report", "harvest", "tune"}
+NO_MODEL = {"report", "harvest", "tune", "emulate"}
 OWN_FLAGS = {"field", "status"}  # no --fast / --out: a run folder is their argument
 
 
