@@ -179,11 +179,15 @@ def fixed_lines(card: ModelCard) -> list[str]:
     from monitor.features.fixedpoint import FixedFrontEnd
 
     fx = FixedFrontEnd(card)
+    used = np.flatnonzero(fx.mel.any(axis=0))
+    low, high = (int(used[0]), int(used[-1])) if used.size else (0, 0)
     lines = ["/* the q15 front end (frontend_q15.c): integer tables, formats in its comment */",
              c_define("SM_ARITHMETIC_Q15", 1),
              c_define("SM_FFT_BITS", fx.bits),
              c_define("SM_MEL_BANDS", fx.bands),
              c_define("SM_MEL_COEFFS", int(sum(sparse_bank(fx.mel)[1]))),
+             c_define("SM_MEL_LOW_BIN", low, "the bins the bands use: low .. high"),
+             c_define("SM_MEL_HIGH_BIN", high),
              c_define("SM_MFCC", 0 if fx.dct is None else fx.dct.shape[0]),
              c_define("SM_DCT_BITS", fx.dct_bits, "fraction bits of the DCT table"),
              c_define("SM_LOG_FACTOR", fx.factor, "log2 to feature units, q28"),
@@ -218,9 +222,14 @@ def c_buffers(card: ModelCard) -> dict[str, int]:
     """
     out: dict[str, int] = {}
     if card.frontend.pcm.arithmetic == "q15":  # frontend_q15.c's static arrays
+        from monitor.features.fixedpoint import FixedFrontEnd
+
         n, frames = card.frontend.framing.fft_length, card.frames_per_window
         hist = card.stages()[0].history  # type: ignore[attr-defined]
+        used = np.flatnonzero(FixedFrontEnd(card).mel.any(axis=0))
+        bins = int(used[-1] - used[0] + 1) if used.size else 1
         return {"sm_hist": 2 * hist, "sm_filled": 4, "sm_re": 4 * n, "sm_im": 4 * n,
+                "sm_power": 8 * bins,
                 "sm_frames": 4 * frames * card.frontend.mel.mel_bands,
                 "sm_out_q": 4 * int(np.prod(card.feature_shape))}
     for s in card.stages():

@@ -37,6 +37,7 @@ static int32_t sm_filled;
 static int32_t sm_re[SM_FFT_LENGTH];
 static int32_t sm_im[SM_FFT_LENGTH];
 static int32_t sm_frames[SM_FRAMES * SM_MEL_BANDS]; /* q16 log values, frame after frame */
+static int64_t sm_power[SM_MEL_HIGH_BIN - SM_MEL_LOW_BIN + 1]; /* one frame's q46 / q41 bins */
 static int32_t sm_out_q[SM_FEATURES];
 
 /* sample j (0 <= j < W + 2 pad) of the window x with its centre padding */
@@ -54,13 +55,17 @@ static int32_t sm_padded(const int16_t *x, int j) {
     return x[j];
 }
 
-static int sm_bit_length(uint64_t v) {
+static int sm_bit_length(uint64_t v) { /* v > 0 */
+#if defined(__GNUC__)
+    return 64 - __builtin_clzll(v); /* CLZ on Cortex-M3 and later */
+#else
     int n = 0;
     while (v) {
         v >>= 1;
         n++;
     }
     return n;
+#endif
 }
 
 /* log2(v) in q24 for v >= 1: bit length, then the table between its two nearest points */
@@ -91,7 +96,9 @@ static uint32_t sm_isqrt(uint64_t v) { /* floor(sqrt(v)), bit by bit */
 }
 #endif
 
-/* radix-2 decimation in time on q31, each stage halved with rounding: X / N */
+/* radix-2 decimation in time on q31, each stage halved with rounding: X / N. The twiddle
+ * product needs 64 bits (SMULL, SMLAL), the rest stays in 32: no stage can overflow, as no
+ * value exceeds the frame's largest sample (below 2^31 - 2^16) */
 static void sm_fft(void) {
     for (int i = 0; i < SM_FFT_LENGTH; i++) {
         int j = sm_bitrev[i];
@@ -104,15 +111,19 @@ static void sm_fft(void) {
         const int half = size >> 1, stride = SM_FFT_LENGTH / size;
         for (int start = 0; start < SM_FFT_LENGTH; start += size) {
             for (int k = 0; k < half; k++) {
-                const int64_t wr = sm_twiddle_re[k * stride], wi = sm_twiddle_im[k * stride];
+                const int32_t wr = sm_twiddle_re[k * stride], wi = sm_twiddle_im[k * stride];
                 const int a = start + k, b = a + half;
-                const int64_t br = sm_re[b], bi = sm_im[b], ar = sm_re[a], ai = sm_im[a];
-                const int64_t tr = (br * wr - bi * wi + ((int64_t)1 << 30)) >> 31;
-                const int64_t ti = (br * wi + bi * wr + ((int64_t)1 << 30)) >> 31;
-                sm_re[a] = (int32_t)((ar + tr + 1) >> 1);
-                sm_im[a] = (int32_t)((ai + ti + 1) >> 1);
-                sm_re[b] = (int32_t)((ar - tr + 1) >> 1);
-                sm_im[b] = (int32_t)((ai - ti + 1) >> 1);
+                const int32_t br = sm_re[b], bi = sm_im[b];
+                /* the twiddle product halved and rounded: the high word of a 64-bit sum */
+                const int32_t tr = (int32_t)(((int64_t)br * wr - (int64_t)bi * wi
+                                              + ((int64_t)1 << 31)) >> 32);
+                const int32_t ti = (int32_t)(((int64_t)br * wi + (int64_t)bi * wr
+                                              + ((int64_t)1 << 31)) >> 32);
+                const int32_t ar = (sm_re[a] + 1) >> 1, ai = (sm_im[a] + 1) >> 1;
+                sm_re[a] = ar + tr;
+                sm_im[a] = ai + ti;
+                sm_re[b] = ar - tr;
+                sm_im[b] = ai - ti;
             }
         }
     }
@@ -138,23 +149,24 @@ static void sm_frame(const int16_t *x, int t) {
         sm_re[SM_FRAME_OFFSET + i] = (int32_t)((v + (1 << 14)) >> 15);
     }
     sm_fft();
-    /* the spectrum, in place in sm_re as int64 pairs would not fit: one bin at a time */
+    /* the spectrum of the bins the mel bands use, once each */
+    for (int k = SM_MEL_LOW_BIN; k <= SM_MEL_HIGH_BIN; k++) {
+        const int64_t re = sm_re[k], im = sm_im[k];
+        const int64_t p2 = re * re + im * im; /* q62 */
+#if SM_POWER == 2
+        sm_power[k - SM_MEL_LOW_BIN] = (p2 + (1 << 15)) >> 16; /* q46 */
+#else
+        sm_power[k - SM_MEL_LOW_BIN] = (int64_t)sm_isqrt((uint64_t)p2) << 10; /* q41 */
+#endif
+    }
     int32_t *row = sm_frames + t * SM_MEL_BANDS;
     int c = 0;
     const int ps = SM_POWER * s;
     for (int m = 0; m < SM_MEL_BANDS; m++) {
         int64_t acc = 0;
-        for (int k = 0; k < sm_mel_length[m]; k++) {
-            const int bin = sm_mel_first_bin[m] + k;
-            const int64_t re = sm_re[bin], im = sm_im[bin];
-            const int64_t p2 = re * re + im * im; /* q62 */
-#if SM_POWER == 2
-            const int64_t p = (p2 + (1 << 15)) >> 16; /* q46 */
-#else
-            const int64_t p = (int64_t)sm_isqrt((uint64_t)p2) << 10; /* q41 */
-#endif
-            acc += (int64_t)sm_mel_q15[c + k] * p;
-        }
+        const int first = sm_mel_first_bin[m] - SM_MEL_LOW_BIN;
+        for (int k = 0; k < sm_mel_length[m]; k++)
+            acc += (int64_t)sm_mel_q15[c + k] * sm_power[first + k];
         c += sm_mel_length[m];
         int d = sm_offset_bits[m] + ps - 62;
         if (d < 0) d = 0;

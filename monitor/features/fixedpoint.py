@@ -11,9 +11,11 @@ for bit. The formats, per frame of ``frame_length`` int16 samples:
    quiet room keeps the precision of a loud one; ``s`` is undone in the log;
 2. window: ``(x << s) * w >> 15`` rounded, window coefficients in q31: the windowed sample in
    q31 (a q15 product would put a noise floor 96 dB under the frame's peak);
-3. FFT: radix-2 decimation in time on q31 values, twiddles
-   in q31, each product rounded to q31, each stage halved with rounding: the spectrum is
-   ``X / N`` in q31 (no stage can overflow: a value never exceeds the frame's largest sample);
+3. FFT: radix-2 decimation in time on q31 values, twiddles in q31; each stage halves: the
+   twiddle product is taken halved and rounded (the high word of the 64-bit product plus
+   2^31), the other input halved with rounding, then added and subtracted in 32 bits: the
+   spectrum is ``X / N`` in q31 (no stage can overflow: a value never exceeds the frame's
+   largest sample);
 4. spectrum: ``re^2 + im^2`` in int64 (q62), to q46 with rounding for power 2; the integer
    square root (floor) in q31, then ``<< 10`` (q41), for magnitude;
 5. mel: band weights in unsigned q15, each band scaled to a peak of 1 (its gain ``g`` is added
@@ -272,12 +274,12 @@ class FixedFrontEnd:
             r = re.reshape(*lead, self.n // size, size)
             i = im.reshape(*lead, self.n // size, size)
             ar, ai, br, bi = r[..., :half], i[..., :half], r[..., half:], i[..., half:]
-            tr = np.right_shift(br * wr - bi * wi + (1 << 30), 31)
-            ti = np.right_shift(br * wi + bi * wr + (1 << 30), 31)
-            re = np.concatenate([np.right_shift(ar + tr + 1, 1), np.right_shift(ar - tr + 1, 1)],
-                                axis=-1).reshape(*lead, self.n)
-            im = np.concatenate([np.right_shift(ai + ti + 1, 1), np.right_shift(ai - ti + 1, 1)],
-                                axis=-1).reshape(*lead, self.n)
+            # the product halved and rounded: the high word of a 64-bit sum (SMULL, SMLAL)
+            tr = np.right_shift(br * wr - bi * wi + (1 << 31), 32)
+            ti = np.right_shift(br * wi + bi * wr + (1 << 31), 32)
+            ar, ai = np.right_shift(ar + 1, 1), np.right_shift(ai + 1, 1)
+            re = np.concatenate([ar + tr, ar - tr], axis=-1).reshape(*lead, self.n)
+            im = np.concatenate([ai + ti, ai - ti], axis=-1).reshape(*lead, self.n)
             size *= 2
         return re, im
 

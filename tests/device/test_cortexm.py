@@ -113,6 +113,53 @@ def test_check_runs_on_the_core_bit_exact_with_the_laptop(tmp_path, float_vector
 
 
 @pytest.fixture(scope="module")
+def q15_vectors(tmp_path_factory, tour, toolchain):
+    """Golden vectors of the demo int8 MFCC model behind the q15 front end on 20 s of the
+    tour (8 windows): the integer features and int8 inputs the laptop's Python model
+    computed, which the shipped check compares exactly (tolerance 0)."""
+    d = tmp_path_factory.mktemp("cortexm-q15")
+    x, sr = sf.read(str(tour[0]), dtype="float32")
+    wav = write_wav(d / "clip.wav", x[: 20 * sr], sr)
+    card = (MODELS / "demo-mfcc.int8.toml").read_text().replace(
+        "[frontend]\n", '[frontend]\narithmetic = "q15"\n')
+    (d / "q15.toml").write_text(card)
+    out = d / "v"
+    r = cli("vectors", wav, "--model", MODELS / "demo-mfcc.int8.tflite", "--card",
+            d / "q15.toml", "--out", out, "--count", "8")
+    assert r.returncode == 0, r.stderr
+    return out
+
+
+@pytest.mark.parametrize("core", list(CORES))
+def test_q15_check_is_exact_on_the_core(tmp_path, q15_vectors, toolchain, core):
+    # the fixed-point front end (frontend_q15.c, integers only) on the core: every q16
+    # feature, every float and every int8 model input equal to the laptop's Python model's
+    # (features_q16.csv, features.csv, input_int8.csv), the check's tolerances being 0
+    r = run_check(q15_vectors, CORES[core], work=tmp_path, toolchain=toolchain)
+    assert r.returncode == 0, r.stdout[-2000:] + r.stderr
+    last = next(x for x in r.stdout.splitlines() if x.endswith(("passed", "FAILED")))
+    assert "features max abs diff 0 (tolerance 0)" in last
+    assert "int8 input values that differ: 0, by at most 0 steps (tolerance 0)" in last
+    assert "q16 values that differ: 0 (exact check)" in last and last.endswith("passed")
+
+
+def test_q15_front_end_is_counted_and_sized_from_its_own_source(tmp_path, toolchain):
+    # budget --target of a q15 card measures frontend_q15.c (its symbols, not frontend.c's)
+    from monitor.device import Q15_SOURCE
+    from monitor.features.card import with_arithmetic
+
+    card = with_arithmetic(load_card(MODELS / "demo.toml"), "q15")
+    (tmp_path / "frontend_constants.h").write_text(header(card))
+    obj = compile_object(core=CORES["cortex-m3"], source=Q15_SOURCE, include=[tmp_path],
+                         out=tmp_path / "fe.o", toolchain=toolchain)
+    nm = subprocess.run([shutil.which("arm-none-eabi-nm") or "arm-none-eabi-nm", str(obj)],
+                        capture_output=True, text=True, check=True).stdout
+    assert "sm_features_q16" in nm and "sm_rfft" not in nm
+    c = count_card(card, CORES["cortex-m3"], work=tmp_path / "count", toolchain=toolchain)
+    assert c.hop is not None and 0 < c.hop < c.window
+
+
+@pytest.fixture(scope="module")
 def kind_folders(tmp_path_factory, tour):
     """For every kind and option of the C front end (test_device.C_CASES): a folder with the
     check's sources, that card's header and six windows of the tour; features.csv holds
