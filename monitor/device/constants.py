@@ -228,7 +228,7 @@ def c_buffers(card: ModelCard) -> dict[str, int]:
         hist = card.stages()[0].history  # type: ignore[attr-defined]
         used = np.flatnonzero(FixedFrontEnd(card).mel.any(axis=0))
         bins = int(used[-1] - used[0] + 1) if used.size else 1
-        return {"sm_hist": 2 * hist, "sm_filled": 4, "sm_re": 4 * n, "sm_im": 4 * n,
+        return {"sm_hist": 2 * hist, "sm_filled": 4, "sm_re": 2 * n, "sm_im": 2 * n,
                 "sm_power": 8 * bins,
                 "sm_frames": 4 * frames * card.frontend.mel.mel_bands,
                 "sm_out_q": 4 * int(np.prod(card.feature_shape))}

@@ -8,8 +8,8 @@
  * an arithmetic shift (gcc and clang for Arm and x86 are; ISO C leaves it to the
  * implementation, C99 6.5.7) and 64-bit integer products (SMULL on Cortex-M3 and later).
  *
- * Per frame: headroom shift, window (q31), radix-2 FFT in q31 halved each stage, |X|^2 (q46)
- * or |X| (q41), mel sums (int64), offset and log2 (q24), feature units (q16). Per window:
+ * Per frame: headroom shift, window (q30 samples), the real FFT as an N/2-point radix-2 FFT
+ * halved each stage plus a split step, |X|^2 (q46) or |X| (q41), mel sums (int64), offset and log2 (q24), feature units (q16). Per window:
  * dB reference and top_db, DCT (q30 coefficients), layout, scaling (one integer multiply). */
 #include <stdint.h>
 
@@ -26,7 +26,8 @@ SM_CHECK(frames, SM_FRAMES >= 1 && SM_FEATURES == SM_FRAMES * SM_CHANNELS
                  && SM_FRAME_OFFSET + SM_FRAME_LENGTH <= SM_FFT_LENGTH);
 SM_CHECK(pad, SM_PAD >= 0 && (!SM_PAD_REFLECT || SM_PAD < SM_WINDOW_SAMPLES));
 SM_CHECK(tables, sizeof(sm_window_q31) == 4 * SM_FRAME_LENGTH
-                 && sizeof(sm_twiddle_re) == 4 * (SM_FFT_LENGTH / 2)
+                 && sizeof(sm_twiddle_re) == 4 * (SM_FFT_LENGTH / 2 + 1)
+                 && sizeof(sm_bitrev) == 2 * (SM_FFT_LENGTH / 2)
                  && sizeof(sm_mel_q15) == 2 * SM_MEL_COEFFS
                  && sizeof(sm_log2_q24) == 4 * 257);
 SM_CHECK(shared, SM_SHARE_STEP == 0 || (SM_SHARED_FIRST >= 0 && SM_SHARED_LAST < SM_FRAMES
@@ -34,8 +35,9 @@ SM_CHECK(shared, SM_SHARE_STEP == 0 || (SM_SHARED_FIRST >= 0 && SM_SHARED_LAST <
 
 static int16_t sm_hist[SM_HIST_SAMPLES]; /* the newest samples; the window is sm_hist[0..W) */
 static int32_t sm_filled;
-static int32_t sm_re[SM_FFT_LENGTH];
-static int32_t sm_im[SM_FFT_LENGTH];
+#define SM_HALF (SM_FFT_LENGTH / 2)
+static int32_t sm_re[SM_HALF]; /* the N/2-point complex FFT: even samples real, odd imaginary */
+static int32_t sm_im[SM_HALF];
 static int32_t sm_frames[SM_FRAMES * SM_MEL_BANDS]; /* q16 log values, frame after frame */
 static int64_t sm_power[SM_MEL_HIGH_BIN - SM_MEL_LOW_BIN + 1]; /* one frame's q46 / q41 bins */
 static int32_t sm_out_q[SM_FEATURES];
@@ -96,20 +98,20 @@ static uint32_t sm_isqrt(uint64_t v) { /* floor(sqrt(v)), bit by bit */
 }
 #endif
 
-/* radix-2 decimation in time on q31, each stage halved with rounding: X / N. The twiddle
- * product needs 64 bits (SMULL, SMLAL), the rest stays in 32: no stage can overflow, as no
- * value exceeds the frame's largest sample (below 2^31 - 2^16) */
+/* radix-2 decimation in time of N/2 points on q30, each stage halved with rounding: Z / M.
+ * The twiddle product needs 64 bits (SMULL, SMLAL), the rest stays in 32: no stage can
+ * overflow, as no value exceeds sqrt(2) times the frame's largest sample (below 2^31) */
 static void sm_fft(void) {
-    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+    for (int i = 0; i < SM_HALF; i++) {
         int j = sm_bitrev[i];
         if (j > i) {
             int32_t t = sm_re[i]; sm_re[i] = sm_re[j]; sm_re[j] = t;
             t = sm_im[i]; sm_im[i] = sm_im[j]; sm_im[j] = t;
         }
     }
-    for (int size = 2; size <= SM_FFT_LENGTH; size <<= 1) {
+    for (int size = 2; size <= SM_HALF; size <<= 1) {
         const int half = size >> 1, stride = SM_FFT_LENGTH / size;
-        for (int start = 0; start < SM_FFT_LENGTH; start += size) {
+        for (int start = 0; start < SM_HALF; start += size) {
             for (int k = 0; k < half; k++) {
                 const int32_t wr = sm_twiddle_re[k * stride], wi = sm_twiddle_im[k * stride];
                 const int a = start + k, b = a + half;
@@ -129,6 +131,21 @@ static void sm_fft(void) {
     }
 }
 
+/* bin k (0 <= k <= N/2) of the real FFT, X / N in q30, from the N/2-point FFT Z / M:
+ * X[k] = (A + W^k B / i) / 4, A = Z[k] + conj(Z[M - k]), B = Z[k] - conj(Z[M - k]) */
+static void sm_bin(int k, int32_t *re, int32_t *im) {
+    const int a = k % SM_HALF, b = (SM_HALF - k) % SM_HALF;
+    const int64_t yr = sm_re[a], yi = sm_im[a], cr = sm_re[b], ci = -(int64_t)sm_im[b];
+    /* A / 2 and B / 2: below sqrt(2) * 2^30, so 32 bits hold them (and one SMULL each) */
+    const int32_t sr = (int32_t)((yr + cr + 1) >> 1), si = (int32_t)((yi + ci + 1) >> 1);
+    const int32_t dr = (int32_t)((yr - cr + 1) >> 1), di = (int32_t)((yi - ci + 1) >> 1);
+    const int32_t wr = sm_twiddle_re[k], wi = sm_twiddle_im[k];
+    *re = ((sr + 1) >> 1) + (int32_t)(((int64_t)di * wr + (int64_t)dr * wi
+                                       + ((int64_t)1 << 31)) >> 32);
+    *im = ((si + 1) >> 1) + (int32_t)(((int64_t)di * wi - (int64_t)dr * wr
+                                       + ((int64_t)1 << 31)) >> 32);
+}
+
 /* frame t of the window x -> sm_frames row t (q16 log values) */
 static void sm_frame(const int16_t *x, int t) {
     const int base = t * SM_FRAME_STEP + SM_FRAME_OFFSET;
@@ -140,23 +157,27 @@ static void sm_frame(const int16_t *x, int t) {
     }
     int s = 0; /* headroom: the most bits the frame can go up by within int16 */
     while (peak > 0 && s < 14 && (peak << (s + 1)) <= 32767) s++;
-    for (int i = 0; i < SM_FFT_LENGTH; i++) {
+    for (int i = 0; i < SM_HALF; i++) {
         sm_re[i] = 0;
         sm_im[i] = 0;
     }
     for (int i = 0; i < SM_FRAME_LENGTH; i++) {
-        const int64_t v = (int64_t)sm_padded(x, base + i) * ((int64_t)1 << s) * sm_window_q31[i];
-        sm_re[SM_FRAME_OFFSET + i] = (int32_t)((v + (1 << 14)) >> 15);
+        const int32_t xs = sm_padded(x, base + i) * (1 << s); /* within int16 (headroom) */
+        const int32_t y = (int32_t)(((int64_t)xs * sm_window_q31[i] + (1 << 15)) >> 16); /* q30 */
+        const int pos = SM_FRAME_OFFSET + i;
+        if (pos & 1) sm_im[pos >> 1] = y;
+        else sm_re[pos >> 1] = y;
     }
     sm_fft();
     /* the spectrum of the bins the mel bands use, once each */
     for (int k = SM_MEL_LOW_BIN; k <= SM_MEL_HIGH_BIN; k++) {
-        const int64_t re = sm_re[k], im = sm_im[k];
-        const int64_t p2 = re * re + im * im; /* q62 */
+        int32_t re, im;
+        sm_bin(k, &re, &im);
+        const int64_t p2 = (int64_t)re * re + (int64_t)im * im; /* q60 */
 #if SM_POWER == 2
-        sm_power[k - SM_MEL_LOW_BIN] = (p2 + (1 << 15)) >> 16; /* q46 */
+        sm_power[k - SM_MEL_LOW_BIN] = (p2 + (1 << 13)) >> 14; /* q46 */
 #else
-        sm_power[k - SM_MEL_LOW_BIN] = (int64_t)sm_isqrt((uint64_t)p2) << 10; /* q41 */
+        sm_power[k - SM_MEL_LOW_BIN] = (int64_t)sm_isqrt((uint64_t)p2) << 11; /* q30 -> q41 */
 #endif
     }
     int32_t *row = sm_frames + t * SM_MEL_BANDS;

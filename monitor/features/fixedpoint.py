@@ -9,15 +9,18 @@ for bit. The formats, per frame of ``frame_length`` int16 samples:
 1. headroom: the frame is shifted up by ``s`` bits, the most that keeps its largest sample
    within int16 (``s = 0`` for a frame that reaches half of full scale, up to 14), so that a
    quiet room keeps the precision of a loud one; ``s`` is undone in the log;
-2. window: ``(x << s) * w >> 15`` rounded, window coefficients in q31: the windowed sample in
-   q31 (a q15 product would put a noise floor 96 dB under the frame's peak);
-3. FFT: radix-2 decimation in time on q31 values, twiddles in q31; each stage halves: the
-   twiddle product is taken halved and rounded (the high word of the 64-bit product plus
-   2^31), the other input halved with rounding, then added and subtracted in 32 bits: the
-   spectrum is ``X / N`` in q31 (no stage can overflow: a value never exceeds the frame's
-   largest sample);
-4. spectrum: ``re^2 + im^2`` in int64 (q62), to q46 with rounding for power 2; the integer
-   square root (floor) in q31, then ``<< 10`` (q41), for magnitude;
+2. window: ``(x << s) * w >> 16`` rounded, window coefficients in q31: the windowed sample in
+   q30 (a q15 product would put a noise floor 96 dB under the frame's peak; q30, not q31,
+   because the FFT's complex input, two samples in one value, may reach sqrt(2) of a sample);
+3. FFT: the real FFT as a complex FFT of N/2 points (even samples real, odd imaginary) and
+   one split step; radix-2 decimation in time on q31 values, twiddles in q31; each stage
+   halves: the twiddle product is taken halved and rounded (the high word of the 64-bit
+   product plus 2^31), the other input halved with rounding, then added and subtracted in
+   32 bits; the split halves twice the same way: the spectrum is ``X / N`` in q30, bins
+   0 .. N/2 (no stage can overflow: no value exceeds sqrt(2) times the frame's largest
+   sample, below 2^31);
+4. spectrum: ``re^2 + im^2`` in int64 (q60), to q46 with rounding for power 2; the integer
+   square root (floor) in q30, then ``<< 11`` (q41), for magnitude;
 5. mel: band weights in unsigned q15, each band scaled to a peak of 1 (its gain ``g`` is added
    back as ``log2 g`` in the log), summed in int64 (a band's sum stays below 2^61: Parseval);
 6. log: the offset (and floor) converted to the sum's units for this frame's shift, added
@@ -217,12 +220,13 @@ class FixedFrontEnd:
         w = window_coefficients(f.frame_length, kind=fe.window.window,
                                 symmetric=fe.window.window_symmetric, dtype=np.float64)
         self.window = q_round(w, 31, limit=(1 << 31) - 1)
-        k = np.arange(self.n // 2)
+        k = np.arange(self.n // 2 + 1)  # e^(-2 pi i k / N), k = 0 .. N/2 (-1 exact in q31)
         self.tw_re = q_round(np.cos(2 * np.pi * k / self.n), 31, limit=(1 << 31) - 1)
         self.tw_im = q_round(-np.sin(2 * np.pi * k / self.n), 31, limit=(1 << 31) - 1)
-        rev = np.zeros(self.n, np.int64)
-        for b in range(self.bits):
-            rev |= ((np.arange(self.n) >> b) & 1) << (self.bits - 1 - b)
+        half = self.n // 2  # the real FFT: a complex FFT of N/2 points, then one split step
+        rev = np.zeros(half, np.int64)
+        for b in range(self.bits - 1):
+            rev |= ((np.arange(half) >> b) & 1) << (self.bits - 2 - b)
         self.bitrev = rev
         weights = np.asarray(by["mel"].weights, np.float64)  # (bands, bins)
         gain = weights.max(axis=1)
@@ -264,39 +268,58 @@ class FixedFrontEnd:
 
     # --- per frame --------------------------------------------------------------------
     def fft(self, re: np.ndarray, im: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-        """In-place order radix-2 FFT of q31 rows ``(..., N)``, halved each stage: ``X / N``."""
+        """Radix-2 decimation-in-time FFT of q31 rows ``(..., M)``, M = N / 2, halved each
+        stage: ``Z / M`` (twiddles ``e^(-2 pi i k / M)``, every second of the N-point table)."""
+        m = self.n // 2
         re, im = re[..., self.bitrev], im[..., self.bitrev]
         lead = re.shape[:-1]
         size = 2
-        while size <= self.n:
+        while size <= m:
             half, stride = size // 2, self.n // size
             wr, wi = self.tw_re[::stride][:half], self.tw_im[::stride][:half]
-            r = re.reshape(*lead, self.n // size, size)
-            i = im.reshape(*lead, self.n // size, size)
+            r = re.reshape(*lead, m // size, size)
+            i = im.reshape(*lead, m // size, size)
             ar, ai, br, bi = r[..., :half], i[..., :half], r[..., half:], i[..., half:]
             # the product halved and rounded: the high word of a 64-bit sum (SMULL, SMLAL)
             tr = np.right_shift(br * wr - bi * wi + (1 << 31), 32)
             ti = np.right_shift(br * wi + bi * wr + (1 << 31), 32)
             ar, ai = np.right_shift(ar + 1, 1), np.right_shift(ai + 1, 1)
-            re = np.concatenate([ar + tr, ar - tr], axis=-1).reshape(*lead, self.n)
-            im = np.concatenate([ai + ti, ai - ti], axis=-1).reshape(*lead, self.n)
+            re = np.concatenate([ar + tr, ar - tr], axis=-1).reshape(*lead, m)
+            im = np.concatenate([ai + ti, ai - ti], axis=-1).reshape(*lead, m)
             size *= 2
         return re, im
+
+    def rfft(self, y: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """``X / N`` of real q31 rows ``(..., N)``, bins 0 .. N/2: the even samples as real and
+        the odd as imaginary parts of an N/2-point FFT (`fft`), then the split
+        ``X[k] = (A + W^k B / i) / 4`` with ``A = Z[k] + conj(Z[M - k])``,
+        ``B = Z[k] - conj(Z[M - k])``, halved twice with rounding (Oppenheim and Schafer,
+        Discrete-Time Signal Processing, 9.x: two real sequences in one complex FFT)."""
+        m = self.n // 2
+        zr, zi = self.fft(y[..., 0::2], y[..., 1::2])
+        k = np.arange(m + 1)
+        a, b = k % m, (m - k) % m
+        yr, yi, cr, ci = zr[..., a], zi[..., a], zr[..., b], -zi[..., b]
+        sr, si = np.right_shift(yr + cr + 1, 1), np.right_shift(yi + ci + 1, 1)  # A / 2
+        dr, di = np.right_shift(yr - cr + 1, 1), np.right_shift(yi - ci + 1, 1)  # B / 2
+        wr, wi = self.tw_re, self.tw_im
+        tr = np.right_shift(di * wr + dr * wi + (1 << 31), 32)  # W (B / 2) / i, halved
+        ti = np.right_shift(di * wi - dr * wr + (1 << 31), 32)
+        return np.right_shift(sr + 1, 1) + tr, np.right_shift(si + 1, 1) + ti
 
     def frame_values(self, frames: np.ndarray) -> np.ndarray:
         """Log values in q16 of int16 frames ``(..., frame_length)``: ``(..., bands)`` int64."""
         x = np.asarray(frames, np.int64)
         s = headroom(x)
-        y = np.right_shift(np.left_shift(x, s[..., None]) * self.window + (1 << 14), 15)
-        re = np.zeros((*x.shape[:-1], self.n), np.int64)
-        re[..., self.offset:self.offset + self.length] = y
-        re, im = self.fft(re, np.zeros_like(re))
-        bins = self.n // 2 + 1
-        p = re[..., :bins] * re[..., :bins] + im[..., :bins] * im[..., :bins]  # q62
+        y = np.right_shift(np.left_shift(x, s[..., None]) * self.window + (1 << 15), 16)  # q30
+        buf = np.zeros((*x.shape[:-1], self.n), np.int64)
+        buf[..., self.offset:self.offset + self.length] = y
+        re, im = self.rfft(buf)
+        p = re * re + im * im  # q60
         if self.power == 2:
-            p = np.right_shift(p + (1 << 15), 16)  # q46
+            p = np.right_shift(p + (1 << 13), 14)  # q46
         else:
-            p = np.left_shift(isqrt64(p), 10)  # q41
+            p = np.left_shift(isqrt64(p), 11)  # q30 -> q41
         acc = p @ self.mel.T  # (..., bands), below 2^61
         ps = (self.power * s)[..., None]
         d = np.maximum(self.offset_bits + ps - SUM_LIMIT_BITS, 0)
