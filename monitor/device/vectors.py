@@ -242,8 +242,9 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
                                             f"({runner.runtime} runtime)")
     if fe.signal is not None:  # the firmware runs the graph: it, and its exact outputs
         meta["signal_graph"] = _write_graph(fe, x, out, meta["files"])
-        if runner.path.suffix.lower() == ".tflite":
-            meta["budget"] = _budget(loaded, card, runner)
+        if runner.path.suffix.lower() == ".tflite":  # the C front end's figures do not apply
+            meta["budget"] = {k: v for k, v in _budget(loaded, card, runner).items()
+                              if not k.startswith("frontend_")}
         atomic_write(out / "meta.json", dumps(meta, indent=2).encode())
         return meta
     _put(out / "frontend_constants.h", header(card, model_sha256=runner.sha256).encode())
@@ -301,7 +302,8 @@ def _write_graph(fe, x: np.ndarray, out: Path, files: dict) -> dict:
     files["graph_shift.csv"] = ("the graph's shift of every frame (outputs 1 and 2 added), one "
                                 "window per row")
     c = sg.correction_bits(frame_length=g.frame_length, fft_length=g.fft_length)
-    return {"file": sg.GRAPH_FILE, "frames_per_window": int(frames.shape[1]),
+    return {"file": sg.GRAPH_FILE, "graph_bytes": len(g.model),
+            "frames_per_window": int(frames.shape[1]),
             "frame_length": g.frame_length, "frame_step": fe.framing.cfg.frame_step,
             "fft_length": g.fft_length, "bands": g.bands, "window_bits": sg.WINDOW_BITS,
             "weight_bits": sg.WEIGHT_BITS, "weight_gain": g.tables.gain,
@@ -346,4 +348,9 @@ def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
                                    f"covered: {', '.join(classes)})", one_line=True) + "\n")
     if (out / "Makefile").is_file():
         sys.stdout.write(f"check them with the shipped C front end: make -C {out} check\n")
+    if "signal_graph" in meta:
+        sys.stdout.write(terminal_safe(f"the front end is the graph {out / meta['signal_graph']['file']}: "
+                                       f"feed it each frame of pcm.csv and compare with "
+                                       f"graph_q.csv and graph_shift.csv (exact)", one_line=True)
+                         + "\n")
     return ExitCode.OK

@@ -201,6 +201,20 @@ def test_every_path_gives_the_same_numbers():
     assert np.array_equal(got, whole[[0, 1, 2, 3, 5, 6]])
 
 
+def test_centre_padding_and_a_centred_window_against_float32():
+    # librosa-style framing (center=True, the window centred in the FFT buffer) cuts the
+    # frames before the graph; a window centred in the buffer changes the phase of the
+    # spectrum, not its power (the DFT's shift theorem), so the graph takes the frame as is.
+    # Against the same card in float32 on noise: the graph's own error (test above) only
+    keys = {"center": True, "pad_mode": "reflect", "window_in_frame": "centre"}
+    sig, flt = signal_card(**keys), card_from_dict(card_dict(frontend={"pcm_bits": 16, **keys},
+                                                             scaling=None))
+    x = noise(-30, 3, 16000).astype(np.float32) / 32768
+    a, b = FrontEnd(sig).unscaled(x), FrontEnd(flt).unscaled(x)
+    assert a.shape == b.shape
+    assert np.max(np.abs(a - b)) < 0.1 and np.mean(np.abs(a - b)) < 0.02
+
+
 @pytest.mark.parametrize("model", ["demo.tflite", "demo.int8.tflite"])
 def test_demo_models_behind_the_graph(model, tour):
     # the float32 chain (checked against librosa and TensorFlow elsewhere) and the same
@@ -242,6 +256,8 @@ def test_vectors_carry_the_graph_and_its_exact_outputs(tmp_path, tour):
     meta = json.loads((out / "meta.json").read_text())
     sg = meta["signal_graph"]
     model = (out / sg["file"]).read_bytes()
+    assert sg["graph_bytes"] == len(model)
+    assert not (out / "frontend.c").exists() and "frontend_ram" not in meta["budget"]
     interp = runtime.Interpreter.from_bytes(model, arena_size=256 * 1024)
     pcm = read_csv(out / "pcm.csv", np.int16)
     q_csv, s_csv = read_csv(out / "graph_q.csv", np.int64), read_csv(out / "graph_shift.csv", np.int64)
