@@ -309,7 +309,7 @@ def _write_graph(fe, x: np.ndarray, out: Path, files: dict) -> dict:
             "weight_bits": sg.WEIGHT_BITS, "weight_gain": g.tables.gain,
             "output_scale": sg.OUTPUT_SCALE,
             "correction_bits": c,
-            "operators": ["SignalFftAutoScale", "SignalWindow", "SignalFftAutoScale",
+            "operators": ["MAXIMUM", "SignalFftAutoScale", "SignalWindow", "SignalFftAutoScale",
                           "SignalRfft", "SignalEnergy", "SignalFilterBank",
                           "SignalFilterBankSquareRoot", "SignalFilterBankLog"],
             "mel_power": "P = exp(2 q / output_scale) * fft_length^2 / (2^(2 correction_bits "

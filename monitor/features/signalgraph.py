@@ -9,6 +9,9 @@ graph for a card (`graph_bytes`) and runs it in the ``tflite-micro`` package's i
 
 The graph, one frame of ``frame_length`` int16 samples per ``invoke``:
 
+0. ``MAXIMUM`` (a builtin operator) with -32767: a sample of -32768 becomes -32767, whose
+   magnitude fits int16 (the auto scale's ``MaxAbs16`` cannot represent 32768, and a frame
+   holding it would be shifted into overflow);
 1. ``SignalFftAutoScale``: the frame shifted up by ``s1`` bits, the most that keeps it within
    int16 (``s1`` is the graph's second output), so that a quiet frame keeps its precision
    through the window;
@@ -64,6 +67,7 @@ _CACHE = 8192  # frames whose graph output is kept (a stream's shared frames are
 # TensorType values of the TensorFlow Lite schema
 _INT16, _INT32, _UINT32, _UINT64 = 7, 2, 15, 12
 _CUSTOM = 32  # BuiltinOperator.CUSTOM
+_MAXIMUM = 55  # BuiltinOperator.MAXIMUM
 OPERATORS = ["SignalFftAutoScale", "SignalWindow", "SignalRfft", "SignalEnergy",
              "SignalFilterBank", "SignalFilterBankSquareRoot", "SignalFilterBankLog"]
 
@@ -254,6 +258,8 @@ def graph_bytes(*, window: np.ndarray, mel: np.ndarray, fft_length: int) -> byte
         return len(tensors) - 1
 
     pcm = tensor("pcm", [length], _INT16)
+    floor = tensor("int16_floor", [1], _INT16, np.array([-32767], np.int16))
+    clipped = tensor("pcm_clipped", [length], _INT16)
     scaled = tensor("scaled", [length], _INT16)
     shift = tensor("shift", [], _INT32)
     win = tensor("window_q14", [length], _INT16, window_q14(window))
@@ -279,9 +285,13 @@ def graph_bytes(*, window: np.ndarray, mel: np.ndarray, fft_length: int) -> byte
         c.builtinCode, c.deprecatedBuiltinCode, c.customCode, c.version = \
             _CUSTOM, _CUSTOM, name, 1
         codes.append(c)
+    c = fb.OperatorCodeT()
+    c.builtinCode, c.deprecatedBuiltinCode, c.version = _MAXIMUM, _MAXIMUM, 1
+    codes.append(c)
     c_bits = correction_bits(frame_length=length, fft_length=fft_length)
     plan = [
-        (0, [pcm], [scaled, shift], None),
+        (len(names), [pcm, floor], [clipped], None),
+        (0, [clipped], [scaled, shift], None),
         (1, [scaled, win], [windowed], {"shift": WINDOW_BITS}),
         (0, [windowed], [rescaled, shift2], None),
         (2, [rescaled], [spectrum], {"T": _INT16, "fft_length": fft_length}),
