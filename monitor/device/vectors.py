@@ -240,6 +240,13 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
         meta["files"]["input_int8.csv"] = "the int8 input tensor, one window per row"
         meta["files"]["output_int8.csv"] = (f"the int8 output tensor, one window per row "
                                             f"({runner.runtime} runtime)")
+    if fe.signal is not None:  # the firmware runs the graph: it, and its exact outputs
+        meta["signal_graph"] = _write_graph(fe, x, out, meta["files"])
+        if runner.path.suffix.lower() == ".tflite":  # the C front end's figures do not apply
+            meta["budget"] = {k: v for k, v in _budget(loaded, card, runner).items()
+                              if not k.startswith("frontend_")}
+        atomic_write(out / "meta.json", dumps(meta, indent=2).encode())
+        return meta
     _put(out / "frontend_constants.h", header(card, model_sha256=runner.sha256).encode())
     for src in c_sources(card):
         _put(out / src.name, src.read_bytes())
@@ -256,15 +263,58 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
     meta["files"].update({"check.c": "the firmware-side check (make check)",
                           "Makefile": "builds and runs check.c with frontend.c"})
     if runner.path.suffix.lower() == ".tflite":
-        try:
-            from monitor.device.budget import budget
-
-            b = budget(loaded.plan, card, runner=runner)  # the micro runner is reused
-            meta["budget"] = {k: v for k, v in b.to_dict().items() if k != "layers"}
-        except ScenemonError as exc:
-            meta["budget"] = {"error": str(exc)}
+        meta["budget"] = _budget(loaded, card, runner)
     atomic_write(out / "meta.json", dumps(meta, indent=2).encode())
     return meta
+
+
+def _budget(loaded, card: ModelCard, runner) -> dict:
+    try:
+        from monitor.device.budget import budget
+
+        b = budget(loaded.plan, card, runner=runner)  # the micro runner is reused
+        return {k: v for k, v in b.to_dict().items() if k != "layers"}
+    except ScenemonError as exc:
+        return {"error": str(exc)}
+
+
+def _write_graph(fe, x: np.ndarray, out: Path, files: dict) -> dict:
+    """The front-end graph of a ``micro-signal`` card and its outputs for each written window.
+
+    Writes ``frontend_signal.tflite`` (the graph the firmware runs, one frame per invoke),
+    ``graph_q.csv`` (its int16 log bands, frame after frame, one window per row) and
+    ``graph_shift.csv`` (each frame's auto-scale shift); returns meta.json's description.
+    """
+    from monitor.features import signalgraph as sg
+
+    g = fe.signal
+    samples = fe._run(fe._samples, x)  # pcm quantisation and centre padding, as the graph gets
+    frames = fe.framing.run(samples)
+    pcm = np.clip(np.round(frames.astype(np.float64) * 32768), -32768, 32767).astype(np.int16)
+    q, shift = g.run_frames(pcm)
+    _put(out / sg.GRAPH_FILE, g.model)
+    _csv(out / "graph_q.csv", q.reshape(len(x), -1), "%d")
+    _csv(out / "graph_shift.csv", shift.reshape(len(x), -1), "%d")
+    files[sg.GRAPH_FILE] = ("the front end as a tflite-micro graph of signal-library operators: "
+                         "input one frame of int16 samples, outputs the int16 log bands and "
+                         "the two auto scales' shifts")
+    files["graph_q.csv"] = "the graph's log bands of every frame, frame after frame, one window per row"
+    files["graph_shift.csv"] = ("the graph's shift of every frame (outputs 1 and 2 added), one "
+                                "window per row")
+    c = sg.correction_bits(frame_length=g.frame_length, fft_length=g.fft_length)
+    return {"file": sg.GRAPH_FILE, "graph_bytes": len(g.model),
+            "frames_per_window": int(frames.shape[1]),
+            "frame_length": g.frame_length, "frame_step": fe.framing.cfg.frame_step,
+            "fft_length": g.fft_length, "bands": g.bands, "window_bits": sg.WINDOW_BITS,
+            "weight_bits": sg.WEIGHT_BITS, "weight_gain": g.tables.gain,
+            "output_scale": sg.OUTPUT_SCALE,
+            "correction_bits": c,
+            "operators": ["MAXIMUM", "SignalFftAutoScale", "SignalWindow", "SignalFftAutoScale",
+                          "SignalRfft", "SignalEnergy", "SignalFilterBank",
+                          "SignalFilterBankSquareRoot", "SignalFilterBankLog"],
+            "mel_power": "P = exp(2 q / output_scale) * fft_length^2 / (2^(2 correction_bits "
+                         "+ 2 shift + 30) * weight_gain), 0 where q = 0; then the card's log, "
+                         "layout and scaling"}
 
 
 def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
@@ -298,4 +348,9 @@ def run_vectors(plan: ModelPlan, audio: Path, out: Path, *, count: int | None,
                                    f"covered: {', '.join(classes)})", one_line=True) + "\n")
     if (out / "Makefile").is_file():
         sys.stdout.write(f"check them with the shipped C front end: make -C {out} check\n")
+    if "signal_graph" in meta:
+        sys.stdout.write(terminal_safe(f"the front end is the graph {out / meta['signal_graph']['file']}: "
+                                       f"feed it each frame of pcm.csv and compare with "
+                                       f"graph_q.csv and graph_shift.csv (exact)", one_line=True)
+                         + "\n")
     return ExitCode.OK

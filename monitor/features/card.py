@@ -547,14 +547,14 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
 
 
 def with_arithmetic(card: ModelCard, arithmetic: str) -> ModelCard:
-    """The card with its front end computed in `arithmetic` ("float32" or "q15"; q15 takes
-    int16 samples, so ``pcm_bits`` becomes 16).
+    """The card with its front end computed in `arithmetic` ("float32", "q15" or
+    "micro-signal"; the last two take int16 samples, so ``pcm_bits`` becomes 16).
 
     Parameters
     ----------
     card : ModelCard
         The card.
-    arithmetic : {"float32", "q15"}
+    arithmetic : {"float32", "q15", "micro-signal"}
         The arithmetic wanted.
 
     Returns
@@ -569,7 +569,7 @@ def with_arithmetic(card: ModelCard, arithmetic: str) -> ModelCard:
         card and the key to change).
     """
     fe = card.frontend
-    bits = 16 if arithmetic == "q15" else fe.pcm.pcm_bits
+    bits = 16 if arithmetic in ("q15", "micro-signal") else fe.pcm.pcm_bits
     pcm = dataclasses.replace(fe.pcm, arithmetic=arithmetic, pcm_bits=bits)
     new = dataclasses.replace(fe, pcm=pcm)
     try:

@@ -74,6 +74,12 @@ class FrontEnd:
         self._samples = [s for s in self.stages if s.part == "samples"]
         self._frames = [s for s in self.stages if s.part == "frames"]
         self._features = [s for s in self.stages if s.part == "features"]
+        self.signal = None  # the signal operators' graph (`monitor.features.signalgraph`): it
+        if card.frontend.pcm.arithmetic == "micro-signal":  # gives the mel power of each frame
+            from monitor.features.signalgraph import card_graph
+
+            self.signal = card_graph(card)
+            self._features = [s for s in self._features if s.name != "mel"]
         # the leading features stages that work frame by frame run once per frame in a stream
         k = 0
         while k < len(self._features) and self._features[k].per_frame:
@@ -101,6 +107,8 @@ class FrontEnd:
         frames `which` when given)."""
         x = self._run(self._samples, windows)
         x = self.framing.run(x, which)
+        if self.signal is not None:
+            return self.signal.mel_power(x)
         return self._run(self._frames[1:], x)
 
     def _stream_frames(self, signal: np.ndarray, first: int, count: int) -> np.ndarray:
@@ -219,6 +227,8 @@ class FrontEnd:
             raise ValueError(f"signal must hold {n} windows one hop apart, got {signal.shape}")
         if self.fixed is not None:
             return self._fixed_stream(signal, n)
+        if self.signal is not None:  # the graph keeps each frame's result: shared frames once
+            return self.batch(windows_of(signal, c.window_samples, c.hop_samples)[:n])
         return self._consecutive(signal, n, None)[0]
 
     def _fixed_stream(self, signal: np.ndarray, n: int) -> np.ndarray:
@@ -257,8 +267,8 @@ class FrontEnd:
             for a in range(0, len(windows), block)])
 
     def _shares(self, n: int = 2) -> bool:
-        return (self.fixed is None and self.framing is not None and self.framing.share_step > 0
-                and n > 1)
+        return (self.fixed is None and self.signal is None and self.framing is not None
+                and self.framing.share_step > 0 and n > 1)
 
     def _consecutive(self, signal: np.ndarray, n: int,
                      known: tuple[int, np.ndarray] | None) -> tuple[np.ndarray, np.ndarray | None]:

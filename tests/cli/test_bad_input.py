@@ -192,6 +192,11 @@ def case_card_power(tmp_path):
     return ["replay", _good(tmp_path), "--card", p], "bad.toml", "power=3.0 must be 1 or 2"
 
 
+def case_card_signal_magnitude(tmp_path):
+    p = card_with(tmp_path, "power = 2.0", 'power = 1.0\narithmetic = "micro-signal"')
+    return ["replay", _good(tmp_path), "--card", p], "bad.toml", "set power = 2, not 1"
+
+
 def case_card_choice(tmp_path):
     p = card_with(tmp_path, 'mel_scale = "htk"', 'mel_scale = "bark"')
     return ["replay", _good(tmp_path), "--card", p], "bad.toml", "must be one of htk, slaney"

@@ -22,18 +22,25 @@ class PcmConfig:
     pcm_bits : int
         16: quantise the input to int16 first, as the device's microphone path does; 0: keep
         float.
-    arithmetic : {"float32", "q15"}
+    arithmetic : {"float32", "q15", "micro-signal"}
         "q15": the front end in fixed point from int16 samples, as a board without a
-        floating-point unit computes it (`monitor.features.fixedpoint`); "float32": float.
+        floating-point unit computes it (`monitor.features.fixedpoint`); "micro-signal": the
+        spectrum, mel filter bank and log by the tflite-micro signal library's operators in the
+        microcontroller interpreter (`monitor.features.signalgraph`); "float32": float.
     """
     pcm_bits: int = key(int, "16: quantise the input to int16 first, as the device's "
                         "microphone path does; 0: keep float", choices=(0, 16), default=0, off=0)
-    arithmetic: str = key(str, "\"float32\" or \"q15\": the front end in fixed point from "
-                          "int16 samples (kinds logmel and mfcc)", choices=("float32", "q15"),
+    arithmetic: str = key(str, "\"float32\"; \"q15\": the front end in fixed point from "
+                          "int16 samples (kinds logmel and mfcc); \"micro-signal\": spectrum, "
+                          "mel and log by tflite-micro's signal operators (logmel)",
+                          choices=("float32", "q15", "micro-signal"),
                           default="float32", off="float32")
 
     def check(self, fe: Any, audio: Any) -> None:
-        """CardProblem when ``arithmetic = "q15"`` meets a kind or key it does not compute."""
+        """CardProblem when ``arithmetic`` meets a kind or key it does not compute."""
+        if self.arithmetic == "micro-signal":
+            _check_signal(self, fe, audio)
+            return
         if self.arithmetic != "q15":
             return
         if fe.kind not in ("logmel", "mfcc"):
@@ -86,6 +93,39 @@ class PcmStage(Stage):
     def c_buffers(self) -> dict[str, int]:
         """The stream's history ``sm_hist`` (float32) and its int32 fill count ``sm_filled``."""
         return {"sm_hist": 4 * self.history, "sm_filled": 4}
+
+
+def _check_signal(cfg: PcmConfig, fe: Any, audio: Any) -> None:
+    """CardProblem when the signal operators' graph cannot compute the card's front end."""
+    from monitor.features.dsp import mel_filterbank
+
+    a = 'frontend.arithmetic="micro-signal"'
+    if fe.kind != "logmel":
+        raise CardProblem(f'{a} computes kind = "logmel" (the signal operators end at the log '
+                          f'of the mel bands), not kind = "{fe.kind}"; set arithmetic = "float32"')
+    if cfg.pcm_bits != 16:
+        raise CardProblem(f"{a} takes int16 samples: set pcm_bits = 16")
+    if fe.preemphasis.preemphasis > 0:
+        raise CardProblem(f"{a} computes no pre-emphasis; set preemphasis = 0 or "
+                          f'arithmetic = "float32"')
+    if fe.spectrum.power != 2:
+        raise CardProblem(f"{a} sums the power spectrum in the filter bank (the energy "
+                          f"operator): set power = 2, not {fe.spectrum.power:g}")
+    from monitor.features.signalgraph import bank_tables
+
+    m = fe.mel
+    try:
+        w = mel_filterbank(sample_rate=audio.sample_rate, fft_length=fe.framing.fft_length,
+                           mel_bands=m.mel_bands, fmin=m.fmin, fmax=m.fmax, scale=m.mel_scale,
+                           norm=m.mel_norm, triangles=m.mel_triangles, dtype=np.float64)
+    except ValueError:
+        return  # the mel stage's own check names the key
+
+    try:
+        bank_tables(mel=w)
+    except ValueError as e:
+        raise CardProblem(f"{a}: the filter-bank operator cannot compute this mel matrix "
+                          f"({e}); use fewer mel_bands or a longer fft_length") from None
 
 
 def _smallest_gain(audio: Any, fe: Any) -> float:
