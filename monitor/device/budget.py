@@ -484,10 +484,16 @@ def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) ->
     int8 = runner.model_kind == "tflite-int8" if runner is not None \
         else _check_without_interpreter(path, data, card)
     arena = getattr(runner, "arena_bytes", None)
-    ram = {f"front end: {k}": v for k, v in c_buffers(card).items()}
+    if card.frontend.pcm.arithmetic == "micro-signal":  # the front end is a graph, not C
+        from monitor.features.signalgraph import card_graph
+
+        ram = {}
+        flash = {"front end: the signal operators' graph": len(card_graph(card).model)}
+    else:
+        ram = {f"front end: {k}": v for k, v in c_buffers(card).items()}
+        flash = {f"front end: {k}": v for k, v in c_tables(card).items()}
     ram["one window of int16 PCM"] = 2 * card.window_samples
     ram["feature tensor (float32)"] = 4 * int(np.prod(card.feature_shape))
-    flash = {f"front end: {k}": v for k, v in c_tables(card).items()}
     return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path),
                   list_operators(data), unsupported, frontend_ops_per_hop(card), card.hop_s,
                   int8, notes)
@@ -546,7 +552,9 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
     lines += ["", *_row("flash", "bytes", "from")]
     lines += _row("model flatbuffer", b.model_bytes, "the .tflite file")
     for k, v in b.frontend_flash.items():
-        lines += _row(k[len("front end: "):], v, "frontend_constants.h")
+        name = k[len("front end: "):]
+        lines += _row(name, v, "frontend_signal.tflite" if "graph" in name
+                      else "frontend_constants.h")
     lines += _row("total", b.flash_bytes, f"({kb(b.flash_bytes)})")
     lines += ["", "work per window                 MACs   other   shapes (in -> out)"]
     for x in b.layers:
@@ -690,6 +698,10 @@ def run_budget(plan: ModelPlan, *, clock_mhz: float | None, as_json: bool,
         cores = cores_of(targets)
         find_toolchain()  # before the model loads: a missing part is said at once
     card = card_of(plan)
+    if cores and card.frontend.pcm.arithmetic == "micro-signal":
+        raise ScenemonError(f'{card.name}: arithmetic = "micro-signal" runs the front end as a '
+                            f"graph of the microcontroller runtime's signal operators, not as "
+                            f"C; --target measures the C front ends (float32 or q15)")
     if clock_mhz is not None and not clock_mhz > 0:
         raise ScenemonError(f"--clock-mhz {clock_mhz} must be above 0")
     b = budget(plan, card)

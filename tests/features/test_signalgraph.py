@@ -316,3 +316,22 @@ def test_cards_it_cannot_compute_are_refused_in_one_sentence(tmp_path, tour, fe,
     assert r.returncode == 2
     assert words in r.stderr and str(path) in r.stderr, r.stderr
     assert len(r.stderr.strip().splitlines()) == 1 and "Traceback" not in r.stderr
+
+
+def test_budget_of_a_graph_card_counts_the_graph_and_refuses_target(tmp_path):
+    # the front end of such a card is the graph (its flatbuffer is its flash), not frontend.c;
+    # --target measures C front ends, so it is refused in one sentence
+    import json
+
+    card = (MODELS / "demo.int8.toml").read_text().replace(
+        "[frontend]\n", '[frontend]\narithmetic = "micro-signal"\n')
+    (tmp_path / "sig.toml").write_text(card)
+    r = cli("budget", "--model", MODELS / "demo.int8.tflite", "--card", tmp_path / "sig.toml",
+            "--json")
+    assert r.returncode == 0, r.stderr
+    out = json.loads(r.stdout)
+    assert list(out["frontend_flash"]) == ["front end: the signal operators' graph"]
+    assert out["frontend_flash"]["front end: the signal operators' graph"] > 0
+    r = cli("budget", "--model", MODELS / "demo.int8.tflite", "--card", tmp_path / "sig.toml",
+            "--target", "cortex-m4")
+    assert r.returncode == 2 and "not as C" in r.stderr and "Traceback" not in r.stderr

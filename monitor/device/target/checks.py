@@ -27,8 +27,8 @@ from monitor.device.target.cross import (
     EmulationFailed,
     build_check,
     check_digest,
-    front_source,
     find_toolchain,
+    front_source,
     require_check_folder,
     run,
 )
