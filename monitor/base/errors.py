@@ -92,10 +92,12 @@ def one_sentence(exc: BaseException) -> str:
     Returns
     -------
     str
-        The message of a `ScenemonError`; for a file that cannot be written, the file and the
-        system's reason; for anything else its type and text, with a pointer to ``--debug``.
+        The message of a `ScenemonError` (or of a runtime failure whose class says its message
+        is one sentence: ``one_sentence = True``); for a file that cannot be written, the file
+        and the system's reason; for anything else its type and text, with a pointer to
+        ``--debug``.
     """
-    if isinstance(exc, ScenemonError):
+    if isinstance(exc, ScenemonError) or getattr(exc, "one_sentence", False):
         return str(exc)
     if isinstance(exc, OSError) and exc.errno in OUTPUT_ERRNOS:
         where = exc.filename if exc.filename is not None else "an output file"

@@ -118,6 +118,9 @@ class Budget:
         What the figures rest on.
     targets : list of TargetFigures
         Per core, with ``--target``.
+    frontend_source : str
+        The C front end whose buffers and tables the figures are (``frontend.c`` or
+        ``frontend_q15.c``).
     """
 
     model: str
@@ -134,6 +137,7 @@ class Budget:
     int8: bool
     notes: list[str] = field(default_factory=list)
     targets: list[TargetFigures] = field(default_factory=list)
+    frontend_source: str = "frontend.c"  # or frontend_q15.c: whose buffers and tables these are
 
     @property
     def macs(self) -> int:
@@ -494,9 +498,11 @@ def budget(plan: ModelPlan, card: ModelCard, *, runner: Runner | None = None) ->
         flash = {f"front end: {k}": v for k, v in c_tables(card).items()}
     ram["one window of int16 PCM"] = 2 * card.window_samples
     ram["feature tensor (float32)"] = 4 * int(np.prod(card.feature_shape))
+    from monitor.device import c_sources
+
     return Budget(path.name, "micro", arena, ram, flash, len(data), layers_of(path),
                   list_operators(data), unsupported, frontend_ops_per_hop(card), card.hop_s,
-                  int8, notes)
+                  int8, notes, frontend_source=c_sources(card)[0].name)
 
 
 def _row(name: str, value: object, tail: str = "", *, width: int = 30) -> list[str]:
@@ -545,7 +551,7 @@ def budget_text(b: Budget, clock_mhz: float | None = None) -> str:
     arena = "-" if b.arena_bytes is None else str(b.arena_bytes)
     lines += _row("interpreter arena", arena, "the runtime's allocation record")
     for k, v in b.frontend_ram.items():
-        name, where = (k[len("front end: "):], "frontend.c") if k.startswith("front end: ") \
+        name, where = (k[len("front end: "):], b.frontend_source) if k.startswith("front end: ") \
             else (k, "the caller")
         lines += _row(name, v, where)
     lines += _row("total", b.ram_bytes, f"({kb(b.ram_bytes)})")
@@ -620,7 +626,8 @@ def target_text(b: Budget, clock_mhz: float | None = None) -> list[str]:
         lines.append(f"{t.core.name:<11} {t.core.machine:<11} {t.flash:>8,} {t.ram:>8,} "
                      f"{hop:>14} {t.window_instructions:>12,.0f}")
     res = max(t.resolution for t in b.targets)
-    lines += _wrapped(f"bytes of frontend.o's sections: flash = text + data, RAM = data + "
+    obj = Path(b.frontend_source).with_suffix(".o").name
+    lines += _wrapped(f"bytes of {obj}'s sections: flash = text + data, RAM = data + "
                       f"bss; instructions, not cycles, counted with QEMU's instruction "
                       f"counter, each within {res:.0f}; a hop after the first window reuses "
                       f"the frames it shares", "  ", "  ")

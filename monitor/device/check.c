@@ -39,18 +39,23 @@ static int32_t want_q16[SM_FEATURES];
 
 static int read_i32(FILE *f, int32_t *dst, int n) {
     for (int i = 0; i < n; i++) {
-        long v;
-        if (fscanf(f, " %ld%*[,\n\r]", &v) != 1) return 0;
+        long long v; /* 64 bits: a value beyond int32 is refused, not wrapped */
+        if (fscanf(f, " %lld%*[,\n\r]", &v) != 1) return 0;
+        if (v < INT32_MIN || v > INT32_MAX) return 0;
         dst[i] = (int32_t)v;
     }
     return 1;
 }
 #endif
 
+/* one row of int16 samples: 1 read, 0 the file ended before it, -1 a row that is cut short or
+ * holds something else than int16 numbers */
 static int read_ints(FILE *f, int16_t *dst, int n) {
     for (int i = 0; i < n; i++) {
         long v;
-        if (fscanf(f, " %ld%*[,\n\r]", &v) != 1) return 0;
+        int got = fscanf(f, " %ld%*[,\n\r]", &v);
+        if (got != 1) return (i == 0 && got == EOF) ? 0 : -1;
+        if (v < -32768 || v > 32767) return -1;
         dst[i] = (int16_t)v;
     }
     return 1;
@@ -122,7 +127,8 @@ int main(void) {
     float worst = 0.0f;
     int worst_steps = 0, values_off = 0, nonfinite_all = 0;
     sm_frontend_init();
-    while (read_ints(fp, pcm, SM_WINDOW_SAMPLES)) {
+    int row;
+    while ((row = read_ints(fp, pcm, SM_WINDOW_SAMPLES)) == 1) {
         if (!read_floats(ff, want, SM_FEATURES)) {
             fprintf(stderr, "check: features.csv has fewer rows than pcm.csv\n");
             return 2;
@@ -131,7 +137,8 @@ int main(void) {
         digest_features(feats, SM_FEATURES);
 #ifdef SM_ARITHMETIC_Q15
         if (!read_i32(f16, want_q16, SM_FEATURES)) {
-            fprintf(stderr, "check: features_q16.csv has fewer rows than pcm.csv\n");
+            fprintf(stderr, "check: features_q16.csv has fewer rows than pcm.csv, or a value "
+                            "that is no int32 number\n");
             return 2;
         }
         sm_features_q16(pcm, got_q16);
@@ -199,12 +206,15 @@ int main(void) {
 #ifdef SM_ARITHMETIC_Q15
     printf("; q16 values that differ: %d (exact check)", q16_off);
 #endif
-    printf("; %s\n", bad ? "FAILED" : "passed");
+    /* the verdict counts the rows too: a file cut short or spoilt fails, and says so here */
+    if (row < 0)
+        printf("; pcm.csv row %d is not %d int16 numbers; FAILED\n", windows + 1,
+               SM_WINDOW_SAMPLES);
+    else if (windows != SM_CHECK_WINDOWS)
+        printf("; read %d windows of pcm.csv, expected %d; FAILED\n", windows, SM_CHECK_WINDOWS);
+    else
+        printf("; %s\n", bad ? "FAILED" : "passed");
     printf("features digest (FNV-1a 64 of their float32 bytes): %08lx%08lx\n",
            (unsigned long)(digest >> 32), (unsigned long)(digest & 0xffffffffu));
-    if (windows != SM_CHECK_WINDOWS) {
-        fprintf(stderr, "check: read %d windows, expected %d\n", windows, SM_CHECK_WINDOWS);
-        return 1;
-    }
-    return bad ? 1 : 0;
+    return (bad || row < 0 || windows != SM_CHECK_WINDOWS) ? 1 : 0;
 }

@@ -2,8 +2,8 @@
 # runs it on the golden vectors in this folder (exit 0 within tolerance).
 CC ?= cc
 CFLAGS ?= -std=c99 -O2 -Wall -Wextra -Werror -pedantic -ffp-contract=off
-# the float front end (frontend.c) or the fixed-point one (frontend_q15.c), whichever is here
-FRONTEND := $(firstword $(wildcard frontend_q15.c) frontend.c)
+# the float front end (frontend.c) or the fixed-point one (frontend_q15.c), as the header says
+FRONTEND := $(if $(shell grep -l 'define SM_ARITHMETIC_Q15 1' frontend_constants.h),frontend_q15.c,frontend.c)
 
 check: check_fe
 	./check_fe

@@ -2,7 +2,7 @@
  *
  * Integers only from the int16 samples to the q16 features: no FPU, no libm. The float
  * calls (sm_features_i16 and the others with float output) convert the q16 result at the
- * very end, exactly. Bit for bit what scenemon's Python model computes
+ * very end (one rounding to float32, exact below 2^24, then times 2^-16). Bit for bit what scenemon's Python model computes
  * (monitor/features/fixedpoint.py, whose docstring gives every stage's format); every table
  * comes from frontend_constants.h. Needs a compiler whose >> on a negative signed value is
  * an arithmetic shift (gcc and clang for Arm and x86 are; ISO C leaves it to the
@@ -100,7 +100,7 @@ static uint32_t sm_isqrt(uint64_t v) { /* floor(sqrt(v)), bit by bit */
 
 /* radix-2 decimation in time of N/2 points on q30, each stage halved with rounding: Z / M.
  * The twiddle product needs 64 bits (SMULL, SMLAL), the rest stays in 32: no stage can
- * overflow, as no value exceeds sqrt(2) times the frame's largest sample (below 2^31) */
+ * overflow, as no value exceeds sqrt(2) times the frame's largest q30 sample (below 2^30.5) */
 static void sm_fft(void) {
     for (int i = 0; i < SM_HALF; i++) {
         int j = sm_bitrev[i];
@@ -250,7 +250,7 @@ static void sm_finish(void) {
 #endif
             const int64_t y = ((v - sm_scale_mean_q[sidx]) * sm_scale_mul[sidx]
                                + ((int64_t)1 << (SM_SCALE_BITS - 1))) >> SM_SCALE_BITS;
-            sm_out_q[i] = (int32_t)y;
+            sm_out_q[i] = y > INT32_MAX ? INT32_MAX : y < INT32_MIN ? INT32_MIN : (int32_t)y;
         }
     }
 }
@@ -260,7 +260,7 @@ static void sm_frames_all(const int16_t *x) {
 }
 
 static void sm_to_float(float *out) {
-    for (int i = 0; i < SM_FEATURES; i++) out[i] = (float)(double)sm_out_q[i] * (1.0f / 65536.0f);
+    for (int i = 0; i < SM_FEATURES; i++) out[i] = (float)sm_out_q[i] * (1.0f / 65536.0f);
 }
 
 static void sm_copy_q(int32_t *out) {

@@ -126,6 +126,23 @@ def _check_target(out: Path) -> None:
                             f"(remove it, or choose a new folder)")
 
 
+# every file a vectors folder may hold: an earlier run's are removed before a new one writes,
+# so that a folder rewritten for another card keeps no file of the other front end (the
+# Makefile and `emulate` choose the front end's source by the files there)
+OWNED = ("meta.json", "pcm.csv", "features.csv", "output.csv", "input_int8.csv",
+         "output_int8.csv", "features_q16.csv", "frontend_constants.h", "frontend.c",
+         "frontend_q15.c", "frontend.h", "check.c", "check_params.h", "Makefile",
+         "frontend_signal.tflite", "graph_q.csv", "graph_shift.csv")
+
+
+def _forget_earlier(out: Path) -> None:
+    """Remove an earlier vectors run's files from `out` (`OWNED`; nothing else)."""
+    for name in OWNED:
+        p = out / name
+        if p.is_file() and not p.is_symlink():
+            p.unlink()
+
+
 def check_params(card: ModelCard, runner, windows: int, features: np.ndarray) -> str:
     """The text of ``check_params.h``: what ``check.c`` checks against and its tolerances.
 
@@ -202,6 +219,7 @@ def write_vectors(loaded, audio: Path, out: Path, *, count: int | None = None,
 
     card, runner = loaded.card, loaded.runner
     _check_target(out)
+    _forget_earlier(out)
     pcm_all = to_pcm16(file_windows(audio, card))
     fe = FrontEnd(card)
     x_all = from_pcm16(pcm_all)  # what the device's microphone gives

@@ -33,6 +33,7 @@ from monitor.features.stages import (
     keys_of,
     nearest,
 )
+from monitor.features.stages.pcm import NO_PER_WINDOW
 
 if sys.version_info >= (3, 11):
     import tomllib
@@ -521,8 +522,7 @@ def card_from_dict(raw: dict[str, Any], path: Path | None = None) -> ModelCard:
     shape = frontend.shape(audio)
     scaling = _scaling(raw.get("scaling", {}), frontend, shape, path, fail)
     if frontend.pcm.arithmetic == "q15" and scaling.per_window != "none":
-        raise fail('frontend.arithmetic="q15" computes no per-window standardisation; set '
-                   '[scaling] per_window = "none" or arithmetic = "float32"')
+        raise fail(NO_PER_WINDOW)
 
     dec = raw.get("decision", {})
     dkw = {}
@@ -574,11 +574,11 @@ def with_arithmetic(card: ModelCard, arithmetic: str) -> ModelCard:
     new = dataclasses.replace(fe, pcm=pcm)
     try:
         pcm.check(new, card.audio)
+        if arithmetic == "q15" and card.scaling.per_window != "none":
+            raise CardProblem(NO_PER_WINDOW)
     except CardProblem as exc:
-        raise CardError(f"{card.name}: {exc}") from None
-    if arithmetic == "q15" and card.scaling.per_window != "none":
-        raise CardError(f'{card.name}: frontend.arithmetic="q15" computes no per-window '
-                        f'standardisation ([scaling] per_window = "none" is needed)')
+        raise CardError(f"{card.name}: the front end cannot be computed in {arithmetic} "
+                        f"here: {exc}") from None
     return dataclasses.replace(card, frontend=new)
 
 

@@ -32,8 +32,8 @@ for bit. The formats, per frame of ``frame_length`` int16 samples:
 7. per window: dB reference ("max") and ``top_db`` on the q16 values; the DCT (mfcc) with q30
    coefficients (the lifter folded in), rounded to q16;
 8. scaling folded into one integer multiply: ``((u - mean_q16) * A + 2^(a-1)) >> a`` with
-   ``A = round(2^a / std)``, q16; the model input is that integer times 2^-16 (float32,
-   exact below 256 in magnitude).
+   ``A = round(2^a / std)``, saturated to int32, q16; the model input is that integer times
+   2^-16 (float32, exact below 256 in magnitude).
 
 Where precision goes: the window's q31 coefficients, the FFT's
 rounding (about half a q31 step per stage, relative to a frame that headroom keeps near full
@@ -55,6 +55,7 @@ import math
 import numpy as np
 
 from monitor.features.stages.keys import CardProblem
+from monitor.features.stages.pcm import MEL_SUM_BITS, NO_PER_WINDOW
 
 FEATURE_Q = 16  # fraction bits of a feature value (int32)
 LOG_Q = 24  # fraction bits of a log2 value
@@ -235,7 +236,7 @@ class FixedFrontEnd:
         self.mel = np.round(weights / gain[:, None] * 32768.0).astype(np.int64)  # uint16 in C
         self.bands = weights.shape[0]
         log = fe.log
-        self.sum_bits = 61 if self.power == 2 else 56  # the mel sum's fraction bits E
+        self.sum_bits = MEL_SUM_BITS[self.power]  # the mel sum's fraction bits E
         units = (1 << self.sum_bits) / float(self.n) ** self.power
         self.offset_q = np.round(log.log_offset * units / gain).astype(np.int64)
         self.floor_q = np.round(log.log_floor * units / gain).astype(np.int64)
@@ -257,8 +258,7 @@ class FixedFrontEnd:
             self.dct = q_round(by["dct"].matrix, self.dct_bits, limit=(1 << 31) - 1)
         sc = by["scaling"]
         if sc.cfg.per_window != "none":
-            raise CardProblem('frontend.arithmetic="q15" computes no per-window '
-                              'standardisation; set [scaling] per_window = "none"')
+            raise CardProblem(NO_PER_WINDOW)
         mean = np.asarray(sc.cfg.mean, np.float64)
         inv = 1.0 / np.asarray(sc.cfg.std, np.float64)
         self.scale_bits = int(min(40, max(8, 30 - math.ceil(math.log2(max(float(inv.max()),
@@ -351,11 +351,13 @@ class FixedFrontEnd:
         return u
 
     def scaled_q(self, u: np.ndarray) -> np.ndarray:
-        """The model input in q16 (int64) from time-major q16 features: layout, then the
-        folded scaling."""
+        """The model input in q16 (int64 values of int32 range) from time-major q16 features:
+        layout, then the folded scaling, saturated to int32 (a tiny std can take a value
+        beyond it)."""
         x = self.layout.run(u) if self.layout.active else u
         a = self.scale_bits
-        return np.right_shift((x - self.mean_q) * self.mul_q + (1 << (a - 1)), a)
+        y = np.right_shift((x - self.mean_q) * self.mul_q + (1 << (a - 1)), a)
+        return np.clip(y, -(1 << 31), (1 << 31) - 1)  # saturated to int32, as the C stores it
 
     def unscaled_q(self, pcm: np.ndarray) -> np.ndarray:
         """Time-major q16 features ``(n, frames, values)`` of int16 windows ``(n, W)``."""
@@ -402,8 +404,9 @@ def to_pcm16(windows: np.ndarray) -> np.ndarray:
 
 
 def as_float(q: np.ndarray) -> np.ndarray:
-    """q16 integers as float32: through float64 (exact), then rounded once to float32 (exact
-    below 2^24 in magnitude), times 2^-16 (exact): the C's ``(float)(double)q / 65536``.
+    """q16 integers as float32: rounded once to float32 (exact below 2^24 in magnitude; through
+    float64, which holds every int32 exactly), times 2^-16 (exact): the C's
+    ``(float)q * (1.0f / 65536)``.
 
     Parameters
     ----------

@@ -122,3 +122,74 @@ def test_q15_budget_figures_are_the_object_files_symbols(tmp_path, name):
     assert r.returncode == 0, r.stderr
     syms = {k: v for k, v in _symbols(obj).items() if k != "sm_class_names"}
     assert syms == {**c_buffers(card), **c_tables(card)}
+
+
+def _check(out):
+    r = subprocess.run(["make", "-C", str(out), "check", f"CC={compiler()}",
+                        "CFLAGS=" + " ".join(SANITIZE)], capture_output=True, text=True,
+                       timeout=300)
+    last = next((x for x in r.stdout.splitlines() if x.endswith(("passed", "FAILED"))), "")
+    return r.returncode, last
+
+
+def _q15_card_file(tmp_path, model="demo.int8", extra=""):
+    card = (MODELS / f"{model}.toml").read_text().replace(
+        "[frontend]\n", f'[frontend]\narithmetic = "q15"\n{extra}')
+    path = tmp_path / "q15.toml"
+    path.write_text(card)
+    return path
+
+
+@pytest.mark.system
+def test_a_vectors_folder_rewritten_for_another_card_keeps_nothing_of_the_first(tmp_path, tour):
+    # found by trying it: q15 vectors, then float vectors into the same folder left
+    # frontend_q15.c and features_q16.csv behind, and the Makefile built the wrong front end
+    out = tmp_path / "v"
+    r = cli("vectors", tour[0], "--model", MODELS / "demo.int8.tflite", "--card",
+            _q15_card_file(tmp_path), "--out", out, "--count", "4")
+    assert r.returncode == 0, r.stderr
+    r = cli("vectors", tour[0], "--model", MODELS / "demo.int8.tflite", "--out", out,
+            "--count", "4")
+    assert r.returncode == 0, r.stderr
+    assert not (out / "frontend_q15.c").exists() and not (out / "features_q16.csv").exists()
+    code, last = _check(out)
+    assert code == 0 and last.endswith("passed"), last
+
+
+@pytest.mark.system
+@pytest.mark.parametrize("spoil,words", [
+    (lambda t: "\n".join(t.splitlines()[:-2]) + "\n", "read 2 windows of pcm.csv, expected 4"),
+    (lambda t: t.replace(",", ",x", 1), "pcm.csv row 1 is not"),
+    (lambda t: t[:len(t) // 2], "is not 16000 int16 numbers"),
+])
+def test_a_spoilt_pcm_file_fails_the_check_and_says_why(tmp_path, tour, spoil, words):
+    # found by trying it: a pcm.csv cut short or holding a word stopped the reading as if
+    # the file had ended, and the summary line still said "passed"
+    out = tmp_path / "v"
+    r = cli("vectors", tour[0], "--model", MODELS / "demo.int8.tflite", "--card",
+            _q15_card_file(tmp_path), "--out", out, "--count", "4")
+    assert r.returncode == 0, r.stderr
+    pcm = out / "pcm.csv"
+    pcm.write_text(spoil(pcm.read_text()))
+    code, last = _check(out)
+    assert code != 0 and last.endswith("FAILED") and words in last, last
+
+
+@pytest.mark.system
+def test_scaled_values_beyond_int32_saturate_alike_in_c_and_python(tmp_path, tour):
+    # a std of 1e-6 takes the scaled values far beyond int32: both sides saturate, so the
+    # exact check still holds (the C wrapped them before, and the check's reading did too)
+    std = ", ".join(["1e-6"] + ["1.0"] * 39)
+    card = _q15_card_file(tmp_path)
+    text = card.read_text()
+    start = text.index("std = ")
+    end = text.index("\n", start)
+    card.write_text(text[:start] + f"std = [{std}]" + text[end:])
+    out = tmp_path / "v"
+    r = cli("vectors", tour[0], "--model", MODELS / "demo.int8.tflite", "--card", card,
+            "--out", out, "--count", "4")
+    assert r.returncode == 0, r.stderr
+    q = np.loadtxt(out / "features_q16.csv", delimiter=",", dtype=np.int64, ndmin=2)
+    assert q.max() == 2 ** 31 - 1 or q.min() == -2 ** 31  # it does reach the limit
+    code, last = _check(out)
+    assert code == 0 and "q16 values that differ: 0" in last, last

@@ -34,7 +34,8 @@ class Core:
     code, ram : tuple of int
         Origin and length in bytes of the memory the program's code and its data use.
     int8_cycles_per_mac, float_cycles_per_mac : float
-        Cycles of one multiply-accumulate in an optimised kernel (recalled, see `mac_source`).
+        Cycles of one multiply-accumulate in an optimised kernel (recalled, see `mac_source`,
+        which says what each rests on).
     mac_source : str
         What the MAC figures rest on, and that they are from memory.
     """
@@ -63,33 +64,36 @@ CORES: dict[str, Core] = {c.name: c for c in (
          code=(0x00000000, 4 * MIB), ram=(0x20000000, 4 * MIB),
          int8_cycles_per_mac=4.0, float_cycles_per_mac=60.0,
          mac_source="from memory: no DSP extension, so two sign-extending loads and a 2-cycle "
-                    "MLA per int8 MAC (Cortex-M3 TRM, instruction timings); float in "
-                    "software (libgcc's single-precision routines)"),
+                    "MLA per int8 MAC (Cortex-M3 TRM, instruction timings); a float MAC in "
+                    "software, a libgcc multiply and add of some 30 cycles each"),
     Core(name="cortex-m4", machine="mps2-an386", fpu="single precision (FPv4-SP)",
          cflags=("-mcpu=cortex-m4", "-mthumb", "-mfloat-abi=hard", "-mfpu=fpv4-sp-d16"),
          code=(0x00000000, 4 * MIB), ram=(0x20000000, 4 * MIB),
          int8_cycles_per_mac=1.0, float_cycles_per_mac=2.0,
          mac_source="from memory: SMLAD does two 16-bit MACs in one cycle (Cortex-M4 TRM, "
-                    "instruction timings), int8 widened with SXTB16 as CMSIS-NN's kernels do"),
+                    "instruction timings), int8 widened with SXTB16 as CMSIS-NN's kernels do; "
+                    "a float MAC: VMLA's 3 cycles, about 2 a MAC when pipelined (FPv4-SP)"),
     Core(name="cortex-m7", machine="mps2-an500", fpu="double precision (FPv5-D16)",
          cflags=("-mcpu=cortex-m7", "-mthumb", "-mfloat-abi=hard", "-mfpu=fpv5-d16"),
          code=(0x00000000, 4 * MIB), ram=(0x20000000, 4 * MIB),
          int8_cycles_per_mac=0.6, float_cycles_per_mac=1.0,
          mac_source="from memory: SMLAD as on the M4, and a dual-issue pipeline that overlaps "
-                    "the loads (Cortex-M7 TRM)"),
+                    "the loads (Cortex-M7 TRM); a float MAC about 1 cycle, the FPU "
+                    "pipelined and dual-issued with the loads"),
     Core(name="cortex-m33", machine="mps2-an505", fpu="single precision (FPv5-SP)",
          cflags=("-mcpu=cortex-m33", "-mthumb", "-mfloat-abi=hard", "-mfpu=fpv5-sp-d16"),
          code=(0x10000000, 4 * MIB), ram=(0x38000000, 2 * MIB),
          int8_cycles_per_mac=1.0, float_cycles_per_mac=2.0,
          mac_source="from memory: the DSP extension's SMLAD, single issue as on the M4 "
-                    "(Cortex-M33 TRM)"),
+                    "(Cortex-M33 TRM); a float MAC as on the M4, about 2 cycles"),
     Core(name="cortex-m55", machine="mps3-an547", fpu="Helium (MVE) with half, single and "
                                                        "double precision",
          cflags=("-mcpu=cortex-m55", "-mthumb", "-mfloat-abi=hard"),
          code=(0x10000000, 512 * KIB), ram=(0x30000000, 512 * KIB),
          int8_cycles_per_mac=0.25, float_cycles_per_mac=1.0,
          mac_source="from memory: Helium's VMLADAV over 16 int8 lanes, two beats per cycle "
-                    "(Cortex-M55 TRM), about 4 MACs a cycle in kernels"),
+                    "(Cortex-M55 TRM), about 4 MACs a cycle in kernels; float MACs over 4 "
+                    "Helium lanes, taken as 1 cycle each to stay on the safe side"),
 )}
 
 
@@ -114,6 +118,9 @@ def cores_of(text: str) -> list[Core]:
     names = [n.strip().lower() for n in text.split(",") if n.strip()]
     if names == ["all"]:
         return list(CORES.values())
+    if "all" in names:
+        raise ScenemonError(f"--target {text!r}: all stands alone (every core); give all, or "
+                            f"one or more of {', '.join(CORES)} (comma-separated)")
     if not names:
         raise ScenemonError(f"--target {text!r} names no core; give one or more of "
                             f"{', '.join(CORES)} (comma-separated) or all")

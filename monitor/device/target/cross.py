@@ -45,7 +45,10 @@ DIGEST = re.compile(r"^features digest \(FNV-1a 64[^)]*\): ([0-9a-f]{16})$", re.
 
 
 class EmulationFailed(RuntimeError):
-    """A program did not build or did not finish in emulation (a runtime failure, exit 1)."""
+    """A program did not build or did not finish in emulation (a runtime failure, exit 1;
+    its message is one sentence, printed as it is)."""
+
+    one_sentence = True
 
 
 @dataclass(frozen=True, kw_only=True)
@@ -304,8 +307,8 @@ def require_check_folder(vectors: Path) -> None:
 
 
 def front_source(vectors: Path) -> Path:
-    """The front end's source in a vectors folder: ``frontend_q15.c`` (a q15 card's) when it
-    is there, else ``frontend.c``.
+    """The front end's source in a vectors folder, as its header says: ``frontend_q15.c`` for
+    a q15 card's (``SM_ARITHMETIC_Q15``), else ``frontend.c``.
 
     Parameters
     ----------
@@ -317,8 +320,11 @@ def front_source(vectors: Path) -> Path:
     Path
         The source file's path in it.
     """
-    q15 = vectors / "frontend_q15.c"
-    return q15 if q15.is_file() else vectors / "frontend.c"
+    from monitor.device import source_for_header
+
+    header = vectors / "frontend_constants.h"
+    text = header.read_text(errors="replace") if header.is_file() else ""
+    return vectors / source_for_header(text).name
 
 
 def build_check(vectors: Path, core: Core, *, out: Path, toolchain: Toolchain,

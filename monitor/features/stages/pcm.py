@@ -12,6 +12,12 @@ from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import CardProblem, key
 from monitor.sound.samples import quantise_pcm16
 
+# the q15 front end's mel sums: their fraction bits for power 2 (q46 power, q15 weights) and
+# power 1 (q41 magnitude, q15 weights); `monitor.features.fixedpoint` computes with them
+MEL_SUM_BITS = {2: 61, 1: 56}
+NO_PER_WINDOW = ('frontend.arithmetic="q15" computes no per-window standardisation; set '
+                 '[scaling] per_window = "none" or arithmetic = "float32"')
+
 
 @dataclass(frozen=True)
 class PcmConfig:
@@ -53,7 +59,7 @@ class PcmConfig:
             raise CardProblem('frontend.arithmetic="q15" computes no pre-emphasis; set '
                               'preemphasis = 0 or arithmetic = "float32"')
         n, p = fe.framing.fft_length, fe.spectrum.power
-        units = 2.0 ** (61 if p == 2 else 56) / float(n) ** p
+        units = 2.0 ** MEL_SUM_BITS[int(p)] / float(n) ** p
         big = max(fe.log.log_offset, fe.log.log_floor) * units / _smallest_gain(audio, fe)
         if big >= 2.0 ** 62:
             raise CardProblem(f"frontend.log_offset={fe.log.log_offset:g} (or log_floor) is too "
