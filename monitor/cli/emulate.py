@@ -11,7 +11,7 @@ from pathlib import Path
 NAME = 'emulate'
 HELP = "run a vectors folder's check on Cortex-M cores in emulation, bit for bit"
 DESCRIPTION = ("Build the check program that `scenemon vectors` wrote (its check.c and frontend.c, "
-               "unchanged) for each Cortex-M core, run it in QEMU's system emulation with "
+               "or frontend_q15.c for a q15 card, unchanged) for each Cortex-M core, run it in QEMU's system emulation with "
                "semihosting, and on this machine; say whether each passed and whether its "
                "features are bit-identical to this machine's. Needs arm-none-eabi-gcc with newlib "
                "and qemu-system-arm. Exit 0 when every check passes with the same bits.")

@@ -1,10 +1,11 @@
 """`scenemon emulate`: a vectors folder's check run on Cortex-M cores in system emulation,
 and on the laptop, with the features' digests side by side.
 
-The folder's own ``check.c`` and ``frontend.c`` are built unchanged: on the laptop with the
-host's C compiler and the flags of the folder's Makefile (when there is one), and for each
-core (`monitor.device.target.cross`). Each run says whether the check passed (the features
-within tolerance of ``features.csv``, int8 inputs within a step) and its digest of every
+The folder's own ``check.c`` and ``frontend.c`` (``frontend_q15.c`` for a q15 card) are built
+unchanged: on the laptop with the host's C compiler and the cross build's flags
+(`cross.CFLAGS`: C99, -O2, -ffp-contract=off), and for each core
+(`monitor.device.target.cross`). Each run says whether the check passed (the features
+within the folder's tolerance of ``features.csv``, exact for a q15 card) and its digest of every
 feature computed; equal digests mean bit-identical features. Exit 0 when every check passes
 and every core's digest is the laptop's (or, without a host compiler, the cores agree).
 """
