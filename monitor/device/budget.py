@@ -209,6 +209,9 @@ class TargetFigures:
     flash, ram : int
         Bytes of the cross-compiled ``frontend.o``: text and data (flash), data and bss
         (static RAM), measured from its sections.
+    linked_flash : int
+        Bytes of flash the front end adds to a linked program, the library routines it calls
+        included (`cross.linked_flash`: two programs measured).
     hop_instructions : int or None
         Instructions of a steady `sm_push_hop` (one after the first window), counted in
         emulation; None when the counted samples hold fewer than two windows of the stream.
@@ -221,6 +224,7 @@ class TargetFigures:
     core: Core
     flash: int
     ram: int
+    linked_flash: int
     hop_instructions: int | None
     window_instructions: int
     resolution: float
@@ -265,7 +269,8 @@ class TargetFigures:
         d: dict[str, Any] = {
             "core": c.name, "machine": c.machine, "fpu": c.fpu,
             "frontend_flash_bytes": self.flash, "frontend_ram_bytes": self.ram,
-            "flash_bytes": b.model_bytes + self.flash,
+            "frontend_linked_flash_bytes": self.linked_flash,
+            "flash_bytes": b.model_bytes + self.linked_flash,
             "ram_bytes": (b.arena_bytes or 0) + self.ram + b.frontend_ram.get(
                 "one window of int16 PCM", 0) + b.frontend_ram.get("feature tensor (float32)", 0),
             "hop_instructions": self.hop_instructions,
@@ -273,8 +278,10 @@ class TargetFigures:
             "instructions_resolution": self.resolution,
             "int8_cycles_per_mac": c.int8_cycles_per_mac,
             "float_cycles_per_mac": c.float_cycles_per_mac,
-            "how": {"frontend_flash_bytes": "measured: frontend.o's sections",
-                    "frontend_ram_bytes": "measured: frontend.o's sections",
+            "how": {"frontend_flash_bytes": "measured: the object's sections",
+                    "frontend_ram_bytes": "measured: the object's sections",
+                    "frontend_linked_flash_bytes": "measured: two linked programs, with and "
+                                                   "without the front end",
                     "arena_bytes": "recorded by the microcontroller runtime",
                     "hop_instructions": "counted in emulation (instructions, not cycles)",
                     "window_instructions": "counted in emulation (instructions, not cycles)",
@@ -315,7 +322,12 @@ def target_figures(card: ModelCard, cores: list[Core], *, work: Path | None = No
 
     from monitor.device.constants import header
     from monitor.device.target.count import count_card
-    from monitor.device.target.cross import compile_object, find_toolchain, object_sizes
+    from monitor.device.target.cross import (
+        compile_object,
+        find_toolchain,
+        linked_flash,
+        object_sizes,
+    )
 
     tc = find_toolchain()
     with tempfile.TemporaryDirectory(prefix="scenemon-target-") as tmp:
@@ -329,9 +341,13 @@ def target_figures(card: ModelCard, cores: list[Core], *, work: Path | None = No
             obj = compile_object(core=core, source=c_sources(card)[0], include=[root],
                                  out=root / core.name / "frontend.o", toolchain=tc)
             sec = object_sizes(obj)
+            linked = linked_flash(core=core, source=c_sources(card)[0],
+                                  include=[root, c_sources(card)[0].parent],
+                                  work=root / core.name, toolchain=tc)
             counts = count_card(card, core, work=root / core.name, toolchain=tc)
             hop = None if counts.hop is None else round(counts.hop)
             out.append(TargetFigures(core=core, flash=sec.flash, ram=sec.ram,
+                                     linked_flash=linked,
                                      hop_instructions=hop,
                                      window_instructions=round(counts.window),
                                      resolution=round(counts.per_tick, 2)))
@@ -619,16 +635,19 @@ def target_text(b: Budget, clock_mhz: float | None = None) -> list[str]:
     """
     lines = _wrapped("per core: the front end cross-compiled (arm-none-eabi-gcc -O2 "
                      "-ffp-contract=off) and run in QEMU", "", "  ")
-    head = f"{'core':<11} {'board':<11} {'flash':>8} {'RAM':>8} {'per hop':>14} {'per window':>12}"
-    lines += ["", f"{'':<24}{'front end (measured)':>17}   {'instructions (counted)':>27}", head]
+    head = (f"{'core':<11} {'flash':>7} {'linked':>7} {'RAM':>7} {'per hop':>13} "
+            f"{'per window':>12}")
+    lines += ["", f"{'':<11}{'front end (measured)':>23}   {'instructions (counted)':>26}", head]
     for t in b.targets:
         hop = "-" if t.hop_instructions is None else f"{t.hop_instructions:,.0f}"
-        lines.append(f"{t.core.name:<11} {t.core.machine:<11} {t.flash:>8,} {t.ram:>8,} "
-                     f"{hop:>14} {t.window_instructions:>12,.0f}")
+        lines.append(f"{t.core.name:<11} {t.flash:>7,} {t.linked_flash:>7,} {t.ram:>7,} "
+                     f"{hop:>13} {t.window_instructions:>12,.0f}")
     res = max(t.resolution for t in b.targets)
     obj = Path(b.frontend_source).with_suffix(".o").name
-    lines += _wrapped(f"bytes of {obj}'s sections: flash = text + data, RAM = data + "
-                      f"bss; instructions, not cycles, counted with QEMU's instruction "
+    lines += _wrapped(f"bytes of {obj}'s sections: flash = text + data, RAM = data + bss; "
+                      f"linked: the flash it adds to a linked program with the library "
+                      f"routines it calls (soft float, 64-bit arithmetic, sqrtf), two programs "
+                      f"measured; instructions, not cycles, counted with QEMU's instruction "
                       f"counter, each within {res:.0f}; a hop after the first window reuses "
                       f"the frames it shares", "  ", "  ")
     caller = b.frontend_ram.get("one window of int16 PCM", 0) + b.frontend_ram.get(
@@ -637,10 +656,11 @@ def target_text(b: Budget, clock_mhz: float | None = None) -> list[str]:
     lines += ["", f"{'core':<11} {'RAM in all':>12} {'flash in all':>13}"]
     for t in b.targets:
         lines.append(f"{t.core.name:<11} {(b.arena_bytes or 0) + t.ram + caller:>12,} "
-                     f"{b.model_bytes + t.flash:>13,}")
+                     f"{b.model_bytes + t.linked_flash:>13,}")
     lines += _wrapped(f"RAM = interpreter arena {arena} + front end (measured) + "
                       f"{caller:,} (the caller's window of PCM and features); flash = model "
-                      f"{b.model_bytes:,} (the file) + front end (measured)", "  ", "  ")
+                      f"{b.model_bytes:,} (the file) + front end as linked (measured)", "  ",
+                      "  ")
     if clock_mhz:
         mac = "int8 MAC" if b.int8 else "float MAC"
         lines += ["", f"duty cycle at {clock_mhz:g} MHz, per hop of {b.hop_s * 1000:g} ms "

@@ -38,6 +38,7 @@ HERE = Path(__file__).parent
 STARTUP = HERE / "startup.c"
 LINKER_SCRIPT = HERE / "cortexm.ld"
 COUNT_SOURCE = HERE / "count.c"
+PROBE_SOURCE = HERE / "probe.c"
 # as the vectors folder's Makefile builds the check on the host, plus no contraction
 CFLAGS = ("-std=c99", "-O2", "-Wall", "-Wextra", "-Werror", "-pedantic", "-ffp-contract=off",
           "-ffunction-sections", "-fdata-sections")
@@ -407,6 +408,47 @@ def check_digest(stdout: str) -> str | None:
     """
     found = DIGEST.findall(stdout)
     return found[-1] if found else None
+
+
+def linked_flash(*, core: Core, source: Path, include: list[Path], work: Path,
+                 toolchain: Toolchain) -> int:
+    """Bytes of flash the front end adds to a linked program on `core`: its code and tables
+    and the library routines it pulls in (libgcc's soft float and 64-bit arithmetic, newlib's
+    ``sqrtf``, ``memset``), as the difference of two programs built from ``probe.c``: one
+    calling the front end, one not (text + data of each, `object_sizes`).
+
+    Parameters
+    ----------
+    core : Core
+        The core.
+    source : Path
+        The front end's C file (``frontend.c`` or ``frontend_q15.c``).
+    include : list of Path
+        Folders of its headers (``frontend_constants.h``, ``frontend.h``).
+    work : Path
+        A folder for the two programs.
+    toolchain : Toolchain
+        The compiler.
+
+    Returns
+    -------
+    int
+        The difference in bytes of flash.
+
+    Raises
+    ------
+    EmulationFailed
+        A program did not build.
+    """
+    work.mkdir(parents=True, exist_ok=True)
+    sizes = []
+    for on in (1, 0):
+        elf = build(core=core, sources=[source, PROBE_SOURCE] if on else [PROBE_SOURCE],
+                    include=include, out=work / f"probe{on}-{core.name}.elf",
+                    toolchain=toolchain, defines=(f"SM_LINK_PROBE={on}",))
+        sec = object_sizes(elf)
+        sizes.append(sec.text + sec.data)
+    return sizes[0] - sizes[1]
 
 
 def object_sizes(path: Path) -> Sections:
