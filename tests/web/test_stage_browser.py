@@ -364,9 +364,12 @@ def test_refusals_while_the_session_records_every_window(stage_run, demo_card):
     assert all(status in (403, 404) and body == b"" for status, body in a["outside"])
     assert all(r == (403, b"") for r in a["viewer_on_presenter"])
     # the viewer page holds one stream: the flood gets the rest of the places, then 503s, and
-    # beyond the cap on open connections its sockets are closed unanswered
+    # beyond the cap on open connections its sockets are closed unanswered (0): whether a
+    # late socket meets the cap or gets its 503 depends on how fast the server has answered
+    # and closed the earlier ones (test_serve checks the cap itself with idle sockets)
     flood = a["flood"]
-    assert flood.count(200) == MAX_VIEWERS - 1 and set(flood) == {200, 503, 0}, flood
+    assert flood.count(200) == MAX_VIEWERS - 1 and 503 in flood, flood
+    assert set(flood) <= {200, 503, 0}, flood
     assert len(flood) > MAX_CONNECTIONS  # the flood was larger than the cap
     out = stage_run["run"].out
     n = sf.info(str(stage_run["piece"])).frames
