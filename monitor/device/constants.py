@@ -118,7 +118,7 @@ def header(card: ModelCard, *, model_sha256: str | None = None) -> str:
 FIXED_KEEPS = ("pcm", "preemphasis", "centre", "framing", "spectrum", "layout")
 
 
-def fixed_tables(card: ModelCard) -> dict[str, tuple[str, np.ndarray]]:
+def fixed_tables(card: ModelCard, fx=None) -> dict[str, tuple[str, np.ndarray]]:
     """The q15 front end's constant tables: name to (C type, values), from the very arrays
     `monitor.features.fixedpoint.FixedFrontEnd` computes with.
 
@@ -126,6 +126,8 @@ def fixed_tables(card: ModelCard) -> dict[str, tuple[str, np.ndarray]]:
     ----------
     card : ModelCard
         A card with ``arithmetic = "q15"``.
+    fx : FixedFrontEnd, optional
+        Its front end, when the caller has built it already.
 
     Returns
     -------
@@ -134,7 +136,7 @@ def fixed_tables(card: ModelCard) -> dict[str, tuple[str, np.ndarray]]:
     """
     from monitor.features.fixedpoint import FixedFrontEnd
 
-    fx = FixedFrontEnd(card)
+    fx = fx if fx is not None else FixedFrontEnd(card)
     first, length, packed = sparse_bank(fx.mel)
     mode = card.stages()[-1].tables()[0]  # type: ignore[attr-defined]
     shape = card.feature_shape
@@ -179,8 +181,7 @@ def fixed_lines(card: ModelCard) -> list[str]:
     from monitor.features.fixedpoint import FixedFrontEnd
 
     fx = FixedFrontEnd(card)
-    used = np.flatnonzero(fx.mel.any(axis=0))
-    low, high = (int(used[0]), int(used[-1])) if used.size else (0, 0)
+    low, high = fx.used_bins
     lines = ["/* the q15 front end (frontend_q15.c): integer tables, formats in its comment */",
              c_define("SM_ARITHMETIC_Q15", 1),
              c_define("SM_FFT_BITS", fx.bits),
@@ -196,7 +197,7 @@ def fixed_lines(card: ModelCard) -> list[str]:
              c_define("SM_SCALE_MODE", card.stages()[-1].tables()[0],  # type: ignore[attr-defined]
                       "0 one value, 1 per band, 2 full shape"),
              c_define("SM_SCALE_BITS", fx.scale_bits, "scaling multiplier's fraction bits")]
-    for name, (ctype, values) in fixed_tables(card).items():
+    for name, (ctype, values) in fixed_tables(card, fx).items():
         vals = [int(v) for v in np.asarray(values).reshape(-1)]
         if ctype == "int64_t":
             vals_txt = [f"INT64_C({v})" for v in vals]
@@ -226,8 +227,8 @@ def c_buffers(card: ModelCard) -> dict[str, int]:
 
         n, frames = card.frontend.framing.fft_length, card.frames_per_window
         hist = card.stages()[0].history  # type: ignore[attr-defined]
-        used = np.flatnonzero(FixedFrontEnd(card).mel.any(axis=0))
-        bins = int(used[-1] - used[0] + 1) if used.size else 1
+        low, high = FixedFrontEnd(card).used_bins
+        bins = high - low + 1
         return {"sm_hist": 2 * hist, "sm_filled": 4, "sm_re": 2 * n, "sm_im": 2 * n,
                 "sm_power": 8 * bins,
                 "sm_frames": 4 * frames * card.frontend.mel.mel_bands,

@@ -266,6 +266,13 @@ class FixedFrontEnd:
         self.mean_q = q_round(mean, FEATURE_Q)
         self.mul_q = np.round(inv * (1 << self.scale_bits)).astype(np.int64)
 
+    @property
+    def used_bins(self) -> tuple[int, int]:
+        """The first and last FFT bin any mel band weights (0, 0 when none does): the bins
+        whose power the C computes."""
+        used = np.flatnonzero(self.mel.any(axis=0))
+        return (int(used[0]), int(used[-1])) if used.size else (0, 0)
+
     # --- per frame --------------------------------------------------------------------
     def fft(self, re: np.ndarray, im: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
         """Radix-2 decimation-in-time FFT of q31 rows ``(..., M)``, M = N / 2, halved each
