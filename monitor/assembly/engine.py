@@ -192,7 +192,7 @@ class Engine:
                     wins = self.windower.push(chunk, gap)
                     self.published_samples = self.windower.end
                     if wins:
-                        self._process(wins, arrived)
+                        self._process(wins, arrived, self.windower.span)
                     continue
                 if src.error is not None:
                     if isinstance(src.error, ScenemonError):
@@ -249,23 +249,24 @@ class Engine:
         speed = getattr(self.source, "speed", 1.0)  # a file clocked faster than real time
         return min(1.0 / speed, max(poll, missing / self.card.sample_rate / speed))
 
-    def _features(self, fe: FrontEnd, wins: list[Window]) -> np.ndarray:
+    def _features(self, fe: FrontEnd, wins: list[Window], span: np.ndarray | None) -> np.ndarray:
         # live as in fast replay, a frame shared by overlapping windows is computed once (the
         # front end's stream keeps the newest window's frames); the same numbers as whole
         # windows, byte for byte
-        return fe.stream.features([w.start for w in wins], [w.samples for w in wins])
+        return fe.stream.features([w.start for w in wins], [w.samples for w in wins], span)
 
-    def _levels(self, wins: list[Window]) -> tuple[np.ndarray, np.ndarray]:
-        """Level and clipped share of each window, from hop-long pieces (`window_levels`)."""
+    def _levels(self, wins: list[Window], span: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
+        """Level and clipped share of each window, from hop-long pieces (`window_levels`);
+        `span` is the windows' samples as one array (`Windower.span`), or None."""
         hop, win = self.card.hop_samples, self.card.window_samples
         if win % hop == 0 and all(b.start - a.start == hop for a, b in zip(wins, wins[1:])):
-            span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]]) \
-                if len(wins) > 1 else wins[0].samples
+            if span is None:
+                span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]])
             return window_levels(span, np.arange(len(wins)) * hop, win, hop)
         out = [window_levels(w.samples, np.zeros(1, int), win, hop) for w in wins]
         return np.concatenate([o[0] for o in out]), np.concatenate([o[1] for o in out])
 
-    def _process(self, wins: list[Window], arrived: float) -> None:
+    def _process(self, wins: list[Window], arrived: float, span: np.ndarray | None) -> None:
         card = self.card
         sr = card.sample_rate
         t = time.perf_counter()
@@ -274,13 +275,13 @@ class Engine:
         for lane in self.lanes:
             key = id(lane.frontend)
             if key not in feats:
-                feats[key] = self._features(lane.frontend, wins)
+                feats[key] = self._features(lane.frontend, wins, span)
             probs.append(lane.runner.predict(feats[key]))
         ms = (time.perf_counter() - t) * 1000.0 / len(wins)
         done = time.monotonic()
         latency = (done - arrived) * 1000.0 if self.source.realtime and arrived else None
         self._last_ms, self._last_latency = ms, latency
-        levels, clipped = self._levels(wins)
+        levels, clipped = self._levels(wins, span)
         novelty = [lane.profile.distances_of(feats[id(lane.frontend)])
                    if lane.profile is not None else None for lane in self.lanes]
         # per batch, not per window: which rows are finite, and each row's top class

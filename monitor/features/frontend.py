@@ -352,7 +352,8 @@ class FrameStream:
         self._start: int | None = None
         self._shared: np.ndarray | None = None
 
-    def features(self, starts: Sequence[int], windows: Sequence[np.ndarray]) -> np.ndarray:
+    def features(self, starts: Sequence[int], windows: Sequence[np.ndarray],
+                 span: np.ndarray | None = None) -> np.ndarray:
         """Scaled model input of windows that start at the given sample positions.
 
         Parameters
@@ -361,6 +362,10 @@ class FrameStream:
             Each window's first sample on the session clock, in increasing order.
         windows : sequence of numpy.ndarray
             Each ``(window_samples,)`` float32.
+        span : numpy.ndarray, optional
+            The windows' samples as one array when they are one hop apart (the first
+            window, then each later one's last hop: `Windower.span`), saving the copy that
+            joins them.
 
         Returns
         -------
@@ -377,8 +382,12 @@ class FrameStream:
             j = i + 1
             while j < len(windows) and starts[j] - starts[j - 1] == hop:
                 j += 1
-            signal = np.concatenate([windows[i]] + [w[-hop:] for w in windows[i + 1:j]]) \
-                if j - i > 1 else np.asarray(windows[i], np.float32)
+            if span is not None and i == 0 and j == len(windows):
+                signal = span
+            elif j - i > 1:
+                signal = np.concatenate([windows[i]] + [w[-hop:] for w in windows[i + 1:j]])
+            else:
+                signal = np.asarray(windows[i], np.float32)
             if fe.fixed is not None:  # integers: frames shared within a run, none kept
                 out.append(fe._fixed_stream(np.asarray(signal, np.float32), j - i))
                 i = j

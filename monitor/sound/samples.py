@@ -149,11 +149,15 @@ def piece_sums(x: np.ndarray, piece: int) -> tuple[np.ndarray, np.ndarray]:
     whole = n - n % piece
     body = x[:whole].reshape(-1, piece)
     ss = np.square(body, dtype=np.float64).sum(axis=1)
+    if whole < n:
+        ss = np.append(ss, np.square(x[whole:], dtype=np.float64).sum())
+    if n == 0 or (x.max() < FULL_SCALE and -x.min() < FULL_SCALE):
+        # most audio never reaches full scale, and its extremes (no temporary arrays) say so
+        # at a sixth of the cost of counting; a NaN fails the comparisons and is counted
+        return ss, np.zeros(ss.shape[0], np.intp)
     cl = np.count_nonzero(np.abs(body) >= FULL_SCALE, axis=1)
     if whole < n:
-        tail = x[whole:]
-        ss = np.append(ss, np.square(tail, dtype=np.float64).sum())
-        cl = np.append(cl, np.count_nonzero(np.abs(tail) >= FULL_SCALE))
+        cl = np.append(cl, np.count_nonzero(np.abs(x[whole:]) >= FULL_SCALE))
     return ss, cl
 
 

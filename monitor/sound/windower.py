@@ -56,6 +56,7 @@ class Windower:
         self._buf_start = 0  # absolute index of _buf[0]
         self.next_start = 0
         self._pending_gap = 0
+        self.span: np.ndarray | None = None  # the last push's windows' samples, one view
 
     @property
     def end(self) -> int:
@@ -67,6 +68,8 @@ class Windower:
 
         The windows' samples are views of the pushed chunks (no copy): a chunk must not be
         changed after it is pushed (the engine pushes the fresh arrays the ring hands out).
+        With overlapping windows, `span` is then their samples as one view (the first
+        window's and each later one's last hop), else None.
         """
         if gap:
             resume = self.end + gap
@@ -78,7 +81,7 @@ class Windower:
         if chunk.size:
             self._buf = np.concatenate((self._buf, chunk)) if self._buf.size else chunk
             self._buf.setflags(write=False)  # the windows are views of it: read-only
-        out = []
+        out: list[Window] = []
         while self.next_start + self.window <= self.end:
             if self.next_start >= self._buf_start:
                 a = self.next_start - self._buf_start
@@ -88,6 +91,12 @@ class Windower:
                                   self._pending_gap))
                 self._pending_gap = 0
             self.next_start += self.hop
+        # one push's windows all lie in this buffer, one hop apart: with overlap, their
+        # samples from the first's start to the last's end are one view, no copy
+        self.span = None
+        if out and self.hop <= self.window:
+            a = out[0].start - self._buf_start
+            self.span = self._buf[a:out[-1].start - self._buf_start + self.window]
         drop = min(max(0, self.next_start - self._buf_start), self._buf.shape[0])
         if drop:
             self._buf = self._buf[drop:]

@@ -3,6 +3,7 @@
 import threading
 
 import numpy as np
+import pytest
 
 from monitor.sound.ringbuffer import RingBuffer
 from monitor.sound.windower import Windower
@@ -61,6 +62,26 @@ def test_windower_hop_half_and_sample_clock():
     wins = w.push(np.arange(10, dtype=np.float32))
     assert [x.start for x in wins] == [0, 2, 4, 6]
     assert wins[1].samples.tolist() == [2, 3, 4, 5]
+
+
+@pytest.mark.parametrize("window, hop", [(4, 2), (6, 2), (5, 3), (4, 4), (3, 5)])
+def test_windower_span_is_the_windows_samples_joined(window, hop):
+    # the span of one push is the first window and each later window's last hop, the array
+    # the front end and the levels would otherwise join (None without overlap)
+    rng = np.random.default_rng(window * 10 + hop)
+    w = Windower(window, hop)
+    x = np.arange(400, dtype=np.float32)
+    pos = 0
+    while pos < x.size:
+        n, gap = int(rng.integers(1, 40)), int(rng.integers(0, 3)) * int(rng.integers(0, 9))
+        wins = w.push(x[pos:pos + n], gap)
+        pos += n
+        if not wins or hop > window:
+            assert w.span is None
+            continue
+        joined = np.concatenate([wins[0].samples] + [v.samples[-hop:] for v in wins[1:]])
+        assert w.span.tolist() == joined.tolist()
+        assert np.shares_memory(w.span, wins[-1].samples)  # a view, not a copy
 
 
 def test_windower_gap_moves_times_forward_on_the_grid():

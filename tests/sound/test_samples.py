@@ -3,9 +3,18 @@ stretches every report uses."""
 
 import numpy as np
 import pytest
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
 from monitor.decisions.tally import LevelTally
-from monitor.sound.samples import clipped_fraction, from_pcm16, level_dbfs, quantise_pcm16, to_pcm16
+from monitor.sound.samples import (
+    clipped_fraction,
+    from_pcm16,
+    level_dbfs,
+    quantise_pcm16,
+    to_pcm16,
+    window_levels,
+)
 
 
 def test_level_dbfs_aes17():
@@ -31,6 +40,27 @@ def test_pcm16_round_trip_and_rounding():
 def test_clipped_fraction_counts_full_scale():
     x = np.array([0.0, 0.5, 0.999, -1.0], np.float32)
     assert clipped_fraction(x) == 0.5
+
+
+@settings(max_examples=60, deadline=None)
+@given(st.integers(0, 2**32 - 1), st.integers(1, 6), st.sampled_from([0.0, 0.999, 1.0, -1.0]),
+       st.integers(0, 5))
+def test_window_levels_of_shared_pieces_equal_each_window_alone(seed, n, peak, peaks):
+    # windows of 8 pieces every piece, some samples at (or just under) full scale, of either
+    # sign, or none: each window's level is AES17's 20 log10(sqrt(2) rms) of its own samples
+    # and its clipped share the count of |x| >= 0.999 over its length (the definitions,
+    # computed here in float64 window by window)
+    rng = np.random.default_rng(seed)
+    piece, per = 40, 8
+    x = (0.3 * rng.standard_normal((n - 1 + per) * piece)).clip(-0.99, 0.99).astype(np.float32)
+    x[rng.integers(0, x.size, peaks)] = peak
+    levels, clipped = window_levels(x, np.arange(n) * piece, per * piece, piece)
+    for k in range(n):
+        w = x[k * piece:(k + per) * piece].astype(np.float64)
+        rms = np.sqrt(np.mean(w * w))
+        assert levels[k] == pytest.approx(max(-160.0, 20 * np.log10(max(np.sqrt(2) * rms, 1e-300))),
+                                          abs=1e-9)
+        assert clipped[k] == np.count_nonzero(np.abs(w) >= 0.999) / w.size
 
 
 def test_silent_and_clipping_stretches():
