@@ -47,6 +47,9 @@ from monitor.sound.samples import to_pcm16
 
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
+# also synced after this much audio: a fast replay writes megabytes a second, and syncing
+# as it goes lets the disk work beside the computing instead of all at the close
+FSYNC_EVERY_BYTES = 4 << 20
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
 MAX_BACKLOG_BYTES = 8 << 20  # queued audio (float32): about 2 minutes at 16 kHz
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
@@ -274,7 +277,7 @@ class SessionWriter(ObserverBase):
                 wav = self._open_segment(0)
         except OSError as exc:
             self._fail(exc)
-        last_sync = time.monotonic()
+        last_sync, synced_frames = time.monotonic(), 0
         last_header = 0.0  # the first audio write brings the header up to date too
         while True:
             item = self._q.get()
@@ -306,11 +309,12 @@ class SessionWriter(ObserverBase):
                     if now - last_header >= HEADER_EVERY_S:
                         update_wav_header(wav)
                         last_header = now
-                    if now - last_sync >= FSYNC_EVERY_S:
+                    if (now - last_sync >= FSYNC_EVERY_S
+                            or 2 * (self.audio_frames - synced_frames) >= FSYNC_EVERY_BYTES):
                         wav.flush()
                         for f in jl:
                             os.fsync(f.fileno())
-                        last_sync = now
+                        last_sync, synced_frames = now, self.audio_frames
                 elif op == "snippet":
                     write_snippet(self.dir, item[1], session_id=self.meta["session_id"],
                                   model_sha256=self.meta.get("model", {}).get("sha256"),
