@@ -29,8 +29,11 @@ import hashlib
 import json
 import os
 import sys
+import threading
 import time
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from collections import deque
+from collections.abc import Callable
+from concurrent.futures import ProcessPoolExecutor, wait
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -423,6 +426,75 @@ def _worker_context():
     return mp.get_context("spawn")
 
 
+def _share_out(todo: list, task: Callable[..., dict], args_of: Callable[[Any], tuple],
+               took: Callable[[dict], None], workers: int, context: Any) -> None:
+    """Run ``task(*args_of(item))`` for each item of `todo` on this process and
+    ``workers - 1`` others, all taking from one queue.
+
+    This process is one of the workers (its imports, model and heap are warm) and takes
+    items from the back; each other worker is handed the item at the front when it finishes
+    its last one (a done callback). None is queued in a worker ahead of time:
+    `ProcessPoolExecutor` queues a call ahead for each worker and a queued call cannot be
+    taken back, which once left the last two inputs of eight to one worker while this
+    process sat idle.
+
+    Parameters
+    ----------
+    todo : list
+        The items.
+    task : callable
+        A module-level function (the others receive it pickled); returns a result.
+    args_of : callable
+        An item's arguments for `task`.
+    took : callable
+        Called here with each result.
+    workers : int
+        Processes in all, this one included (at least 2).
+    context : multiprocessing context
+        How the others start.
+    """
+    queue, lock = deque(todo), threading.Lock()
+    handed: list = []  # the other workers' futures, in the order they were handed out
+    reported: set[int] = set()
+
+    def report_done() -> None:
+        for k, f in enumerate(list(handed)):
+            if k not in reported and f.done():
+                reported.add(k)
+                took(f.result())
+
+    with ProcessPoolExecutor(max_workers=workers - 1, mp_context=context,
+                             initializer=die_with_parent, initargs=(os.getpid(),)) as pool:
+        def hand_over(_done: Any = None) -> None:  # also run by the pool's thread
+            with lock:
+                if not queue:
+                    return
+                it = queue.popleft()
+                try:
+                    future = pool.submit(task, *args_of(it))
+                except RuntimeError:  # the pool is broken or closing: this process takes it
+                    queue.appendleft(it)
+                    return
+                handed.append(future)
+            future.add_done_callback(hand_over)
+
+        try:
+            for _ in range(workers - 1):
+                hand_over()
+            while True:
+                with lock:
+                    it = queue.pop() if queue else None
+                if it is None:
+                    break
+                took(task(*args_of(it)))
+                report_done()
+            wait(list(handed))  # the queue is empty: nothing more is handed out
+            report_done()
+        finally:  # a failure here or there: hand out nothing more
+            with lock:
+                queue.clear()
+
+
 def _is_aggregate(path: Path) -> bool:
     try:
         agg = json.loads(path.read_text(encoding="utf-8"))
@@ -539,33 +611,11 @@ def run_score(archive: Path, models: tuple[ModelPlan, ...] | str, out: Path, *,
         for it in todo:
             took(score_task(it, models, target, fps[it.key]))
     elif todo:
-        # this process is one of the n workers (its imports, model and heap are warm): the
-        # other n - 1 take inputs from the front, it takes from the back those no worker has
-        # started (a future that can still be cancelled is one no worker will run)
         context = _worker_context()
         if context.get_start_method() == "fork":
             _warm(models)  # the forked workers start with the modules and models loaded
-        with ProcessPoolExecutor(max_workers=min(n, len(todo)) - 1,
-                                 mp_context=context, initializer=die_with_parent,
-                                 initargs=(os.getpid(),)) as pool:
-            futures = [(it, pool.submit(score_task, it, models, target, fps[it.key]))
-                       for it in todo]
-            reported: set[int] = set()
-
-            def report_done() -> None:
-                for k, (_, f) in enumerate(futures):
-                    if k not in reported and f.done() and not f.cancelled():
-                        reported.add(k)
-                        took(f.result())
-
-            for it, f in reversed(futures):
-                if not f.cancel():
-                    break
-                took(score_task(it, models, target, fps[it.key]))
-                report_done()
-            for f in as_completed([f for _, f in futures if not f.cancelled()]):
-                f.result()
-            report_done()
+        _share_out(todo, score_task, lambda it: (it, models, target, fps[it.key]), took,
+                   min(n, len(todo)), context)
     audio_s = state["audio_s"]
     wall = time.monotonic() - t0
     agg = aggregate(out, items, list(cards[0].classes), len(models),

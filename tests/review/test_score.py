@@ -14,7 +14,7 @@ import pytest
 import soundfile as sf
 
 from conftest import MODELS, ROOT, run_cli
-from monitor.review.score import discover, run_score
+from monitor.review.score import _share_out, _worker_context, discover, run_score
 
 distributed = pytest.importorskip("distributed")
 
@@ -47,6 +47,37 @@ def local_run(archive, tmp_path_factory):
     out = tmp_path_factory.mktemp("local")
     agg = run_score(archive, str(MODELS / "demo.tflite"), out, workers=2, progress=False)
     return out, agg
+
+
+def _sleep_and_say(item, seconds):
+    """A stand-in task for `_share_out` (module level: the other worker gets it pickled)."""
+    time.sleep(seconds)
+    return {"item": item, "pid": os.getpid()}
+
+
+def test_workers_share_one_queue_to_the_end():
+    # eight equal items on this process and one forked worker: each takes four, none is
+    # done twice or left out; a worker queue holding calls ahead of time left the last two
+    # items to one process while the other sat idle
+    got = []
+    _share_out(list(range(8)), _sleep_and_say, lambda it: (it, 0.25), got.append, 2,
+               _worker_context())
+    assert sorted(r["item"] for r in got) == list(range(8))
+    by_pid = {}
+    for r in got:
+        by_pid.setdefault(r["pid"], []).append(r["item"])
+    assert sorted(len(v) for v in by_pid.values()) == [4, 4], by_pid
+    assert sorted(by_pid[os.getpid()]) == [4, 5, 6, 7]  # this process from the back
+
+
+def test_a_failing_item_stops_the_handing_out():
+    # a failure in this process's share: the error comes out, and the other worker is handed
+    # nothing more (at most the one item it was running)
+    got = []
+    with pytest.raises(ZeroDivisionError):
+        _share_out(list(range(8)), _sleep_and_say, lambda it: (it, 0.1 if it != 7 else 1 / 0),
+                   got.append, 2, _worker_context())
+    assert len(got) <= 1
 
 
 def test_discovery(archive):
