@@ -190,14 +190,14 @@ class TFLiteRunner(RunnerBase):
     def quantize_input(self, x: np.ndarray) -> np.ndarray:
         """``q = clip(round(x / scale) + zero_point, -128, 127)`` for an int8 input tensor."""
         if self.in_dtype != np.int8:
-            return x.astype(self.in_dtype)
+            return x.astype(self.in_dtype, copy=False)  # float32 to a float model: as it is
         q = np.round(x / np.float32(self.in_scale)) + self.in_zero
         return np.clip(q, -128, 127).astype(np.int8)
 
     def dequantize_output(self, q: np.ndarray) -> np.ndarray:
         """``x = scale * (q - zero_point)`` for an int8 output tensor."""
         if self.out_dtype != np.int8:
-            return q.astype(np.float32)
+            return q.astype(np.float32, copy=False)
         return (np.float32(self.out_scale) * (q.astype(np.float32) - self.out_zero))
 
     def raw(self, feature: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
