@@ -472,11 +472,12 @@ def run_session(plan: SessionPlan, *, observers: Sequence[Observer] = (),
     target = session_dir(plan.output)
     existed = target.exists()
     # a source that waits for the engine loses nothing by waiting for the disk too: its
-    # writer queues 1 MB of audio (16 s at 16 kHz), a live one minutes of it
+    # writer queues 4 MB of audio (a minute at 16 kHz; enough to ride out a snippet's and
+    # a sync's waits for the disk, 1 MB was not), a live one minutes of it
     writer = SessionWriter(target, meta, sample_rate=cards[0].sample_rate,
                            audio=plan.output.audio, segment_s=plan.output.segment_s,
                            truth_file=plan.truth,
-                           max_backlog_bytes=MAX_BACKLOG_BYTES if source.realtime else 1 << 20)
+                           max_backlog_bytes=MAX_BACKLOG_BYTES if source.realtime else 4 << 20)
     capture = None
     if plan.capture is not None:
         capture = CapturePolicy(plan.capture, classes=cards[0].classes,
