@@ -168,7 +168,8 @@ class Engine:
         """Run until the source ends or `stop` is set; return the summary."""
         stop = stop or threading.Event()
         src, ring = self.source, self.source.ring
-        limit = self.max_batch * self.card.hop_samples + self.card.window_samples
+        batch = self.max_batch * self.card.hop_samples + self.card.window_samples
+        limit = self.card.window_samples  # the first result as soon as one window is in
         poll = 0.01 if src.realtime else 0.001
         for obs in self.observers:  # before anything starts: a half observer is a bug
             missing = [h for h in HOOKS if not callable(getattr(obs, h, None))]
@@ -193,6 +194,7 @@ class Engine:
                     self.published_samples = self.windower.end
                     if wins:
                         self._process(wins, arrived, self.windower.span)
+                        limit = batch
                     continue
                 if src.error is not None:
                     if isinstance(src.error, ScenemonError):
