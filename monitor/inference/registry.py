@@ -1,9 +1,10 @@
 """The runner registry: `load_runner` picks a runner for a model file.
 
 By extension (``.keras``, ``.h5``, ``.tflite``, ``.onnx``) and runtime (LiteRT or the
-microcontroller interpreter for ``.tflite``; ONNX Runtime for ``.onnx``); the file's first bytes are checked before any interpreter sees it. Each
-runner keeps its heavy imports inside its constructor, so importing this module imports no
-TensorFlow.
+microcontroller interpreter for ``.tflite``; ONNX Runtime for ``.onnx``); the file's first
+bytes are checked before any interpreter sees it. Each runner keeps its heavy imports inside
+its constructor, so importing this module imports no TensorFlow; the ONNX and
+microcontroller runners' modules are imported only for a model that needs them.
 """
 
 from __future__ import annotations
@@ -13,8 +14,6 @@ from pathlib import Path
 from monitor.base.errors import ModelError
 from monitor.features.card import ModelCard
 from monitor.inference.base import Runner
-from monitor.inference.micro import MicroRunner
-from monitor.inference.onnx import OnnxRunner
 from monitor.inference.runners import KerasRunner, TFLiteRunner
 
 RUNTIMES = ("litert", "micro")
@@ -83,9 +82,13 @@ def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
         if runtime == "micro":
             raise ModelError(f"{path}: the microcontroller runtime runs .tflite models; an "
                              f".onnx model runs in ONNX Runtime")
+        from monitor.inference.onnx import OnnxRunner  # only for such a model (start-up)
+
         return OnnxRunner(path, card, threads=threads)
     if ext == ".tflite":
         if runtime == "micro":
+            from monitor.inference.micro import MicroRunner
+
             return MicroRunner(path, card)
         return TFLiteRunner(path, card, threads=threads)
     if runtime == "micro":

@@ -50,6 +50,9 @@ def test_tflite_replay_imports_no_heavy_library(tmp_path, model):
     # only its own command's module
     assert sorted(m for m in mods if m.startswith("monitor.cli.")) == [
         "monitor.cli.flags", "monitor.cli.replay", "monitor.cli.screen"]
+    # and of the runners only LiteRT's: the ONNX and microcontroller runners' modules come
+    # with a model that needs them
+    assert "monitor.inference.onnx" not in mods and "monitor.inference.micro" not in mods
 
 
 def test_report_imports_no_model_runtime(tmp_path):
