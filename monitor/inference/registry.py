@@ -3,7 +3,8 @@
 By extension (``.keras``, ``.h5``, ``.tflite``, ``.onnx``) and runtime (LiteRT or the
 microcontroller interpreter for ``.tflite``; ONNX Runtime for ``.onnx``); the file's first bytes are checked before any interpreter sees it. Each
 runner keeps its heavy imports inside its constructor, so importing this module imports no
-TensorFlow.
+TensorFlow, and the modules of the microcontroller and ONNX runners are imported only for a
+model that runs in them.
 """
 
 from __future__ import annotations
@@ -13,8 +14,6 @@ from pathlib import Path
 from monitor.base.errors import ModelError
 from monitor.features.card import ModelCard
 from monitor.inference.base import Runner
-from monitor.inference.micro import MicroRunner
-from monitor.inference.onnx import OnnxRunner
 from monitor.inference.runners import KerasRunner, TFLiteRunner
 
 RUNTIMES = ("litert", "micro")
@@ -83,9 +82,13 @@ def load_runner(path: str | Path, card: ModelCard, *, runtime: str = "litert",
         if runtime == "micro":
             raise ModelError(f"{path}: the microcontroller runtime runs .tflite models; an "
                              f".onnx model runs in ONNX Runtime")
+        from monitor.inference.onnx import OnnxRunner
+
         return OnnxRunner(path, card, threads=threads)
     if ext == ".tflite":
         if runtime == "micro":
+            from monitor.inference.micro import MicroRunner
+
             return MicroRunner(path, card)
         return TFLiteRunner(path, card, threads=threads)
     if runtime == "micro":

@@ -26,6 +26,8 @@ NOT_FOR_A_REPLAY = {
                 "(files.file_sha256, files.sha256_hex)",
     "monitor.session.runfolder": "a field run's folder: a session's clocks are session.clock, "
                                  "FieldPlan's Keep is made on demand",
+    "monitor.inference.micro": "the microcontroller runner: imported for --runtime micro only",
+    "monitor.inference.onnx": "the ONNX Runtime runner: imported for an .onnx model only",
 }
 
 DUMP = """if 1:
