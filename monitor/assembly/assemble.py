@@ -37,7 +37,7 @@ from monitor.features.card import DecisionSettings, ModelCard, card_for_model
 from monitor.inference.base import Runner
 from monitor.inference.registry import load_runner
 from monitor.session.capture import CapturePolicy
-from monitor.session.runfolder import clock_now
+from monitor.session.clock import clock_now
 from monitor.session.truth import LiveTruth, TruthTrack, load_truth
 from monitor.session.writer import MAX_BACKLOG_BYTES, SessionWriter
 from monitor.sound.windower import windows_of

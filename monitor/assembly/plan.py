@@ -9,10 +9,12 @@ from __future__ import annotations
 from collections.abc import Callable
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any
+from typing import TYPE_CHECKING, Any
 
 from monitor.session.capture import CaptureSettings
-from monitor.session.runfolder import Keep
+
+if TYPE_CHECKING:
+    from monitor.session.runfolder import Keep
 
 DEFAULT_SEGMENT_S = 3600.0
 
@@ -154,6 +156,13 @@ class SessionPlan:
     prepare_note: str = "preparing the input …"  # shown while `prepare` runs
 
 
+def _no_budget() -> Keep:
+    """An unlimited `Keep`: the run folder's module is imported by a field run only."""
+    from monitor.session.runfolder import Keep
+
+    return Keep()
+
+
 @dataclass(frozen=True)
 class FieldPlan:
     """An unattended run: sessions one after another in a run folder (`assembly.field`).
@@ -180,7 +189,7 @@ class FieldPlan:
 
     run: Path
     session: SessionPlan
-    keep: Keep = field(default_factory=Keep)
+    keep: Keep = field(default_factory=_no_budget)
     session_s: float = 86400.0
     status_every_s: float = 5.0
     reserve_bytes: int = 200 * 10**6

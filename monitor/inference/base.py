@@ -3,14 +3,13 @@
 `Runner` is what the engine and the tools need of a loaded model; `RunnerBase` checks a
 model's inputs and outputs against its card, keeps the batch-1 input shape and the file's
 sha256, turns the output into probabilities and warns once when a "probabilities" model
-does not give them. `softmax` and `file_sha256` are here so that every runner (LiteRT,
-Keras, the microcontroller interpreter) takes them from one place. The registry that picks
-a runner for a file is ``monitor.inference.registry``.
+does not give them. `softmax` and `file_sha256` (from ``monitor.base.files``) are here so
+that every runner (LiteRT, Keras, the microcontroller interpreter) takes them from one
+place. The registry that picks a runner for a file is ``monitor.inference.registry``.
 """
 
 from __future__ import annotations
 
-import hashlib
 import warnings
 from pathlib import Path
 from typing import Protocol
@@ -18,27 +17,8 @@ from typing import Protocol
 import numpy as np
 
 from monitor.base.errors import ModelError
+from monitor.base.files import file_sha256
 from monitor.features.card import ModelCard
-
-
-def file_sha256(path: str | Path) -> str:
-    """Hex sha256 of a file, read in 1 MiB blocks (the model and audio fingerprints).
-
-    Parameters
-    ----------
-    path : str or Path
-        The file.
-
-    Returns
-    -------
-    str
-        64 hex digits.
-    """
-    h = hashlib.sha256()
-    with open(path, "rb") as f:
-        for block in iter(lambda: f.read(1 << 20), b""):
-            h.update(block)
-    return h.hexdigest()
 
 
 class Runner(Protocol):

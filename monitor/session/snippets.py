@@ -14,7 +14,6 @@ symbolic link), a real WAV, and matches its sidecar (sha256, sample rate, length
 
 from __future__ import annotations
 
-import hashlib
 import io
 import json
 import math
@@ -25,7 +24,7 @@ from typing import Any
 
 import numpy as np
 
-from monitor.base.files import atomic_write, dumps, read_regular_bytes
+from monitor.base.files import atomic_write, dumps, read_regular_bytes, sha256_hex
 from monitor.sound.samples import to_pcm16
 
 REASONS = ("disagreement", "uncertain", "manual", "models_disagree", "unfamiliar")
@@ -173,7 +172,7 @@ def write_snippet(session_dir: Path, snippet: dict[str, Any], *, session_id: str
     side.update({
         "session": session_id, "file": f"{name}.wav", "sample_rate": int(sample_rate),
         "duration_s": round(len(snippet["audio"]) / sample_rate, 4),
-        "model_sha256": model_sha256, "audio_sha256": hashlib.sha256(data).hexdigest(),
+        "model_sha256": model_sha256, "audio_sha256": sha256_hex(data),
     })
     atomic_write(label_dir / f"{name}.wav", data)  # audio first: the sidecar is the commit
     atomic_write(label_dir / f"{name}.json", dumps(side, indent=2).encode())
@@ -322,7 +321,7 @@ def verified_audio(snip: SnippetFile, session_dir: Path) -> tuple[bytes | None, 
         data = read_regular_bytes(snip.wav, inside=Path(session_dir) / "snippets")
     except OSError as exc:
         return None, f"{snip.wav}: {exc.strerror or exc}; skipped"
-    digest = hashlib.sha256(data).hexdigest()
+    digest = sha256_hex(data)
     if snip.meta.get("audio_sha256") != digest:
         return None, f"{snip.wav}: audio does not match its sidecar's sha256; skipped"
     try:
