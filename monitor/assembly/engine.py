@@ -259,11 +259,10 @@ class Engine:
 
     def _levels(self, wins: list[Window], span: np.ndarray | None) -> tuple[np.ndarray, np.ndarray]:
         """Level and clipped share of each window, from hop-long pieces (`window_levels`);
-        `span` is the windows' samples as one array (`Windower.span`), or None."""
+        `span` is the windows' samples as one array (`Windower.span`: one push's windows,
+        one hop apart), or None."""
         hop, win = self.card.hop_samples, self.card.window_samples
-        if win % hop == 0 and all(b.start - a.start == hop for a, b in zip(wins, wins[1:])):
-            if span is None:
-                span = np.concatenate([wins[0].samples] + [w.samples[-hop:] for w in wins[1:]])
+        if span is not None and win % hop == 0:
             return window_levels(span, np.arange(len(wins)) * hop, win, hop)
         out = [window_levels(w.samples, np.zeros(1, int), win, hop) for w in wins]
         return np.concatenate([o[0] for o in out]), np.concatenate([o[1] for o in out])

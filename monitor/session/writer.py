@@ -47,9 +47,9 @@ from monitor.sound.samples import to_pcm16
 
 HEADER_EVERY_S = 1.0
 FSYNC_EVERY_S = 5.0
-# also synced after this much audio: a fast replay writes megabytes a second, and syncing
-# as it goes lets the disk work beside the computing instead of all at the close
-FSYNC_EVERY_BYTES = 4 << 20
+# also synced after this many frames (4 MiB of 16-bit audio): a fast replay writes megabytes
+# a second, and syncing as it goes lets the disk work beside the computing, not at the close
+FSYNC_EVERY_FRAMES = (4 << 20) // 2
 SEGMENT_S = 3600.0  # a new audio file every hour keeps each one far below WAV's 4 GB
 MAX_BACKLOG_BYTES = 8 << 20  # queued audio (float32): about 2 minutes at 16 kHz
 WINDOW_FILES = ("windows.jsonl", "windows.b.jsonl")  # model A, model B
@@ -310,7 +310,7 @@ class SessionWriter(ObserverBase):
                         update_wav_header(wav)
                         last_header = now
                     if (now - last_sync >= FSYNC_EVERY_S
-                            or 2 * (self.audio_frames - synced_frames) >= FSYNC_EVERY_BYTES):
+                            or self.audio_frames - synced_frames >= FSYNC_EVERY_FRAMES):
                         wav.flush()
                         for f in jl:
                             os.fsync(f.fileno())
