@@ -68,7 +68,7 @@ def _is_dataclass(cls: ast.ClassDef) -> bool:
     for d in cls.decorator_list:
         target = d.func if isinstance(d, ast.Call) else d
         name = target.attr if isinstance(target, ast.Attribute) else getattr(target, "id", "")
-        if name == "dataclass":
+        if name in ("dataclass", "record"):
             return True
     return False
 
