@@ -22,7 +22,6 @@ import sys
 import threading
 import time
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
@@ -33,6 +32,7 @@ from monitor.assembly.engine import Engine, Observer, Source
 from monitor.assembly.plan import FileInput, MicInput, ModelPlan, OutputPlan, SessionPlan
 from monitor.base.errors import ScenemonError
 from monitor.base.files import session_is_live
+from monitor.base.records import record
 from monitor.features.card import DecisionSettings, ModelCard, card_for_model
 from monitor.inference.base import Runner
 from monitor.inference.registry import load_runner
@@ -43,7 +43,7 @@ from monitor.session.writer import MAX_BACKLOG_BYTES, SessionWriter
 from monitor.sound.windower import windows_of
 
 
-@dataclass
+@record(frozen=False)
 class LoadedModel:
     """A model ready to run: its plan, its card and its runner.
 
@@ -295,7 +295,7 @@ def invocation() -> str:
 
 
 # --- one session -----------------------------------------------------------------------------
-@dataclass
+@record(frozen=False)
 class SessionHandle:
     """What a front end (the UI) may use of a running session; every method is thread-safe.
 

@@ -19,12 +19,12 @@ import threading
 import time
 from collections import deque
 from collections.abc import Callable, Sequence
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
 from monitor.base.errors import ModelError, ScenemonError, SourceFailed
+from monitor.base.records import record
 from monitor.decisions.contract import (
     HOOKS,
     EngineStatus,
@@ -46,7 +46,7 @@ MODEL_FAULT = "non-finite model output"
 NOVELTY_FAULT = "non-finite novelty"
 
 
-@dataclass
+@record(frozen=False)
 class _Lane:
     """One model's part of the chain: its card, runner, decider and tally."""
 

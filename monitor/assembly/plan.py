@@ -7,10 +7,11 @@ loads, opens or checks a file. `assemble.run_session(plan)` does all of that, in
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass, field
+from dataclasses import field
 from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
+from monitor.base.records import record
 from monitor.session.capture import CaptureSettings
 
 if TYPE_CHECKING:
@@ -19,7 +20,7 @@ if TYPE_CHECKING:
 DEFAULT_SEGMENT_S = 3600.0
 
 
-@dataclass(frozen=True)
+@record
 class ModelPlan:
     """One model: its file, its card (None: the card beside it) and the runtime.
 
@@ -41,7 +42,7 @@ class ModelPlan:
     trust: bool = False  # allow Keras Lambda layers (their code runs on loading)
 
 
-@dataclass(frozen=True)
+@record
 class FileInput:
     """A recording replayed through the chain.
 
@@ -63,7 +64,7 @@ class FileInput:
     speed: float = 1.0
 
 
-@dataclass(frozen=True)
+@record
 class MicInput:
     """An input device (PortAudio).
 
@@ -91,7 +92,7 @@ class MicInput:
     reopen_wait_s: float = 1.0
 
 
-@dataclass(frozen=True)
+@record
 class OutputPlan:
     """Where and what the session writes.
 
@@ -113,7 +114,7 @@ class OutputPlan:
     segment_s: float = DEFAULT_SEGMENT_S
 
 
-@dataclass(frozen=True)
+@record
 class SessionPlan:
     """Everything one session needs (see module docstring).
 
@@ -163,7 +164,7 @@ def _no_budget() -> Keep:
     return Keep()
 
 
-@dataclass(frozen=True)
+@record
 class FieldPlan:
     """An unattended run: sessions one after another in a run folder (`assembly.field`).
 

@@ -22,9 +22,10 @@ from __future__ import annotations
 import math
 from collections import deque
 from collections.abc import Iterable, Sequence
-from dataclasses import dataclass
 
 import numpy as np
+
+from monitor.base.records import record
 
 UNDECIDED = "(undecided)"
 
@@ -62,7 +63,7 @@ def percentile(values: Iterable[float], q: float) -> float | None:
     return p if math.isfinite(p) else None
 
 
-@dataclass(frozen=True)
+@record
 class Change:
     """A truth change: the new label from `onset` (s) until `offset` (s; inf if unknown).
 

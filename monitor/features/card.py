@@ -12,13 +12,14 @@ from __future__ import annotations
 
 import dataclasses
 import sys
-from dataclasses import dataclass, field
+from dataclasses import field
 from pathlib import Path
 from typing import Any, Literal
 
 import numpy as np
 
 from monitor.base.errors import CardError, ModelError
+from monitor.base.records import record
 from monitor.features.stages import (
     SCALING_KEYS,
     STAGES,
@@ -45,7 +46,7 @@ Smoothing = Literal["none", "mean", "ema", "median"]
 SMOOTHING = ("none", "mean", "ema", "median")
 
 
-@dataclass(frozen=True)
+@record
 class DecisionSettings:
     """Smoothing and hysteresis settings (the README's decision rules).
 
@@ -109,7 +110,7 @@ class DecisionSettings:
 
 
 
-@dataclass(frozen=True)
+@record
 class ModelCard:
     """Everything the front end, runner and decider need to treat audio as the device will.
 

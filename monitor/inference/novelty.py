@@ -23,13 +23,14 @@ The file is a plain ``.npz`` read with ``allow_pickle=False``.
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import field
 from pathlib import Path
 from typing import Any
 
 import numpy as np
 
 from monitor.base.errors import ScenemonError
+from monitor.base.records import record
 from monitor.features.card import ModelCard
 
 PROFILE_VERSION = 2
@@ -129,7 +130,7 @@ def ledoit_wolf(x: np.ndarray) -> tuple[np.ndarray, float]:
     return (1.0 - shrink) * emp + shrink * mu * np.eye(p), float(shrink)
 
 
-@dataclass
+@record(frozen=False)
 class Profile:
     """A loaded profile and the per-window state of one session (see module docstring).
 

@@ -21,11 +21,12 @@ a second model or a profile it simply never fires.
 from __future__ import annotations
 
 import threading
-from dataclasses import dataclass, field
+from dataclasses import field
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.decisions.contract import ObserverBase, WindowResult
 from monitor.session.snippets import REASONS
 
@@ -35,7 +36,7 @@ MAX_SNIPPET_S = 600.0
 MAX_EVERY_S = 86400.0
 
 
-@dataclass(frozen=True)
+@record
 class CaptureSettings:
     """When and how snippets are cut (the ``--capture*`` flags; defaults here are theirs).
 
@@ -102,8 +103,10 @@ class CaptureSettings:
                 raise ValueError(f"{name}={v!r} must be above 0 and at most {MAX_SNIPPET_S:g} s")
 
 
-@dataclass
+@record(frozen=False)
 class _Run:
+    """A snippet being cut: why, the labels and span so far, when its audio is complete."""
+
     reason: str
     label: str
     predicted: str

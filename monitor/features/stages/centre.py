@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import FrontendLike, Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import AudioConfig, CardProblem, key
 
 
-@dataclass(frozen=True)
+@record
 class CentreConfig:
     """The centre stage's keys: padding by fft_length // 2 samples, and with what.
 

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.dsp import dct_matrix, lifter_weights
 from monitor.features.stages.base import FrontendLike, ScalingLike, Stage, blocked_product
 from monitor.features.stages.ctext import c_define, c_floats
@@ -14,7 +14,7 @@ from monitor.features.stages.framing import FramingStage
 from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, key
 
 
-@dataclass(frozen=True)
+@record
 class DctConfig:
     """The dct stage's keys (kind "mfcc"): coefficients kept, DCT-II normalisation, lifter.
 

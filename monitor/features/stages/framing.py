@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import FrontendLike, ScalingLike, Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import (
@@ -20,7 +20,7 @@ from monitor.features.stages.keys import (
 from monitor.features.stages.preemphasis import PreemphasisStage
 
 
-@dataclass(frozen=True)
+@record
 class FramingConfig:
     """The framing stage's keys: frame length, step and FFT size in samples, window place.
 

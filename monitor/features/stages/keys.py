@@ -10,8 +10,10 @@ from __future__ import annotations
 
 import dataclasses
 import math
-from dataclasses import dataclass, field
+from dataclasses import field
 from typing import Any
+
+from monitor.base.records import record
 
 # Sane bounds, checked before anything is allocated (a card is untrusted input).
 MAX_FFT = 32768  # the C front end indexes bins with int16_t
@@ -37,7 +39,7 @@ REQUIRED = _Marker("REQUIRED")  # the card must give the key when its stage runs
 NO_OFF = _Marker("NO_OFF")  # the key has no value that means "nothing changes"
 
 
-@dataclass(frozen=True)
+@record
 class Key:
     """One card key: its type, allowed values, default and meaning.
 
@@ -211,7 +213,7 @@ def nearest(name: str, known) -> str:
     return f"; did you mean {close[0]}?" if close else ""
 
 
-@dataclass(frozen=True)
+@record
 class AudioConfig:
     """The ``[audio]`` table: the rate the model was trained on, its window and hop.
 

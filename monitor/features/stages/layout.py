@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import key
 
 
-@dataclass(frozen=True)
+@record
 class LayoutConfig:
     """The layout stage's key: the model input's axis order.
 

@@ -2,16 +2,15 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
-
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import FrontendLike, ScalingLike, Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import AudioConfig, CardProblem, key
 
 
-@dataclass(frozen=True)
+@record
 class LogConfig:
     """The log stage's keys: which log, its offset and floor, for dB its reference and top_db.
 

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.dsp import mel_filterbank
 from monitor.features.stages.base import FrontendLike, ScalingLike, Stage, blocked_product
 from monitor.features.stages.ctext import c_define, c_floats, c_ints, sparse_bank
@@ -14,7 +14,7 @@ from monitor.features.stages.framing import FramingStage
 from monitor.features.stages.keys import MAX_BANDS, AudioConfig, CardProblem, key
 
 
-@dataclass(frozen=True)
+@record
 class MelConfig:
     """The mel stage's keys: band count, edges in Hz, mel scale, normalisation, triangles.
 

@@ -2,11 +2,11 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import CardProblem, key
@@ -19,7 +19,7 @@ NO_PER_WINDOW = ('frontend.arithmetic="q15" computes no per-window standardisati
                  '[scaling] per_window = "none" or arithmetic = "float32"')
 
 
-@dataclass(frozen=True)
+@record
 class PcmConfig:
     """The pcm stage's key: ``pcm_bits``, 16 to quantise the input to int16, 0 to keep it.
 

@@ -4,9 +4,9 @@
 from __future__ import annotations
 
 from collections.abc import Callable
-from dataclasses import dataclass
 from typing import Any
 
+from monitor.base.records import record
 from monitor.features.stages.base import Kind, Stage
 from monitor.features.stages.centre import CentreConfig, CentreStage
 from monitor.features.stages.dct import DctConfig, DctStage
@@ -31,7 +31,7 @@ from monitor.features.stages.spectrum import SpectrumConfig, SpectrumStage
 from monitor.features.stages.window import WindowConfig, WindowStage
 
 
-@dataclass(frozen=True)
+@record
 class FrontendConfig:
     """The ``[frontend]`` table: the kind, and one config per stage (None when the kind
     does not run the stage).

@@ -2,16 +2,17 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass, field
+from dataclasses import field
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.stages.base import FrontendLike, Stage
 from monitor.features.stages.ctext import c_define, c_floats
 from monitor.features.stages.keys import PER_WINDOW_EPS, AudioConfig, key
 
 
-@dataclass(frozen=True)
+@record
 class ScalingConfig:
     """The ``[scaling]`` table: standardisation learned in training, and per window.
 

@@ -3,18 +3,18 @@
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.fft import rfft
 from monitor.features.stages.base import FrontendLike, Stage
 from monitor.features.stages.ctext import c_define
 from monitor.features.stages.keys import key
 
 
-@dataclass(frozen=True)
+@record
 class SpectrumConfig:
     """The spectrum stage's key: ``power``, 1 for magnitude, 2 for power.
 

@@ -2,18 +2,18 @@
 
 from __future__ import annotations
 
-from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
 
+from monitor.base.records import record
 from monitor.features.dsp import window_coefficients
 from monitor.features.stages.base import FrontendLike, ScalingLike, Stage
 from monitor.features.stages.ctext import c_floats
 from monitor.features.stages.keys import AudioConfig, key
 
 
-@dataclass(frozen=True)
+@record
 class WindowConfig:
     """The window stage's keys: Hann or Hamming, periodic or symmetric.
 
