@@ -210,6 +210,9 @@ class LiveTruth:
     def label_for(self, t0: float, t1: float) -> str | None:
         """The truth of one window from the spans told so far, the open one up to `t1`.
 
-        Called on the compute thread; the rule is `TruthTrack.label_for`'s.
+        Called on the compute thread; the rule is `TruthTrack.label_for`'s. Nothing told yet
+        (a headless run: no keys) is None at once, without a track made for every window.
         """
+        if self._open is None and not self._closed:  # one attribute read each: no lock needed
+            return None
         return TruthTrack(self.spans(end_t=t1)).label_for(t0, t1)
