@@ -9,24 +9,35 @@ settings), which was 14 ms of the 95 ms to its first window line.
 `record` lets ``dataclasses`` find the fields as usual (so ``dataclasses.fields``,
 ``replace``, ``asdict`` and pickling work unchanged) but generate nothing, and gives the
 class the methods below, written once: they read the class's fields (kept per class after
-the first call) and behave as the generated ones do (a test holds them against
-``dataclasses.dataclass`` on the same classes). A record is frozen unless made with
+the first call) and behave as the generated ones do for the classes this project makes (a
+test holds them against ``dataclasses.dataclass``). Differences: ``dataclasses`` records the
+class as not frozen (do not mix records and ``@dataclass`` in one class hierarchy),
+``inspect.signature`` shows ``(*args, **kwargs)``, a repr has no recursion guard, and the
+messages for wrong arguments are worded differently. A record is frozen unless made with
 ``frozen=False``: its fields are set only by ``__init__`` (and by ``__post_init__`` through
 ``object.__setattr__``, as in a frozen dataclass).
 
 Use it for classes made once or a few times per run (settings, plans, configs, handles);
 keep ``@dataclass`` for those made per window (its generated ``__init__`` is faster per call).
-Not supported (use ``@dataclass``): ``kw_only``, ``InitVar`` fields, ``order``, ``slots``.
+Not supported (use ``@dataclass``): ``kw_only`` and ``InitVar`` fields (refused), ``order``,
+``slots``.
 """
 
 from __future__ import annotations
 
 import dataclasses
-from typing import Any, TypeVar, dataclass_transform
+from typing import Any, TypeVar
+
+try:  # Python 3.11+; for type checkers only, so on 3.10 a decorator that changes nothing
+    from typing import dataclass_transform
+except ImportError:  # pragma: no cover - Python 3.10
+    def dataclass_transform(**_: Any):  # noqa: D103
+        return lambda f: f
 
 T = TypeVar("T", bound=type)
 
 _SPEC = "__record_spec__"
+_FROZEN = "__record_frozen__"
 
 
 class _Spec:
@@ -113,11 +124,16 @@ def _hash(self: Any) -> int:
 
 
 def _setattr(self: Any, name: str, value: Any) -> None:
-    raise dataclasses.FrozenInstanceError(f"cannot assign to field {name!r}")
+    # as a frozen dataclass: every name on the record class itself, the fields on a subclass
+    if _FROZEN in type(self).__dict__ or name in _spec(type(self)).names:
+        raise dataclasses.FrozenInstanceError(f"cannot assign to field {name!r}")
+    object.__setattr__(self, name, value)
 
 
 def _delattr(self: Any, name: str) -> None:
-    raise dataclasses.FrozenInstanceError(f"cannot delete field {name!r}")
+    if _FROZEN in type(self).__dict__ or name in _spec(type(self)).names:
+        raise dataclasses.FrozenInstanceError(f"cannot delete field {name!r}")
+    object.__delattr__(self, name)
 
 
 _METHODS = {"__init__": _init, "__repr__": _repr, "__eq__": _eq, "__hash__": _hash,
@@ -152,8 +168,17 @@ def record(cls: T | None = None, /, *, frozen: bool = True) -> Any:
             raise TypeError(f"{cls.__qualname__} defines {', '.join(own)}, which a record "
                             f"gives it")
         cls = dataclasses.dataclass(cls, init=False, repr=False, eq=False)
+        odd = [f.name for f in cls.__dataclass_fields__.values()
+               if f.kw_only is True or isinstance(f.type, dataclasses.InitVar)
+               or f.type in ("InitVar", "dataclasses.InitVar")
+               or str(f.type).startswith(("InitVar[", "dataclasses.InitVar["))]
+        if odd:
+            raise TypeError(f"{cls.__qualname__}: {', '.join(odd)} (kw_only or InitVar) need "
+                            f"@dataclass, not @record")
         for name, method in given.items():
             setattr(cls, name, method)
+        if frozen:
+            type.__setattr__(cls, _FROZEN, True)
         return cls
 
     return wrap if cls is None else wrap(cls)

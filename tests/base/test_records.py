@@ -131,3 +131,28 @@ def test_a_record_refuses_methods_it_would_replace():
 
             def __repr__(self):
                 return "mine"
+
+
+def test_a_record_refuses_keyword_only_fields():
+    with pytest.raises(TypeError, match="kw_only"):
+        @record
+        class Keyed:
+            """A class with a keyword-only field."""
+
+            a: int = field(default=0, kw_only=True)
+
+
+def test_a_plain_subclass_may_add_attributes_but_not_change_fields():
+    # a frozen dataclass (PEP 557) refuses any name on the class itself, only its fields on
+    # a subclass that is not a dataclass
+    class Labelled(Settings):
+        def __init__(self, *args, **kwargs):
+            super().__init__(*args, **kwargs)
+            self.note = "kept"
+
+    s = Labelled(8000)
+    assert s.note == "kept"
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        s.rate = 1
+    with pytest.raises(dataclasses.FrozenInstanceError):
+        Settings(1).note = "no"
