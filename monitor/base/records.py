@@ -168,10 +168,10 @@ def record(cls: T | None = None, /, *, frozen: bool = True) -> Any:
             raise TypeError(f"{cls.__qualname__} defines {', '.join(own)}, which a record "
                             f"gives it")
         cls = dataclasses.dataclass(cls, init=False, repr=False, eq=False)
+        # an InitVar's type reads "InitVar[...]" whether it is the object or, with
+        # postponed annotations, the text
         odd = [f.name for f in cls.__dataclass_fields__.values()
-               if f.kw_only is True or isinstance(f.type, dataclasses.InitVar)
-               or f.type in ("InitVar", "dataclasses.InitVar")
-               or str(f.type).startswith(("InitVar[", "dataclasses.InitVar["))]
+               if f.kw_only is True or "InitVar" in str(f.type)]
         if odd:
             raise TypeError(f"{cls.__qualname__}: {', '.join(odd)} (kw_only or InitVar) need "
                             f"@dataclass, not @record")
